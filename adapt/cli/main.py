@@ -1,0 +1,64 @@
+"""Command-line entry point: parses arguments and delegates to the library.
+
+Each command is one module in this package exposing ``register(subparsers)``, which adds
+its sub-parser and sets ``func`` (a callable taking the parsed namespace and returning
+an exit code). The CLI holds no logic of its own.
+
+Exit codes: 0 success, 1 a check failed (verify), 2 bad input or usage,
+130 interrupted.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import pkgutil
+import sys
+
+from .. import __version__
+from ..errors import EXIT_USAGE, InputError
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse's own usage errors: exit code 2, no traceback
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_USAGE, f"adapt: error: {message}\n")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="adapt", description=(
+        "Adaptive beamforming sandbox: describe an array and a jammer scene in YAML, "
+        "generate seeded snapshot streams, run adaptive processors, score SINR and "
+        "convergence, record and verify reference vectors. Simulation only: validate "
+        "against measured hardware before fielding anything, and note that transmitting "
+        "interference is unlawful in most places."))
+    parser.add_argument("--version", action="version", version=f"adapt {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    from . import __path__ as here
+    modules = []
+    for info in pkgutil.iter_modules(here):
+        if info.name in ("main",) or info.name.startswith("_"):
+            continue
+        modules.append(importlib.import_module(f"{__package__}.{info.name}"))
+    for module in sorted(modules, key=lambda m: getattr(m, "ORDER", 100)):
+        module.register(sub)
+    return parser
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return EXIT_USAGE
+    try:
+        return int(args.func(args) or 0)
+    except InputError as exc:
+        print(f"adapt: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("adapt: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

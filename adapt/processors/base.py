@@ -1,0 +1,356 @@
+"""The one interface every adaptive processor shares.
+
+A processor sees a stream of blocks (trials x snapshots x elements) and, for a list of
+checkpoints (snapshot counts k), reports the weight vector it would use after having
+seen k snapshots: an array of shape (trials, checkpoints, elements).
+
+Conventions (documented once, here and in README):
+
+* weights are applied as ``y = w^H x``;
+* output samples use *held* weights: snapshot j (0-based) is processed with the weight
+  of the latest checkpoint c <= j (c snapshots seen before it arrived), and snapshots
+  before the first checkpoint with the processor's initial (quiescent) weight. The
+  output at a checkpoint's weight is therefore always measured on snapshots that weight
+  was not trained on;
+* the noise power per element is 1 in scene units; a processor that needs a noise
+  level (diagonal loading in dB above the noise floor) takes it from the context.
+
+Writing a processor (one file in this package):
+
+1. subclass :class:`Processor`, set ``method`` (the spec name), ``summary`` and
+   ``parameters`` (a dict of :class:`Parameter`); the base validates them;
+2. implement ``begin(context)`` (allocate state for ``context.trials`` trials) and
+   ``update(block, stops)`` returning the weights after each snapshot count in
+   ``stops`` (sorted, all within the block), shape (T, len(stops), N);
+3. optionally ``check(context)`` to refuse settings that cannot work for this scene
+   (an LMS step above its stability bound), and ``initial_weights(context)``.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Callable, ClassVar, Iterable
+
+import numpy as np
+
+from ..errors import SpecError, did_you_mean
+
+__all__ = ["Parameter", "Processor", "Context", "ProcessorResult", "held_outputs",
+           "run_processor", "run_processors", "normalised_checkpoints"]
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """A declared processor parameter.
+
+    kind: ``float``, ``int``, ``bool``, ``str`` or ``choice``; ``choices`` for choice;
+    ``low``/``high`` inclusive bounds (``low_open``/``high_open`` make them strict);
+    ``allow_none``: the value may be ``none``; ``unit``: shown in help and errors.
+    """
+    kind: str
+    default: Any
+    help: str
+    unit: str = ""
+    low: float | None = None
+    high: float | None = None
+    low_open: bool = False
+    high_open: bool = False
+    choices: tuple = ()
+    allow_none: bool = False
+
+    def describe_allowed(self) -> str:
+        if self.kind == "choice":
+            text = " | ".join(map(str, self.choices))
+        elif self.kind == "bool":
+            text = "true | false"
+        elif self.kind == "str":
+            text = "text"
+        else:
+            lo = "(" if self.low_open else "["
+            hi = ")" if self.high_open else "]"
+            a = "-inf" if self.low is None else f"{self.low:g}"
+            b = "inf" if self.high is None else f"{self.high:g}"
+            text = f"{'an integer' if self.kind == 'int' else 'a number'} in {lo}{a}, {b}{hi}"
+            if self.unit:
+                text += f" {self.unit}"
+        if self.allow_none:
+            text += " | none"
+        return text
+
+    def coerce(self, value: Any, where: str) -> Any:
+        """Convert a value (from YAML or a ``key=value`` string) or raise SpecError."""
+        def bad(msg="invalid value"):
+            return SpecError(msg, path=where, value=value, allowed=self.describe_allowed())
+
+        if value is None or (isinstance(value, str) and value.strip().lower() in ("none", "null", "")):
+            if self.allow_none:
+                return None
+            raise bad("a value is required")
+        if self.kind == "bool":
+            if isinstance(value, bool):
+                return value
+            if isinstance(value, str) and value.lower() in ("true", "yes", "1", "on"):
+                return True
+            if isinstance(value, str) and value.lower() in ("false", "no", "0", "off"):
+                return False
+            raise bad()
+        if self.kind == "str":
+            if isinstance(value, str) and len(value) <= 200:
+                return value
+            raise bad()
+        if self.kind == "choice":
+            text = str(value).strip().lower() if isinstance(value, str) else value
+            if text in self.choices:
+                return text
+            raise SpecError("unknown choice" + did_you_mean(str(value), map(str, self.choices)),
+                            path=where, value=value, allowed=self.describe_allowed())
+        # numbers
+        if isinstance(value, bool):
+            raise bad("expected a number, not a true/false")
+        if isinstance(value, str):
+            try:
+                number = float(value.strip())
+            except ValueError:
+                raise bad("expected a number") from None
+        elif isinstance(value, (int, float, np.integer, np.floating)):
+            number = float(value)
+        else:
+            raise bad("expected a number")
+        if not math.isfinite(number):
+            raise bad("must be finite")
+        if self.kind == "int":
+            if number != int(number) or abs(number) > 2 ** 62:
+                raise bad("expected an integer")
+            number = int(number)
+        if self.low is not None and (number < self.low or (self.low_open and number == self.low)):
+            raise bad("out of range")
+        if self.high is not None and (number > self.high or (self.high_open and number == self.high)):
+            raise bad("out of range")
+        return number
+
+
+@dataclass
+class Context:
+    """What a processor may know besides the data it is fed.
+
+    look: (N,) assumed steering vector toward the look direction (nominal array).
+    positions: (N, 3) nominal element positions in wavelengths.
+    trials: number of trials in the batch.
+    noise_power: per-element thermal noise power (1 in scene units).
+    covariance: callable ``k -> (T, len(k), N, N)`` true interference-plus-noise
+        covariance at snapshot indices k; only clairvoyant processors (the optimum) use it.
+    training_covariance: callable ``k -> (T, len(k), N, N)``: true covariance of the
+        data the processors train on (adds the wanted signal in the signal-present case);
+        used to check stability bounds, never to adapt.
+    has_reference: True when a reference waveform is available (always, in simulation).
+    """
+    look: np.ndarray
+    positions: np.ndarray
+    trials: int
+    noise_power: float = 1.0
+    covariance: Callable[[np.ndarray], np.ndarray] | None = None
+    training_covariance: Callable[[np.ndarray], np.ndarray] | None = None
+    has_reference: bool = True
+
+    @property
+    def elements(self) -> int:
+        return int(self.look.shape[-1])
+
+    @classmethod
+    def from_batch(cls, batch) -> "Context":
+        """Context for a :class:`adapt.streams.TrialBatch`."""
+        return cls(look=batch.look, positions=batch.scene.array.positions,
+                   trials=batch.trials, noise_power=1.0,
+                   covariance=lambda k: batch.covariance(np.asarray(k)),
+                   training_covariance=lambda k: batch.covariance(np.asarray(k), training=True))
+
+
+@dataclass
+class ProcessorResult:
+    """Weights (T, C, N) at ``checkpoints`` (C,), and output samples (T, K) if asked."""
+    label: str
+    method: str
+    params: dict
+    checkpoints: np.ndarray
+    weights: np.ndarray
+    outputs: np.ndarray | None = None
+    initial: np.ndarray | None = None
+    seconds: float = 0.0
+
+
+class Processor:
+    """Base class: declared parameters, validation, and the block-driving loop."""
+
+    method: ClassVar[str] = ""
+    summary: ClassVar[str] = ""
+    parameters: ClassVar[dict[str, Parameter]] = {}
+    #: the method trains on the reference waveform (LMS family)
+    uses_reference: ClassVar[bool] = False
+
+    def __init__(self, label: str | None = None, **params: Any):
+        self.params = self.validate(params)
+        self.label = label or self.default_label()
+
+    # -- parameters ----------------------------------------------------------
+    @classmethod
+    def validate(cls, given: dict, where: str = "") -> dict:
+        """Fill defaults and coerce each value; unknown names get a did-you-mean."""
+        out = {}
+        for name, value in given.items():
+            if name not in cls.parameters:
+                allowed = ", ".join(cls.parameters) or "none"
+                raise SpecError(f"unknown parameter '{name}' for method '{cls.method}'"
+                                + did_you_mean(name, cls.parameters),
+                                path=f"{where}{name}" if where else name, allowed=allowed)
+            out[name] = cls.parameters[name].coerce(value, f"{where}{name}" if where else name)
+        for name, p in cls.parameters.items():
+            out.setdefault(name, p.default)
+        cls.cross_check(out, where)
+        return out
+
+    @classmethod
+    def cross_check(cls, params: dict, where: str) -> None:
+        """Checks between parameters; raise SpecError. Default: none."""
+
+    def default_label(self) -> str:
+        changed = [f"{k}={_fmt(v)}" for k, v in self.params.items()
+                   if v != self.parameters[k].default]
+        return " ".join([self.method] + changed)
+
+    def spec(self) -> str:
+        """The spec string that rebuilds this processor."""
+        parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()]
+        if self.label != self.default_label():
+            parts.append(f"label={self.label}")
+        return " ".join(parts)
+
+    # -- the kernel interface --------------------------------------------------
+    def check(self, context: Context) -> None:
+        """Refuse settings that cannot work for this scene (raise SpecError)."""
+
+    def initial_weights(self, context: Context) -> np.ndarray:
+        """Weight (T, N) used before the first checkpoint: the look steering vector
+        normalised to unit response by default."""
+        w = context.look / context.elements
+        return np.broadcast_to(w, (context.trials, context.elements)).copy()
+
+    def begin(self, context: Context) -> None:
+        raise NotImplementedError
+
+    def update(self, block, stops: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    # -- driver ----------------------------------------------------------------
+    def run(self, blocks: Iterable, context: Context, checkpoints,
+            outputs: bool = False) -> ProcessorResult:
+        """Feed ``blocks`` through the processor; see :func:`run_processor`."""
+        return run_processor(self, blocks, context, checkpoints, outputs=outputs)
+
+
+def _fmt(v: Any) -> str:
+    if isinstance(v, float):
+        return f"{v:g}"
+    if v is None:
+        return "none"
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    return str(v)
+
+
+def normalised_checkpoints(checkpoints, snapshots: int | None = None) -> np.ndarray:
+    """Sorted unique int64 checkpoints, each in [1, snapshots]; ValueError otherwise."""
+    c = np.asarray(checkpoints)
+    if c.ndim != 1 or c.size == 0:
+        raise ValueError("checkpoints must be a non-empty 1-D list of snapshot counts")
+    if not np.issubdtype(c.dtype, np.integer):
+        if not np.all(np.isfinite(c)) or np.any(c != np.round(c)):
+            raise ValueError("checkpoints must be whole snapshot counts")
+    c = np.unique(c.astype(np.int64))
+    if c[0] < 1:
+        raise ValueError(f"checkpoints must be >= 1 snapshot, got {c[0]}")
+    if snapshots is not None and c[-1] > snapshots:
+        raise ValueError(f"checkpoint {c[-1]} is beyond the stream's {snapshots} snapshots")
+    return c
+
+
+def held_outputs(data: np.ndarray, start: int, held: np.ndarray, weights: np.ndarray,
+                 checkpoints: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Output samples ``y = w^H x`` of one block under the held-weight convention.
+
+    data: (T, B, N) block starting at snapshot ``start``; held: (T, N) weight in force
+    when the block starts; weights: (T, C, N) weights at ``checkpoints`` (C,) that fall
+    inside this block (start < c <= start + B). Returns (outputs (T, B), weight in force
+    after the block (T, N)).
+    """
+    t_, b, _ = data.shape
+    out = np.empty((t_, b), dtype=np.result_type(data, held, complex))
+    edges = [0] + [int(c - start) for c in checkpoints] + [b]
+    current = held
+    for j in range(len(edges) - 1):
+        lo, hi = edges[j], edges[j + 1]
+        if j > 0:
+            current = weights[:, j - 1, :]
+        if hi > lo:
+            out[:, lo:hi] = np.einsum("tn,tbn->tb", np.conj(current), data[:, lo:hi, :])
+    return out, current
+
+
+def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
+                   outputs: bool = False, snapshots: int | None = None
+                   ) -> list[ProcessorResult]:
+    """Drive several processors over one pass of ``blocks`` (objects with ``start``,
+    ``stop``, ``data``, ``training``, ``reference``) and collect weights at
+    ``checkpoints``.
+
+    The stream is drawn once and every processor sees every block. Returns one
+    :class:`ProcessorResult` per processor: weights (T, C, N), and output samples (T, K)
+    under the held-weight convention when ``outputs`` is True. Reading stops after the
+    last checkpoint unless outputs are wanted. ``seconds`` is each processor's own time.
+    """
+    import time
+    cps = normalised_checkpoints(checkpoints, snapshots)
+    procs = list(processors)
+    for p in procs:
+        p.check(context)
+    seconds = [0.0] * len(procs)
+    held, initial = [], []
+    for i, p in enumerate(procs):
+        t0 = time.perf_counter()
+        p.begin(context)
+        w0 = p.initial_weights(context)
+        seconds[i] += time.perf_counter() - t0
+        held.append(w0)
+        initial.append(w0.copy())
+    found: list[list[np.ndarray]] = [[] for _ in procs]
+    outs: list[list[np.ndarray]] = [[] for _ in procs]
+    seen = 0
+    for block in blocks:
+        if block.start != seen:
+            raise ValueError(f"blocks must be contiguous: expected start {seen}, got {block.start}")
+        seen = block.stop
+        inside = cps[(cps > block.start) & (cps <= block.stop)]
+        for i, p in enumerate(procs):
+            t0 = time.perf_counter()
+            # every block goes through update: recursive state and window sums need it
+            w = p.update(block, inside)
+            seconds[i] += time.perf_counter() - t0
+            if inside.size:
+                found[i].append(w)
+            if outputs:
+                y, held[i] = held_outputs(block.data, block.start, held[i], w, inside)
+                outs[i].append(y)
+        if seen >= cps[-1] and not outputs:
+            break
+    if seen < cps[-1]:
+        raise ValueError(f"the stream ended at {seen} snapshots, before checkpoint {cps[-1]}")
+    return [ProcessorResult(label=p.label, method=p.method, params=dict(p.params),
+                            checkpoints=cps, weights=np.concatenate(found[i], axis=1),
+                            outputs=np.concatenate(outs[i], axis=1) if outputs else None,
+                            initial=initial[i], seconds=seconds[i])
+            for i, p in enumerate(procs)]
+
+
+def run_processor(processor: Processor, blocks: Iterable, context: Context, checkpoints,
+                  outputs: bool = False, snapshots: int | None = None) -> ProcessorResult:
+    """One processor over ``blocks``; see :func:`run_processors`."""
+    return run_processors([processor], blocks, context, checkpoints, outputs, snapshots)[0]

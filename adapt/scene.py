@@ -1,0 +1,219 @@
+"""The scene: an array, the sources around it, what the processors assume and train on.
+
+This module holds the scene's data model (plain frozen dataclasses). Reading and
+validating scene files lives in :mod:`adapt.scenefile`; generating sample streams from a
+scene lives in :mod:`adapt.streams`.
+
+Units: positions and spacings in wavelengths, angles in degrees, powers in dB relative
+to the per-element thermal noise power (noise is unit power per element), time in
+snapshots.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import geometry
+
+LAYOUTS = ("line", "grid", "ring", "custom")
+ROLES = ("desired", "interferer")
+WAVEFORMS = ("gaussian", "bpsk", "qpsk", "tone", "chirp")
+TRAINING = ("interference", "signal")
+
+
+@dataclass(frozen=True)
+class HardwareErrors:
+    """Per-element errors, drawn once per trial (independent Gaussian, zero mean).
+
+    gain_db_rms: amplitude error, dB rms; phase_deg_rms: phase error, degrees rms;
+    position_rms: position error per coordinate in the array's own plane or line,
+    wavelengths rms.
+    """
+    gain_db_rms: float = 0.0
+    phase_deg_rms: float = 0.0
+    position_rms: float = 0.0
+
+    @property
+    def any(self) -> bool:
+        return bool(self.gain_db_rms or self.phase_deg_rms or self.position_rms)
+
+
+@dataclass(frozen=True)
+class ArrayLayout:
+    """Element positions (N, 3) in wavelengths plus how they were described."""
+    layout: str
+    positions: np.ndarray
+    errors: HardwareErrors = field(default_factory=HardwareErrors)
+    #: the layout's own settings as given or defaulted (count, spacing, rows, ...)
+    settings: dict = field(default_factory=dict)
+
+    @property
+    def elements(self) -> int:
+        return int(self.positions.shape[0])
+
+    @property
+    def aperture(self) -> float:
+        return geometry.aperture(self.positions)
+
+    @property
+    def error_axes(self) -> np.ndarray:
+        """Boolean mask (3,) of the coordinates position errors perturb: the axes the
+        layout spans (x for a line, x and z for a grid, x and y for a ring; all spanned
+        axes for a custom layout)."""
+        spread = np.ptp(self.positions, axis=0) > 0
+        if not spread.any():
+            spread = np.array([True, False, False])
+        return spread
+
+
+@dataclass(frozen=True)
+class Waveform:
+    """A source's complex-envelope waveform, unit average power, one value per snapshot.
+
+    kind: ``gaussian`` (circular complex Gaussian), ``bpsk`` (+-1), ``qpsk``
+    ((+-1 +-j)/sqrt 2), ``tone`` (``exp(j(2 pi f k + phi))``, ``frequency`` in cycles per
+    snapshot, phi random per trial) or ``chirp`` (linear sweep from ``start`` to ``stop``
+    cycles per snapshot over ``period`` snapshots, repeating; random start phase).
+    """
+    kind: str = "gaussian"
+    frequency: float = 0.0
+    start: float = -0.25
+    stop: float = 0.25
+    period: int = 1024
+
+
+@dataclass(frozen=True)
+class Pulsing:
+    """On/off behaviour. The source is on at snapshot k (0-based) when
+    ``start <= k < stop`` (``stop`` None means forever) and, if ``period`` is set,
+    ``(k - start) % period < on``."""
+    start: int = 0
+    stop: int | None = None
+    period: int | None = None
+    on: int | None = None
+
+    def active(self, k: np.ndarray) -> np.ndarray:
+        k = np.asarray(k)
+        out = k >= self.start
+        if self.stop is not None:
+            out &= k < self.stop
+        if self.period is not None:
+            out &= ((k - self.start) % self.period) < self.on
+        return out
+
+
+@dataclass(frozen=True)
+class Motion:
+    """Constant angular rates, degrees per snapshot."""
+    azimuth_rate: float = 0.0
+    elevation_rate: float = 0.0
+
+
+@dataclass(frozen=True)
+class Source:
+    name: str
+    role: str
+    azimuth: float
+    elevation: float
+    power_db: float
+    waveform: Waveform = field(default_factory=Waveform)
+    pulsing: Pulsing | None = None
+    motion: Motion | None = None
+
+    @property
+    def power(self) -> float:
+        """Per-element power relative to the per-element noise power (linear)."""
+        return float(10.0 ** (self.power_db / 10.0))
+
+    @property
+    def stationary(self) -> bool:
+        return self.pulsing is None and (self.motion is None or (
+            self.motion.azimuth_rate == 0 and self.motion.elevation_rate == 0))
+
+    def direction(self, k) -> tuple[np.ndarray, np.ndarray]:
+        """(azimuth, elevation) in degrees at snapshot(s) k."""
+        k = np.asarray(k, dtype=float)
+        if self.motion is None:
+            return np.full(k.shape, self.azimuth), np.full(k.shape, self.elevation)
+        return (self.azimuth + self.motion.azimuth_rate * k,
+                self.elevation + self.motion.elevation_rate * k)
+
+    def active(self, k) -> np.ndarray:
+        k = np.asarray(k)
+        if self.pulsing is None:
+            return np.ones(k.shape, dtype=bool)
+        return self.pulsing.active(k)
+
+
+@dataclass(frozen=True)
+class Receiver:
+    """Optional ADC model: ``bits`` per I and Q rail (None: no quantisation), full scale
+    (clip level of each rail) ``full_scale_db`` dB above the per-element noise rms."""
+    bits: int | None = None
+    full_scale_db: float = 40.0
+
+
+@dataclass(frozen=True)
+class Scene:
+    name: str
+    array: ArrayLayout
+    sources: tuple[Source, ...]
+    look_azimuth: float
+    look_elevation: float
+    training: str = "interference"
+    receiver: Receiver = field(default_factory=Receiver)
+    snapshots: int = 1024
+    trials: int = 100
+    seed: int = 0
+    #: processor specs as given (strings or mappings); parsed by adapt.processors
+    processors: tuple = ()
+    #: file the scene came from, if any
+    source_file: str | None = None
+    #: the scene as a plain mapping, defaults filled in (for scene.yaml in run folders)
+    resolved: dict = field(default_factory=dict, compare=False, repr=False)
+
+    @property
+    def elements(self) -> int:
+        return self.array.elements
+
+    @property
+    def desired(self) -> Source:
+        return next(s for s in self.sources if s.role == "desired")
+
+    @property
+    def desired_index(self) -> int:
+        return next(i for i, s in enumerate(self.sources) if s.role == "desired")
+
+    @property
+    def interferers(self) -> tuple[Source, ...]:
+        return tuple(s for s in self.sources if s.role == "interferer")
+
+    @property
+    def interferer_indices(self) -> tuple[int, ...]:
+        return tuple(i for i, s in enumerate(self.sources) if s.role == "interferer")
+
+    @property
+    def stationary(self) -> bool:
+        """True when no source pulses or moves: one covariance describes the scene."""
+        return all(s.stationary for s in self.sources)
+
+    def look_steering(self) -> np.ndarray:
+        """The assumed steering vector (N,) toward ``look``: nominal positions, no
+        hardware errors."""
+        return geometry.steering_vector(self.array.positions, self.look_azimuth,
+                                        self.look_elevation)
+
+    def with_overrides(self, **changes: Any) -> "Scene":
+        """A copy with fields replaced (trials, snapshots, seed, processors, ...)."""
+        import dataclasses
+        new = dataclasses.replace(self, **changes)
+        resolved = dict(self.resolved)
+        for key, value in changes.items():
+            if key in ("trials", "snapshots", "seed"):
+                resolved[key] = value
+            elif key == "processors":
+                resolved[key] = list(value)
+        object.__setattr__(new, "resolved", resolved)
+        return new

@@ -1,0 +1,297 @@
+"""Seeded, streamable multi-element sample generation.
+
+A :class:`TrialBatch` is a set of independent Monte Carlo trials of one scene. Each trial
+draws its own hardware errors and waveform phases once, then produces complex-baseband
+snapshots block by block:
+
+``x[t, k, :] = sum_s sqrt(P_s) g_s(k) s_s[t, k] a_s[t, k, :] + n[t, k, :]``
+
+with ``a_s`` the true steering vector of source s in trial t (hardware errors included),
+``g_s(k)`` its on/off gate, ``s_s`` its unit-power waveform and ``n`` circular complex
+Gaussian noise of unit power per element.
+
+Reproducibility (tested):
+
+* trial i's randomness comes only from ``SeedSequence(seed, spawn_key=(i, ...))``, so trial
+  i is bit-identical whether 1, 10 or 10,000 trials are drawn, and whatever the batch it
+  sits in (this is what makes results independent of batch size and worker count);
+* within a trial, the noise and each source's waveform have their own streams keyed by the
+  source's name, so adding or removing one jammer leaves the noise and the other sources'
+  waveforms unchanged (common random numbers across scene variants);
+* blocks concatenated are bit-identical to one-shot generation, whatever the block size,
+  and memory is bounded by the block.
+
+The only Python-level loop over trials is one call to each trial's own generator per
+block and stream (independent per-trial streams need it); all arithmetic is batched over
+trials.
+"""
+from __future__ import annotations
+
+import zlib
+from dataclasses import dataclass
+from typing import Iterator
+
+import numpy as np
+
+from .scene import Scene
+
+__all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise"]
+
+_CONSTANTS, _STREAMS = 0, 1
+_NOISE_KEY = 0xFFFFFFFF
+_MAX_BLOCK_VALUES = 1 << 21      # complex values per (trials x block x elements) array
+
+
+def _component_key(name: str) -> int:
+    return zlib.crc32(name.encode("utf-8")) & 0x7FFFFFFF
+
+
+def default_block_size(trials: int, elements: int, snapshots: int) -> int:
+    """Snapshots per block keeping one (trials, block, elements) array near 32 MB."""
+    return int(max(1, min(snapshots, _MAX_BLOCK_VALUES // max(1, trials * elements))))
+
+
+def quantise(x: np.ndarray, bits: int, full_scale: float) -> np.ndarray:
+    """Uniform mid-rise quantiser applied separately to the real and imaginary rails,
+    ``2**bits`` levels spanning [-full_scale, full_scale], clipping outside."""
+    step = 2.0 * full_scale / (1 << bits)
+    top = (1 << (bits - 1)) - 0.5
+
+    def rail(v):
+        return np.clip(np.floor(v / step) + 0.5, -top, top) * step
+
+    return rail(x.real) + 1j * rail(x.imag)
+
+
+@dataclass
+class Block:
+    """Snapshots ``start`` to ``stop - 1`` (0-based) of every trial in a batch.
+
+    data:      (T, B, N) what the array receives (after the ADC model, if any);
+    signal:    (T, B, N) the wanted source's part of ``data`` (before quantisation);
+    training:  (T, B, N) what the adaptive processors train on: ``data`` when the scene
+               trains with the wanted signal present, else interference plus noise only;
+    reference: (T, B) the wanted source's complex envelope at the array origin,
+               ``sqrt(P) g(k) s[k]``: the reference waveform LMS-type processors train on.
+    """
+    start: int
+    stop: int
+    data: np.ndarray
+    signal: np.ndarray
+    training: np.ndarray
+    reference: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return self.stop - self.start
+
+    @property
+    def interference(self) -> np.ndarray:
+        """(T, B, N) interference plus noise (and quantisation error) part of ``data``."""
+        return self.data - self.signal
+
+
+class TrialBatch:
+    """Trials ``first_trial`` .. ``first_trial + trials - 1`` of a scene.
+
+    Parameters
+    ----------
+    scene : the scene.
+    trials : number of trials (default: the scene's).
+    seed : root seed (default: the scene's).
+    first_trial : index of the first trial in this batch (for partitioning work).
+    """
+
+    def __init__(self, scene: Scene, trials: int | None = None, seed: int | None = None,
+                 first_trial: int = 0):
+        self.scene = scene
+        self.trials = int(scene.trials if trials is None else trials)
+        self.seed = int(scene.seed if seed is None else seed)
+        self.first_trial = int(first_trial)
+        if self.trials < 1:
+            raise ValueError(f"trials must be >= 1, got {self.trials}")
+        if self.first_trial < 0:
+            raise ValueError(f"first_trial must be >= 0, got {self.first_trial}")
+        if self.seed < 0:
+            raise ValueError(f"seed must be >= 0, got {self.seed}")
+        self._draw_constants()
+
+    # ------------------------------------------------------------------ constants
+    @property
+    def trial_indices(self) -> np.ndarray:
+        return np.arange(self.first_trial, self.first_trial + self.trials)
+
+    def _seed(self, trial: int, *key: int) -> np.random.SeedSequence:
+        return np.random.SeedSequence(self.seed, spawn_key=(int(trial),) + key)
+
+    def _draw_constants(self) -> None:
+        sc = self.scene
+        n = sc.elements
+        s = len(sc.sources)
+        draws = np.empty((self.trials, 5 * n + s))
+        for t, i in enumerate(self.trial_indices):
+            g = np.random.Generator(np.random.PCG64(self._seed(i, _CONSTANTS)))
+            g.standard_normal(out=draws[t, : 5 * n])
+            draws[t, 5 * n:] = g.random(s)
+        err = sc.array.errors
+        gain_db = err.gain_db_rms * draws[:, :n]
+        phase = np.deg2rad(err.phase_deg_rms) * draws[:, n:2 * n]
+        dpos = err.position_rms * draws[:, 2 * n:5 * n].reshape(self.trials, n, 3)
+        dpos = dpos * sc.array.error_axes
+        #: (T, N) complex element gains (1 without errors)
+        self.element_gains = 10.0 ** (gain_db / 20.0) * np.exp(1j * phase)
+        #: (T, N, 3) true element positions in wavelengths
+        self.positions = sc.array.positions[None, :, :] + dpos
+        #: (T, S) start phase of each source's tone or chirp, radians
+        self.start_phases = 2 * np.pi * draws[:, 5 * n:]
+
+    # ------------------------------------------------------------------ geometry
+    @property
+    def look(self) -> np.ndarray:
+        """Assumed look steering vector (N,): nominal positions, no errors."""
+        return self.scene.look_steering()
+
+    def steering(self, source: int, k=None) -> np.ndarray:
+        """True steering vector of source ``source`` (index into scene.sources).
+
+        ``k`` None: at snapshot 0, shape (T, N). ``k`` an array of snapshot indices:
+        shape (T, len(k), N).
+        """
+        src = self.scene.sources[source]
+        kk = np.atleast_1d(np.asarray(0 if k is None else k))
+        az, el = src.direction(kk)
+        azr, elr = np.deg2rad(az), np.deg2rad(el)
+        u = np.stack([np.sin(azr) * np.cos(elr), np.cos(azr) * np.cos(elr), np.sin(elr)], -1)
+        # elementwise products (not matmul) so results do not depend on batch shape
+        phase = 2 * np.pi * (self.positions[:, None, :, :] * u[None, :, None, :]).sum(-1)
+        a = self.element_gains[:, None, :] * np.exp(1j * phase)
+        return a[:, 0, :] if k is None else a
+
+    def desired_steering(self, k=None) -> np.ndarray:
+        return self.steering(self.scene.desired_index, k)
+
+    def covariance(self, k=None, *, training: bool = False) -> np.ndarray:
+        """True interference-plus-noise covariance ``R_in`` (noise power 1 per element).
+
+        ``k`` None: at snapshot 0, shape (T, N, N) (the whole run for a stationary scene).
+        ``k`` an array of snapshot indices: shape (T, len(k), N, N), the covariance of the
+        moment (gates and directions at that snapshot). ``training=True`` adds the wanted
+        source when the scene trains with the signal present (the covariance of the
+        training data). Quantisation noise is not included.
+        """
+        sc = self.scene
+        kk = np.atleast_1d(np.asarray(0 if k is None else k))
+        n = sc.elements
+        r = np.zeros((self.trials, len(kk), n, n), dtype=complex)
+        r += np.eye(n)
+        members = list(sc.interferer_indices)
+        if training and sc.training == "signal":
+            members.append(sc.desired_index)
+        for i in members:
+            src = sc.sources[i]
+            a = self.steering(i, kk)                                   # (T, M, N)
+            p = src.power * src.active(kk).astype(float)              # (M,)
+            r += p[None, :, None, None] * (a[..., :, None] * np.conj(a[..., None, :]))
+        return r[:, 0] if k is None else r
+
+    # ------------------------------------------------------------------ streams
+    def _waveform(self, gens, src_index: int, start: int, size: int) -> np.ndarray:
+        """(T, B) unit-power waveform of one source over snapshots [start, start+size)."""
+        src = self.scene.sources[src_index]
+        wf = src.waveform
+        t_ = self.trials
+        if wf.kind == "gaussian":
+            z = np.empty((t_, size, 2))
+            for t in range(t_):
+                gens[t].standard_normal(out=z[t])
+            return z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+        if wf.kind in ("bpsk", "qpsk"):
+            rails = 1 if wf.kind == "bpsk" else 2
+            z = np.empty((t_, size, rails))
+            for t in range(t_):
+                gens[t].standard_normal(out=z[t])
+            sym = np.where(z >= 0, 1.0, -1.0)
+            if rails == 1:
+                return sym[..., 0].astype(complex)
+            return (sym[..., 0] + 1j * sym[..., 1]) * np.sqrt(0.5)
+        k = np.arange(start, start + size, dtype=float)
+        phi0 = self.start_phases[:, src_index][:, None]
+        if wf.kind == "tone":
+            return np.exp(1j * (2 * np.pi * wf.frequency * k[None, :] + phi0))
+        # chirp: instantaneous frequency start + (stop - start) m / period, m = k mod period
+        m = np.mod(k, wf.period)
+        cyc = wf.start * m + 0.5 * (wf.stop - wf.start) * m * m / wf.period
+        return np.exp(1j * (2 * np.pi * cyc[None, :] + phi0))
+
+    def blocks(self, snapshots: int | None = None, block: int | None = None) -> Iterator[Block]:
+        """Yield :class:`Block` s covering snapshots 0 .. snapshots-1 of every trial.
+
+        Each call starts the streams afresh, so two calls yield identical data.
+        """
+        sc = self.scene
+        k_total = int(sc.snapshots if snapshots is None else snapshots)
+        if k_total < 1:
+            raise ValueError(f"snapshots must be >= 1, got {k_total}")
+        n = sc.elements
+        b = default_block_size(self.trials, n, k_total) if block is None else int(block)
+        if b < 1:
+            raise ValueError(f"block must be >= 1 snapshot, got {b}")
+        idx = self.trial_indices
+
+        def gens_for(key: int):
+            return [np.random.Generator(np.random.PCG64(self._seed(i, _STREAMS, key)))
+                    for i in idx]
+
+        noise_gens = gens_for(_NOISE_KEY)
+        source_gens = {i: gens_for(_component_key(s.name))
+                       for i, s in enumerate(sc.sources)
+                       if s.waveform.kind in ("gaussian", "bpsk", "qpsk")}
+        stationary_a = {i: self.steering(i) for i, s in enumerate(sc.sources)
+                        if s.motion is None}
+        d_idx = sc.desired_index
+        rx = sc.receiver
+        full_scale = 10.0 ** (rx.full_scale_db / 20.0)
+
+        for start in range(0, k_total, b):
+            size = min(b, k_total - start)
+            kk = np.arange(start, start + size)
+            z = np.empty((self.trials, size, n, 2))
+            for t in range(self.trials):
+                noise_gens[t].standard_normal(out=z[t])
+            interference = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+            signal = None
+            reference = None
+            for i, src in enumerate(sc.sources):
+                w = self._waveform(source_gens.get(i), i, start, size)          # (T, B)
+                gate = src.active(kk)
+                amp = np.sqrt(src.power) * (gate if src.pulsing is not None else 1.0)
+                env = w * amp                                                  # (T, B)
+                if i in stationary_a:
+                    part = env[..., None] * stationary_a[i][:, None, :]
+                else:
+                    part = env[..., None] * self.steering(i, kk)
+                if i == d_idx:
+                    signal, reference = part, env
+                else:
+                    interference += part
+            data = signal + interference
+            if rx.bits is not None:
+                data = quantise(data, rx.bits, full_scale)
+                training = (quantise(interference, rx.bits, full_scale)
+                            if sc.training == "interference" else data)
+            else:
+                training = interference if sc.training == "interference" else data
+            yield Block(start, start + size, data, signal, training, reference)
+
+    def samples(self, snapshots: int | None = None) -> Block:
+        """All snapshots as one :class:`Block` (materialised; use :meth:`blocks` for long
+        streams)."""
+        k_total = int(self.scene.snapshots if snapshots is None else snapshots)
+        return next(iter(self.blocks(k_total, block=k_total)))
+
+
+def generate(scene: Scene, trials: int | None = None, snapshots: int | None = None,
+             seed: int | None = None) -> tuple[TrialBatch, Block]:
+    """Draw ``trials`` trials of ``snapshots`` snapshots in one go: (batch, block)."""
+    batch = TrialBatch(scene, trials=trials, seed=seed)
+    return batch, batch.samples(snapshots)
