@@ -296,8 +296,8 @@ def held_outputs(data: np.ndarray, start: int, held: np.ndarray, weights: np.nda
 
 
 def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
-                   outputs: bool = False, snapshots: int | None = None
-                   ) -> list[ProcessorResult]:
+                   outputs: bool = False, snapshots: int | None = None,
+                   on_block: Callable | None = None) -> list[ProcessorResult]:
     """Drive several processors over one pass of ``blocks`` (objects with ``start``,
     ``stop``, ``data``, ``training``, ``reference``) and collect weights at
     ``checkpoints``.
@@ -306,6 +306,10 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
     :class:`ProcessorResult` per processor: weights (T, C, N), and output samples (T, K)
     under the held-weight convention when ``outputs`` is True. Reading stops after the
     last checkpoint unless outputs are wanted. ``seconds`` is each processor's own time.
+
+    ``on_block(index, block, inside, weights, held)``, if given, is called for every
+    processor and block with the checkpoints inside the block, their weights (T, C_b, N)
+    and the weight held when the block started (T, N); all blocks are then read.
     """
     import time
     cps = normalised_checkpoints(checkpoints, snapshots)
@@ -336,10 +340,14 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
             seconds[i] += time.perf_counter() - t0
             if inside.size:
                 found[i].append(w)
+            if on_block is not None:
+                on_block(i, block, inside, w, held[i])
             if outputs:
                 y, held[i] = held_outputs(block.data, block.start, held[i], w, inside)
                 outs[i].append(y)
-        if seen >= cps[-1] and not outputs:
+            elif inside.size:
+                held[i] = w[:, -1, :]
+        if seen >= cps[-1] and not outputs and on_block is None:
             break
     if seen < cps[-1]:
         raise ValueError(f"the stream ended at {seen} snapshots, before checkpoint {cps[-1]}")
