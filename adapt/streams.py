@@ -167,6 +167,14 @@ class TrialBatch:
         a = self.element_gains[:, None, :] * np.exp(1j * phase)
         return a[:, 0, :] if k is None else a
 
+    def steering_toward(self, azimuth_deg: float, elevation_deg: float = 0.0) -> np.ndarray:
+        """True array response (T, N) toward a fixed direction (hardware errors
+        included): what a plane wave from there actually produces at the elements."""
+        az, el = np.deg2rad(azimuth_deg), np.deg2rad(elevation_deg)
+        u = np.array([np.sin(az) * np.cos(el), np.cos(az) * np.cos(el), np.sin(el)])
+        phase = 2 * np.pi * (self.positions * u).sum(-1)
+        return self.element_gains * np.exp(1j * phase)
+
     def desired_steering(self, k=None) -> np.ndarray:
         return self.steering(self.scene.desired_index, k)
 

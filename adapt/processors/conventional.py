@@ -14,6 +14,8 @@ multiply-adds for the output; none for the weights.
 """
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from scipy.signal import windows
 
@@ -40,7 +42,9 @@ def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: i
         if not np.allclose(steps, steps[0], rtol=1e-6, atol=1e-9):
             raise ValueError("a taper needs uniformly spaced elements along each axis")
         if taper == "chebyshev":
-            w = windows.chebwin(m, at=sidelobe_db, sym=True)
+            with warnings.catch_warnings():   # scipy warns about spectral-analysis use only
+                warnings.simplefilter("ignore", UserWarning)
+                w = windows.chebwin(m, at=sidelobe_db, sym=True)
         else:
             w = windows.taylor(m, nbar=nbar, sll=sidelobe_db, norm=False, sym=True)
         return w[index]

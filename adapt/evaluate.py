@@ -1,0 +1,237 @@
+"""The Monte Carlo engine: draw trials, run processors, score every checkpoint.
+
+``evaluate`` is what ``compare``, ``size`` and the benchmarks share. For each processor,
+checkpoint and trial it returns the output SINR on the true covariance of the moment,
+the normalised SINR and loss against the optimum, the white-noise gain, the null depth
+toward every interferer and the SINR measured from the output samples.
+
+Timing convention: the weight a processor holds after c snapshots is scored against the
+scene as it is at snapshot index c (0-based), the first snapshot that weight is applied
+to. For a stationary scene this is simply *the* covariance; for a pulsing or moving
+jammer it makes the scores dip when the scene changes and recover as the processor
+adapts.
+
+Trials are processed in chunks (``chunk`` trials at a time, each chunk its own
+:class:`~adapt.streams.TrialBatch`); every trial's randomness comes from its own seed, so
+results do not depend on the chunk size, block size or worker count.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Iterator, Sequence
+
+import numpy as np
+
+from . import scores
+from .processors import Context, Processor, run_processors
+from .processors.base import normalised_checkpoints
+from .scene import Scene
+from .streams import TrialBatch
+
+__all__ = ["ProcessorScores", "Evaluation", "evaluate", "evaluate_batch", "trial_chunks",
+           "default_checkpoints"]
+
+
+def default_checkpoints(snapshots: int, per_octave: int = 4, first: int = 1) -> np.ndarray:
+    """Checkpoints spaced geometrically (``per_octave`` per doubling) from ``first`` to
+    ``snapshots``, always including both ends."""
+    if snapshots < 1:
+        raise ValueError(f"snapshots must be >= 1, got {snapshots}")
+    n = max(2, int(np.ceil(np.log2(max(snapshots / first, 1)) * per_octave)) + 1)
+    c = np.unique(np.round(np.geomspace(first, snapshots, n)).astype(np.int64))
+    return c[(c >= 1) & (c <= snapshots)]
+
+
+def trial_chunks(trials: int, chunk: int | None, first: int = 0) -> list[tuple[int, int]]:
+    """(first_trial, count) pairs covering ``trials`` trials in chunks of ``chunk``."""
+    if trials < 1:
+        raise ValueError(f"trials must be >= 1, got {trials}")
+    size = trials if not chunk else int(chunk)
+    if size < 1:
+        raise ValueError(f"chunk must be >= 1 trial, got {chunk}")
+    return [(first + s, min(size, trials - s)) for s in range(0, trials, size)]
+
+
+@dataclass
+class ProcessorScores:
+    """Scores of one processor: arrays are (trials, checkpoints) unless noted."""
+    label: str
+    method: str
+    params: dict
+    spec: str
+    checkpoints: np.ndarray
+    sinr: np.ndarray
+    normalised: np.ndarray
+    loss_db: np.ndarray
+    white_noise_gain: np.ndarray
+    #: (T, C, J) response toward each interferer relative to the look direction, dB
+    null_depth_db: np.ndarray
+    #: SINR measured from the output samples the weight produced before the next
+    #: checkpoint (NaN where there were none)
+    measured_sinr: np.ndarray
+    #: (T, N) weights at the last checkpoint
+    final_weights: np.ndarray
+    seconds: float = 0.0
+
+
+@dataclass
+class Evaluation:
+    """A scored Monte Carlo run of several processors on one scene."""
+    scene: Scene
+    trials: int
+    seed: int
+    snapshots: int
+    checkpoints: np.ndarray
+    #: (T, C) optimum SINR at each checkpoint's moment, linear
+    optimum_sinr: np.ndarray
+    processors: list[ProcessorScores] = field(default_factory=list)
+    interferers: tuple[str, ...] = ()
+    #: (T, N, 3) true element positions and (T, N) gains of every trial (for patterns)
+    positions: np.ndarray | None = None
+    element_gains: np.ndarray | None = None
+
+    def by_label(self, label: str) -> ProcessorScores:
+        for p in self.processors:
+            if p.label == label:
+                return p
+        raise KeyError(label)
+
+
+class _Measure:
+    """Accumulates output-sample powers of the signal and the rest, per checkpoint span."""
+
+    def __init__(self, count: int, trials: int, checkpoints: np.ndarray):
+        self.cps = checkpoints
+        self.sig = np.zeros((count, trials, len(checkpoints)))
+        self.rest = np.zeros((count, trials, len(checkpoints)))
+        self.n = np.zeros((count, len(checkpoints)))
+
+    def __call__(self, index, block, inside, weights, held) -> None:
+        start = block.start
+        edges = [0] + [int(c - start) for c in inside] + [block.size]
+        # which checkpoint's weight is in force on each span (-1: initial weight)
+        first = int(np.searchsorted(self.cps, start, side="right")) - 1
+        rest = block.data - block.signal
+        for j in range(len(edges) - 1):
+            lo, hi = edges[j], edges[j + 1]
+            slot = first + j
+            if hi <= lo or slot < 0:
+                continue
+            w = held if j == 0 else weights[:, j - 1, :]
+            ys = np.einsum("tn,tbn->tb", np.conj(w), block.signal[:, lo:hi])
+            yr = np.einsum("tn,tbn->tb", np.conj(w), rest[:, lo:hi])
+            self.sig[index, :, slot] += np.sum(np.abs(ys) ** 2, axis=1)
+            self.rest[index, :, slot] += np.sum(np.abs(yr) ** 2, axis=1)
+            self.n[index, slot] += hi - lo
+
+    def sinr(self, index: int) -> np.ndarray:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = self.sig[index] / self.rest[index]
+        out[:, self.n[index] == 0] = np.nan
+        return out
+
+
+def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoints,
+                   snapshots: int, tail: int = 0, block: int | None = None,
+                   progress: Callable[[int], None] | None = None) -> Evaluation:
+    """Score ``processors`` on one :class:`TrialBatch` (all its trials at once).
+
+    The stream runs to ``snapshots + tail``; the tail only serves the measured SINR of
+    the last checkpoint's weight.
+    """
+    sc = batch.scene
+    cps = normalised_checkpoints(checkpoints, snapshots)
+    context = Context.from_batch(batch)
+    measure = _Measure(len(processors), batch.trials, cps)
+
+    def fed() -> Iterator:
+        for b in batch.blocks(snapshots + tail, block):
+            yield b
+            if progress is not None:
+                progress(b.size * batch.trials)
+
+    results = run_processors(processors, fed(), context, cps, on_block=measure)
+    # truth at each checkpoint's moment
+    moments = cps if not sc.stationary else np.zeros(1, dtype=np.int64)
+    r_in = batch.covariance(moments)                              # (T, M, N, N)
+    d = sc.desired
+    a_d = batch.desired_steering(moments)                         # (T, M, N)
+    p_d = d.power * d.active(moments).astype(float)               # (M,)
+    opt = scores.optimum_sinr(a_d, r_in, p_d)                     # (T, M)
+    look_true = batch.steering_toward(sc.look_azimuth, sc.look_elevation)   # (T, N)
+    a_j = [batch.steering(i, moments) for i in sc.interferer_indices]       # (T, M, N) each
+    look = batch.look
+    if sc.stationary:
+        opt = np.broadcast_to(opt, (batch.trials, len(cps)))
+    out = []
+    for i, (p, res) in enumerate(zip(processors, results)):
+        w = res.weights                                            # (T, C, N)
+        if sc.stationary:
+            sinr = scores.output_sinr(w, a_d, r_in, p_d[0])
+        else:
+            sinr = scores.output_sinr(w, a_d, r_in, p_d)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            norm = np.where(opt > 0, sinr / np.where(opt > 0, opt, 1), np.nan)
+            loss = -10 * np.log10(norm)
+        wng = scores.white_noise_gain(w, look)
+        if a_j:
+            nd = np.stack([scores.response_db(w, aj, look_true[:, None, :]) for aj in a_j], -1)
+        else:
+            nd = np.zeros(w.shape[:2] + (0,))
+        out.append(ProcessorScores(
+            label=p.label, method=p.method, params=dict(p.params), spec=p.spec(),
+            checkpoints=cps, sinr=sinr, normalised=norm, loss_db=loss,
+            white_noise_gain=wng, null_depth_db=nd, measured_sinr=measure.sinr(i),
+            final_weights=w[:, -1, :], seconds=res.seconds))
+    return Evaluation(scene=sc, trials=batch.trials, seed=batch.seed, snapshots=snapshots,
+                      checkpoints=cps, optimum_sinr=np.array(opt), processors=out,
+                      interferers=tuple(s.name for s in sc.interferers),
+                      positions=batch.positions, element_gains=batch.element_gains)
+
+
+def merge(parts: Sequence[Evaluation]) -> Evaluation:
+    """Concatenate evaluations of consecutive trial chunks (same processors)."""
+    if len(parts) == 1:
+        return parts[0]
+    first = parts[0]
+    procs = []
+    for i, p in enumerate(first.processors):
+        cat = {name: np.concatenate([getattr(e.processors[i], name) for e in parts], axis=0)
+               for name in ("sinr", "normalised", "loss_db", "white_noise_gain",
+                            "null_depth_db", "measured_sinr", "final_weights")}
+        procs.append(ProcessorScores(label=p.label, method=p.method, params=p.params,
+                                     spec=p.spec, checkpoints=p.checkpoints,
+                                     seconds=sum(e.processors[i].seconds for e in parts), **cat))
+    return Evaluation(scene=first.scene, trials=sum(e.trials for e in parts), seed=first.seed,
+                      snapshots=first.snapshots, checkpoints=first.checkpoints,
+                      optimum_sinr=np.concatenate([e.optimum_sinr for e in parts], axis=0),
+                      processors=procs, interferers=first.interferers,
+                      positions=np.concatenate([e.positions for e in parts], axis=0),
+                      element_gains=np.concatenate([e.element_gains for e in parts], axis=0))
+
+
+def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
+             trials: int | None = None, snapshots: int | None = None,
+             seed: int | None = None, chunk: int | None = None, tail: int = 256,
+             block: int | None = None,
+             progress: Callable[[int], None] | None = None) -> Evaluation:
+    """Run and score ``processors`` over ``trials`` Monte Carlo trials of ``scene``.
+
+    checkpoints: snapshot counts to score (default :func:`default_checkpoints`);
+    chunk: trials per batch (default all; results do not depend on it);
+    tail: extra snapshots after the last checkpoint, used only to measure the final
+    weights' output SINR from samples; progress: called with the number of
+    trial-snapshots done after each block.
+    """
+    t_ = int(scene.trials if trials is None else trials)
+    k_ = int(scene.snapshots if snapshots is None else snapshots)
+    s_ = int(scene.seed if seed is None else seed)
+    if tail < 0:
+        raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
+    if not processors:
+        raise ValueError("no processors to evaluate")
+    cps = default_checkpoints(k_) if checkpoints is None else checkpoints
+    parts = [evaluate_batch(TrialBatch(scene, trials=n, seed=s_, first_trial=f),
+                            processors, cps, k_, tail=tail, block=block, progress=progress)
+             for f, n in trial_chunks(t_, chunk)]
+    return merge(parts)
