@@ -1,0 +1,671 @@
+"""Reading, validating and writing scene files (YAML).
+
+``load_scene(path)`` reads a file, ``parse_scene(text_or_mapping, file=None)`` parses YAML
+text or an already-loaded mapping, ``scene_to_mapping(scene)`` gives the resolved scene
+(every default filled in, plain YAML-safe types) that re-parses to an equal scene; it is
+also kept in ``Scene.resolved`` (written as ``scene.yaml`` into run folders).
+
+Every problem raises :class:`adapt.errors.SceneError` naming the file, the key path
+(``sources[2].power_db``), the bad value and what is allowed; processor specs raise
+:class:`adapt.errors.SpecError` located the same way. Loading is YAML *safe* loading
+(a :class:`yaml.SafeLoader` subclass): tags that would build Python objects are refused,
+duplicate keys are refused, tabs used for indentation are reported as such, and numbers
+written as ``1e3`` are read as numbers (YAML 1.2 style).
+
+Conventions: positions and spacings in wavelengths; angles in degrees, azimuth 0 /
+elevation 0 is broadside of a line (+y), azimuth +90 is endfire along +x, elevation +90
+is +z (see :mod:`adapt.geometry`); powers in dB relative to the per-element thermal noise
+power (noise is unit power per element, so a source's ``power_db`` is its per-element
+SNR or INR); time in snapshots.
+
+Scene file keys (``*`` = required)::
+
+    name: text                       default: the file name without extension
+    array: *
+      layout: line | grid | ring | custom          default line
+      elements: count                  line, ring *   (1 .. 1024)
+      spacing: wavelengths             line, grid; default 0.5; (0, 10]
+      rows: count, columns: count      grid *          (rows x columns <= 1024)
+      row_spacing: wavelengths         grid; spacing along z between rows; default spacing
+      radius: wavelengths              ring; default: neighbours half a wavelength apart
+      positions: [[x, y, z], ...]      custom *; distinct points, |coordinate| <= 1000
+      errors:                          per-element errors drawn once per trial (optional)
+        gain_db_rms: dB                [0, 6]      default 0
+        phase_deg_rms: degrees         [0, 45]     default 0
+        position_rms: wavelengths      [0, 0.25]   default 0 (in the array's own plane)
+    sources: *                         a list; exactly one has role desired
+      - name: text *                   unique, non-empty
+        role: desired | interferer *
+        azimuth: degrees *             [-180, 180]
+        elevation: degrees             [-90, 90]   default 0
+        power_db: dB *                 per-element power over noise, [-100, 150]
+        waveform: gaussian | bpsk | qpsk | tone | chirp   (default gaussian)
+                  or {kind: tone, frequency: f}              f in [-0.5, 0.5] cycles/snapshot
+                  or {kind: chirp, start: f0, stop: f1, period: P}
+                                         f0, f1 in [-0.5, 0.5]; P >= 2 snapshots
+                                         (defaults -0.25, 0.25, 1024)
+        pulsing: {start: k0, stop: k1, period: P, on: M}   all optional integers:
+                 on at snapshot k when k0 <= k < k1 and (k - k0) mod P < M;
+                 k0 >= 0 (default 0), k1 > k0 (default never off), P >= 1 and
+                 1 <= M <= P given together
+        motion: {azimuth_rate: r, elevation_rate: r}   degrees per snapshot, [-1, 1];
+                 the elevation must stay within [-90, 90] over the run
+    look: {azimuth: deg, elevation: deg}   the direction the processors assume;
+                                           default: the desired source's direction
+    training: interference | signal     what the adaptive processors train on: the
+                                        interference plus noise alone (default) or the
+                                        data with the wanted signal present (MPDR case)
+    receiver: {bits: b, full_scale_db: dB}  optional ADC per I and Q rail: b in 1 .. 24
+                                        (null: none), clip level dB over the noise rms
+                                        per element, [-20, 160], default 40
+    snapshots: count                    1 .. 1,000,000,000   default 1024
+    trials: count                       1 .. 1,000,000       default 100
+    seed: integer                       0 .. 2**63 - 1       default 0
+    processors: list of specs           strings ("smi loading_db=10") or mappings
+                                        ({method: smi, loading_db: 10}); validated by
+                                        :func:`adapt.processors.parse_specs`; default none
+
+Checkable facts (tested in tests/test_scenefile.py): every example scene loads, and
+``parse_scene(scene_to_mapping(s))`` gives back ``s`` (same resolved mapping and
+positions).
+"""
+from __future__ import annotations
+
+import math
+import re
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import yaml
+
+from . import geometry
+from .errors import InputError, SceneError, SpecError, did_you_mean
+from .scene import (LAYOUTS, ROLES, TRAINING, WAVEFORMS, ArrayLayout, HardwareErrors,
+                    Motion, Pulsing, Receiver, Scene, Source, Waveform)
+
+__all__ = ["load_scene", "parse_scene", "scene_to_mapping", "dump_scene", "read_yaml",
+           "SceneLoader", "MAX_FILE_BYTES"]
+
+#: scene files larger than this are refused (a scene is a page of YAML)
+MAX_FILE_BYTES = 4 * 1024 * 1024
+
+_MAX_ELEMENTS = 1024
+_MAX_SOURCES = 256
+
+
+# --------------------------------------------------------------------------- YAML
+class SceneLoader(yaml.SafeLoader):
+    """Safe YAML loader that refuses duplicate keys and reads ``1e3`` as a number."""
+
+    def construct_mapping(self, node, deep=False):
+        if isinstance(node, yaml.MappingNode):
+            seen: dict = {}
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":
+                    continue
+                key = self.construct_object(key_node, deep=True)
+                try:
+                    hash(key)
+                except TypeError:
+                    raise yaml.constructor.ConstructorError(
+                        "while constructing a mapping", node.start_mark,
+                        "found an unusable (list or mapping) key", key_node.start_mark) from None
+                if key in seen:
+                    raise _DuplicateKey(key, key_node.start_mark, seen[key])
+                seen[key] = key_node.start_mark
+        return super().construct_mapping(node, deep=deep)
+
+
+class _DuplicateKey(Exception):
+    def __init__(self, key, mark, first_mark):
+        super().__init__(key)
+        self.key, self.mark, self.first_mark = key, mark, first_mark
+
+
+# YAML 1.2 floats such as 1e3 or -2.5E-4 (YAML 1.1, PyYAML's default, needs a dot)
+SceneLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:[0-9][0-9_]*)(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"))
+
+
+def _tab_line(text: str) -> int | None:
+    for number, line in enumerate(text.splitlines(), 1):
+        stripped = line.lstrip(" \t")
+        indent = line[: len(line) - len(stripped)]
+        if "\t" in indent and stripped:
+            return number
+    return None
+
+
+def read_yaml(text: str, file: str | None = None) -> Any:
+    """Parse YAML text with :class:`SceneLoader`; SceneError for every YAML problem."""
+    try:
+        return yaml.load(text, Loader=SceneLoader)  # noqa: S506 - SafeLoader subclass
+    except _DuplicateKey as exc:
+        raise SceneError(
+            f"key '{exc.key}' appears twice in one mapping (line {exc.first_mark.line + 1} "
+            f"and line {exc.mark.line + 1}); keep one", file=file) from None
+    except yaml.constructor.ConstructorError as exc:
+        problem = exc.problem or "cannot construct"
+        tag = re.search(r"tag '([^']*)'", problem)
+        where = _mark_text(exc.problem_mark)
+        if tag:
+            raise SceneError(
+                f"YAML tag '{tag.group(1)}'{where} is refused: scene files are plain data "
+                "(safe loading does not build Python objects)", file=file,
+                allowed="plain mappings, lists, text and numbers") from None
+        raise SceneError(f"YAML problem{where}: {problem}", file=file) from None
+    except yaml.YAMLError as exc:
+        tab = _tab_line(text)
+        if tab is not None:
+            raise SceneError(f"tab character used for indentation on line {tab}; "
+                             "YAML indents with spaces only", file=file) from None
+        mark = getattr(exc, "problem_mark", None)
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        context = getattr(exc, "context", None)
+        text_ = f"YAML syntax error{_mark_text(mark)}: {problem}"
+        if context:
+            text_ += f" ({context})"
+        raise SceneError(text_, file=file) from None
+    except RecursionError:
+        raise SceneError("YAML nesting too deep", file=file) from None
+
+
+def _mark_text(mark) -> str:
+    if mark is None:
+        return ""
+    return f" at line {mark.line + 1}, column {mark.column + 1}"
+
+
+# --------------------------------------------------------------------------- entry points
+def load_scene(path) -> Scene:
+    """Read and validate a scene file; SceneError/SpecError on any problem."""
+    p = Path(path)
+    name = str(path)
+    if not p.exists():
+        raise SceneError("no such scene file", file=name,
+                         allowed="the path of a YAML scene file, e.g. scenes/single_jammer.yaml")
+    if p.is_dir():
+        raise SceneError("is a directory, not a scene file", file=name,
+                         allowed="the path of a YAML scene file")
+    try:
+        size = p.stat().st_size
+        if size > MAX_FILE_BYTES:
+            raise SceneError(f"file is {size} bytes; a scene file is at most "
+                             f"{MAX_FILE_BYTES} bytes", file=name)
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise SceneError(f"cannot read the file: {exc.strerror or exc}", file=name) from None
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise SceneError(f"not UTF-8 text: byte 0x{raw[exc.start]:02x} at offset "
+                         f"{exc.start} (line {line}) cannot be decoded", file=name,
+                         allowed="a UTF-8 (or plain ASCII) YAML file") from None
+    return parse_scene(text, file=name, _stem=p.stem)
+
+
+def parse_scene(mapping_or_text, file: str | None = None, *, _stem: str | None = None) -> Scene:
+    """Build a validated :class:`Scene` from YAML text (str or bytes) or a mapping.
+
+    ``file`` only locates error messages (and gives the default name).
+    """
+    if isinstance(mapping_or_text, bytes):
+        try:
+            mapping_or_text = mapping_or_text.decode("utf-8-sig")
+        except UnicodeDecodeError as exc:
+            raise SceneError(f"not UTF-8 text (byte offset {exc.start})", file=file) from None
+    if isinstance(mapping_or_text, str):
+        data = read_yaml(mapping_or_text, file)
+    else:
+        data = mapping_or_text
+    if data is None:
+        raise SceneError("the scene is empty", file=file,
+                         allowed="a YAML mapping with at least 'array' and 'sources'")
+    if not isinstance(data, dict):
+        kind = "a list" if isinstance(data, list) else f"a single value ({type(data).__name__})"
+        raise SceneError(f"a scene must be a YAML mapping of keys, not {kind}", file=file,
+                         value=data, allowed="keys " + ", ".join(_TOP_KEYS))
+    stem = _stem if _stem is not None else (Path(file).stem if file else "scene")
+    reader = _Reader(file)
+    try:
+        scene = reader.scene(data, stem)
+    except SpecError as exc:
+        raise exc.at(file=file) from None
+    object.__setattr__(scene, "resolved", scene_to_mapping(scene))
+    return scene
+
+
+# --------------------------------------------------------------------------- validation
+_TOP_KEYS = ("name", "array", "sources", "look", "training", "receiver", "snapshots",
+             "trials", "seed", "processors")
+_ARRAY_KEYS = {
+    "line": ("layout", "elements", "spacing", "errors"),
+    "grid": ("layout", "rows", "columns", "spacing", "row_spacing", "errors"),
+    "ring": ("layout", "elements", "radius", "errors"),
+    "custom": ("layout", "positions", "errors"),
+}
+_ALL_ARRAY_KEYS = tuple(dict.fromkeys(k for keys in _ARRAY_KEYS.values() for k in keys))
+_ERROR_KEYS = ("gain_db_rms", "phase_deg_rms", "position_rms")
+_SOURCE_KEYS = ("name", "role", "azimuth", "elevation", "power_db", "waveform", "pulsing",
+                "motion")
+_WAVEFORM_KEYS = {
+    "gaussian": ("kind",), "bpsk": ("kind",), "qpsk": ("kind",),
+    "tone": ("kind", "frequency"), "chirp": ("kind", "start", "stop", "period"),
+}
+_PULSING_KEYS = ("start", "stop", "period", "on")
+_MOTION_KEYS = ("azimuth_rate", "elevation_rate")
+_LOOK_KEYS = ("azimuth", "elevation")
+_RECEIVER_KEYS = ("bits", "full_scale_db")
+
+
+def _join(path: str, key) -> str:
+    if isinstance(key, int):
+        return f"{path}[{key}]"
+    return f"{path}.{key}" if path else str(key)
+
+
+class _Reader:
+    def __init__(self, file: str | None):
+        self.file = file
+
+    def error(self, message, path, value=InputError._NOVALUE, allowed=None) -> SceneError:
+        return SceneError(message, file=self.file, path=path or None, value=value,
+                          allowed=allowed)
+
+    # -- generic pieces -------------------------------------------------------
+    def mapping(self, value, path, keys, required=(), what="a mapping") -> dict:
+        if not isinstance(value, dict):
+            raise self.error(f"expected {what}", path, value,
+                             "keys " + ", ".join(keys))
+        for key in value:
+            if not isinstance(key, str):
+                raise self.error("keys must be text", path, key, ", ".join(keys))
+            if key not in keys:
+                raise self.error(f"unknown key '{key}'" + did_you_mean(key, keys),
+                                 _join(path, key), allowed=", ".join(keys))
+        for key in required:
+            if key not in value:
+                raise self.error(f"required key '{key}' is missing", path,
+                                 allowed=", ".join(keys))
+        return value
+
+    def number(self, value, path, low=None, high=None, *, low_open=False,
+               high_open=False, integer=False, unit="") -> float | int:
+        lo = "(" if low_open else "["
+        hi = ")" if high_open else "]"
+        rng = f"{lo}{'-inf' if low is None else f'{low:g}'}, " \
+              f"{'inf' if high is None else f'{high:g}'}{hi}"
+        allowed = f"{'an integer' if integer else 'a number'} in {rng}" + (f" {unit}" if unit else "")
+        if isinstance(value, bool):
+            raise self.error("expected a number, not true/false", path, value, allowed)
+        if isinstance(value, (int, np.integer)):
+            number = int(value)
+        elif isinstance(value, (float, np.floating)):
+            number = float(value)
+            if not math.isfinite(number):
+                raise self.error("must be a finite number", path, value, allowed)
+            if integer:
+                if number != int(number):
+                    raise self.error("expected a whole number", path, value, allowed)
+                number = int(number)
+        else:
+            raise self.error("expected a number", path, value, allowed)
+        if (low is not None and (number < low or (low_open and number == low))) or \
+                (high is not None and (number > high or (high_open and number == high))):
+            raise self.error("out of range", path, value, allowed)
+        return int(number) if integer else float(number)
+
+    def count(self, value, path, high, low=1) -> int:
+        return self.number(value, path, low, high, integer=True)
+
+    def text(self, value, path, what="non-empty text") -> str:
+        if not isinstance(value, str) or not value.strip() or len(value) > 200:
+            raise self.error(f"expected {what}", path, value,
+                             "text of 1 to 200 characters")
+        return value
+
+    def choice(self, value, path, choices) -> str:
+        if not isinstance(value, str) or value not in choices:
+            hint = did_you_mean(value, choices) if isinstance(value, str) else ""
+            raise self.error("unknown choice" + hint, path, value, " | ".join(choices))
+        return value
+
+    # -- sections -------------------------------------------------------------
+    def scene(self, data: dict, stem: str) -> Scene:
+        self.mapping(data, "", _TOP_KEYS, required=("array", "sources"), what="a mapping")
+        name = self.text(data["name"], "name") if "name" in data else stem
+        array = self.array(data["array"], "array")
+        sources = self.sources(data["sources"], "sources")
+        snapshots = self.count(data.get("snapshots", 1024), "snapshots", 1_000_000_000)
+        trials = self.count(data.get("trials", 100), "trials", 1_000_000)
+        seed = self.number(data.get("seed", 0), "seed", 0, 2 ** 63 - 1, integer=True)
+        for i, src in enumerate(sources):
+            self.motion_bounds(src, snapshots, f"sources[{i}].motion")
+        desired = next(s for s in sources if s.role == "desired")
+        if "look" in data:
+            look = self.mapping(data["look"], "look", _LOOK_KEYS, required=("azimuth",))
+            look_az = self.number(look["azimuth"], "look.azimuth", -180, 180, unit="degrees")
+            look_el = self.number(look.get("elevation", 0.0), "look.elevation", -90, 90,
+                                  unit="degrees")
+        else:
+            look_az, look_el = float(desired.azimuth), float(desired.elevation)
+        training = self.choice(data.get("training", "interference"), "training", TRAINING)
+        receiver = self.receiver(data.get("receiver"), "receiver")
+        processors = self.processors(data.get("processors", []), "processors")
+        return Scene(name=name, array=array, sources=sources, look_azimuth=look_az,
+                     look_elevation=look_el, training=training, receiver=receiver,
+                     snapshots=snapshots, trials=trials, seed=seed, processors=processors,
+                     source_file=self.file)
+
+    def array(self, value, path) -> ArrayLayout:
+        self.mapping(value, path, _ALL_ARRAY_KEYS)
+        layout = self.choice(value.get("layout", "line"), _join(path, "layout"), LAYOUTS)
+        keys = _ARRAY_KEYS[layout]
+        for key in value:
+            if key not in keys:
+                raise self.error(f"key '{key}' does not apply to a {layout} array",
+                                 _join(path, key), allowed=", ".join(keys))
+        p = lambda key: _join(path, key)  # noqa: E731
+        settings: dict = {}
+        if layout == "line":
+            if "elements" not in value:
+                raise self.error("required key 'elements' is missing", path,
+                                 allowed=", ".join(keys))
+            n = self.count(value["elements"], p("elements"), _MAX_ELEMENTS)
+            d = self.number(value.get("spacing", 0.5), p("spacing"), 0, 10, low_open=True,
+                            unit="wavelengths")
+            settings = {"elements": n, "spacing": d}
+            positions = geometry.line_positions(n, d)
+        elif layout == "grid":
+            for key in ("rows", "columns"):
+                if key not in value:
+                    raise self.error(f"required key '{key}' is missing", path,
+                                     allowed=", ".join(keys))
+            rows = self.count(value["rows"], p("rows"), _MAX_ELEMENTS)
+            cols = self.count(value["columns"], p("columns"), _MAX_ELEMENTS)
+            if rows * cols > _MAX_ELEMENTS:
+                raise self.error(f"{rows} x {cols} = {rows * cols} elements is too many",
+                                 p("rows"), allowed=f"rows x columns <= {_MAX_ELEMENTS}")
+            d = self.number(value.get("spacing", 0.5), p("spacing"), 0, 10, low_open=True,
+                            unit="wavelengths")
+            dz = self.number(value.get("row_spacing", d), p("row_spacing"), 0, 10,
+                             low_open=True, unit="wavelengths")
+            settings = {"rows": rows, "columns": cols, "spacing": d, "row_spacing": dz}
+            positions = geometry.grid_positions(rows, cols, d, dz)
+        elif layout == "ring":
+            if "elements" not in value:
+                raise self.error("required key 'elements' is missing", path,
+                                 allowed=", ".join(keys))
+            n = self.count(value["elements"], p("elements"), _MAX_ELEMENTS)
+            default_r = 0.25 / math.sin(math.pi / n) if n >= 2 else 0.5
+            r = self.number(value.get("radius", default_r), p("radius"), 0, 100,
+                            low_open=True, unit="wavelengths")
+            settings = {"elements": n, "radius": r}
+            positions = geometry.ring_positions(n, r)
+        else:
+            if "positions" not in value:
+                raise self.error("required key 'positions' is missing", path,
+                                 allowed=", ".join(keys))
+            positions = self.positions(value["positions"], p("positions"))
+            settings = {"positions": positions.tolist()}
+        errors = self.hardware(value.get("errors"), p("errors"))
+        return ArrayLayout(layout=layout, positions=positions, errors=errors,
+                           settings=settings)
+
+    def positions(self, value, path) -> np.ndarray:
+        allowed = "a list of [x, y, z] points in wavelengths"
+        if not isinstance(value, list) or not value:
+            raise self.error("expected a non-empty list of [x, y, z] points", path, value,
+                             allowed)
+        if len(value) > _MAX_ELEMENTS:
+            raise self.error(f"{len(value)} elements is too many", path,
+                             allowed=f"at most {_MAX_ELEMENTS} points")
+        out = np.empty((len(value), 3))
+        for i, point in enumerate(value):
+            where = _join(path, i)
+            if not isinstance(point, list) or len(point) != 3:
+                raise self.error("expected a list of three numbers [x, y, z]", where, point,
+                                 allowed)
+            for j, c in enumerate(point):
+                out[i, j] = self.number(c, _join(where, j), -1000, 1000, unit="wavelengths")
+        for i in range(1, len(out)):
+            gap = np.linalg.norm(out[:i] - out[i], axis=1)
+            j = int(np.argmin(gap))
+            if gap[j] < 1e-9:
+                raise self.error(f"point {i} coincides with point {j}", _join(path, i),
+                                 value[i], "distinct element positions")
+        return out
+
+    def hardware(self, value, path) -> HardwareErrors:
+        if value is None:
+            return HardwareErrors()
+        self.mapping(value, path, _ERROR_KEYS)
+        return HardwareErrors(
+            gain_db_rms=self.number(value.get("gain_db_rms", 0.0), _join(path, "gain_db_rms"),
+                                    0, 6, unit="dB rms"),
+            phase_deg_rms=self.number(value.get("phase_deg_rms", 0.0),
+                                      _join(path, "phase_deg_rms"), 0, 45, unit="degrees rms"),
+            position_rms=self.number(value.get("position_rms", 0.0),
+                                     _join(path, "position_rms"), 0, 0.25,
+                                     unit="wavelengths rms"))
+
+    def sources(self, value, path) -> tuple[Source, ...]:
+        if not isinstance(value, list) or not value:
+            raise self.error("expected a non-empty list of sources", path, value,
+                             "a list with exactly one desired source and any interferers")
+        if len(value) > _MAX_SOURCES:
+            raise self.error(f"{len(value)} sources is too many", path,
+                             allowed=f"at most {_MAX_SOURCES}")
+        out = [self.source(item, _join(path, i)) for i, item in enumerate(value)]
+        names: dict[str, int] = {}
+        for i, src in enumerate(out):
+            if src.name in names:
+                raise self.error(f"source name '{src.name}' is already used by "
+                                 f"sources[{names[src.name]}]", _join(_join(path, i), "name"),
+                                 src.name, "unique names")
+            names[src.name] = i
+        desired = [i for i, s in enumerate(out) if s.role == "desired"]
+        if len(desired) != 1:
+            where = _join(_join(path, desired[1]), "role") if len(desired) > 1 else path
+            raise self.error(f"exactly one source must have role desired, found {len(desired)}",
+                             where, allowed="one 'role: desired' source plus any interferers")
+        return tuple(out)
+
+    def source(self, value, path) -> Source:
+        self.mapping(value, path, _SOURCE_KEYS, required=("name", "role", "azimuth", "power_db"))
+        p = lambda key: _join(path, key)  # noqa: E731
+        name = self.text(value["name"], p("name"), "a non-empty name")
+        role = self.choice(value["role"], p("role"), ROLES)
+        az = self.number(value["azimuth"], p("azimuth"), -180, 180, unit="degrees")
+        el = self.number(value.get("elevation", 0.0), p("elevation"), -90, 90, unit="degrees")
+        power = self.number(value["power_db"], p("power_db"), -100, 150,
+                            unit="dB over the per-element noise")
+        waveform = self.waveform(value.get("waveform", "gaussian"), p("waveform"))
+        pulsing = self.pulsing(value["pulsing"], p("pulsing")) if value.get("pulsing") is not None else None
+        motion = self.motion(value["motion"], p("motion")) if value.get("motion") is not None else None
+        return Source(name=name, role=role, azimuth=az, elevation=el, power_db=power,
+                      waveform=waveform, pulsing=pulsing, motion=motion)
+
+    def waveform(self, value, path) -> Waveform:
+        if isinstance(value, str):
+            kind = self.choice(value, path, WAVEFORMS)
+            return Waveform(kind=kind)
+        if not isinstance(value, dict):
+            raise self.error("expected a waveform name or a mapping with 'kind'", path, value,
+                             " | ".join(WAVEFORMS) + " or {kind: tone, frequency: 0.1}")
+        if "kind" not in value:
+            raise self.error("required key 'kind' is missing", path,
+                             allowed=" | ".join(WAVEFORMS))
+        kind = self.choice(value["kind"], _join(path, "kind"), WAVEFORMS)
+        keys = _WAVEFORM_KEYS[kind]
+        for key in value:
+            if not isinstance(key, str) or key not in keys:
+                hint = did_you_mean(key, keys) if isinstance(key, str) else ""
+                raise self.error(f"key '{key}' does not apply to a {kind} waveform" + hint,
+                                 _join(path, key), allowed=", ".join(keys))
+        p = lambda key: _join(path, key)  # noqa: E731
+        if kind == "tone":
+            f = self.number(value.get("frequency", 0.0), p("frequency"), -0.5, 0.5,
+                            unit="cycles per snapshot")
+            return Waveform(kind=kind, frequency=f)
+        if kind == "chirp":
+            d = Waveform()
+            f0 = self.number(value.get("start", d.start), p("start"), -0.5, 0.5,
+                             unit="cycles per snapshot")
+            f1 = self.number(value.get("stop", d.stop), p("stop"), -0.5, 0.5,
+                             unit="cycles per snapshot")
+            period = self.count(value.get("period", d.period), p("period"), 1_000_000_000, low=2)
+            return Waveform(kind=kind, start=f0, stop=f1, period=period)
+        return Waveform(kind=kind)
+
+    def pulsing(self, value, path) -> Pulsing:
+        self.mapping(value, path, _PULSING_KEYS)
+        p = lambda key: _join(path, key)  # noqa: E731
+        big = 1_000_000_000
+        start = self.number(value.get("start", 0), p("start"), 0, big, integer=True)
+        stop = None
+        if value.get("stop") is not None:
+            stop = self.number(value["stop"], p("stop"), 1, big, integer=True)
+            if stop <= start:
+                raise self.error("stop must come after start", p("stop"), value["stop"],
+                                 f"an integer > start ({start})")
+        has_period = value.get("period") is not None
+        has_on = value.get("on") is not None
+        if has_period != has_on:
+            missing = "on" if has_period else "period"
+            raise self.error(f"'period' and 'on' go together; '{missing}' is missing", path,
+                             allowed="both period and on, or neither")
+        period = on = None
+        if has_period:
+            period = self.number(value["period"], p("period"), 1, big, integer=True)
+            on = self.number(value["on"], p("on"), 1, big, integer=True)
+            if on > period:
+                raise self.error("'on' is longer than the period", p("on"), on,
+                                 f"1 <= on <= period ({period})")
+        return Pulsing(start=start, stop=stop, period=period, on=on)
+
+    def motion(self, value, path) -> Motion:
+        self.mapping(value, path, _MOTION_KEYS)
+        return Motion(
+            azimuth_rate=self.number(value.get("azimuth_rate", 0.0), _join(path, "azimuth_rate"),
+                                     -1, 1, unit="degrees per snapshot"),
+            elevation_rate=self.number(value.get("elevation_rate", 0.0),
+                                       _join(path, "elevation_rate"), -1, 1,
+                                       unit="degrees per snapshot"))
+
+    def motion_bounds(self, src: Source, snapshots: int, path: str) -> None:
+        if src.motion is None or src.motion.elevation_rate == 0:
+            return
+        end = src.elevation + src.motion.elevation_rate * (snapshots - 1)
+        if not -90 <= end <= 90:
+            raise self.error(f"source '{src.name}' would reach elevation {end:.4g} degrees "
+                             f"by snapshot {snapshots - 1}", _join(path, "elevation_rate"),
+                             src.motion.elevation_rate,
+                             "a rate keeping the elevation within [-90, 90] over the run")
+
+    def receiver(self, value, path) -> Receiver:
+        if value is None:
+            return Receiver()
+        self.mapping(value, path, _RECEIVER_KEYS)
+        bits = value.get("bits")
+        if bits is not None:
+            bits = self.number(bits, _join(path, "bits"), 1, 24, integer=True)
+        fs = self.number(value.get("full_scale_db", Receiver().full_scale_db),
+                         _join(path, "full_scale_db"), -20, 160,
+                         unit="dB over the per-element noise rms")
+        return Receiver(bits=bits, full_scale_db=fs)
+
+    def processors(self, value, path) -> tuple:
+        if value is None:
+            return ()
+        if not isinstance(value, list):
+            raise self.error("expected a list of processor specs", path, value,
+                             "e.g. [conventional, 'smi loading_db=10']")
+        from .processors import parse_specs
+        try:
+            parse_specs(value, where=path)
+        except SpecError as exc:
+            raise exc.at(file=self.file) from None
+        return tuple(_plain(v) for v in value)
+
+
+# --------------------------------------------------------------------------- writing
+def _plain(value):
+    """Plain YAML-safe copy (dict, list, str, int, float, bool, None)."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return float(value)
+    if isinstance(value, np.ndarray):
+        return _plain(value.tolist())
+    return value
+
+
+def scene_to_mapping(scene: Scene) -> dict:
+    """The resolved scene as a plain mapping (defaults filled in, YAML-safe types).
+
+    ``parse_scene(scene_to_mapping(s))`` rebuilds an equal scene.
+    """
+    arr = scene.array
+    array: dict = {"layout": arr.layout}
+    if arr.layout == "custom" or not arr.settings:
+        if arr.layout != "custom":
+            array["layout"] = "custom"
+        array["positions"] = _plain(arr.positions)
+    else:
+        array.update(_plain(arr.settings))
+    e = arr.errors
+    array["errors"] = {"gain_db_rms": float(e.gain_db_rms),
+                       "phase_deg_rms": float(e.phase_deg_rms),
+                       "position_rms": float(e.position_rms)}
+    sources = []
+    for s in scene.sources:
+        wf: dict = {"kind": s.waveform.kind}
+        if s.waveform.kind == "tone":
+            wf["frequency"] = float(s.waveform.frequency)
+        elif s.waveform.kind == "chirp":
+            wf.update(start=float(s.waveform.start), stop=float(s.waveform.stop),
+                      period=int(s.waveform.period))
+        item = {"name": s.name, "role": s.role, "azimuth": float(s.azimuth),
+                "elevation": float(s.elevation), "power_db": float(s.power_db),
+                "waveform": wf}
+        if s.pulsing is not None:
+            pl = s.pulsing
+            item["pulsing"] = {"start": int(pl.start),
+                               "stop": None if pl.stop is None else int(pl.stop),
+                               "period": None if pl.period is None else int(pl.period),
+                               "on": None if pl.on is None else int(pl.on)}
+        if s.motion is not None:
+            item["motion"] = {"azimuth_rate": float(s.motion.azimuth_rate),
+                              "elevation_rate": float(s.motion.elevation_rate)}
+        sources.append(item)
+    return {
+        "name": scene.name,
+        "array": array,
+        "sources": sources,
+        "look": {"azimuth": float(scene.look_azimuth), "elevation": float(scene.look_elevation)},
+        "training": scene.training,
+        "receiver": {"bits": None if scene.receiver.bits is None else int(scene.receiver.bits),
+                     "full_scale_db": float(scene.receiver.full_scale_db)},
+        "snapshots": int(scene.snapshots),
+        "trials": int(scene.trials),
+        "seed": int(scene.seed),
+        "processors": [_plain(p) for p in scene.processors],
+    }
+
+
+def dump_scene(scene: Scene) -> str:
+    """The resolved scene as YAML text (keys in the documented order)."""
+    return yaml.safe_dump(scene_to_mapping(scene), sort_keys=False, default_flow_style=None,
+                          allow_unicode=True)
+
