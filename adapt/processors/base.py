@@ -143,6 +143,8 @@ class Context:
         data the processors train on (adds the wanted signal in the signal-present case);
         used to check stability bounds, never to adapt.
     has_reference: True when a reference waveform is available (always, in simulation).
+    look_direction: (azimuth, elevation) in degrees of the assumed look direction, or
+        None when unknown (processors that constrain derivatives of the response need it).
     """
     look: np.ndarray
     positions: np.ndarray
@@ -151,6 +153,7 @@ class Context:
     covariance: Callable[[np.ndarray], np.ndarray] | None = None
     training_covariance: Callable[[np.ndarray], np.ndarray] | None = None
     has_reference: bool = True
+    look_direction: tuple[float, float] | None = None
 
     @property
     def elements(self) -> int:
@@ -162,7 +165,9 @@ class Context:
         return cls(look=batch.look, positions=batch.scene.array.positions,
                    trials=batch.trials, noise_power=1.0,
                    covariance=lambda k: batch.covariance(np.asarray(k)),
-                   training_covariance=lambda k: batch.covariance(np.asarray(k), training=True))
+                   training_covariance=lambda k: batch.covariance(np.asarray(k), training=True),
+                   look_direction=(float(batch.scene.look_azimuth),
+                                   float(batch.scene.look_elevation)))
 
 
 @dataclass
