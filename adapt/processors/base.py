@@ -145,6 +145,12 @@ class Context:
     has_reference: True when a reference waveform is available (always, in simulation).
     look_direction: (azimuth, elevation) in degrees of the assumed look direction, or
         None when unknown (processors that constrain derivatives of the response need it).
+    data_covariance: callable ``k -> (T, len(k), N, N)``: true covariance of the received
+        data ``block.data`` (interference, noise and the wanted signal, whatever the
+        scene trains on): what reference-trained processors (LMS, RLS) adapt on; used to
+        check step-size bounds, never to adapt.
+    moments: snapshot indices at which stability checks evaluate covariances (None:
+        snapshot 0 only, exact for a stationary scene).
     """
     look: np.ndarray
     positions: np.ndarray
@@ -154,6 +160,8 @@ class Context:
     training_covariance: Callable[[np.ndarray], np.ndarray] | None = None
     has_reference: bool = True
     look_direction: tuple[float, float] | None = None
+    data_covariance: Callable[[np.ndarray], np.ndarray] | None = None
+    moments: np.ndarray | None = None
 
     @property
     def elements(self) -> int:
@@ -167,7 +175,37 @@ class Context:
                    covariance=lambda k: batch.covariance(np.asarray(k)),
                    training_covariance=lambda k: batch.covariance(np.asarray(k), training=True),
                    look_direction=(float(batch.scene.look_azimuth),
-                                   float(batch.scene.look_elevation)))
+                                   float(batch.scene.look_elevation)),
+                   data_covariance=lambda k: _data_covariance(batch, k),
+                   moments=_check_moments(batch.scene))
+
+
+def _data_covariance(batch, k) -> np.ndarray:
+    """(T, len(k), N, N) covariance of ``block.data``: interference plus noise plus the
+    wanted source (gated) at snapshot indices k (quantisation not included)."""
+    kk = np.atleast_1d(np.asarray(k))
+    r = batch.covariance(kk)
+    src = batch.scene.desired
+    a = batch.desired_steering(kk)                                    # (T, M, N)
+    p = src.power * src.active(kk).astype(float)                      # (M,)
+    return r + p[None, :, None, None] * (a[..., :, None] * np.conj(a[..., None, :]))
+
+
+def _check_moments(scene) -> np.ndarray:
+    """Snapshot indices for stability checks: 0 for a stationary scene; otherwise 129
+    moments spread over the scene's snapshots plus every pulse's first on-snapshot
+    (capped at 1024 moments)."""
+    if scene.stationary:
+        return np.array([0])
+    last = max(int(scene.snapshots) - 1, 0)
+    k = [np.linspace(0, last, 129).round().astype(np.int64)]
+    for s in scene.sources:
+        p = s.pulsing
+        if p is not None and p.start <= last:
+            stop = last if p.stop is None else min(last, p.stop - 1)
+            step = p.period if p.period is not None else stop + 1
+            k.append(np.arange(p.start, stop + 1, step)[:1024])
+    return np.unique(np.concatenate(k))[:1024]
 
 
 @dataclass
