@@ -9,8 +9,9 @@ Every problem raises :class:`adapt.errors.SceneError` naming the file, the key p
 (``sources[2].power_db``), the bad value and what is allowed; processor specs raise
 :class:`adapt.errors.SpecError` located the same way. Loading is YAML *safe* loading
 (a :class:`yaml.SafeLoader` subclass): tags that would build Python objects are refused,
-duplicate keys are refused, tabs used for indentation are reported as such, and numbers
-written as ``1e3`` are read as numbers (YAML 1.2 style).
+duplicate keys are refused, tabs used for indentation are reported as such, numbers
+written as ``1e3`` are read as numbers and only ``true``/``false`` are booleans (YAML 1.2
+style: ``on``, ``off``, ``yes`` and ``no`` stay text).
 
 Conventions: positions and spacings in wavelengths; angles in degrees, azimuth 0 /
 elevation 0 is broadside of a line (+y), azimuth +90 is endfire along +x, elevation +90
@@ -123,6 +124,14 @@ class _DuplicateKey(Exception):
         self.key, self.mark, self.first_mark = key, mark, first_mark
 
 
+# YAML 1.2 booleans: only true/false (YAML 1.1 also reads yes/no/on/off as booleans,
+# which would turn the pulsing key "on" into True)
+SceneLoader.yaml_implicit_resolvers = {
+    first: [(tag, rx) for tag, rx in resolvers if tag != "tag:yaml.org,2002:bool"]
+    for first, resolvers in yaml.SafeLoader.yaml_implicit_resolvers.items()}
+SceneLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:bool", re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$"),
+    list("tTfF"))
 # YAML 1.2 floats such as 1e3 or -2.5E-4 (YAML 1.1, PyYAML's default, needs a dot)
 SceneLoader.add_implicit_resolver(
     "tag:yaml.org,2002:float",

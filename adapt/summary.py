@@ -1,0 +1,248 @@
+"""One-screen scene summaries and scene warnings (the ``adapt check`` command).
+
+``summarise_scene(scene)`` returns the summary text; ``scene_warnings(scene)`` the list of
+warnings; ``main_lobe_contains(positions, look, direction)`` and ``beamwidth_deg(...)``
+are the geometric tests behind them.
+
+Warnings (each a plain sentence):
+
+* grating lobe: the uniform beam steered to the look direction has another lobe within
+  1 dB of its peak in visible space (:func:`adapt.geometry.has_grating_lobe`); for a line
+  the handbook rule is spacing ``d < 1 / (1 + |sin theta0|)``;
+* too many interferers: as many interferers as degrees of freedom (N - 1) or more; a
+  linearly constrained processor with one look constraint can null at most N - 1
+  independent directions (Van Trees, Optimum Array Processing, ch. 6);
+* interferer in the main lobe: the interferer lies inside the main lobe of the uniform
+  (conventional) beam steered to the look direction, *defined here as* before the first
+  null: walking along the great-circle arc from the look direction to the interferer,
+  the conventional power pattern never rises again (it only falls, or stays flat, as on
+  the cone of a line array). On a uniform line at broadside this is ``|sin theta| <
+  1 / (N d)``. Nulling such an interferer also cuts the wanted signal. Moving sources are
+  checked at 17 instants over the run;
+* pointing mismatch: the look direction differs from the desired source's direction
+  (the angle between them is given; a moving desired source is checked at the start
+  and end of the run).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from . import geometry
+from .scene import Scene, Source
+
+__all__ = ["summarise_scene", "scene_warnings", "main_lobe_contains", "beamwidth_deg",
+           "angle_between_deg", "describe_waveform", "describe_behaviour"]
+
+
+def angle_between_deg(az1, el1, az2, el2) -> float:
+    """Great-circle angle in degrees between two directions (degrees)."""
+    u = geometry.direction_vector(az1, el1)
+    v = geometry.direction_vector(az2, el2)
+    c = float(np.clip(np.dot(u, v), -1.0, 1.0))
+    # atan2 form: accurate for small angles too
+    return float(np.degrees(np.arctan2(np.linalg.norm(np.cross(u, v)), c)))
+
+
+def _rotate_about_z(positions: np.ndarray, azimuth_deg: float) -> np.ndarray:
+    """Positions p' with p' . u(az - alpha, el) == p . u(az, el) (alpha = azimuth_deg)."""
+    a = math.radians(azimuth_deg)
+    c, s = math.cos(a), math.sin(a)
+    p = np.asarray(positions, float)
+    out = p.copy()
+    out[:, 0] = p[:, 0] * c - p[:, 1] * s
+    out[:, 1] = p[:, 0] * s + p[:, 1] * c
+    return out
+
+
+def beamwidth_deg(positions: np.ndarray, azimuth_deg: float, elevation_deg: float) -> float:
+    """Half-power beamwidth (degrees, azimuth cut at the look elevation) of the uniform
+    beam steered to (az, el), any look azimuth; ``nan`` for very small apertures.
+
+    The array is turned about z so the look azimuth becomes 0, then
+    :func:`adapt.geometry.half_power_beamwidth_deg` measures the cut.
+    """
+    pos = _rotate_about_z(np.asarray(positions, float), azimuth_deg)
+    resolution = 0.005 if len(pos) <= 128 else 0.02
+    return geometry.half_power_beamwidth_deg(pos, 0.0, elevation_deg,
+                                             resolution_deg=resolution)
+
+
+def main_lobe_contains(positions: np.ndarray, look: tuple[float, float],
+                       direction: tuple[float, float], samples: int = 721) -> bool:
+    """True when ``direction`` (az, el) lies inside the main lobe of the uniform beam
+    steered to ``look``: the conventional power pattern never rises along the
+    great-circle arc from the look direction to ``direction`` (it has passed no null).
+
+    Checkable fact: on a uniform line along x steered broadside, this holds exactly when
+    ``|sin az| < 1 / (N d)`` (the first null; antenna handbook).
+    """
+    pos = np.asarray(positions, float)
+    u0 = geometry.direction_vector(*look)
+    u1 = geometry.direction_vector(*direction)
+    cos_t = float(np.clip(np.dot(u0, u1), -1.0, 1.0))
+    theta = math.acos(cos_t)
+    if theta < 1e-12:
+        return True
+    perp = u1 - cos_t * u0
+    norm = np.linalg.norm(perp)
+    if norm < 1e-12:      # opposite directions: any great circle will do
+        trial = np.array([1.0, 0.0, 0.0]) if abs(u0[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+        perp = trial - np.dot(trial, u0) * u0
+        norm = np.linalg.norm(perp)
+    perp = perp / norm
+    t = np.linspace(0.0, theta, samples)
+    u = np.cos(t)[:, None] * u0 + np.sin(t)[:, None] * perp           # (S, 3)
+    w = np.exp(2j * np.pi * (pos @ u0)) / len(pos)
+    p = np.abs(np.exp(2j * np.pi * (u @ pos.T)) @ np.conj(w)) ** 2     # (S,)
+    return bool(np.all(np.diff(p) <= 1e-9))
+
+
+def describe_waveform(src: Source) -> str:
+    wf = src.waveform
+    if wf.kind == "tone":
+        return f"tone {wf.frequency:g} cyc/snap"
+    if wf.kind == "chirp":
+        return f"chirp {wf.start:g}..{wf.stop:g} / {wf.period}"
+    return wf.kind
+
+
+def describe_behaviour(src: Source) -> str:
+    parts = []
+    pl = src.pulsing
+    if pl is not None:
+        text = []
+        if pl.period is not None:
+            text.append(f"on {pl.on} of every {pl.period}")
+        if pl.start:
+            text.append(f"from {pl.start}")
+        if pl.stop is not None:
+            text.append(f"until {pl.stop}")
+        parts.append("pulsing: " + (", ".join(text) if text else "always on"))
+    mo = src.motion
+    if mo is not None and (mo.azimuth_rate or mo.elevation_rate):
+        rates = []
+        if mo.azimuth_rate:
+            rates.append(f"az {mo.azimuth_rate:+g}")
+        if mo.elevation_rate:
+            rates.append(f"el {mo.elevation_rate:+g}")
+        parts.append("moving " + ", ".join(rates) + " deg/snap")
+    return "; ".join(parts) if parts else "steady"
+
+
+def _instants(scene: Scene, count: int = 17) -> np.ndarray:
+    return np.unique(np.linspace(0, scene.snapshots - 1, count).round().astype(int))
+
+
+def scene_warnings(scene: Scene) -> list[str]:
+    """Plain-sentence warnings about a scene (see the module docstring)."""
+    pos = scene.array.positions
+    n = scene.elements
+    look = (scene.look_azimuth, scene.look_elevation)
+    out: list[str] = []
+    if n >= 2 and geometry.has_grating_lobe(pos, *look):
+        out.append(f"grating lobe: with this element spacing the beam steered to az "
+                   f"{look[0]:g}, el {look[1]:g} has a grating lobe in visible space "
+                   "(a line is free of them for spacing < 1/(1 + |sin(scan angle)|) "
+                   "wavelengths)")
+    dof = n - 1
+    count = len(scene.interferers)
+    if count and count >= dof:
+        out.append(f"too many interferers: {count} interferers for {dof} degrees of "
+                   f"freedom ({n} elements - 1); the adaptive processors cannot null "
+                   "them all")
+    for src in scene.interferers:
+        inside = []
+        for k in (_instants(scene) if not src.stationary else [0]):
+            az, el = src.direction(k)
+            if main_lobe_contains(pos, look, (float(az), float(el))):
+                inside.append(int(k))
+        if inside:
+            az0, el0 = src.direction(inside[0])
+            sep = angle_between_deg(look[0], look[1], float(az0), float(el0))
+            when = "" if src.stationary else f" (at snapshot {inside[0]})"
+            out.append(f"interferer in the main lobe: '{src.name}' is {sep:.3g} degrees from "
+                       f"the look direction{when}, inside the first null of the "
+                       "conventional beam; nulling it also suppresses the wanted signal")
+    d = scene.desired
+    ks = [0, scene.snapshots - 1] if not d.stationary else [0]
+    worst = 0.0
+    for k in ks:
+        az, el = d.direction(k)
+        worst = max(worst, angle_between_deg(look[0], look[1], float(az), float(el)))
+    if worst > 1e-6:
+        out.append(f"pointing mismatch: the look direction (az {look[0]:g}, el {look[1]:g}) "
+                   f"is {worst:.3g} degrees from the desired source '{d.name}'"
+                   + (" (largest over the run)" if len(ks) > 1 else ""))
+    return out
+
+
+def _processor_labels(scene: Scene) -> list[str]:
+    from .processors import parse_specs
+    return [p.label for p in parse_specs(list(scene.processors))]
+
+
+def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
+    """Summary text of a validated scene: array, beam, run, processors, sources table
+    and warnings."""
+    arr = scene.array
+    pos = arr.positions
+    n = scene.elements
+    st = arr.settings
+    if arr.layout == "line":
+        shape = f"line of {n} elements, spacing {st.get('spacing', 0):g} wavelengths"
+    elif arr.layout == "grid":
+        shape = (f"grid of {st.get('rows')} x {st.get('columns')} = {n} elements, spacing "
+                 f"{st.get('spacing', 0):g} (columns) x {st.get('row_spacing', 0):g} (rows) "
+                 "wavelengths")
+    elif arr.layout == "ring":
+        shape = f"ring of {n} elements, radius {st.get('radius', 0):.4g} wavelengths"
+    else:
+        shape = f"custom layout of {n} elements"
+    look = (scene.look_azimuth, scene.look_elevation)
+    bw = beamwidth_deg(pos, *look) if n >= 2 else float("nan")
+    bw_text = "n/a (aperture too small)" if not math.isfinite(bw) else f"{bw:.3g} degrees"
+    e = arr.errors
+    if e.any:
+        errors = (f"gain {e.gain_db_rms:g} dB rms, phase {e.phase_deg_rms:g} deg rms, "
+                  f"position {e.position_rms:g} wavelengths rms (drawn per trial)")
+    else:
+        errors = "none"
+    rx = scene.receiver
+    receiver = ("ideal (no ADC model)" if rx.bits is None else
+                f"{rx.bits}-bit ADC per rail, full scale {rx.full_scale_db:g} dB over "
+                "the noise rms")
+    training = {"interference": "interference plus noise only (wanted signal absent)",
+                "signal": "data with the wanted signal present (MPDR case)"}[scene.training]
+    labels = _processor_labels(scene)
+    lines = [
+        f"scene:       {scene.name}" + (f"  ({scene.source_file})" if scene.source_file else ""),
+        f"array:       {shape}",
+        f"aperture:    {arr.aperture:.4g} wavelengths; half-power beamwidth {bw_text} "
+        f"at the look direction",
+        f"freedom:     {n - 1} degrees of freedom ({n} elements - 1)",
+        f"look:        az {look[0]:g}, el {look[1]:g} degrees",
+        f"errors:      {errors}",
+        f"receiver:    {receiver}",
+        f"training:    {training}",
+        f"run:         {scene.snapshots} snapshots x {scene.trials} trials, seed {scene.seed}",
+        "processors:  " + (", ".join(labels) if labels else "(none listed)"),
+        "sources:",
+    ]
+    header = ("name", "role", "az", "el", "power dB", "waveform", "behaviour")
+    rows = [(s.name, s.role, f"{s.azimuth:g}", f"{s.elevation:g}", f"{s.power_db:g}",
+             describe_waveform(s), describe_behaviour(s)) for s in scene.sources]
+    widths = [max(len(r[i]) for r in [header] + rows) for i in range(len(header))]
+    right = {2, 3, 4}
+    for r in [header] + rows:
+        cells = [c.rjust(w) if i in right else c.ljust(w)
+                 for i, (c, w) in enumerate(zip(r, widths))]
+        lines.append("  " + "  ".join(cells).rstrip())
+    warns = scene_warnings(scene) if warnings is None else warnings
+    if warns:
+        lines.append("warnings:")
+        lines.extend(f"  - {w}" for w in warns)
+    else:
+        lines.append("warnings:    none")
+    return "\n".join(lines)
