@@ -254,11 +254,22 @@ class TrialBatch:
         source_gens = {i: gens_for(_component_key(s.name))
                        for i, s in enumerate(sc.sources)
                        if s.waveform.kind in ("gaussian", "bpsk", "qpsk")}
-        stationary_a = {i: self.steering(i) for i, s in enumerate(sc.sources)
-                        if s.motion is None}
         d_idx = sc.desired_index
+        moving = [i for i in sc.interferer_indices if sc.sources[i].motion is not None]
+        fixed = [i for i in sc.interferer_indices if sc.sources[i].motion is None]
+        # (T, J, N): steering rows of the fixed interferers, one batched product per block
+        fixed_a = np.stack([self.steering(i) for i in fixed], axis=1) if fixed else None
+        desired_a = None if sc.sources[d_idx].motion is not None else self.steering(d_idx)
         rx = sc.receiver
         full_scale = 10.0 ** (rx.full_scale_db / 20.0)
+
+        def envelope(i: int, start: int, size: int, kk: np.ndarray) -> np.ndarray:
+            src = sc.sources[i]
+            env = self._waveform(source_gens.get(i), i, start, size)          # (T, B)
+            env *= np.sqrt(src.power)
+            if src.pulsing is not None:
+                env *= src.active(kk)
+            return env
 
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
@@ -266,22 +277,18 @@ class TrialBatch:
             z = np.empty((self.trials, size, n, 2))
             for t in range(self.trials):
                 noise_gens[t].standard_normal(out=z[t])
-            interference = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
-            signal = None
-            reference = None
-            for i, src in enumerate(sc.sources):
-                w = self._waveform(source_gens.get(i), i, start, size)          # (T, B)
-                gate = src.active(kk)
-                amp = np.sqrt(src.power) * (gate if src.pulsing is not None else 1.0)
-                env = w * amp                                                  # (T, B)
-                if i in stationary_a:
-                    part = env[..., None] * stationary_a[i][:, None, :]
-                else:
-                    part = env[..., None] * self.steering(i, kk)
-                if i == d_idx:
-                    signal, reference = part, env
-                else:
-                    interference += part
+            interference = z.view(np.complex128)[..., 0]
+            interference *= np.sqrt(0.5)
+            if fixed:
+                env = np.empty((self.trials, size, len(fixed)), dtype=complex)
+                for j, i in enumerate(fixed):
+                    env[:, :, j] = envelope(i, start, size, kk)
+                interference += env @ fixed_a                                 # (T, B, N)
+            for i in moving:
+                interference += envelope(i, start, size, kk)[..., None] * self.steering(i, kk)
+            reference = envelope(d_idx, start, size, kk)
+            a_d = desired_a[:, None, :] if desired_a is not None else self.steering(d_idx, kk)
+            signal = reference[..., None] * a_d
             data = signal + interference
             if rx.bits is not None:
                 data = quantise(data, rx.bits, full_scale)
