@@ -1,0 +1,115 @@
+"""Eigenspace processors: dominant-mode rejection and interference-subspace projection.
+
+Sources: Abraham & Owsley, "Beamforming with dominant mode rejection", Proc. IEEE Oceans
+1990 (DMR); Haimovich & Bar-Ness, "An eigenanalysis interference canceler", IEEE Trans.
+SP-39, 1991, and Van Trees, Optimum Array Processing (2002), sec. 6.8 (eigenspace
+beamformers; the projection form).
+
+From the growing-window sample covariance ``R = E diag(lambda) E^H`` (batched
+``numpy.linalg.eigh``), with E_J the ``rank`` dominant eigenvectors (the interference
+subspace), ``P = I - E_J E_J^H`` and ``a`` the assumed look steering:
+
+* ``variant=dmr``: MVDR on the dominant-mode matrix
+  ``R_dmr = E_J diag(lambda_J) E_J^H + alpha P``, alpha = mean of the other N - J
+  eigenvalues: ``w ~ P a + alpha E_J diag(1/lambda_J) E_J^H a``, distortionless. With the
+  true covariance of J interferers in white noise this is exactly MVDR; as alpha -> 0 it
+  tends to the projection weight (that form is used, so no division by alpha);
+* ``variant=projection``: ``w = P a / (a^H P a)``: unit response in the look direction,
+  exact nulls on the estimated interference subspace.
+
+``rank``: number of interference eigenvectors, an integer 0 <= rank < N, or ``auto``:
+the eigenvalues above ``threshold_db`` (default 10 dB) over the known noise power
+(common practice), at most N - 1. Per trial and checkpoint in the auto case.
+
+Checkable fact: with the right rank against J strong jammers, DMR comes within about
+1 dB of the optimum from about 2J snapshots, far faster than unloaded SMI
+(Reed-Mallett-Brennan: mean (K+2-N)/(K+1)), because only the J dominant eigenvectors
+must be estimated.
+
+Cost per snapshot: O(N^2) accumulation; per checkpoint O(N^3) (one Hermitian
+eigendecomposition per trial, batched).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import SpecError
+from ._covariance import SampleCovarianceProcessor
+from ._linalg import distortionless
+from .base import Context, Parameter
+
+
+class Eigenspace(SampleCovarianceProcessor):
+    method = "eigenspace"
+    summary = "dominant-mode rejection or interference-subspace projection from eigenvectors"
+    parameters = {
+        "variant": Parameter("choice", "dmr", "dmr (dominant-mode rejection) or projection "
+                             "(null the interference subspace)", choices=("dmr", "projection")),
+        "rank": Parameter("str", "auto", "interference eigenvectors: an integer, or auto "
+                          "(eigenvalues above threshold_db over the noise power)"),
+        "threshold_db": Parameter("float", 10.0, "auto rank: eigenvalue threshold above the "
+                                  "noise power", unit="dB", low=0.0, high=100.0),
+    }
+
+    @classmethod
+    def validate(cls, given: dict, where: str = "") -> dict:
+        given = dict(given)
+        value = given.get("rank")
+        if isinstance(value, (int, np.integer)) and not isinstance(value, bool):
+            given["rank"] = str(int(value))
+        elif isinstance(value, float) and value.is_integer():
+            given["rank"] = str(int(value))
+        return super().validate(given, where)
+
+    @classmethod
+    def cross_check(cls, params: dict, where: str) -> None:
+        text = params["rank"].strip().lower()
+        if text != "auto":
+            try:
+                value = int(text)
+            except ValueError:
+                value = -1
+            if value < 0:
+                raise SpecError("rank must be a whole number >= 0 or auto", path=f"{where}rank",
+                                value=params["rank"], allowed="0 <= rank < elements, or auto")
+            text = str(value)
+        params["rank"] = text
+
+    def check(self, context: Context) -> None:
+        if self.params["rank"] != "auto" and int(self.params["rank"]) >= context.elements:
+            raise SpecError("rank must leave at least one noise eigenvector", path="rank",
+                            value=self.params["rank"],
+                            allowed=f"0 .. {context.elements - 1}, or auto")
+
+    warns_singular = False
+
+    def begin(self, context: Context) -> None:
+        self.check(context)
+        super().begin(context)
+
+    def weights_from(self, r, counts, exact):
+        n = r.shape[-1]
+        lam, e = np.linalg.eigh(r)                       # ascending
+        idx = np.arange(n)
+        if self.params["rank"] == "auto":
+            thr = self.context.noise_power * 10.0 ** (self.params["threshold_db"] / 10.0)
+            big = lam > thr
+            big[..., 0] = False                          # at most N - 1
+        else:
+            j = int(self.params["rank"])
+            big = np.broadcast_to(idx >= n - j, lam.shape)
+            if np.any(counts <= j):
+                self.warn_once(f"{int(counts.min())} snapshots for rank {j}: fewer than "
+                               "rank + 1, the noise level is not estimable; using the "
+                               "projection limit")
+        a = np.broadcast_to(self.context.look, r.shape[:-1])
+        coef = np.einsum("...nk,...n->...k", np.conj(e), a)        # E^H a
+        proj = a - np.einsum("...nk,...k->...n", e, coef * big)   # P a
+        if self.params["variant"] == "projection":
+            return distortionless(proj, a)
+        rest = ~big
+        alpha = (lam * rest).sum(-1) / np.maximum(rest.sum(-1), 1)
+        tiny = 1e-12 * np.abs(lam).max(-1, keepdims=True)
+        scale = np.where(big & (lam > tiny), alpha[..., None] / np.where(lam > tiny, lam, 1.0), 0.0)
+        w = proj + np.einsum("...nk,...k->...n", e, coef * scale)
+        return distortionless(w, a)

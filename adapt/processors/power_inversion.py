@@ -1,0 +1,62 @@
+"""Power inversion: minimum output power with one element's weight fixed to 1.
+
+Source: Compton, "The power-inversion adaptive array: concept and performance", IEEE
+Trans. AES-15, 1979 (the classic GNSS/communications anti-jam processor).
+
+Weight: ``w = R^-1 e / (e^H R^-1 e)``, ``e`` the unit vector of ``reference_element``,
+R the growing-window sample covariance of the training data (optionally loaded
+``loading_db`` above the noise floor). No look direction is used: the processor
+minimises total output power subject to ``w_ref = 1``, which puts deep nulls on strong
+jammers (they are "inverted": the stronger the jammer, the deeper its null) and leaves
+signals below the noise nearly untouched. Initial weight: ``e`` (the reference element
+alone).
+
+Checkable fact: against 40 dB jammers (fewer than N of them) the response toward each
+jammer, relative to the quiescent response (that of the reference element alone, 1 in
+every direction for isotropic elements), is below -30 dB after a few times N snapshots.
+
+Parameters: ``reference_element`` (index, default 0), ``loading_db`` (dB above the noise
+floor, default none). Cost per snapshot: O(N^2) accumulation; O(N^3) per checkpoint.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import SpecError
+from ._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
+from .base import Context, Parameter
+
+
+class PowerInversion(SampleCovarianceProcessor):
+    method = "power_inversion"
+    summary = "minimum output power with the reference element's weight fixed at 1 (Compton)"
+    parameters = {
+        "reference_element": Parameter("int", 0, "element whose weight is held at 1",
+                                       low=0, high=10 ** 6),
+        **loading_parameters(auto=False),
+    }
+
+    def check(self, context: Context) -> None:
+        if self.params["reference_element"] >= context.elements:
+            raise SpecError("reference_element is not an element of this array",
+                            path="reference_element", value=self.params["reference_element"],
+                            allowed=f"0 .. {context.elements - 1}")
+
+    def _unit(self, context: Context) -> np.ndarray:
+        e = np.zeros(context.elements, dtype=complex)
+        e[self.params["reference_element"]] = 1.0
+        return e
+
+    def begin(self, context: Context) -> None:
+        self.check(context)
+        self._e = self._unit(context)
+        super().begin(context)
+
+    def initial_weights(self, context: Context) -> np.ndarray:
+        return np.broadcast_to(self._unit(context), (context.trials, context.elements)).copy()
+
+    def weights_from(self, r, counts, exact):
+        e = np.broadcast_to(self._e, r.shape[:-1])
+        x = solve_sample(r, e, counts, exact)
+        ref = self.params["reference_element"]
+        return x / np.conj(x[..., ref])[..., None]
