@@ -1,0 +1,553 @@
+"""Figures of a scored run: convergence, beam patterns, null depths; shared style helpers.
+
+Every figure is a :class:`matplotlib.figure.Figure` built directly on the Agg canvas
+(never through ``pyplot``), so figures are made headless, in worker threads, and leave no
+global plotting state behind. Font sizes are set on each text element rather than through
+``rcParams`` for the same reason.
+
+Style helpers shared with the other report modules (sizing figures reuse them):
+
+* :data:`PALETTE` - seven colours of Okabe and Ito (2008), "Color Universal Design",
+  chosen to stay distinguishable under the common colour-vision deficiencies (their
+  black is kept for reference curves); :data:`LINE_STYLES` cycle after seven series so
+  no two series look the same;
+* :func:`series_styles` - one (colour, line style, marker) per label, in the order given,
+  so the same processor list gets the same look in every figure of a report;
+* :func:`new_figure`, :func:`style_axes`, :func:`add_title`, :func:`legend_outside` and
+  :func:`save_png` (PNG bytes at :data:`DPI` dots per inch).
+
+Figures of a run (:class:`adapt.evaluate.Evaluation`):
+
+* :func:`convergence_figure` - output SINR against snapshots (log axis), mean over trials
+  of the SINR in dB with the 10th-90th percentile band, the optimum (clairvoyant MVDR)
+  SINR, and the loss against the optimum in a second panel;
+* :func:`beam_pattern_figure` - trial-averaged power pattern of each processor's final
+  weights on the azimuth cut at the look elevation, computed with each trial's TRUE array
+  (:func:`mean_beam_pattern_db`), every source marked;
+* :func:`null_depth_figure` - grouped bars of the response toward each interferer
+  relative to the look direction at the final checkpoint, with each interferer's JNR.
+
+Checkable fact (tested): the uniform phase-steered sum on a 16-element half-wavelength
+line has its first sidelobe at -13.26 dB (the sin(Nx)/(N sin x) pattern; antenna
+handbook, e.g. Balanis, *Antenna Theory*, ch. 6), and :func:`mean_beam_pattern_db`
+reproduces it from the conventional processor's final weights.
+"""
+from __future__ import annotations
+
+import io
+from typing import Iterable, Sequence
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+from .. import geometry
+
+__all__ = [
+    "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
+    "series_styles", "new_figure", "style_axes", "add_title", "legend_outside",
+    "save_png", "figure_to_png", "is_png", "run_title",
+    "default_azimuths", "mean_beam_pattern_db",
+    "convergence_figure", "beam_pattern_figure", "null_depth_figure",
+    "standard_figures", "FIGURE_TEXT",
+]
+
+#: Okabe & Ito (2008) colour-blind-safe palette less black, reordered so the first
+#: colours are the most distinct on white (yellow last: weakest contrast on paper).
+PALETTE = ("#0072B2",   # blue
+           "#D55E00",   # vermillion
+           "#009E73",   # bluish green
+           "#CC79A7",   # reddish purple
+           "#E69F00",   # orange
+           "#56B4E9",   # sky blue
+           "#F0E442")   # yellow
+#: (the palette's black is kept for reference curves and the wanted source's marker)
+LINE_STYLES = ("-", "--", "-.", ":")
+MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
+#: colour of reference curves (the optimum) and of source markers
+REFERENCE_COLOUR = "#404040"
+DESIRED_COLOUR = "#000000"
+INTERFERER_COLOUR = "#8C8C8C"
+DPI = 150
+FIGURE_SIZE = (8.0, 4.8)          # inches
+FONT_SIZE = 9.0                   # points, axis labels and legends
+TITLE_SIZE = 10.5
+TICK_SIZE = 8.0
+PATTERN_FLOOR_DB = -80.0
+#: null depths below this are drawn (and averaged) at it: deeper values only measure
+#: floating-point round-off, no hardware reaches them (common practice)
+NULL_FLOOR_DB = -100.0
+
+
+# ---------------------------------------------------------------------------- style
+def series_styles(labels: Iterable[str]) -> dict[str, dict]:
+    """One style per label, in the order given: ``{label: {"color", "linestyle",
+    "marker"}}``.
+
+    The i-th label gets colour ``PALETTE[i % 7]`` and line style
+    ``LINE_STYLES[(i // 7) % 4]``, so up to 28 series differ; pass the same label list to
+    every figure of a report and each processor keeps its look throughout. Duplicate
+    labels keep their first style.
+    """
+    out: dict[str, dict] = {}
+    for label in labels:
+        if label in out:
+            continue
+        i = len(out)
+        out[label] = {"color": PALETTE[i % len(PALETTE)],
+                      "linestyle": LINE_STYLES[(i // len(PALETTE)) % len(LINE_STYLES)],
+                      "marker": MARKERS[i % len(MARKERS)]}
+    return out
+
+
+def new_figure(rows: int = 1, columns: int = 1, size: tuple[float, float] | None = None,
+               height_ratios: Sequence[float] | None = None, sharex: bool = False):
+    """A fresh ``Figure`` on its own Agg canvas and its axes (a single Axes when
+    ``rows == columns == 1``, else a 2-D array), no pyplot involved."""
+    if rows < 1 or columns < 1:
+        raise ValueError(f"a figure needs at least one row and column, got {rows} x {columns}")
+    fig = Figure(figsize=size or FIGURE_SIZE, dpi=DPI, layout="constrained")
+    FigureCanvasAgg(fig)
+    kw = {"height_ratios": list(height_ratios)} if height_ratios is not None else None
+    axes = fig.subplots(rows, columns, squeeze=False, sharex=sharex, gridspec_kw=kw)
+    for ax in axes.ravel():
+        style_axes(ax)
+    return fig, (axes[0, 0] if rows == columns == 1 else axes)
+
+
+def style_axes(ax) -> None:
+    """Light grid behind the data, no top/right frame, readable tick labels."""
+    ax.set_axisbelow(True)
+    ax.grid(True, which="major", color="#D9D9D9", linewidth=0.6)
+    ax.grid(True, which="minor", color="#EEEEEE", linewidth=0.4)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(labelsize=TICK_SIZE)
+
+
+def label_axes(ax, xlabel: str | None = None, ylabel: str | None = None) -> None:
+    """Axis labels at the report's font size."""
+    if xlabel is not None:
+        ax.set_xlabel(xlabel, fontsize=FONT_SIZE)
+    if ylabel is not None:
+        ax.set_ylabel(ylabel, fontsize=FONT_SIZE)
+
+
+def add_title(fig, title: str, subtitle: str | None = None) -> None:
+    """Figure title (and an optional smaller second line)."""
+    text = title if not subtitle else f"{title}\n{subtitle}"
+    fig.suptitle(text, fontsize=TITLE_SIZE)
+
+
+def legend_outside(ax, handles=None, labels=None, title: str | None = None):
+    """A legend to the right of the axes, out of the data's way."""
+    kw = {}
+    if handles is not None:
+        kw["handles"] = handles
+    if labels is not None:
+        kw["labels"] = labels
+    leg = ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0,
+                    fontsize=FONT_SIZE - 0.5, frameon=False, title=title, **kw)
+    if title:
+        leg.get_title().set_fontsize(FONT_SIZE)
+    return leg
+
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+
+def is_png(data: bytes) -> bool:
+    """True when ``data`` starts with the 8-byte PNG signature (PNG spec, ISO/IEC 15948)."""
+    return isinstance(data, (bytes, bytearray)) and bytes(data[:8]) == PNG_SIGNATURE
+
+
+def save_png(fig, dpi: int = DPI) -> bytes:
+    """Render ``fig`` to PNG bytes with the Agg renderer (thread-safe, headless).
+
+    No timestamp is written, so the same figure gives the same bytes.
+    """
+    if not isinstance(fig, Figure):
+        raise ValueError(f"expected a matplotlib Figure, got {type(fig).__name__}")
+    if not dpi or dpi <= 0:
+        raise ValueError(f"dpi must be > 0, got {dpi}")
+    if not isinstance(fig.canvas, FigureCanvasAgg):
+        FigureCanvasAgg(fig)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": None},
+                facecolor="white")
+    return buf.getvalue()
+
+
+#: the name used in the brief and by the compare helper
+figure_to_png = save_png
+
+
+def run_title(evaluation, what: str) -> tuple[str, str]:
+    """(title, subtitle) naming the figure, the scene, trials and elements."""
+    sc = evaluation.scene
+    title = f"{what} - {sc.name}"
+    sub = (f"{evaluation.trials} trial{'s' if evaluation.trials != 1 else ''}, "
+           f"{sc.elements} elements ({sc.array.layout}), "
+           f"{int(evaluation.checkpoints[-1])} snapshots")
+    return title, sub
+
+
+def _check_evaluation(evaluation) -> None:
+    for name in ("scene", "processors", "checkpoints", "optimum_sinr", "trials"):
+        if not hasattr(evaluation, name):
+            raise ValueError(f"expected an adapt.evaluate.Evaluation, got {type(evaluation).__name__}")
+    if not evaluation.processors:
+        raise ValueError("the evaluation has no processors to draw")
+
+
+def _db(x) -> np.ndarray:
+    """10 log10 of positive values; zero, negative or NaN become NaN (not -inf), so an
+    off wanted source or an undefined ratio leaves a gap instead of a spike."""
+    x = np.asarray(x, dtype=float)
+    out = np.full(x.shape, np.nan)
+    ok = np.isfinite(x) & (x > 0)
+    out[ok] = 10.0 * np.log10(x[ok])
+    return out
+
+
+def _nan_stats(x: np.ndarray, axis: int = 0):
+    """nanmean, nan-10th and nan-90th percentile along ``axis`` (all-NaN columns: NaN)."""
+    import warnings
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return (np.nanmean(x, axis=axis), np.nanpercentile(x, 10, axis=axis),
+                np.nanpercentile(x, 90, axis=axis))
+
+
+# ---------------------------------------------------------------------- convergence
+def convergence_figure(evaluation) -> Figure:
+    """Output SINR (dB) against snapshots seen, one line per processor.
+
+    Top panel: the mean over trials of the output SINR in dB (solid line), the band
+    between the 10th and 90th percentiles over trials (shaded), and the optimum SINR
+    ``sigma_s^2 a^H R^-1 a`` of the moment (Van Trees 2002, ch. 6), averaged over trials
+    in dB at each checkpoint (a flat line when the scene is stationary). Bottom panel:
+    the mean over trials of the loss against that optimum, dB. Snapshot axis is
+    logarithmic. Checkpoints where the SINR is undefined (wanted source off) are gaps.
+    """
+    _check_evaluation(evaluation)
+    cps = np.asarray(evaluation.checkpoints, dtype=float)
+    styles = series_styles(p.label for p in evaluation.processors)
+    fig, axes = new_figure(2, 1, size=(8.0, 6.2), height_ratios=(2.2, 1.0), sharex=True)
+    top, bottom = axes[0, 0], axes[1, 0]
+    single = len(cps) == 1
+    for p in evaluation.processors:
+        st = styles[p.label]
+        sinr_db = _db(p.sinr)
+        mean, lo, hi = _nan_stats(sinr_db)
+        kw = dict(color=st["color"], linestyle=st["linestyle"], linewidth=1.6)
+        if single or len(cps) <= 12:
+            kw.update(marker=st["marker"], markersize=3.5)
+        top.plot(cps, mean, label=p.label, **kw)
+        if evaluation.trials > 1:
+            top.fill_between(cps, lo, hi, color=st["color"], alpha=0.15, linewidth=0)
+        loss_mean, _, _ = _nan_stats(np.asarray(p.loss_db, dtype=float))
+        bottom.plot(cps, loss_mean, **kw)
+    opt_mean, _, _ = _nan_stats(_db(evaluation.optimum_sinr))
+    top.plot(cps, opt_mean, color=REFERENCE_COLOUR, linestyle=(0, (5, 2)), linewidth=1.2,
+             label="optimum (clairvoyant MVDR)",
+             marker="_" if single else None)
+    bottom.axhline(0.0, color=REFERENCE_COLOUR, linewidth=0.8, linestyle=(0, (5, 2)))
+    top.set_xscale("log")
+    if single:
+        top.set_xlim(cps[0] / 2, cps[0] * 2)
+    else:
+        top.set_xlim(cps[0], cps[-1])
+    label_axes(top, ylabel="output SINR, dB\n(mean over trials of dB)")
+    label_axes(bottom, xlabel="snapshots seen (log scale)",
+               ylabel="loss vs optimum, dB\n(mean over trials)")
+    bottom.invert_yaxis()        # better processors sit higher in both panels
+    handles, labels = top.get_legend_handles_labels()
+    if evaluation.trials > 1:
+        from matplotlib.patches import Patch
+        handles.append(Patch(color="#BBBBBB", alpha=0.6))
+        labels.append("10th-90th percentile over trials")
+    legend_outside(top, handles, labels, title="processor")
+    title, sub = run_title(evaluation, "Convergence")
+    if not evaluation.scene.stationary:
+        sub += "; nonstationary scene: optimum of the moment"
+    add_title(fig, title, sub)
+    return fig
+
+
+# ----------------------------------------------------------------------- patterns
+def _spans_depth(scene) -> bool:
+    """True when the array has extent along y (the broadside axis of a line): then the
+    front (|az| < 90) and back half-planes differ and the cut covers -180..180."""
+    pos = np.asarray(scene.array.positions, dtype=float)
+    return bool(np.ptp(pos[:, 1]) > 1e-12)
+
+
+def default_azimuths(scene, points: int | None = None) -> np.ndarray:
+    """Azimuths (degrees) for a pattern cut: -90..90 for arrays in the x-z plane (line,
+    grid: the back half mirrors the front), -180..180 when the array has depth along y
+    (ring, most custom layouts). The step resolves the main beam (about a tenth of the
+    aperture's null-to-null width ``lambda/D`` rad, between 0.01 and 0.25 degrees)."""
+    full = _spans_depth(scene)
+    lo, hi = (-180.0, 180.0) if full else (-90.0, 90.0)
+    if points is None:
+        ap = max(float(scene.array.aperture), 0.5)
+        step = float(np.clip(np.rad2deg(1.0 / ap) / 10.0, 0.01, 0.25))
+        points = int(round((hi - lo) / step)) + 1
+    if points < 2:
+        raise ValueError(f"a pattern cut needs at least 2 azimuths, got {points}")
+    return np.linspace(lo, hi, int(points))
+
+
+def mean_beam_pattern_db(evaluation, label: str, azimuths, elevation: float | None = None,
+                         weights: np.ndarray | None = None) -> np.ndarray:
+    """Trial-averaged power pattern (dB) of one processor's final weights.
+
+    For each trial t the power response ``|w_t^H a_t(u)|^2`` uses that trial's TRUE
+    array (element positions ``evaluation.positions[t]`` and complex gains
+    ``evaluation.element_gains[t]``), and is divided by the same trial's response toward
+    the look direction; the ratios are averaged over trials and returned in dB
+    (0 dB = the look-direction response; nulls are negative). ``elevation`` defaults to
+    the scene's look elevation. ``weights`` (T, N) replaces the final weights (e.g. the
+    weights of another checkpoint). Trials whose look response is zero are left out.
+
+    Vectorised over trials; azimuths are processed in chunks to bound memory at about
+    ``T x 4096 x N`` complex values. Checkable fact: for the untapered conventional
+    processor on a uniform half-wavelength line the first sidelobe is -13.26 dB
+    (Balanis, *Antenna Theory*, ch. 6).
+    """
+    _check_evaluation(evaluation)
+    if weights is None:
+        labels = [p.label for p in evaluation.processors]
+        if label not in labels:
+            raise ValueError(f"no processor labelled {label!r}; the run has: {', '.join(labels)}")
+        w = np.asarray(evaluation.by_label(label).final_weights)
+    else:
+        w = np.asarray(weights)
+    az = np.atleast_1d(np.asarray(azimuths, dtype=float))
+    if az.ndim != 1 or az.size == 0 or not np.all(np.isfinite(az)):
+        raise ValueError("azimuths must be a non-empty 1-D list of finite angles in degrees")
+    sc = evaluation.scene
+    el = float(sc.look_elevation if elevation is None else elevation)
+    if not np.isfinite(el) or abs(el) > 90:
+        raise ValueError(f"elevation must be within [-90, 90] degrees, got {elevation}")
+    n = sc.elements
+    pos = evaluation.positions
+    gains = evaluation.element_gains
+    if w.ndim == 1:
+        w = w[None, :]
+    t_ = w.shape[0]
+    if pos is None:
+        pos = np.broadcast_to(sc.array.positions, (t_, n, 3))
+    if gains is None:
+        gains = np.ones((t_, n), dtype=complex)
+    pos = np.asarray(pos, dtype=float)
+    gains = np.asarray(gains)
+    if w.shape[-1] != n or pos.shape != (t_, n, 3) or gains.shape != (t_, n):
+        raise ValueError(f"weights {w.shape}, positions {pos.shape} and gains {gains.shape} "
+                         f"do not describe {t_} trials of {n} elements")
+    wc = np.conj(w) * gains                                          # (T, N): w^H diag(g)
+
+    def response(az_chunk: np.ndarray) -> np.ndarray:
+        u = geometry.direction_vector(az_chunk, el)                   # (D, 3)
+        phase = 2 * np.pi * np.einsum("tnk,dk->tdn", pos, u)          # (T, D, N)
+        return np.einsum("tn,tdn->td", wc, np.exp(1j * phase))
+
+    u0 = geometry.direction_vector(sc.look_azimuth, sc.look_elevation)     # (3,)
+    look = np.abs(np.einsum("tn,tn->t", wc, np.exp(2j * np.pi * (pos @ u0)))) ** 2
+    keep = look > 0
+    if not keep.any():
+        raise ValueError(f"processor {label!r} has no response toward the look direction")
+    chunk = max(1, int(4096 * 16 // max(n, 1)))
+    acc = np.empty(az.size)
+    for s in range(0, az.size, chunk):
+        r = response(az[s:s + chunk])[keep]                          # (T', D)
+        acc[s:s + chunk] = np.mean(np.abs(r) ** 2 / look[keep, None], axis=0)
+    with np.errstate(divide="ignore"):
+        return 10.0 * np.log10(acc)
+
+
+def _wrap(az: float) -> float:
+    return float((az + 180.0) % 360.0 - 180.0)
+
+
+def _on_cut(az: float, full: bool) -> float:
+    """Where a direction shows on the cut: -180..180, or folded into -90..90 for arrays
+    without depth (the back direction 180 - az gives the same response)."""
+    a = _wrap(az)
+    if full:
+        return a
+    if a > 90:
+        return 180.0 - a
+    if a < -90:
+        return -180.0 - a
+    return a
+
+
+def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLOOR_DB) -> Figure:
+    """Beam patterns of every processor's final weights on the azimuth cut at the look
+    elevation, dB relative to the look-direction response, trial-averaged with each
+    trial's true array (:func:`mean_beam_pattern_db`); sources marked by vertical lines
+    at their direction at the final checkpoint (wanted source solid green, interferers
+    dashed grey, each labelled with its name), the look direction by a triangle.
+    Values below ``floor_db`` are drawn at the floor."""
+    _check_evaluation(evaluation)
+    if not floor_db < 0:
+        raise ValueError(f"floor_db must be negative, got {floor_db}")
+    sc = evaluation.scene
+    full = _spans_depth(sc)
+    az = default_azimuths(sc) if azimuths is None else np.asarray(azimuths, dtype=float)
+    styles = series_styles(p.label for p in evaluation.processors)
+    fig, ax = new_figure(size=(8.6, 4.9))
+    for p in evaluation.processors:
+        st = styles[p.label]
+        pat = mean_beam_pattern_db(evaluation, p.label, az)
+        ax.plot(az, np.maximum(pat, floor_db), color=st["color"], linestyle=st["linestyle"],
+                linewidth=1.3, label=p.label)
+    top = 10.0
+    ax.set_ylim(floor_db, top)
+    ax.set_xlim(az[0], az[-1])
+    k_final = int(evaluation.checkpoints[-1]) - 1
+    from matplotlib.transforms import blended_transform_factory
+    trans = blended_transform_factory(ax.transData, ax.transAxes)
+    for s in sc.sources:
+        a_s, e_s = s.direction(k_final)
+        x = _on_cut(float(a_s), full)
+        desired = s.role == "desired"
+        ax.axvline(x, color=DESIRED_COLOUR if desired else INTERFERER_COLOUR,
+                   linestyle="-" if desired else (0, (4, 3)),
+                   linewidth=1.1 if desired else 0.9, alpha=0.75 if desired else 1.0,
+                   zorder=1)
+        name = s.name if len(s.name) <= 18 else s.name[:17] + "..."
+        extra = []
+        if abs(float(e_s) - sc.look_elevation) > 1e-9:
+            extra.append(f"el {float(e_s):g}")
+        if not s.stationary:
+            extra.append("at end")
+        text = name + (f" ({', '.join(extra)})" if extra else "")
+        ax.text(x, 0.995, text, transform=trans, rotation=90, ha="right", va="top",
+                fontsize=TICK_SIZE - 0.5,
+                color="#000000" if desired else "#505050",
+                fontweight="bold" if desired else "normal", clip_on=True)
+    ax.plot([_on_cut(sc.look_azimuth, full)], [floor_db], marker="^", markersize=8,
+            color=REFERENCE_COLOUR, clip_on=False, linestyle="none", label="look direction")
+    step = 30 if full else 15
+    ax.set_xticks(np.arange(np.ceil(az[0] / step) * step, az[-1] + 1e-9, step))
+    label_axes(ax, xlabel=f"azimuth, degrees (cut at elevation {sc.look_elevation:g} deg)",
+               ylabel="power response re look direction, dB\n(mean over trials)")
+    from matplotlib.lines import Line2D
+    handles, labels = ax.get_legend_handles_labels()
+    handles += [Line2D([], [], color=DESIRED_COLOUR, linewidth=1.1, alpha=0.75),
+                Line2D([], [], color=INTERFERER_COLOUR, linestyle=(0, (4, 3)))]
+    labels += ["wanted source", "interferer"]
+    legend_outside(ax, handles, labels, title="processor")
+    title, sub = run_title(evaluation, "Beam patterns at the final checkpoint")
+    if sc.array.errors.any:
+        sub += "; true arrays with hardware errors"
+    add_title(fig, title, sub)
+    return fig
+
+
+# --------------------------------------------------------------------- null depths
+def null_depth_figure(evaluation) -> Figure:
+    """Grouped bars: the response toward each interferer relative to the look
+    direction (the null depth, dB, negative = suppressed; mean over trials of the dB
+    value at the final checkpoint, each trial's value floored at :data:`NULL_FLOOR_DB`),
+    one bar per processor in each interferer's group, with the 10th-90th percentile over
+    trials as a whisker and the mean written on the bar when there is room. Each group is labelled with
+    the interferer's name, azimuth and JNR (per-element jammer-to-noise ratio, dB)."""
+    _check_evaluation(evaluation)
+    sc = evaluation.scene
+    names = list(evaluation.interferers)
+    fig, ax = new_figure(size=(8.0, 4.6))
+    title, sub = run_title(evaluation, "Null depth toward each interferer")
+    if not names:
+        ax.text(0.5, 0.5, "no interferers in this scene", transform=ax.transAxes,
+                ha="center", va="center", fontsize=FONT_SIZE + 1)
+        ax.set_xticks([])
+        ax.set_yticks([])
+        add_title(fig, title, sub)
+        return fig
+    styles = series_styles(p.label for p in evaluation.processors)
+    procs = evaluation.processors
+    count = len(procs)
+    width = 0.8 / count
+    x0 = np.arange(len(names), dtype=float)
+    lowest = 0.0
+    for i, p in enumerate(procs):
+        nd = np.asarray(p.null_depth_db, dtype=float)[:, -1, :]       # (T, J)
+        nd = np.where(np.isfinite(nd), np.maximum(nd, NULL_FLOOR_DB), np.nan)
+        mean, lo, hi = _nan_stats(nd)
+        x = x0 - 0.4 + width * (i + 0.5)
+        st = styles[p.label]
+        bars = ax.bar(x, mean, width=width * 0.92, color=st["color"], label=p.label,
+                      edgecolor="white", linewidth=0.4)
+        if count * len(names) <= 24:
+            for text in ax.bar_label(bars, labels=[_depth_text(v) for v in mean],
+                                     label_type="center", fontsize=TICK_SIZE - 1,
+                                     color="#202020"):
+                text.set_bbox({"boxstyle": "round,pad=0.15", "facecolor": "white",
+                               "edgecolor": "none", "alpha": 0.8})
+        if evaluation.trials > 1:
+            ax.errorbar(x, mean, yerr=np.clip(np.vstack([mean - lo, hi - mean]), 0, None), fmt="none",
+                        ecolor="#303030", elinewidth=0.8, capsize=2)
+        finite = np.concatenate([mean[np.isfinite(mean)], lo[np.isfinite(lo)]])
+        if finite.size:
+            lowest = min(lowest, float(finite.min()))
+    ax.axhline(0.0, color="#303030", linewidth=0.8)
+    by_name = {s.name: s for s in sc.interferers}
+    ticks = []
+    for name in names:
+        s = by_name.get(name)
+        short = name if len(name) <= 16 else name[:15] + "..."
+        if s is None:
+            ticks.append(short)
+            continue
+        ticks.append(f"{short}\naz {s.azimuth:g} deg\nJNR {s.power_db:g} dB")
+    ax.set_xticks(x0)
+    ax.set_xticklabels(ticks, fontsize=TICK_SIZE)
+    ax.set_xlim(-0.6, len(names) - 0.4)
+    ax.set_ylim(min(lowest * 1.1 - 4.0, -10.0), 5.0)
+    label_axes(ax, ylabel="response re look direction, dB\n"
+                          f"(mean over trials of dB, floor {NULL_FLOOR_DB:g})")
+    legend_outside(ax, title="processor")
+    add_title(fig, title, sub + f"; weights after {int(evaluation.checkpoints[-1])} snapshots")
+    return fig
+
+
+def _depth_text(v: float) -> str:
+    if not np.isfinite(v):
+        return ""
+    if v <= NULL_FLOOR_DB + 1e-9:
+        return f"<={NULL_FLOOR_DB:g}"
+    return f"{v:.0f}"
+
+
+# ---------------------------------------------------------------------- all three
+#: file name -> (alt text, caption) of the standard figures of a comparison report
+FIGURE_TEXT = {
+    "convergence": (
+        "Line chart of output SINR in dB against snapshots for each processor",
+        "Output SINR against snapshots seen (log scale): mean over trials of the SINR in "
+        "dB, shaded 10th-90th percentile over trials, dashed: the optimum (clairvoyant "
+        "MVDR) SINR of the moment. Lower panel: mean loss against the optimum, dB."),
+    "beam_pattern": (
+        "Beam pattern in dB against azimuth for each processor, with sources marked",
+        "Power response of each processor's final weights on the azimuth cut at the look "
+        "elevation, relative to the look-direction response and averaged over trials, "
+        "each trial with its true element positions and gains. Vertical lines: the "
+        "wanted source (solid) and interferers (dashed)."),
+    "null_depth": (
+        "Grouped bar chart of the response toward each interferer per processor",
+        "Response toward each interferer relative to the look direction at the final "
+        "checkpoint (negative: suppressed), mean over trials of the dB value, whiskers "
+        "10th-90th percentile; JNR is the per-element jammer-to-noise ratio."),
+}
+
+
+def standard_figures(evaluation) -> dict[str, bytes]:
+    """The three figures of a comparison as PNG bytes: ``{"convergence": ..,
+    "beam_pattern": .., "null_depth": ..}`` (keys match :data:`FIGURE_TEXT`)."""
+    return {"convergence": save_png(convergence_figure(evaluation)),
+            "beam_pattern": save_png(beam_pattern_figure(evaluation)),
+            "null_depth": save_png(null_depth_figure(evaluation))}
