@@ -1,0 +1,1043 @@
+"""Reference vectors: record trusted processor outputs, verify other implementations.
+
+Engineers rewriting a processor (a fixed-point model, C or HDL driven from a script, a
+port to another language) regression-test it against a *reference set* recorded here:
+the exact snapshots a processor adapted on, its weights at a list of checkpoints, its
+output samples, and the scene's truth to score SINR.
+
+Reference-set layout (``record`` writes it, ``load_reference`` reads and checks it)::
+
+    DIR/reference.json          scene name, seed, processor spec, trials, snapshots,
+                                checkpoints, library versions, the resolved scene mapping
+    DIR/tolerances.json         default tolerance of each metric and its definition
+    DIR/manifest.json           sha256 and size of every other file (adapt.io)
+    DIR/case-0000/              one folder per case (trial 0, 1, ...)
+        samples.npy             (K, N) complex128: the snapshots the processor adapts on,
+                                rows are snapshots (see "which stream" below)
+        steering.npy            (N,) assumed look steering vector (nominal array)
+        reference.npy           (K,) complex128 reference waveform; written only for
+                                reference-trained methods (lms, nlms, rls)
+        checkpoints.npy         (C,) int64 snapshot counts c: the weight after c snapshots
+        case.json               method, params, spec, noise_power, trial, positions,
+                                look direction, sizes
+        samples.sigmf-data      samples.npy as SigMF: cf32_le, N channels interleaved
+        samples.sigmf-meta      per snapshot, sample rate 1 (one sample per snapshot)
+        weights.npy             (C, N) expected weights, applied as y = w^H x
+        outputs.npy             (K,) expected outputs y = w^H x over samples.npy under
+                                the held-weight convention
+        sinr_db.npy             (C,) output SINR of the expected weights on the truth
+        truth_covariance.npy    true interference-plus-noise covariance: (N, N) for a
+                                stationary scene, else (C, N, N) at snapshot index c
+        truth_steering.npy      true wanted steering (hardware errors of the trial):
+                                (N,) stationary, else (C, N) at snapshot index c
+        truth.json              wanted-source power (linear, dB) and, per checkpoint,
+                                the power in force (0 while a pulsed source is off)
+
+Which stream: blind and constrained methods (smi, gsc, frost, eigenspace, ...) adapt on
+the *training* stream (interference plus noise, or the received data when the scene
+trains with the signal present); reference-trained methods (``uses_reference``: lms,
+nlms, rls) adapt on the *received* data with the reference waveform. ``samples.npy`` is
+that stream, and the recorded weights are exactly what the processor produces when fed
+``samples.npy`` (and ``reference.npy``) alone, with no knowledge of the true covariance:
+specs that need the truth (``optimum``, ``step=auto`` of lms/frost) are refused at
+record time with a message saying what to give instead.
+
+Held-weight convention (adapt.processors.base): output snapshot j (0-based) uses the
+weight of the latest checkpoint c <= j; snapshots before the first checkpoint use the
+processor's initial weight (only those are never compared).
+
+Metrics, per case and checkpoint (all in dB; a case passes when every value is at or
+below its tolerance):
+
+* ``sinr_db``: ``|SINR(w_c) - SINR(w_r)|``, both ``P |w^H a_true|^2 / (w^H R_in w)`` on
+  the true covariance and steering (Van Trees 2002, ch. 6); default 0.1 dB.
+* ``weight_error_db``: ``20 log10(||w_c - w_r|| / ||w_r||)`` after scaling both to unit
+  look response ``w^H a = 1`` (removes the arbitrary complex scale); default -40 dB.
+* ``output_evm_db``: ``20 log10(||y_c - y_r|| / ||y_r||)`` over the snapshots
+  ``c_i <= j < c_(i+1)`` the checkpoint's weight is held for (the error vector
+  magnitude of the output samples); none for a checkpoint at the last snapshot;
+  default -40 dB.
+
+Verify modes: a Python callable ``f(case) -> (C, N) weights`` (:class:`CaseInputs`), or a
+command template with ``{case}`` (a folder with the input ``.npy`` files and
+``case.json``) and ``{out}`` (the ``.npy`` file to write), run with a timeout.
+"""
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import json
+import os
+import shlex
+import shutil
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+import traceback
+import types
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from . import __version__
+from .errors import CorruptReferenceError, InputError, SpecError, did_you_mean
+from .io import (atomic_write_bytes, atomic_write_text, check_manifest, library_versions,
+                 read_npy, write_json, write_manifest, write_npy)
+from .junit import TestOutcome, write_junit
+from .processors import Context, Processor, parse_spec, run_processors
+from .processors.base import normalised_checkpoints
+from .scene import Scene
+from .scores import output_sinr, to_db
+from .streams import Block, TrialBatch
+
+__all__ = ["DEFAULT_TOLERANCES", "METRICS", "record", "load_reference", "verify",
+           "ReferenceSet", "ReferenceCase", "CaseInputs", "CaseResult", "VerifyReport",
+           "reference_implementation", "load_implementation", "parse_tolerances",
+           "format_report", "write_report_junit", "weight_error_db", "output_evm_db",
+           "sinr_difference_db", "write_sigmf", "uses_reference"]
+
+FORMAT = "adapt reference set"
+FORMAT_VERSION = 1
+
+#: metric name -> definition (also written to tolerances.json)
+METRICS = {
+    "sinr_db": "absolute difference in dB between the output SINR the candidate's weights "
+               "achieve on the true covariance and the reference weights' SINR",
+    "weight_error_db": "20 log10(||w_c - w_r|| / ||w_r||) after scaling both weights to "
+                       "unit response toward the look steering vector (w^H a = 1)",
+    "output_evm_db": "20 log10(||y_c - y_r|| / ||y_r||) over the output samples y = w^H x "
+                     "each checkpoint's weight is held for (held-weight convention)",
+}
+#: default tolerances (common practice: double-precision rewrites land far below these)
+DEFAULT_TOLERANCES = {"sinr_db": 0.1, "weight_error_db": -40.0, "output_evm_db": -40.0}
+
+INPUT_FILES = ("samples.npy", "steering.npy", "reference.npy", "checkpoints.npy", "case.json")
+_MAX_VALUES = 1 << 24            # trials x snapshots x elements complex values per set
+_MAX_CASES = 9999
+_DB_FLOOR = -300.0               # dB value of an exact match (ratio floored at 1e-15)
+_REFERENCE_METHODS = ("lms", "nlms", "rls")
+
+
+# ============================================================================ tolerances
+def parse_tolerances(items, base: dict | None = None) -> dict:
+    """Tolerances from ``NAME=VALUE`` strings (or a mapping) over ``base`` (default
+    :data:`DEFAULT_TOLERANCES`); InputError for unknown names or bad values."""
+    out = dict(DEFAULT_TOLERANCES if base is None else base)
+    if items is None:
+        return out
+    pairs = items.items() if isinstance(items, dict) else None
+    if pairs is None:
+        pairs = []
+        for item in items:
+            name, sep, value = str(item).partition("=")
+            if not sep:
+                raise InputError("a tolerance is NAME=VALUE", value=item,
+                                 allowed=", ".join(f"{k}=..." for k in METRICS))
+            pairs.append((name.strip(), value.strip()))
+    for name, value in pairs:
+        if name not in METRICS:
+            raise InputError(f"unknown tolerance '{name}'" + did_you_mean(name, METRICS),
+                             allowed=", ".join(METRICS))
+        try:
+            number = float(value)
+        except (TypeError, ValueError):
+            raise InputError(f"tolerance {name} must be a number of dB", value=value) from None
+        if not np.isfinite(number):
+            raise InputError(f"tolerance {name} must be finite", value=value)
+        if name == "sinr_db" and number < 0:
+            raise InputError("tolerance sinr_db is an absolute difference: >= 0 dB", value=value)
+        out[name] = number
+    return out
+
+
+# ============================================================================ metrics
+def _db20(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """20 log10(num / den), floored at -300 dB; +inf when den is 0 and num is not."""
+    num, den = np.asarray(num, float), np.asarray(den, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(den > 0, num / np.where(den > 0, den, 1.0),
+                         np.where(num > 0, np.inf, 0.0))
+    return 20.0 * np.log10(np.maximum(ratio, 1e-15))
+
+
+def sinr_difference_db(weights: np.ndarray, truth_steering: np.ndarray,
+                       truth_covariance: np.ndarray, signal_power: np.ndarray,
+                       reference_sinr_db: np.ndarray) -> np.ndarray:
+    """``|SINR_dB(w) - reference|`` per checkpoint; SINR from :func:`adapt.scores.output_sinr`
+    (Van Trees 2002, ch. 6). weights (C, N); steering (N,) or (C, N); covariance (N, N)
+    or (C, N, N); signal_power (C,). Zero SINR reads as -300 dB."""
+    s = output_sinr(weights, truth_steering, truth_covariance, signal_power)
+    return np.abs(to_db(s) - np.asarray(reference_sinr_db, float))
+
+
+def weight_error_db(candidate: np.ndarray, reference: np.ndarray, look: np.ndarray) -> np.ndarray:
+    """Weight error in dB after removing the complex scale: both weights (..., N) scaled
+    to ``w^H a = 1`` toward ``look`` (N,), then ``20 log10(||w_c - w_r|| / ||w_r||)``.
+
+    Checkable fact: any ``w_c = g w_r`` (g complex, nonzero) gives -300 dB (exact match);
+    a weight with no response toward ``look`` cannot be scaled and gives +inf.
+    """
+    wc, wr, a = np.asarray(candidate), np.asarray(reference), np.asarray(look)
+    if wc.shape != wr.shape or wc.shape[-1] != a.shape[-1]:
+        raise ValueError(f"weight shapes differ: {wc.shape}, {wr.shape}, look {a.shape}")
+    rc = np.einsum("...n,n->...", np.conj(wc), a)
+    rr = np.einsum("...n,n->...", np.conj(wr), a)
+    scale = np.maximum(np.linalg.norm(wc, axis=-1) * np.linalg.norm(a), 1e-300)
+    dead = np.abs(rc) <= 1e-14 * scale
+    with np.errstate(divide="ignore", invalid="ignore"):
+        nc = wc / np.conj(np.where(dead, 1.0, rc))[..., None]
+        nr = wr / np.conj(rr)[..., None]
+    err = _db20(np.linalg.norm(nc - nr, axis=-1), np.linalg.norm(nr, axis=-1))
+    return np.where(dead, np.inf, err)
+
+
+def output_evm_db(candidate: np.ndarray, reference: np.ndarray) -> float:
+    """Error vector magnitude ``20 log10(||y_c - y_r|| / ||y_r||)`` in dB of two output
+    sample sequences (same shape); -300 dB for an exact match."""
+    yc, yr = np.asarray(candidate), np.asarray(reference)
+    if yc.shape != yr.shape:
+        raise ValueError(f"output shapes differ: {yc.shape} and {yr.shape}")
+    return float(_db20(np.linalg.norm(yc - yr), np.linalg.norm(yr)))
+
+
+def _held_segments(checkpoints: np.ndarray, snapshots: int) -> list[tuple[int, int]]:
+    """[c_i, c_(i+1)) snapshot ranges each checkpoint's weight is held for (held-weight
+    convention); the last runs to the end of the stream (empty when c = K)."""
+    c = [int(v) for v in checkpoints]
+    return [(c[i], c[i + 1] if i + 1 < len(c) else snapshots) for i in range(len(c))]
+
+
+# ============================================================================ record
+def uses_reference(processor: Processor) -> bool:
+    """True when the method trains on the reference waveform (adapts on the received
+    data): ``Processor.uses_reference`` or one of lms, nlms, rls."""
+    return bool(getattr(processor, "uses_reference", False)) or processor.method in _REFERENCE_METHODS
+
+
+def _candidate_context(look, positions, trials: int, noise_power: float, has_reference: bool,
+                       look_direction) -> Context:
+    """The context a candidate could know: geometry and noise level, no true covariance."""
+    return Context(look=np.asarray(look, dtype=complex), positions=np.asarray(positions, float),
+                   trials=int(trials), noise_power=float(noise_power), covariance=None,
+                   training_covariance=None, has_reference=bool(has_reference),
+                   look_direction=None if look_direction is None else
+                   (float(look_direction[0]), float(look_direction[1])),
+                   data_covariance=None, moments=None)
+
+
+def _run_on_stream(proc: Processor, samples: np.ndarray, reference: np.ndarray | None,
+                   context: Context, checkpoints: np.ndarray, outputs: bool):
+    """Run ``proc`` on one stream (T, K, N) fed as both ``data`` and ``training``."""
+    t_, k, _ = samples.shape
+    ref = np.zeros((t_, k), dtype=complex) if reference is None else reference
+    block = Block(0, k, samples, np.zeros_like(samples), samples, ref)
+    return run_processors([proc], [block], context, checkpoints, outputs=outputs,
+                          snapshots=k)[0]
+
+
+def _as_scene(scene) -> Scene:
+    if isinstance(scene, Scene):
+        return scene
+    if isinstance(scene, (str, os.PathLike)):
+        from .scenefile import load_scene
+        return load_scene(scene)
+    raise InputError("expected a Scene or the path of a scene file", value=scene)
+
+
+def _changed_params(method: str, params) -> dict:
+    """The parameters that differ from their declared defaults (what rebuilds the
+    processor: passing defaults back can trip cross-checks between parameters)."""
+    from .processors import registry
+    cls = registry().get(method)
+    if cls is None:
+        return dict(params)
+    return {k: v for k, v in dict(params).items()
+            if k not in cls.parameters or v != cls.parameters[k].default}
+
+
+def _rebuild(method: str, params, label: str | None = None) -> Processor:
+    """A fresh processor of ``method`` with ``params``."""
+    spec = {"method": method, **_changed_params(method, params)}
+    if label:
+        spec["label"] = label
+    return parse_spec(spec, "processor")
+
+
+def _short_spec(proc: Processor) -> str:
+    """``method key=value ...`` with only the changed parameters (re-parses)."""
+    from .processors.base import _fmt
+    changed = _changed_params(proc.method, proc.params)
+    return " ".join([proc.method] + [f"{k}={_fmt(v)}" for k, v in changed.items()])
+
+
+def _as_processor(processor) -> Processor:
+    if isinstance(processor, Processor):             # a fresh copy: no state carried over
+        return _rebuild(processor.method, processor.params, processor.label)
+    return parse_spec(processor, "processor")
+
+
+def _prepare_out_dir(out_dir) -> Path:
+    if out_dir is None:
+        raise InputError("an output folder is required", allowed="--out DIR")
+    out = Path(out_dir)
+    if out.exists():
+        if not out.is_dir():
+            raise InputError("exists and is not a folder; refusing to overwrite", file=str(out))
+        if any(out.iterdir()):
+            raise InputError("exists and is not empty; a reference set is never overwritten",
+                             file=str(out), allowed="a new or empty folder")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    return out
+
+
+def default_reference_checkpoints(snapshots: int, elements: int) -> np.ndarray:
+    """Checkpoints for a reference set: N, 2N, 4N, ... below K, then K (common practice:
+    early checkpoints expose windowing and loading errors)."""
+    k, first = int(snapshots), max(1, min(int(elements), int(snapshots)))
+    c = [first]
+    while c[-1] * 2 < k:
+        c.append(c[-1] * 2)
+    return np.unique(np.array(c + [k], dtype=np.int64))
+
+
+def record(scene, processor, trials, snapshots, checkpoints, out_dir,
+           tolerances=None) -> Path:
+    """Record a reference set of ``processor`` on ``trials`` cases of ``scene``.
+
+    scene: a :class:`Scene` or a scene file path; processor: a Processor or a spec
+    (``"smi loading_db=10"``); trials: number of cases (None: 3); snapshots: K (None: the
+    scene's); checkpoints: snapshot counts (None: N, 2N, 4N, ... and K); out_dir:
+    a new or empty folder (anything else is refused, never overwritten); tolerances:
+    overrides of :data:`DEFAULT_TOLERANCES` (mapping or ``NAME=VALUE`` strings).
+
+    The set is built in a temporary sibling folder and renamed into place when complete.
+    The expected weights are produced by the processor fed the stored samples alone
+    (the context a candidate has: no true covariance), so
+    :func:`reference_implementation` reproduces them. Returns the folder.
+    """
+    sc = _as_scene(scene)
+    proc = _as_processor(processor)
+    tol = parse_tolerances(tolerances)
+    t_ = 3 if trials is None else int(trials)
+    if not 1 <= t_ <= _MAX_CASES:
+        raise InputError(f"trials must be 1 .. {_MAX_CASES}", value=trials)
+    k = int(sc.snapshots if snapshots is None else snapshots)
+    if k < 1:
+        raise InputError("snapshots must be >= 1", value=snapshots)
+    n = sc.elements
+    if t_ * k * n > _MAX_VALUES:
+        raise InputError(f"a reference set of {t_} cases x {k} snapshots x {n} elements is too "
+                         f"big to keep as test vectors (limit {_MAX_VALUES} values)",
+                         allowed="fewer trials or snapshots")
+    try:
+        cps = (default_reference_checkpoints(k, n) if checkpoints is None
+               else normalised_checkpoints(checkpoints, k))
+    except ValueError as exc:
+        raise InputError(str(exc), path="checkpoints", value=checkpoints) from None
+    out = _prepare_out_dir(out_dir)
+
+    batch = TrialBatch(sc, trials=t_)
+    blk = batch.samples(k)
+    with_ref = uses_reference(proc)
+    samples = np.ascontiguousarray(blk.data if with_ref else blk.training, dtype=complex)
+    reference = np.ascontiguousarray(blk.reference, dtype=complex) if with_ref else None
+
+    # 1) the spec must make sense for the true scene (stability bounds etc.)
+    _rebuild(proc.method, proc.params).check(Context.from_batch(batch))
+    # 2) the expected weights: the processor fed only what a candidate gets
+    look_dir = (float(sc.look_azimuth), float(sc.look_elevation))
+    ctx = _candidate_context(batch.look, sc.array.positions, t_, 1.0, with_ref, look_dir)
+    try:
+        result = _run_on_stream(proc, samples, reference, ctx, cps, outputs=True)
+    except (SpecError, ValueError) as exc:
+        raise SpecError(f"'{_short_spec(proc)}' cannot be recorded as a reference: it needs what "
+                        f"a candidate implementation is not given ({exc}); give explicit "
+                        "settings (e.g. a numeric step) or choose an adaptive method",
+                        path="processor", value=_short_spec(proc)) from None
+    weights, outputs = result.weights, result.outputs
+    if not (np.all(np.isfinite(weights)) and np.all(np.isfinite(outputs))):
+        raise SpecError(f"'{_short_spec(proc)}' produced non-finite weights on this scene; nothing "
+                        "written", path="processor", value=_short_spec(proc))
+
+    # truth: scored at snapshot index c, the first snapshot each weight is applied to
+    if sc.stationary:
+        cov = batch.covariance()                         # (T, N, N)
+        steer = batch.desired_steering()                 # (T, N)
+        cov_b, steer_b = cov[:, None], steer[:, None]
+    else:
+        cov = batch.covariance(cps)                      # (T, C, N, N)
+        steer = batch.desired_steering(cps)              # (T, C, N)
+        cov_b, steer_b = cov, steer
+    src = sc.desired
+    power = src.power * src.active(cps).astype(float)    # (C,)
+    sinr_db = to_db(output_sinr(weights, steer_b, cov_b, power[None, :]))   # (T, C)
+
+    versions = library_versions()
+    tmp = out.parent / f".partial-{out.name}-{os.getpid()}"
+    if tmp.exists():
+        shutil.rmtree(tmp)
+    tmp.mkdir()
+    try:
+        names = [f"case-{i:04d}" for i in range(t_)]
+        for i, name in enumerate(names):
+            folder = tmp / name
+            folder.mkdir()
+            write_npy(folder / "samples.npy", samples[i])
+            write_npy(folder / "steering.npy", np.asarray(batch.look, dtype=complex))
+            if with_ref:
+                write_npy(folder / "reference.npy", reference[i])
+            write_npy(folder / "checkpoints.npy", cps.astype(np.int64))
+            write_json(folder / "case.json", {
+                "case": i, "trial": int(batch.first_trial + i), "method": proc.method,
+                "spec": _short_spec(proc), "label": proc.label, "params": proc.params,
+                "uses_reference": with_ref,
+                "stream": "received data" if with_ref else "training data",
+                "noise_power": 1.0, "elements": n, "snapshots": k,
+                "checkpoints": cps.tolist(), "look_direction": list(look_dir),
+                "positions": sc.array.positions.tolist(),
+            })
+            write_sigmf(folder / "samples", samples[i], cps, description=(
+                f"adapt reference case {i} of scene '{sc.name}' (seed {sc.seed}, trial "
+                f"{batch.first_trial + i}): the {n}-element {'received' if with_ref else 'training'}"
+                f" snapshots '{_short_spec(proc)}' adapts on; one sample per snapshot (sample "
+                "rate normalised to 1), element e is channel e"))
+            write_npy(folder / "weights.npy", weights[i])
+            write_npy(folder / "outputs.npy", outputs[i])
+            write_npy(folder / "sinr_db.npy", sinr_db[i])
+            write_npy(folder / "truth_covariance.npy", cov[i])
+            write_npy(folder / "truth_steering.npy", steer[i])
+            write_json(folder / "truth.json", {
+                "signal_power": src.power, "signal_power_db": src.power_db,
+                "signal_power_at_checkpoints": power.tolist(),
+                "moments": "stationary" if sc.stationary else "snapshot index c of each checkpoint",
+                "noise_power": 1.0,
+            })
+        write_json(tmp / "tolerances.json", {"tolerances": tol, "metrics": METRICS})
+        info = {
+            "format": FORMAT, "format_version": FORMAT_VERSION, "scene": sc.name,
+            "scene_file": sc.source_file, "seed": int(sc.seed), "processor": _short_spec(proc),
+            "method": proc.method, "label": proc.label, "trials": t_, "snapshots": k,
+            "elements": n, "checkpoints": cps.tolist(), "cases": names,
+            "uses_reference": with_ref, "versions": versions,
+            "scene_mapping": sc.resolved or _scene_mapping(sc),
+        }
+        write_json(tmp / "reference.json", info)
+        write_manifest(tmp, {"format": FORMAT, "format_version": FORMAT_VERSION,
+                             "versions": versions})
+        try:
+            os.rename(tmp, out)           # replaces an empty folder, refuses a non-empty one
+        except OSError as exc:
+            raise InputError(f"cannot move the finished set into place ({exc.strerror}); "
+                             "was the folder filled meanwhile?", file=str(out)) from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+def _scene_mapping(sc: Scene) -> dict:
+    from .scenefile import scene_to_mapping
+    return scene_to_mapping(sc)
+
+
+# ============================================================================ SigMF
+SIGMF_VERSION_FALLBACK = "1.2.0"
+
+
+def _sigmf_meta(samples: np.ndarray, data: bytes, checkpoints, description: str,
+                version: str, sha512: str) -> dict:
+    k, n = samples.shape
+    annotations = []
+    c = [int(v) for v in checkpoints]
+    if c[0] > 0:
+        annotations.append({"core:sample_start": 0, "core:sample_count": c[0],
+                            "core:label": "initial", "core:comment":
+                            "before the first checkpoint: the processor's initial weight"})
+    for lo, hi in _held_segments(np.asarray(c), k):
+        if hi > lo:
+            annotations.append({"core:sample_start": lo, "core:sample_count": hi - lo,
+                                "core:label": f"after {lo}", "core:comment":
+                                f"held weight after {lo} snapshots (checkpoint {lo})"})
+    return {
+        "global": {"core:datatype": "cf32_le", "core:version": version,
+                   "core:num_channels": int(n), "core:offset": 0, "core:sample_rate": 1.0,
+                   "core:description": description, "core:recorder": f"adapt {__version__}",
+                   "core:sha512": sha512},
+        "captures": [{"core:sample_start": 0}],
+        "annotations": annotations,
+    }
+
+
+def write_sigmf(base: str | os.PathLike, samples: np.ndarray, checkpoints,
+                description: str = "", use_library: bool | None = None) -> tuple[Path, Path]:
+    """Write ``base.sigmf-data`` and ``base.sigmf-meta`` for snapshots (K, N).
+
+    SigMF (signal metadata format, sigmf.org, specification 1.2): the data file is raw
+    little-endian complex float32 (``cf32_le``), the N elements as N channels interleaved
+    per snapshot (``core:num_channels`` = N); the meta file holds the core global fields
+    (datatype, version, num_channels, sample_rate = 1: one sample per snapshot, a
+    normalised rate; description; recorder ``adapt <version>``; sha512 of the data), one
+    capture from sample 0, and annotations marking each held-weight segment. Uses the
+    ``sigmf`` package (optional extra ``adapt[sigmf]``) to build and validate the
+    metadata when it is installed, else an equivalent hand-written JSON. Both files are
+    written atomically. Returns (data path, meta path).
+    """
+    import hashlib
+    x = np.asarray(samples)
+    if x.ndim != 2:
+        raise ValueError(f"samples must be (snapshots, elements), got shape {x.shape}")
+    base = Path(base)
+    data_path = base.with_name(base.name + ".sigmf-data")
+    meta_path = base.with_name(base.name + ".sigmf-meta")
+    data = np.ascontiguousarray(x, dtype="<c8").tobytes()
+    atomic_write_bytes(data_path, data)
+    sha = hashlib.sha512(data).hexdigest()
+    try:
+        if use_library is False:
+            raise ImportError
+        from sigmf import __specification__ as spec_version
+        from sigmf import sigmffile
+    except ImportError:
+        if use_library:
+            raise
+        meta = _sigmf_meta(x, data, checkpoints, description, SIGMF_VERSION_FALLBACK, sha)
+        atomic_write_text(meta_path, json.dumps(meta, indent=4) + "\n")
+        return data_path, meta_path
+    meta = _sigmf_meta(x, data, checkpoints, description, spec_version, sha)
+    handle = sigmffile.SigMFFile(metadata=meta)
+    handle.set_data_file(data_path)            # checks the sha512 against the data file
+    handle.validate()                          # the standard's JSON schema
+    atomic_write_text(meta_path, handle.dumps(pretty=True) + "\n")
+    return data_path, meta_path
+
+
+# ============================================================================ loading
+@dataclass(frozen=True)
+class CaseInputs:
+    """What a candidate implementation gets for one case (read-only).
+
+    samples: (K, N) complex, rows are snapshots; steering: (N,) assumed look steering;
+    reference: (K,) reference waveform, or None for methods that do not use one;
+    checkpoints: (C,) int64 snapshot counts; noise_power: float; params: the processor's
+    parameters (read-only mapping); method, spec: the processor; positions: (N, 3)
+    nominal element positions in wavelengths; look_direction: (azimuth, elevation) deg;
+    name: the case folder name. Return weights (C, N), row i after checkpoints[i]
+    snapshots, applied as y = w^H x.
+    """
+    name: str
+    samples: np.ndarray
+    steering: np.ndarray
+    reference: np.ndarray | None
+    checkpoints: np.ndarray
+    noise_power: float
+    params: types.MappingProxyType
+    method: str
+    spec: str
+    positions: np.ndarray
+    look_direction: tuple
+
+
+@dataclass
+class ReferenceCase:
+    """One case of a reference set: inputs, expected outputs and truth."""
+    name: str
+    folder: Path
+    info: dict
+    samples: np.ndarray
+    steering: np.ndarray
+    reference: np.ndarray | None
+    checkpoints: np.ndarray
+    weights: np.ndarray
+    outputs: np.ndarray
+    sinr_db: np.ndarray
+    truth_covariance: np.ndarray
+    truth_steering: np.ndarray
+    signal_power: np.ndarray
+
+    def inputs(self) -> CaseInputs:
+        """Read-only inputs for a candidate (fresh read-only copies each call)."""
+        def ro(a):
+            if a is None:
+                return None
+            b = np.array(a, copy=True)
+            b.setflags(write=False)
+            return b
+        params = json.loads(json.dumps(self.info.get("params", {})))
+        look = self.info.get("look_direction") or [None, None]
+        return CaseInputs(name=self.name, samples=ro(self.samples), steering=ro(self.steering),
+                          reference=ro(self.reference), checkpoints=ro(self.checkpoints),
+                          noise_power=float(self.info.get("noise_power", 1.0)),
+                          params=types.MappingProxyType(params),
+                          method=str(self.info.get("method", "")),
+                          spec=str(self.info.get("spec", "")),
+                          positions=ro(np.asarray(self.info.get("positions", []), float)),
+                          look_direction=tuple(look))
+
+
+@dataclass
+class ReferenceSet:
+    """A checked reference set: ``info`` (reference.json), ``tolerances`` and cases."""
+    folder: Path
+    info: dict
+    tolerances: dict
+    cases: list[ReferenceCase]
+
+
+def _corrupt(message: str, file=None) -> CorruptReferenceError:
+    return CorruptReferenceError(message, file=None if file is None else str(file))
+
+
+def _read_json(path: Path) -> dict:
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise _corrupt("missing", path) from None
+    except (OSError, ValueError, UnicodeDecodeError):
+        raise _corrupt("not readable JSON", path) from None
+    if not isinstance(data, dict):
+        raise _corrupt("expected a JSON object", path)
+    return data
+
+
+def _read_array(path: Path, shape: tuple, complex_: bool = True) -> np.ndarray:
+    """Read one .npy (never unpickling), check its shape and that it is finite."""
+    try:
+        a = read_npy(path)
+    except FileNotFoundError:
+        raise _corrupt("missing", path) from None
+    except (OSError, ValueError, EOFError) as exc:
+        raise _corrupt(f"not a readable .npy array ({exc})", path) from None
+    if a.dtype.kind not in ("c", "f", "i", "u"):
+        raise _corrupt(f"holds {a.dtype} values, not numbers", path)
+    if a.shape != tuple(shape):
+        raise _corrupt(f"has shape {a.shape}, expected {tuple(shape)}", path)
+    if not np.all(np.isfinite(a)):
+        bad = int(np.size(a) - np.count_nonzero(np.isfinite(a)))
+        raise _corrupt(f"holds {bad} NaN or infinite value(s)", path)
+    return a.astype(complex) if complex_ else a
+
+
+def load_reference(folder) -> ReferenceSet:
+    """Read and check a reference set written by :func:`record`.
+
+    Raises CorruptReferenceError (exit code 2) naming the files when the manifest does
+    not match (changed, missing or unreadable files), a file is malformed, or any array
+    holds NaN or infinity. Arrays are read with ``allow_pickle=False``.
+    """
+    root = Path(folder)
+    if not root.is_dir():
+        raise _corrupt("no such reference-set folder", root)
+    problems = check_manifest(root)
+    if problems:
+        shown = "; ".join(problems[:10]) + (f"; and {len(problems) - 10} more"
+                                            if len(problems) > 10 else "")
+        raise CorruptReferenceError(f"the reference set does not match its manifest: {shown}",
+                                    file=str(root))
+    info = _read_json(root / "reference.json")
+    if info.get("format") != FORMAT:
+        raise _corrupt(f"not an adapt reference set (format {info.get('format')!r})",
+                       root / "reference.json")
+    tol_doc = _read_json(root / "tolerances.json")
+    try:
+        tolerances = parse_tolerances(tol_doc.get("tolerances", {}))
+    except InputError as exc:
+        raise _corrupt(exc.message, root / "tolerances.json") from None
+    names = info.get("cases")
+    if not isinstance(names, list) or not names or not all(isinstance(s, str) for s in names):
+        raise _corrupt("lists no cases", root / "reference.json")
+    cases = []
+    for name in names:
+        if "/" in name or "\\" in name or name.startswith("."):
+            raise _corrupt(f"bad case name {name!r}", root / "reference.json")
+        cases.append(_load_case(root / name, name))
+    return ReferenceSet(folder=root, info=info, tolerances=tolerances, cases=cases)
+
+
+def _load_case(folder: Path, name: str) -> ReferenceCase:
+    meta = _read_json(folder / "case.json")
+    try:
+        k, n = int(meta["snapshots"]), int(meta["elements"])
+        with_ref = bool(meta["uses_reference"])
+    except (KeyError, TypeError, ValueError):
+        raise _corrupt("lacks snapshots, elements or uses_reference", folder / "case.json") from None
+    cps_raw = read_npy(folder / "checkpoints.npy") if (folder / "checkpoints.npy").exists() else None
+    if cps_raw is None:
+        raise _corrupt("missing", folder / "checkpoints.npy")
+    if cps_raw.ndim != 1 or cps_raw.dtype.kind not in "iu":
+        raise _corrupt("must be a 1-D integer array", folder / "checkpoints.npy")
+    try:
+        cps = normalised_checkpoints(cps_raw, k)
+    except ValueError as exc:
+        raise _corrupt(str(exc), folder / "checkpoints.npy") from None
+    if len(cps) != len(cps_raw) or np.any(cps != cps_raw):
+        raise _corrupt("checkpoints must be sorted and distinct", folder / "checkpoints.npy")
+    c = len(cps)
+    truth = _read_json(folder / "truth.json")
+    try:
+        power = np.asarray(truth["signal_power_at_checkpoints"], float)
+    except (KeyError, TypeError, ValueError):
+        raise _corrupt("lacks signal_power_at_checkpoints", folder / "truth.json") from None
+    if power.shape != (c,) or not np.all(np.isfinite(power)):
+        raise _corrupt(f"signal_power_at_checkpoints must be {c} finite numbers",
+                       folder / "truth.json")
+    stationary = truth.get("moments") == "stationary"
+    return ReferenceCase(
+        name=name, folder=folder, info=meta,
+        samples=_read_array(folder / "samples.npy", (k, n)),
+        steering=_read_array(folder / "steering.npy", (n,)),
+        reference=_read_array(folder / "reference.npy", (k,)) if with_ref else None,
+        checkpoints=cps,
+        weights=_read_array(folder / "weights.npy", (c, n)),
+        outputs=_read_array(folder / "outputs.npy", (k,)),
+        sinr_db=_read_array(folder / "sinr_db.npy", (c,), complex_=False).astype(float),
+        truth_covariance=_read_array(folder / "truth_covariance.npy",
+                                     (n, n) if stationary else (c, n, n)),
+        truth_steering=_read_array(folder / "truth_steering.npy",
+                                   (n,) if stationary else (c, n)),
+        signal_power=power,
+    )
+
+
+# ============================================================================ implementations
+def reference_implementation(case: CaseInputs) -> np.ndarray:
+    """The trusted implementation: rebuild the processor from ``case.method`` and
+    ``case.params`` and run it on ``case.samples`` (and ``case.reference``).
+
+    This is also the worked example of the Python interface: ``adapt verify DIR
+    --python adapt.reference:reference_implementation`` passes on any set recorded by
+    this version (the expected weights were produced exactly this way).
+    """
+    proc = _rebuild(case.method, case.params)
+    x = np.asarray(case.samples, dtype=complex)[None]
+    ref = None if case.reference is None else np.asarray(case.reference, dtype=complex)[None]
+    ctx = _candidate_context(case.steering, case.positions, 1, case.noise_power,
+                             ref is not None, case.look_direction
+                             if None not in tuple(case.look_direction) else None)
+    return _run_on_stream(proc, x, ref, ctx, np.asarray(case.checkpoints), False).weights[0]
+
+
+def load_implementation(target: str) -> Callable:
+    """``MODULE:FUNCTION`` or ``path/to/file.py:FUNCTION`` -> the callable (InputError
+    when it cannot be imported or found). The current folder is searched for modules."""
+    text = str(target)
+    where, sep, func = text.rpartition(":")
+    if not sep or not where or not func:
+        raise InputError("expected MODULE:FUNCTION or path/to/file.py:FUNCTION", value=text)
+    try:
+        if where.endswith(".py") or os.sep in where or "/" in where:
+            path = Path(where)
+            if not path.is_file():
+                raise InputError("no such Python file", file=where)
+            mod_name = f"_adapt_candidate_{abs(hash(str(path.resolve())))}"
+            spec = importlib.util.spec_from_file_location(mod_name, path)
+            module = importlib.util.module_from_spec(spec)
+            sys.modules[mod_name] = module
+            spec.loader.exec_module(module)
+        else:
+            added = os.getcwd() not in sys.path
+            if added:
+                sys.path.insert(0, os.getcwd())
+            try:
+                module = importlib.import_module(where)
+            finally:
+                if added:
+                    sys.path.remove(os.getcwd())
+    except InputError:
+        raise
+    except ImportError as exc:
+        raise InputError(f"cannot import '{where}': {exc}", value=text) from None
+    except Exception as exc:  # noqa: BLE001 - the user's module failed while importing
+        raise InputError(f"importing '{where}' failed: {type(exc).__name__}: {exc}",
+                         value=text) from None
+    fn = getattr(module, func, None)
+    if fn is None:
+        names = [k for k in vars(module) if not k.startswith("_")]
+        raise InputError(f"'{where}' has no function '{func}'" + did_you_mean(func, names),
+                         value=text)
+    if not callable(fn):
+        raise InputError(f"'{where}:{func}' is not callable", value=text)
+    return fn
+
+
+# ============================================================================ verify
+@dataclass
+class CaseResult:
+    """Outcome of one case: ``kind`` pass | failure | error; metric arrays (C,) are None
+    when the candidate produced no usable weights (NaN where a metric does not apply)."""
+    name: str
+    kind: str
+    message: str = ""
+    details: str = ""
+    seconds: float = 0.0
+    checkpoints: np.ndarray | None = None
+    sinr_db: np.ndarray | None = None
+    weight_error_db: np.ndarray | None = None
+    output_evm_db: np.ndarray | None = None
+    #: (metric, checkpoint, value, tolerance, excess) of the worst metric, if any
+    worst: tuple | None = None
+
+    @property
+    def passed(self) -> bool:
+        return self.kind == "pass"
+
+    def worst_of(self, metric: str) -> float:
+        a = getattr(self, metric)
+        if a is None or not np.any(~np.isnan(a)):
+            return float("nan")
+        return float(np.nanmax(a))
+
+
+@dataclass
+class VerifyReport:
+    """All cases of one verify run."""
+    folder: Path
+    mode: str
+    implementation: str
+    tolerances: dict
+    cases: list[CaseResult] = field(default_factory=list)
+
+    @property
+    def passed(self) -> bool:
+        return all(c.passed for c in self.cases)
+
+    @property
+    def counts(self) -> dict:
+        return {k: sum(c.kind == k for c in self.cases) for k in ("pass", "failure", "error")}
+
+    @property
+    def exit_code(self) -> int:
+        return 0 if self.passed else 1
+
+    @property
+    def worst(self) -> tuple | None:
+        """(case name, metric, checkpoint, value, tolerance, excess) with the largest
+        excess over tolerance across all compared cases, or None."""
+        best = None
+        for c in self.cases:
+            if c.worst is not None and (best is None or c.worst[4] > best[5]):
+                best = (c.name,) + tuple(c.worst)
+        return best
+
+
+class _CaseFailure(Exception):
+    def __init__(self, kind: str, message: str, details: str = ""):
+        super().__init__(message)
+        self.kind, self.message, self.details = kind, message, details
+
+
+def _check_weights(raw: Any, c: int, n: int) -> np.ndarray:
+    try:
+        w = np.asarray(raw)
+    except Exception as exc:  # noqa: BLE001
+        raise _CaseFailure("failure", f"returned weights are not an array ({exc})") from None
+    if w.dtype.kind not in "biufc":
+        raise _CaseFailure("failure", f"returned {type(raw).__name__} of {w.dtype}, not "
+                           f"numeric weights of shape ({c}, {n})")
+    if w.shape != (c, n):
+        raise _CaseFailure("failure", f"weights have shape {w.shape}, expected ({c}, {n}): "
+                           "one row per checkpoint, one column per element")
+    bad = ~np.all(np.isfinite(w), axis=1)
+    if bad.any():
+        rows = np.flatnonzero(bad)
+        raise _CaseFailure("failure", f"weights hold NaN or infinity at {bad.sum()} "
+                           f"checkpoint(s), first at row {rows[0]}")
+    return w.astype(complex)
+
+
+def _compare(case: ReferenceCase, w: np.ndarray, tol: dict) -> CaseResult:
+    cps = case.checkpoints
+    k = case.samples.shape[0]
+    sinr = sinr_difference_db(w, case.truth_steering, case.truth_covariance,
+                              case.signal_power, case.sinr_db)
+    werr = weight_error_db(w, case.weights, case.steering)
+    evm = np.full(len(cps), np.nan)
+    for i, (lo, hi) in enumerate(_held_segments(cps, k)):
+        if hi > lo:
+            yc = np.conj(w[i]) @ case.samples[lo:hi].T
+            evm[i] = output_evm_db(yc, case.outputs[lo:hi])
+    worst = None
+    for metric, values in (("sinr_db", sinr), ("weight_error_db", werr),
+                           ("output_evm_db", evm)):
+        for i, v in enumerate(values):
+            if np.isnan(v):
+                continue
+            excess = float(v - tol[metric])
+            if worst is None or excess > worst[4]:
+                worst = (metric, int(cps[i]), float(v), float(tol[metric]), excess)
+    ok = worst is None or worst[4] <= 0
+    res = CaseResult(case.name, "pass" if ok else "failure", checkpoints=cps, sinr_db=sinr,
+                     weight_error_db=werr, output_evm_db=evm, worst=worst)
+    if not ok:
+        metric, cp, value, limit, _ = worst
+        res.message = (f"{metric} = {value:.3g} dB at checkpoint {cp} exceeds the tolerance "
+                       f"{limit:g} dB")
+        lines = [f"{'checkpoint':>10} {'sinr_db':>10} {'weight_error_db':>16} {'output_evm_db':>14}"]
+        for i, cp_ in enumerate(cps):
+            lines.append(f"{int(cp_):>10} {sinr[i]:>10.4g} {werr[i]:>16.4g} {evm[i]:>14.4g}")
+        res.details = res.message + "\n" + "\n".join(lines)
+    return res
+
+
+def _run_python(fn: Callable, case: ReferenceCase) -> Any:
+    try:
+        return fn(case.inputs())
+    except Exception as exc:  # noqa: BLE001 - the candidate's own failure, reported per case
+        tb = traceback.format_exc(limit=-5)
+        raise _CaseFailure("error", f"raised {type(exc).__name__}: {exc}", tb) from None
+
+
+def _tail(data: bytes, lines: int = 12, chars: int = 2000) -> str:
+    text = data.decode("utf-8", "replace").rstrip()
+    return "\n".join(text.splitlines()[-lines:])[-chars:]
+
+
+def _command_args(template: str) -> list[str]:
+    try:
+        args = shlex.split(template)
+    except ValueError as exc:
+        raise InputError(f"cannot split the command: {exc}", value=template) from None
+    if not args:
+        raise InputError("empty command", allowed="e.g. 'python mine.py {case} {out}'")
+    joined = " ".join(args)
+    for slot in ("{case}", "{out}"):
+        if slot not in joined:
+            raise InputError(f"the command must contain {slot}", value=template,
+                             allowed="'PROGRAM {case} {out}': {case} the folder with the "
+                                     "inputs, {out} the .npy file of weights to write")
+    return args
+
+
+def _run_command(args: list[str], case: ReferenceCase, timeout: float) -> Any:
+    work = Path(tempfile.mkdtemp(prefix="adapt-verify-"))
+    try:
+        inputs = work / case.name
+        inputs.mkdir()
+        for fname in INPUT_FILES:               # inputs only: the expected outputs stay hidden
+            if (case.folder / fname).exists():
+                shutil.copyfile(case.folder / fname, inputs / fname)
+        out = work / "weights.npy"
+        argv = [a.replace("{case}", str(inputs)).replace("{out}", str(out)) for a in args]
+        try:
+            proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                                    stderr=subprocess.PIPE, start_new_session=True)
+        except OSError as exc:
+            raise _CaseFailure("error", f"cannot start '{argv[0]}': {exc.strerror or exc}") from None
+        try:
+            _, err = proc.communicate(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            try:
+                os.killpg(proc.pid, signal.SIGKILL)   # the group this run started, only
+            except (ProcessLookupError, PermissionError):
+                proc.kill()
+            _, err = proc.communicate()
+            raise _CaseFailure("error", f"timed out after {timeout:g} s (killed)",
+                               _tail(err)) from None
+        if proc.returncode != 0:
+            tail = _tail(err)
+            last = tail.splitlines()[-1] if tail else "(no error output)"
+            raise _CaseFailure("error", f"exited with code {proc.returncode}: {last}", tail)
+        if not out.exists():
+            raise _CaseFailure("error", f"wrote no weights file ({{out}} = {out.name})",
+                               _tail(err))
+        try:
+            return read_npy(out)
+        except (OSError, ValueError, EOFError) as exc:
+            raise _CaseFailure("failure", f"the weights file is not a readable .npy array "
+                               f"without pickling ({exc})") from None
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def verify(reference_set, implementation, tolerances=None, timeout=None) -> VerifyReport:
+    """Run a candidate on every case of a reference set and compare it.
+
+    reference_set: a :class:`ReferenceSet` or a folder (checked by
+    :func:`load_reference`; CorruptReferenceError when damaged). implementation: a
+    callable ``f(case: CaseInputs) -> weights (C, N)``, a ``"MODULE:FUNCTION"`` /
+    ``"file.py:FUNCTION"`` text prefixed ``python:``, or a command template containing
+    ``{case}`` and ``{out}``. tolerances: overrides (mapping or ``NAME=VALUE``) of the
+    set's own tolerances.json. timeout: seconds per case for commands (default 60).
+
+    Per case: crashes, timeouts and missing output are errors; wrong shapes, NaN or a
+    metric beyond tolerance are failures; see the module docstring for the metrics.
+    """
+    ref = reference_set if isinstance(reference_set, ReferenceSet) else load_reference(reference_set)
+    tol = parse_tolerances(tolerances, base=ref.tolerances)
+    limit = 60.0 if timeout is None else float(timeout)
+    if not np.isfinite(limit) or limit <= 0:
+        raise InputError("timeout must be a positive number of seconds", value=timeout)
+    if callable(implementation):
+        mode, label = "python", getattr(implementation, "__qualname__", repr(implementation))
+        run = lambda case: _run_python(implementation, case)          # noqa: E731
+    elif isinstance(implementation, str) and implementation.startswith("python:"):
+        fn = load_implementation(implementation[len("python:"):])
+        mode, label = "python", implementation[len("python:"):]
+        run = lambda case: _run_python(fn, case)                      # noqa: E731
+    elif isinstance(implementation, str):
+        args = _command_args(implementation)
+        mode, label = "command", implementation
+        run = lambda case: _run_command(args, case, limit)            # noqa: E731
+    else:
+        raise InputError("implementation must be a callable or a command template",
+                         value=implementation)
+    report = VerifyReport(folder=ref.folder, mode=mode, implementation=label, tolerances=tol)
+    for case in ref.cases:
+        t0 = time.perf_counter()
+        try:
+            raw = run(case)
+            w = _check_weights(raw, len(case.checkpoints), case.samples.shape[1])
+            res = _compare(case, w, tol)
+        except _CaseFailure as exc:
+            res = CaseResult(case.name, exc.kind, exc.message, exc.details or exc.message)
+        res.seconds = time.perf_counter() - t0
+        report.cases.append(res)
+    return report
+
+
+# ============================================================================ reporting
+def _fmt_db(v: float) -> str:
+    if np.isnan(v):
+        return "-"
+    if np.isinf(v):
+        return "inf" if v > 0 else "-inf"
+    return f"{v:.2f}"
+
+
+def format_report(report: VerifyReport) -> str:
+    """The terminal table: per case the worst SINR difference, weight error and output
+    EVM (dB) and the result; then the overall worst case, checkpoint and metric."""
+    head = (f"{'case':<12} {'SINR diff dB':>12} {'weight err dB':>13} "
+            f"{'output EVM dB':>13}  result")
+    lines = [f"verify {report.folder} with {report.mode} '{report.implementation}'",
+             "tolerances: " + ", ".join(f"{k} {v:g} dB" for k, v in report.tolerances.items()),
+             head, "-" * len(head)]
+    for c in report.cases:
+        result = "pass" if c.passed else f"{'FAIL' if c.kind == 'failure' else 'ERROR'}: {c.message}"
+        lines.append(f"{c.name:<12} {_fmt_db(c.worst_of('sinr_db')):>12} "
+                     f"{_fmt_db(c.worst_of('weight_error_db')):>13} "
+                     f"{_fmt_db(c.worst_of('output_evm_db')):>13}  {result}")
+    lines.append("-" * len(head))
+    w = report.worst
+    if w is not None:
+        name, metric, cp, value, limit, _ = w
+        lines.append(f"worst: {name}, checkpoint {cp}, {metric} = {_fmt_db(value)} dB "
+                     f"(tolerance {limit:g} dB)")
+    n = report.counts
+    lines.append(f"{len(report.cases)} cases: {n['pass']} passed, {n['failure']} failed, "
+                 f"{n['error']} errors -> {'PASS' if report.passed else 'FAIL'}")
+    return "\n".join(lines)
+
+
+def write_report_junit(report: VerifyReport, path) -> Path:
+    """JUnit XML of ``report`` (one testcase per case) written atomically to ``path``."""
+    suite = f"adapt verify {report.folder.name}"
+    outcomes = [TestOutcome(name=c.name, classname=f"adapt.verify.{report.folder.name}",
+                            seconds=c.seconds, kind=c.kind, message=c.message,
+                            details=c.details) for c in report.cases]
+    props = {"implementation": report.implementation, "mode": report.mode}
+    props.update({f"tolerance.{k}": f"{v:g}" for k, v in report.tolerances.items()})
+    return write_junit(path, suite, outcomes, props)
