@@ -82,6 +82,9 @@ class Parameter:
         def bad(msg="invalid value"):
             return SpecError(msg, path=where, value=value, allowed=self.describe_allowed())
 
+        if (self.kind == "choice" and isinstance(value, str)
+                and value.strip().lower() in self.choices):
+            return value.strip().lower()      # a choice named "none" is a value, not None
         if value is None or (isinstance(value, str) and value.strip().lower() in ("none", "null", "")):
             if self.allow_none:
                 return None
