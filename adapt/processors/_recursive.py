@@ -1,0 +1,236 @@
+"""Shared machinery of the sample-recursive processors (LMS, NLMS, Frost, GSC, RLS).
+
+Everything here works on all trials at once; the only Python loop is over the snapshots
+of a block. Per-snapshot arrays are laid out (snapshots, trials, elements) so that one
+snapshot of every trial is a contiguous (T, N) slice.
+
+The one LMS-type recursion (Widrow & Hoff 1960; Widrow & Stearns, *Adaptive Signal
+Processing*, 1985, in complex form as in Haykin, *Adaptive Filter Theory*)::
+
+    y(k) = w^H(k) u(k)                 output with the current weight
+    e(k) = d(k) - y(k)                 error against the desired sample (0 if none)
+    w(k+1) = w(k) + g(k) v(k) e^*(k)   v(k) = u(k) unless a different direction is given
+
+serves LMS (u = x, d = reference, g = mu), NLMS (g = mu / (eps + x^H x)), Frost's
+constrained LMS (d = 0, v = P x, the regressor projected off the constraints) and the
+generalised sidelobe canceller (u = B^H x, d = w_q^H x, NLMS gain). The state kept is
+``conj(w)`` so that both inner products are plain multiply-and-sum.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import SpecError
+from .base import Context, Processor
+
+__all__ = ["local_marks", "per_snapshot", "lms_pass", "moments_of", "eigen_extent",
+           "extent_over_moments", "step_from_bound", "AutoStep", "look_blocking_matrix",
+           "starting_weights", "Projector", "constrained_pass"]
+
+
+def local_marks(block, stops) -> np.ndarray:
+    """0-based in-block indices of the snapshots after which the weights are recorded:
+    checkpoint c (c snapshots seen, ``start < c <= stop``) is recorded right after
+    in-block snapshot ``c - start - 1``."""
+    marks = np.asarray(stops, dtype=np.int64) - int(block.start) - 1
+    if marks.size and (marks[0] < 0 or marks[-1] >= block.stop - block.start
+                       or np.any(np.diff(marks) <= 0)):
+        raise ValueError("checkpoints must be sorted, unique and inside the block")
+    return marks
+
+
+def per_snapshot(array: np.ndarray) -> np.ndarray:
+    """(T, B, ...) block array -> contiguous (B, T, ...) copy, one snapshot per slice."""
+    return np.ascontiguousarray(np.swapaxes(np.asarray(array), 0, 1))
+
+
+def lms_pass(wc: np.ndarray, regressor: np.ndarray, marks: np.ndarray, gain,
+             desired: np.ndarray | None = None, direction_conj: np.ndarray | None = None
+             ) -> np.ndarray:
+    """Run the LMS-type recursion over one block for every trial at once.
+
+    wc: (T, M) conjugated weights ``conj(w)``, updated in place (the recursion state);
+    regressor: (B, T, M) vectors u(k), output ``y = w^H u``;
+    marks: sorted in-block indices after whose update the weight is recorded;
+    gain: scalar, (T,) per trial, or (B, T) per snapshot and trial (the step);
+    desired: (B, T) desired samples d(k), or None for d = 0 (minimise output power);
+    direction_conj: (B, T, M) ``conj(v(k))``, the update direction, or None for
+    ``conj(u(k))``.
+
+    Returns the weights w (not conjugated) after each mark, shape (T, len(marks), M).
+    Cost per snapshot: about 4 T M complex multiply-adds, no allocation of (T, M) arrays.
+    """
+    b, t_, m = regressor.shape
+    if wc.shape != (t_, m):
+        raise ValueError(f"weight state {wc.shape} does not match regressor {(t_, m)}")
+    if direction_conj is None:
+        direction_conj = np.conj(regressor)
+    gain = np.asarray(gain, dtype=float)
+    per_step = gain.ndim == 2
+    if per_step and gain.shape != (b, t_):
+        raise ValueError(f"per-snapshot gain must be {(b, t_)}, got {gain.shape}")
+    if gain.ndim == 1 and gain.shape != (t_,):
+        raise ValueError(f"per-trial gain must be ({t_},), got {gain.shape}")
+    out = np.empty((t_, len(marks), m), dtype=complex)
+    tmp = np.empty((t_, m), dtype=complex)
+    e = np.empty(t_, dtype=complex)
+    mark_list = [int(j) for j in marks]
+    nxt = 0
+    for j in range(b):
+        y = np.einsum("tm,tm->t", wc, regressor[j])
+        if desired is None:
+            np.negative(y, out=e)
+        else:
+            np.subtract(desired[j], y, out=e)
+        e *= gain[j] if per_step else gain
+        np.multiply(direction_conj[j], e[:, None], out=tmp)
+        wc += tmp
+        while nxt < len(mark_list) and mark_list[nxt] == j:
+            np.conjugate(wc, out=out[:, nxt, :])
+            nxt += 1
+    return out
+
+
+# ---------------------------------------------------------------------- stability checks
+def moments_of(context: Context) -> np.ndarray:
+    """Snapshot indices at which to check covariances (context.moments or [0])."""
+    k = getattr(context, "moments", None)
+    return np.array([0]) if k is None else np.atleast_1d(np.asarray(k, dtype=np.int64))
+
+
+def eigen_extent(covariance: np.ndarray, basis: np.ndarray | None = None
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Largest eigenvalue and trace per trial, maximised over moments.
+
+    covariance: (T, M, N, N); basis: optional (N, L) orthonormal columns, in which case
+    the extent of ``basis^H R basis`` (R restricted to that subspace; the same nonzero
+    eigenvalues as ``P R P`` with P the projector onto it). Returns two (T,) arrays.
+    """
+    r = np.asarray(covariance)
+    if basis is not None:
+        r = np.einsum("na,tmnk,kb->tmab", np.conj(basis), r, basis)
+    lam = np.linalg.eigvalsh(r)[..., -1]                                  # (T, M)
+    tr = np.real(np.trace(r, axis1=-2, axis2=-1))
+    return lam.max(axis=1), tr.max(axis=1)
+
+
+def extent_over_moments(covariance_fn, moments: np.ndarray, trials: int, elements: int,
+                        basis: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`eigen_extent` of ``covariance_fn(k)`` over all ``moments``, evaluated in
+    chunks of moments so memory stays near 64 MB whatever the trial count."""
+    chunk = max(1, (1 << 22) // max(1, trials * elements * elements))
+    lam = np.full(trials, -np.inf)
+    tr = np.full(trials, -np.inf)
+    for i in range(0, len(moments), chunk):
+        l_, t_ = eigen_extent(covariance_fn(moments[i:i + chunk]), basis)
+        np.maximum(lam, l_, out=lam)
+        np.maximum(tr, t_, out=tr)
+    return lam, tr
+
+
+def step_from_bound(given: float | None, lam_max: np.ndarray, trace: np.ndarray,
+                    method: str, what: str, auto_fraction: float = 0.1) -> np.ndarray:
+    """Per-trial LMS step: ``given`` if below the mean-stability bound ``2/lambda_max``
+    of every trial, else SpecError; ``None`` (auto) gives ``auto_fraction / trace`` per
+    trial, which is below ``2/lambda_max`` always since ``trace >= lambda_max``.
+
+    Source: Widrow & Stearns (1985), ch. 6: the mean weight converges iff
+    ``0 < mu < 2/lambda_max`` in this convention (their ``w += 2 mu e x`` has the bound
+    ``1/lambda_max``). The mean-square error stays bounded for independent circular
+    Gaussian data iff ``sum_i mu lambda_i / (2 - mu lambda_i) < 1`` (Haykin, *Adaptive
+    Filter Theory*, small-step theory; from memory), which for small ``mu lambda_i``
+    reads ``mu < 2 / tr R``: the tighter ceiling quoted alongside.
+    """
+    lam_max = np.asarray(lam_max, float)
+    trace = np.asarray(trace, float)
+    if given is None:
+        return auto_fraction / trace
+    bound = 2.0 / lam_max
+    worst = int(np.argmin(bound))
+    if given >= bound[worst]:
+        raise SpecError(
+            f"{method}: step {given:g} is at or above the stability bound "
+            f"2/lambda_max = {bound[worst]:g} of {what} (lambda_max = {lam_max[worst]:g}"
+            f" in the worst trial); the mean weights would diverge. Choose a step below "
+            f"{bound[worst]:g}; below 2/trace = {2.0 / trace.max():g} also keeps the "
+            f"mean-square error bounded, or give step=auto",
+            path="step", value=given, allowed=f"a number in (0, {bound[worst]:g})")
+    return np.full(lam_max.shape, float(given))
+
+
+class AutoStep(Processor):
+    """Mixin: accept ``step=auto`` as a synonym of ``step=none`` (the automatic step)."""
+
+    @classmethod
+    def validate(cls, given: dict, where: str = "") -> dict:
+        given = dict(given)
+        value = given.get("step")
+        if isinstance(value, str) and value.strip().lower() == "auto":
+            given["step"] = None
+        return super().validate(given, where)
+
+
+def look_blocking_matrix(look: np.ndarray) -> np.ndarray:
+    """(N, N-1) blocking matrix B with orthonormal columns and ``B^H a = 0``.
+
+    Built from the complete QR factorisation of the look vector a (N x 1): the first
+    column of Q spans a, the other N-1 columns are an orthonormal basis of its
+    orthogonal complement (Griffiths & Jim 1982 require only ``B^H a = 0`` and full
+    rank; orthonormal columns make the NLMS step scale-free).
+    """
+    a = np.asarray(look, dtype=complex).reshape(-1, 1)
+    if a.shape[0] < 2 or not np.any(a):
+        raise ValueError("a blocking matrix needs a nonzero look vector of >= 2 elements")
+    q, _ = np.linalg.qr(a, mode="complete")
+    return q[:, 1:]
+
+
+def starting_weights(context: Context, initial: str) -> np.ndarray:
+    """(T, N) start weight: ``quiescent`` = look vector / N (unit response toward the
+    look direction, the conventional beam) or ``zero``."""
+    if initial == "zero":
+        return np.zeros((context.trials, context.elements), dtype=complex)
+    w = np.asarray(context.look, dtype=complex) / context.elements
+    return np.broadcast_to(w, (context.trials, context.elements)).copy()
+
+
+class Projector:
+    """Projection off the span of constraint columns C (N, M):
+    ``P v = v - C (C^H C)^-1 C^H v`` and the minimum-norm constrained weight
+    ``F = C (C^H C)^-1 f`` (Frost 1972). Applying P costs 2NM per vector."""
+
+    def __init__(self, c: np.ndarray, f: np.ndarray):
+        c = np.asarray(c, dtype=complex)
+        if c.ndim != 2 or c.shape[1] >= c.shape[0]:
+            raise ValueError(f"constraints must be (N, M) with M < N, got {c.shape}")
+        self.c = c
+        self.ch = np.ascontiguousarray(np.conj(c))
+        gram = self.ch.T @ c
+        self.q = np.linalg.solve(gram.T, c.T).T            # C (C^H C)^-1
+        self.f = np.asarray(f, dtype=complex)
+        self.quiescent = self.q @ self.f                    # F
+
+    def project(self, v: np.ndarray) -> np.ndarray:
+        """P v for (..., N) vectors."""
+        if self.c.shape[1] == 1:
+            coef = np.einsum("n,...n->...", self.ch[:, 0], v)
+            return v - coef[..., None] * self.q[:, 0]
+        return v - np.einsum("nm,...m->...n", self.q, np.einsum("nm,...n->...m", self.ch, v))
+
+    def basis(self) -> np.ndarray:
+        """(N, N-M) orthonormal basis of the range of P (from the SVD of C)."""
+        u, _, _ = np.linalg.svd(self.c)
+        return u[:, self.c.shape[1]:]
+
+
+def constrained_pass(wc: np.ndarray, x: np.ndarray, marks: np.ndarray, gain,
+                     projector: Projector, px: np.ndarray | None = None) -> np.ndarray:
+    """Minimum-output-power recursion under ``C^H w = f`` (Frost 1972) over one block:
+    ``w <- w - gain (P x) y^*``, ``y = w^H x``; x (B, T, N). The weights returned are
+    re-projected, ``P w + F``, so the constraints hold to rounding at every mark; the
+    state itself is left as the recursion made it (results do not depend on block size).
+    ``px`` may pass a precomputed ``P x``."""
+    if px is None:
+        px = projector.project(x)
+    w = lms_pass(wc, x, marks, gain, desired=None, direction_conj=np.conj(px))
+    return projector.project(w) + projector.quiescent

@@ -1,0 +1,136 @@
+"""Frost's linearly constrained LMS processor.
+
+Source: O. L. Frost III, "An algorithm for linearly constrained adaptive array
+processing", Proc. IEEE 60 (1972).
+
+No reference waveform: the processor minimises the output power ``E|w^H x|^2`` of the
+training data (``block.training``: interference plus noise, or the data with the wanted
+signal when the scene trains with it present) subject to ``C^H w = f``. The columns of C
+are the look vector a (response ``w^H a = 1``, distortionless) and, with
+``derivatives=1`` or ``2``, the first and second azimuth derivatives of a at the look
+direction held at zero response (a flatter look beam that tolerates pointing error;
+derivative columns are scaled to the look vector's norm, which does not change the
+constraint). Recursion, every trial at once (``y = w^H x``)::
+
+    y(k) = w^H(k) x(k)
+    w(k+1) = P [ w(k) - mu y^*(k) x(k) ] + F,
+    P = I - C (C^H C)^-1 C^H,    F = C (C^H C)^-1 f
+
+implemented as ``w - mu (P x) y^*`` (equal when ``C^H w = f``) with the reported weight
+re-projected as ``P w + F``, so ``C^H w = f`` holds to rounding at every checkpoint. The
+start weight is F (for the look constraint alone, a / N: the conventional beam).
+
+Step-size convention: ``step`` is the unnormalised ``mu`` in inverse noise-power units.
+The mean weight converges iff ``0 < mu < 2 / lambda_max(P R P)`` with R the training
+covariance (Frost 1972, with his factor-2-free step); ``check`` refuses a larger step.
+Default ``step=auto`` (or none): ``0.1 / tr(P R P)`` per trial, always inside the bound.
+
+Checkable fact: the mean weight converges to the constrained optimum
+``R^-1 C (C^H R^-1 C)^-1 f``, for the look constraint alone the MVDR weight
+``R^-1 a / (a^H R^-1 a)`` (Frost 1972).
+
+Cost per snapshot and trial: about (4 + 2M) N complex multiply-adds for M constraints.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import SpecError
+from .base import Context, Parameter
+from ._recursive import (AutoStep, Projector, constrained_pass, extent_over_moments,
+                         local_marks, moments_of, per_snapshot, step_from_bound)
+
+
+def look_constraints(look: np.ndarray, positions: np.ndarray,
+                     look_direction: tuple[float, float] | None, derivatives: int
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Constraint matrix C (N, 1 + derivatives) and values f: unit response toward the
+    look direction, zero first (and second) derivative of the response in azimuth.
+
+    Raises SpecError when the derivative constraints are degenerate for this array and
+    look direction (e.g. all elements on the line of sight) or leave no freedom to adapt.
+    """
+    a = np.asarray(look, dtype=complex)
+    n = a.shape[0]
+    cols = [a]
+    if derivatives:
+        if look_direction is None:
+            raise SpecError("derivative constraints need the look direction", path="derivatives",
+                            value=derivatives, allowed="0 when the look direction is unknown")
+        az, el = np.deg2rad(look_direction[0]), np.deg2rad(look_direction[1])
+        p = np.asarray(positions, float)
+        du1 = np.array([np.cos(az) * np.cos(el), -np.sin(az) * np.cos(el), 0.0])
+        du2 = np.array([-np.sin(az) * np.cos(el), -np.cos(az) * np.cos(el), 0.0])
+        d1 = 2 * np.pi * (p @ du1)               # phase slope per radian of azimuth
+        d2 = 2 * np.pi * (p @ du2)
+        extra = [1j * d1 * a, (1j * d2 - d1 * d1) * a][:derivatives]
+        for c in extra:
+            size = np.linalg.norm(c)
+            if size < 1e-9 * np.sqrt(n):
+                raise SpecError("the azimuth derivative of the look response is zero for this "
+                                "array and look direction", path="derivatives",
+                                value=derivatives, allowed="0")
+            cols.append(c * (np.sqrt(n) / size))
+    c = np.stack(cols, axis=1)
+    m = c.shape[1]
+    if m >= n:
+        raise SpecError(f"{m} constraints leave no freedom on {n} elements", path="derivatives",
+                        value=derivatives, allowed=f"at most {n - 2}")
+    sv = np.linalg.svd(c / np.sqrt(n), compute_uv=False)
+    if sv[-1] < 1e-6:
+        raise SpecError("the derivative constraints are linearly dependent on the look "
+                        "constraint for this array", path="derivatives", value=derivatives,
+                        allowed="0")
+    f = np.zeros(m, dtype=complex)
+    f[0] = 1.0
+    return c, f
+
+
+class FrostConstrainedLms(AutoStep):
+    method = "frost"
+    summary = "Frost's constrained LMS: minimum output power with unit look response"
+    parameters = {
+        "step": Parameter("float", None,
+                          "step size mu; auto (or none): 0.1 / tr(P R P) per trial; must be "
+                          "below 2 / lambda_max(P R P)", unit="per noise power",
+                          low=0.0, low_open=True, allow_none=True),
+        "derivatives": Parameter("int", 0, "azimuth-derivative constraints added to the look "
+                                 "constraint (1: zero slope, 2: also zero curvature)",
+                                 low=0, high=2),
+    }
+
+    def _prepare(self, context: Context) -> None:
+        if getattr(self, "_prepared_for", None) is context:
+            return
+        c, f = look_constraints(context.look, context.positions,
+                                getattr(context, "look_direction", None),
+                                self.params["derivatives"])
+        self._proj = Projector(c, f)
+        step = self.params["step"]
+        if context.training_covariance is None:
+            if step is None:
+                raise ValueError("frost: step=auto needs the training covariance in the "
+                                 "context; give a step")
+            self._steps = np.full(context.trials, float(step))
+        else:
+            lam, tr = extent_over_moments(context.training_covariance, moments_of(context),
+                                          context.trials, context.elements,
+                                          self._proj.basis())
+            self._steps = step_from_bound(step, lam, tr, self.method,
+                                          "the projected training covariance P R P")
+        self._prepared_for = context
+
+    def check(self, context: Context) -> None:
+        self._prepare(context)
+
+    def initial_weights(self, context: Context) -> np.ndarray:
+        self._prepare(context)
+        return np.broadcast_to(self._proj.quiescent, (context.trials, context.elements)).copy()
+
+    def begin(self, context: Context) -> None:
+        self._prepare(context)
+        self._wc = np.conj(self.initial_weights(context))
+
+    def update(self, block, stops: np.ndarray) -> np.ndarray:
+        return constrained_pass(self._wc, per_snapshot(block.training),
+                                local_marks(block, stops), self._steps, self._proj)

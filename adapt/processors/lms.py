@@ -1,0 +1,84 @@
+"""Widrow-Hoff least-mean-square (LMS) processor trained on the reference waveform.
+
+Source: Widrow & Hoff (1960); Widrow, Mantey, Griffiths & Goode, "Adaptive antenna
+systems", Proc. IEEE 55 (1967); Widrow & Stearns, *Adaptive Signal Processing* (1985).
+Complex form as in Haykin, *Adaptive Filter Theory*.
+
+Recursion, for every trial at once (weights applied as ``y = w^H x``)::
+
+    e(k) = d(k) - w^H(k) x(k)          d = block.reference, x = block.data
+    w(k+1) = w(k) + mu x(k) e^*(k)
+
+The reference ``d(k) = sqrt(P_d) g(k) s(k)`` is the wanted source's complex envelope, so
+LMS always trains on the received data *with the wanted signal present* (whatever the
+scene's ``training`` setting) and steers toward the true wanted direction, not the
+assumed look direction.
+
+Step-size convention: ``step`` is the unnormalised ``mu`` above, in inverse noise-power
+units (noise is 1 per element). The mean weight converges iff
+``0 < mu < 2 / lambda_max(R_xx)`` with ``R_xx = R_in + P_d a a^H`` the data covariance
+(Widrow & Stearns 1985; their ``w += 2 mu e x`` halves the bound); the mean-square error
+stays bounded only below roughly ``2 / tr(R_xx)``. ``check`` refuses a step at or above
+``2 / lambda_max`` of any trial (at every checked moment of a changing scene). The default
+``step=auto`` (same as ``none``) is ``0.1 / tr(R_xx)`` per trial: always inside both
+bounds, misadjustment about 5 %, slowest time constant ``1/(mu lambda_min)`` snapshots.
+
+Checkable fact: for independent snapshots the mean weight converges to the Wiener
+solution ``w_o = R_xx^-1 r_xd`` with ``r_xd = E[x d^*] = P_d a`` (Widrow & Stearns 1985).
+
+Cost per snapshot and trial: about 4N complex multiply-adds.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .base import Context, Parameter
+from ._recursive import (AutoStep, extent_over_moments, local_marks, lms_pass,
+                         moments_of, per_snapshot, starting_weights, step_from_bound)
+
+INITIAL_HELP = "start weight: quiescent (look vector / N, the conventional beam) or zero"
+
+
+class LeastMeanSquares(AutoStep):
+    method = "lms"
+    summary = "Widrow-Hoff LMS on the reference waveform, w += mu x e^*"
+    uses_reference = True
+    parameters = {
+        "step": Parameter("float", None,
+                          "step size mu; auto (or none): 0.1 / tr(R_xx) per trial; must be "
+                          "below 2 / lambda_max(R_xx)", unit="per noise power",
+                          low=0.0, low_open=True, allow_none=True),
+        "initial": Parameter("choice", "quiescent", INITIAL_HELP,
+                             choices=("quiescent", "zero")),
+    }
+
+    def _prepare(self, context: Context) -> None:
+        if getattr(self, "_prepared_for", None) is context:
+            return
+        step = self.params["step"]
+        if context.data_covariance is None:
+            if step is None:
+                raise ValueError("lms: step=auto needs the data covariance in the context; "
+                                 "give a step")
+            self._steps = np.full(context.trials, float(step))
+        else:
+            lam, tr = extent_over_moments(context.data_covariance, moments_of(context),
+                                          context.trials, context.elements)
+            self._steps = step_from_bound(step, lam, tr, self.method,
+                                          "the received data covariance R_xx")
+        self._prepared_for = context
+
+    def check(self, context: Context) -> None:
+        self._prepare(context)
+
+    def initial_weights(self, context: Context) -> np.ndarray:
+        return starting_weights(context, self.params["initial"])
+
+    def begin(self, context: Context) -> None:
+        self._prepare(context)
+        self._wc = np.conj(self.initial_weights(context))
+
+    def update(self, block, stops: np.ndarray) -> np.ndarray:
+        marks = local_marks(block, stops)
+        return lms_pass(self._wc, per_snapshot(block.data), marks, self._steps,
+                        desired=per_snapshot(block.reference))

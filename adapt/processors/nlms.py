@@ -1,0 +1,62 @@
+"""Normalised LMS (NLMS) processor trained on the reference waveform.
+
+Source: Nagumo & Noda, "A learning method for system identification", IEEE Trans.
+Automatic Control 12 (1967); Haykin, *Adaptive Filter Theory* (normalised LMS chapter).
+
+Recursion, for every trial at once (weights applied as ``y = w^H x``)::
+
+    e(k) = d(k) - w^H(k) x(k)                        d = block.reference, x = block.data
+    w(k+1) = w(k) + mu / (eps + x^H(k) x(k)) x(k) e^*(k)
+
+Like LMS it trains on the received data with the wanted signal present (the reference is
+the wanted source's complex envelope).
+
+Step-size convention: ``step`` is the dimensionless ``mu``; NLMS is stable in the mean
+square for ``0 < mu < 2`` whatever the input power (Haykin), fastest near ``mu = 1``;
+``eps`` (noise-power units, noise is 1 per element) only guards the division.
+
+Checkable fact: for jointly Gaussian data and reference the mean weight converges to the
+Wiener solution ``R_xx^-1 P_d a`` (the normalised error ``x e_o^*/|x|^2`` has zero mean
+because the Wiener error ``e_o`` is independent of x).
+
+Cost per snapshot and trial: about 5N complex multiply-adds.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .base import Context, Parameter, Processor
+from ._recursive import local_marks, lms_pass, per_snapshot, starting_weights
+from .lms import INITIAL_HELP
+
+
+def normalised_gain(x: np.ndarray, step: float, eps: float) -> np.ndarray:
+    """NLMS gain ``step / (eps + |x|^2)`` for (B, T, M) vectors -> (B, T)."""
+    power = np.einsum("...m,...m->...", x.real, x.real) + np.einsum("...m,...m->...", x.imag, x.imag)
+    return step / (eps + power)
+
+
+class NormalisedLms(Processor):
+    method = "nlms"
+    summary = "normalised LMS on the reference waveform, w += mu x e^* / (eps + x^H x)"
+    uses_reference = True
+    parameters = {
+        "step": Parameter("float", 0.05, "normalised step mu; stable for 0 < mu < 2",
+                          low=0.0, high=2.0, low_open=True, high_open=True),
+        "eps": Parameter("float", 1e-6, "regularisation added to x^H x",
+                         unit="noise power", low=0.0, low_open=True),
+        "initial": Parameter("choice", "quiescent", INITIAL_HELP,
+                             choices=("quiescent", "zero")),
+    }
+
+    def initial_weights(self, context: Context) -> np.ndarray:
+        return starting_weights(context, self.params["initial"])
+
+    def begin(self, context: Context) -> None:
+        self._wc = np.conj(self.initial_weights(context))
+
+    def update(self, block, stops: np.ndarray) -> np.ndarray:
+        marks = local_marks(block, stops)
+        x = per_snapshot(block.data)
+        gain = normalised_gain(x, self.params["step"], self.params["eps"])
+        return lms_pass(self._wc, x, marks, gain, desired=per_snapshot(block.reference))
