@@ -381,10 +381,35 @@ class Law:
         return out
 
     def three_db_snapshots(self) -> int:
-        """Training snapshots for a 3 dB average loss under this law."""
+        """Training snapshots for a 3 dB (half-power) average loss under this law."""
         if self.name == "rmb":
             return rmb_three_db_snapshots(self.elements)
         return signal_present_three_db_snapshots(self.elements, self.sinr_opt)
+
+    def required_snapshots(self, target: float, limit: int) -> int | None:
+        """Smallest checkpoint k in [1, limit] whose mean normalised SINR is >= ``target``
+        (linear, in (0, 1)), or None. Bisection: the mean never decreases with k (the
+        training count never decreases and the beta law improves with it). Note that a
+        3.00 dB target (0.501) needs one snapshot more than the half-power point 2N - 3
+        when (N - 2 + t)/(1 - t) is just above 2N - 3."""
+        t = float(target)
+        if not 0.0 < t < 1.0:
+            raise ValueError(f"target normalised SINR must be in (0, 1), got {target!r}")
+        limit = int(limit)
+        if limit < 1:
+            raise ValueError(f"limit must be >= 1, got {limit}")
+
+        def ok(k: int) -> bool:
+            v = float(self.mean(np.array([k]))[0])
+            return bool(np.isfinite(v) and v >= t)
+
+        if not ok(limit):
+            return None
+        lo, hi = 0, limit                      # ok(hi) True; ok(0) taken as False
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            lo, hi = (lo, mid) if ok(mid) else (mid, hi)
+        return hi
 
 
 def theory_for(processor, scene_info) -> Law | None:

@@ -1,0 +1,129 @@
+"""``adapt size SCENE``: how many training snapshots each processor needs.
+
+Thin wrapper over :func:`adapt.sizing.size` and :func:`adapt.sizing.write_sizing_run`:
+parses the options, shows a progress bar (trials x largest snapshot count
+trial-snapshots, on stderr), prints the table, the recommendations and any disagreement
+with theory, and the run folder path. Exit 0 on success, 2 on bad input.
+"""
+from __future__ import annotations
+
+import shlex
+import sys
+
+ORDER = 30
+
+#: library argument names -> command-line options, for error messages
+_OPTIONS = {"snapshots": "--snapshots", "trials": "--trials", "seed": "--seed",
+            "target_loss_db": "--target-loss", "fraction": "--fraction"}
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser(
+        "size", help="snapshots needed for a target loss, simulation beside theory",
+        description="Sweep the number of training snapshots in one Monte Carlo run, and "
+                    "for each processor report the mean normalised SINR (SINR / optimum) "
+                    "with its standard error, loss percentiles and the share of trials "
+                    "within the target loss, beside the closed-form law where one applies "
+                    "(Reed-Mallett-Brennan for unloaded SMI; the signal-present law when "
+                    "the scene trains with the wanted signal) and the rules of thumb (2N "
+                    "unloaded, 2J loaded). Answers: the snapshots for the target loss in "
+                    "the mean (bootstrap range) and for a share of trials (Clopper-Pearson "
+                    "range). Writes a new run folder (scene.yaml, sizing.json, sizing.png, "
+                    "report.html, manifest.json). Simulation only.")
+    p.add_argument("scene", metavar="SCENE", help="scene YAML file")
+    p.add_argument("--processor", "-p", dest="processors", action="append", metavar="SPEC",
+                   help="processor spec, e.g. 'smi loading_db=10' (repeatable; default: "
+                        "'smi' and 'smi loading_db=10')")
+    p.add_argument("--snapshots", metavar="LIST|START:STOP",
+                   help="snapshot counts: a list 8,12,16 or a geometric range START:STOP "
+                        "(8 per octave; START:STOP:PER_OCTAVE to choose); default: from "
+                        "the number of elements (from 1 when a loaded or non-SMI processor "
+                        "is sized) to the scene's snapshots")
+    p.add_argument("--trials", metavar="T", help="Monte Carlo trials (default: scene; >= 2)")
+    p.add_argument("--seed", metavar="S", help="root random seed (default: scene)")
+    p.add_argument("--target-loss", dest="target_loss", default="3", metavar="DB",
+                   help="loss against the optimum to meet, dB (default 3)")
+    p.add_argument("--fraction", default="0.9", metavar="F",
+                   help="share of trials that must meet the target (default 0.9)")
+    p.add_argument("--out", default="runs", metavar="DIR",
+                   help="folder that receives the run folder (default: runs)")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    p.set_defaults(func=run)
+
+
+def _integer(text, option: str):
+    from ..errors import InputError
+    if text is None:
+        return None
+    try:
+        return int(str(text).strip().replace("_", ""))
+    except ValueError:
+        raise InputError("expected a whole number", path=option, value=text) from None
+
+
+def _real(text, option: str) -> float:
+    from ..errors import InputError
+    try:
+        return float(str(text).strip())
+    except ValueError:
+        raise InputError("expected a number", path=option, value=text) from None
+
+
+def command_line(args) -> str:
+    """The command as a canonical, shell-quoted line (recorded in the manifest)."""
+    words = ["adapt", "size", args.scene]
+    for spec in args.processors or []:
+        words += ["--processor", spec]
+    for name in ("snapshots", "trials", "seed"):
+        value = getattr(args, name)
+        if value is not None:
+            words += [f"--{name}", str(value)]
+    words += ["--target-loss", str(args.target_loss), "--fraction", str(args.fraction),
+              "--out", str(args.out)]
+    return shlex.join(words)
+
+
+def _relocated(exc):
+    path = exc.path or ""
+    head = path.split(".")[0].split("[")[0]
+    if head in _OPTIONS and path == head:
+        return exc.__class__(exc.message, file=exc.file, path=_OPTIONS[head], value=exc.value,
+                             allowed=exc.allowed)
+    if head == "processors":
+        return exc.__class__(exc.message, file=exc.file, path="--processor" + path[len(head):],
+                             value=exc.value, allowed=exc.allowed)
+    return exc
+
+
+def run(args) -> int:
+    from ..errors import InputError
+    from ..scenefile import load_scene
+    from ..sizing import size, sweep_points, write_sizing_run
+    trials = _integer(args.trials, "--trials")
+    seed = _integer(args.seed, "--seed")
+    target = _real(args.target_loss, "--target-loss")
+    fraction = _real(args.fraction, "--fraction")
+    scene = load_scene(args.scene)
+    bar = None
+    try:
+        last = (scene.snapshots if args.snapshots is None else
+                int(sweep_points(args.snapshots, scene.elements, scene.snapshots,
+                                 where="--snapshots")[-1]))
+        if not args.no_progress:
+            from tqdm import tqdm
+            total = (scene.trials if trials is None else max(trials, 0)) * last
+            bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
+                       disable=None, leave=False, desc="size")
+        result = size(scene, args.processors, snapshots=args.snapshots,
+                      trials=trials, seed=seed, target_loss_db=target, fraction=fraction,
+                      progress=bar.update if bar is not None else None)
+    except InputError as exc:
+        raise _relocated(exc) from None
+    finally:
+        if bar is not None:
+            bar.close()
+    folder = write_sizing_run(result, args.out, command_line=command_line(args))
+    print(result.table())
+    print()
+    print(f"run folder: {folder}")
+    return 0

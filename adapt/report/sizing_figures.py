@@ -1,0 +1,216 @@
+"""The sizing figure and report sections, drawn from a sizing.json mapping alone.
+
+``sizing_figure(record)`` plots, for each processor, the mean normalised SINR in dB
+(``10 log10`` of the mean over trials of ``rho = SINR / SINR_opt``) against snapshots on a
+log axis, the band between the 10th and 90th percentiles of rho over trials, the
+closed-form mean where one applies (dashed; Reed, Mallett and Brennan 1974 or the
+signal-present law of :mod:`adapt.theory`), the target line, and the rules of thumb as
+vertical marks (about 2N unloaded, about 2J loaded; Carlson 1988). Because it reads only
+the record, a figure can be redrawn from any run folder's sizing.json.
+
+``sizing_sections(record, png)`` gives the ``(heading, parts)`` sections of report.html
+for :func:`adapt.report.html.build_page`.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .figures import (REFERENCE_COLOUR, add_title, label_axes, legend_outside, new_figure,
+                      save_png, series_styles)
+from .html import caution, figure, paragraph, table
+
+__all__ = ["sizing_figure", "sizing_figure_png", "sizing_sections"]
+
+
+def _check(record) -> None:
+    if not isinstance(record, dict) or not isinstance(record.get("processors"), list):
+        raise ValueError("expected a sizing record (the sizing.json mapping)")
+    if not record["processors"]:
+        raise ValueError("the sizing record has no processors to draw")
+
+
+def _db(values) -> np.ndarray:
+    x = np.array([np.nan if v is None else float(v) for v in values])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(x > 0, 10 * np.log10(np.where(x > 0, x, 1.0)), np.nan)
+
+
+def _neg(values) -> np.ndarray:
+    return -np.array([np.nan if v is None or not math.isfinite(v) else float(v) for v in values])
+
+
+def _count_ticks(ax, kmin: float, kmax: float) -> None:
+    """Plain integer labels at 1-2-5 steps on the log snapshot axis (no 3x10^1)."""
+    from matplotlib.ticker import FixedLocator, NullFormatter
+    decades = range(int(math.floor(math.log10(max(kmin, 1)))),
+                    int(math.ceil(math.log10(max(kmax, 1)))) + 1)
+    ticks = [m * 10 ** d for d in decades for m in (1, 2, 5) if kmin <= m * 10 ** d <= kmax]
+    if len(ticks) < 2:
+        ticks = sorted({int(kmin), int(kmax)})
+    ax.xaxis.set_major_locator(FixedLocator(ticks))
+    ax.set_xticklabels([f"{t:,}" for t in ticks])
+    ax.xaxis.set_minor_formatter(NullFormatter())
+
+
+def sizing_figure(record: dict):
+    """Mean normalised SINR (dB) against snapshots: see the module docstring."""
+    _check(record)
+    styles = series_styles(p["label"] for p in record["processors"])
+    fig, ax = new_figure()
+    marks: dict[int, list[str]] = {}
+    for p in record["processors"]:
+        st = styles[p["label"]]
+        pts = p["points"]
+        k = np.array([r["snapshots"] for r in pts], dtype=float)
+        mean_db = _db(r["normalized_sinr_mean"] for r in pts)
+        # loss p90 is the worst 10 %: rho's 10th percentile; loss p10 rho's 90th
+        lo = _neg(r["loss_db_p90"] for r in pts)
+        hi = _neg(r["loss_db_p10"] for r in pts)
+        many = len(k) > 12
+        ax.plot(k, mean_db, color=st["color"], linestyle="-", linewidth=1.6,
+                marker=None if many else st["marker"], markersize=3.5,
+                label=f"{p['label']} (simulation, mean)")
+        ax.fill_between(k, lo, hi, color=st["color"], alpha=0.15, linewidth=0)
+        th = _db(r["theory_normalized_sinr_mean"] for r in pts)
+        if np.isfinite(th).any():
+            name = (p.get("theory") or {}).get("title", "theory")
+            # drawn over the simulation, wider and translucent, so both stay visible
+            ax.plot(k, th, color=st["color"], linestyle=(0, (4, 2)), linewidth=2.6,
+                    alpha=0.55, zorder=3, label=f"{p['label']} ({name}, mean)")
+        rule = p.get("rule_of_thumb")
+        if rule and rule.get("snapshots"):
+            marks.setdefault(int(rule["snapshots"]), []).append(p["label"])
+    target = -float(record["target_loss_db"])
+    ax.axhline(target, color=REFERENCE_COLOUR, linewidth=1.0, linestyle=":",
+               label=f"target: {record['target_loss_db']:g} dB loss")
+    all_k = [r["snapshots"] for p in record["processors"] for r in p["points"]]
+    kmin, kmax = min(all_k), max(all_k)
+    for kk, labels in sorted(marks.items()):
+        if kmin <= kk <= kmax:
+            ax.axvline(kk, color=REFERENCE_COLOUR, linewidth=0.8, linestyle=(0, (1, 3)))
+            ax.annotate(f"rule of thumb {kk}\n({', '.join(labels)})", xy=(kk, 1.0),
+                        xycoords=("data", "axes fraction"), xytext=(2, -2),
+                        textcoords="offset points", fontsize=7, va="top",
+                        color=REFERENCE_COLOUR)
+    ax.set_xscale("log")
+    _count_ticks(ax, kmin, kmax)
+    if kmax > kmin:
+        ax.set_xlim(kmin, kmax)
+    else:
+        ax.set_xlim(kmin / 2, kmin * 2)
+    ax.set_ylim(bottom=max(ax.get_ylim()[0], -40.0), top=1.0)
+    label_axes(ax, xlabel="training snapshots (log scale)",
+               ylabel="normalised SINR, dB\n(SINR / optimum; 0 dB is the optimum)")
+    handles, labels = ax.get_legend_handles_labels()
+    from matplotlib.patches import Patch
+    handles.append(Patch(color="#BBBBBB", alpha=0.6))
+    labels.append("10th-90th percentile over trials")
+    legend_outside(ax, handles, labels, title="processor")
+    add_title(fig, f"Snapshot sizing - {record['scene']}",
+              f"{record['trials']} trials, {record['elements']} elements, optimum SINR "
+              + ("n/a" if record.get("optimum_sinr_db") is None
+                 else f"{record['optimum_sinr_db']:.1f} dB"))
+    return fig
+
+
+def sizing_figure_png(record: dict) -> bytes:
+    """:func:`sizing_figure` rendered to PNG bytes."""
+    return save_png(sizing_figure(record))
+
+
+def _k(v) -> str:
+    return "-" if v is None else str(v)
+
+
+def _rng(r) -> str:
+    if r is None or r[0] is None:
+        return "beyond the sweep"
+    return f"{r[0]}-{'beyond' if r[1] is None else r[1]}"
+
+
+def sizing_sections(record: dict, png: bytes | None = None) -> list:
+    """Report sections: summary, recommendations, simulation against theory (the
+    disagreements, stated as findings), the figure, one table per processor, notes and
+    the caution."""
+    _check(record)
+    t = record["target_loss_db"]
+    pct = f"{100 * record['fraction']:g} %"
+    facts = (f"{record['elements']} elements, {record['trials']} trials, seed "
+             f"{record['seed']}, training on "
+             + ("interference plus noise" if record.get("training") != "signal"
+                else "the data with the wanted signal present")
+             + ", optimum SINR "
+             + ("n/a" if record.get("optimum_sinr_db") is None
+                else f"{record['optimum_sinr_db']:.1f} dB")
+             + f"; target: at most {t:g} dB loss against the optimum.")
+    summary = []
+    for p in record["processors"]:
+        th = p.get("theory") or {}
+        rule = p.get("rule_of_thumb") or {}
+        summary.append([p["label"], _k(p["required_snapshots_mean"]),
+                        _rng(p["required_snapshots_mean_range"]),
+                        _k(p["required_snapshots_fraction"]),
+                        _rng(p["required_snapshots_fraction_range"]),
+                        _k(th.get("required_snapshots")) if th else "no closed form",
+                        _k(rule.get("snapshots")) if rule else "-"])
+    sections = [
+        (None, [caution(), paragraph(facts)]),
+        ("Recommendations", [
+            table(summary, header=["processor", f"{t:g} dB in the mean", "bootstrap 95 % range",
+                                   f"{pct} of trials", "Clopper-Pearson 95 % range",
+                                   "theory", "rule of thumb"]),
+            *[paragraph(p["recommendation"]) for p in record["processors"]]]),
+    ]
+    viol = record.get("assumption_violations") or []
+    parts = []
+    if record.get("disagreements"):
+        parts += [paragraph("Finding: " + d) for d in record["disagreements"]]
+    elif any(p.get("theory") for p in record["processors"]):
+        parts.append(paragraph(f"Simulation and theory agree within 4 standard errors at "
+                               "every point where a closed form applies."))
+    else:
+        parts.append(paragraph("No closed form applies to these processors (loaded or "
+                               "non-SMI methods); only rules of thumb are shown."))
+    parts.append(paragraph("Assumptions of the closed forms broken by this scene: "
+                           + ("; ".join(viol) if viol else "none") + "."))
+    sections.append(("Simulation against theory", parts))
+    if png is not None:
+        sections.append(("Figure", [figure(
+            png, alt="Mean normalised SINR in dB against training snapshots for each "
+                     "processor, with percentile bands, theory and the target line",
+            caption="Mean normalised SINR (solid), 10th-90th percentile band over trials "
+                    "(shaded), closed-form mean (dashed), target (dotted), rules of thumb "
+                    "(vertical).", name="sizing")]))
+    for p in record["processors"]:
+        rows = [[r["snapshots"], r["normalized_sinr_mean"], r["normalized_sinr_sem"],
+                 r["loss_db_median"], r["loss_db_p10"], r["loss_db_p90"],
+                 r["fraction_meeting_target"], r["theory_normalized_sinr_mean"]]
+                for r in p["points"]]
+        sections.append((f"Points: {p['label']}", [
+            paragraph(f"spec: {p['spec']}"),
+            table(rows, header=["snapshots", "mean rho", "sem", "median loss dB",
+                                "p10 loss dB", "p90 loss dB", f"share within {t:g} dB",
+                                "theory mean rho"], digits=4)]))
+    rt = record.get("rules_of_thumb") or {}
+    sections.append(("Notes", [
+        paragraph("rho is the normalised SINR, SINR / optimum SINR, scored on the true "
+                  "covariance. 'In the mean': the smallest sweep point from which the mean "
+                  "of rho over trials stays at or above the target; its range is the central "
+                  "95 % of the same answer over 200 bootstrap resamples of the trials. 'Of "
+                  "trials': the smallest sweep point from which the stated share of trials "
+                  "stays within the target; its range comes from Clopper-Pearson 95 % "
+                  "intervals of that share. p10 loss is the best 10 % of trials, p90 the "
+                  "worst 10 %."),
+        paragraph("Theory: Reed, Mallett and Brennan (1974), rho ~ Beta(K-N+2, N-1) for "
+                  "unloaded SMI trained on Gaussian interference plus noise, half power at "
+                  f"2N-3 = {_k(rt.get('rmb_half_power'))}; with the wanted signal in the "
+                  "training data rho = eta / (1 + SINR_opt (1 - eta)), eta of the same beta "
+                  "law (Boroson 1980), so the snapshots grow about as 1 + SINR_opt. Rules of "
+                  f"thumb: about 2N = {_k(rt.get('unloaded_2n'))} unloaded; about 2J = "
+                  f"{_k(rt.get('loaded_2j'))} with 10 dB loading (Carlson 1988), J = "
+                  f"{_k(rt.get('strong_interferers'))} strong interferers ("
+                  f"{rt.get('strong_definition', '')})."),
+    ]))
+    return sections

@@ -1,0 +1,631 @@
+"""Snapshot sizing: how many training snapshots a processor needs, with theory beside it.
+
+``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.evaluate.evaluate`)
+whose checkpoints are the sweep's snapshot counts: each trial is one stream of the
+largest count, scored at every count of the growing window, so the points of the sweep
+share their trials (common random numbers; a point agrees with a separate run of that
+count alone, same seed, to rounding). For each processor and point it reports the mean
+normalised SINR ``rho = SINR / SINR_opt`` and its standard error, loss percentiles, the
+fraction of trials within the target loss and the closed-form mean where one applies
+(:mod:`adapt.theory`), then answers the sizing question two ways:
+
+* in the mean: the smallest sweep point from which the mean normalised SINR stays at or
+  above ``10^(-target/10)`` at every larger point (the criterion of Reed, Mallett and
+  Brennan 1974; "stays" matters only for scenes whose curves are not monotone), with a
+  bootstrap range: trials are resampled with replacement (``BOOTSTRAP_RESAMPLES``
+  resamples, a fixed seed derived from the run seed), the answer recomputed on each, and
+  the central 95 % of the answers given as a range of snapshot counts;
+* per trial: the smallest sweep point from which at least ``fraction`` of the trials
+  stay within the target loss, with a range from the Clopper-Pearson 95 % interval of
+  that fraction at every point (the earliest point where the upper bound reaches the
+  fraction, the point from which the lower bound does).
+
+Answers are sweep points (counts actually simulated), never interpolated. A range end of
+None means "beyond the sweep".
+
+Loss percentiles: ``loss_db_p10`` is the loss of the best 10 % of trials (the 10th
+percentile of the loss, i.e. the 90th percentile of rho: 10 % of trials lose less),
+``loss_db_p90`` that of the worst 10 % (90th percentile of the loss, 10th of rho); both
+computed as ``-10 log10`` of the rho percentiles.
+
+Disagreement: at any point where a closed form applies and the simulated mean differs
+from it by more than ``DISAGREE_SEM`` (4) standard errors, the disagreement is reported
+(terminal, sizing.json, report) with the scene's broken assumptions as the likely reason.
+"""
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+from scipy import stats
+
+from . import theory
+from .errors import InputError
+from .evaluate import Evaluation, evaluate
+from .processors import Processor
+from .processors._covariance import effective_loading
+from .scene import Scene
+
+__all__ = ["Sizing", "size", "sweep_points", "stays_met", "bootstrap_required",
+           "clopper_pearson", "analyse_processor", "recommendation", "render_table",
+           "write_sizing_run", "DEFAULT_PROCESSORS", "PER_OCTAVE", "BOOTSTRAP_RESAMPLES",
+           "CONFIDENCE", "DISAGREE_SEM"]
+
+#: processors sized when none are given: the two with theory or a rule of thumb
+DEFAULT_PROCESSORS = ("smi", "smi loading_db=10")
+#: sweep points per doubling of the snapshot count in a START:STOP range
+PER_OCTAVE = 8
+BOOTSTRAP_RESAMPLES = 200
+CONFIDENCE = 0.95
+#: |simulated mean - theory| beyond this many standard errors is reported
+DISAGREE_SEM = 4.0
+MAX_SNAPSHOTS = 1_000_000_000
+MAX_POINTS = 400
+_BOOT_KEY = 0xB0075
+#: resample x trial budget per bootstrap step (bounds memory)
+_BOOT_BUDGET = 4_000_000
+
+
+# --------------------------------------------------------------------------- sweep
+def _bad_sweep(message: str, value, where: str) -> InputError:
+    return InputError(message, path=where, value=value,
+                      allowed="a list of counts '8,12,16', or a geometric range START:STOP "
+                              f"or START:STOP:PER_OCTAVE (default {PER_OCTAVE} per octave), "
+                              f"whole numbers in [1, {MAX_SNAPSHOTS:,}]")
+
+
+def _whole(text, value, where) -> int:
+    try:
+        v = float(text)
+    except (TypeError, ValueError):
+        raise _bad_sweep("snapshot counts must be whole numbers", value, where) from None
+    if not math.isfinite(v) or v != int(v) or not 1 <= v <= MAX_SNAPSHOTS:
+        raise _bad_sweep("snapshot counts must be whole numbers >= 1", value, where)
+    return int(v)
+
+
+def sweep_points(spec, elements: int, snapshots: int, where: str = "snapshots") -> np.ndarray:
+    """The sweep's snapshot counts (sorted, unique int64).
+
+    spec: None (geometric, ``PER_OCTAVE`` per octave, from ``elements`` - or 1 if the
+    scene has fewer snapshots - to ``snapshots``); a list of counts; text ``"8,12,16"``;
+    or text ``"START:STOP"`` / ``"START:STOP:PER_OCTAVE"`` (geometric, both ends included).
+    InputError for anything else.
+    """
+    if isinstance(elements, bool) or int(elements) < 1 or int(snapshots) < 1:
+        raise ValueError("elements and snapshots must be >= 1")
+    per = PER_OCTAVE
+    if spec is None:
+        start, stop = (int(elements) if int(elements) <= int(snapshots) else 1), int(snapshots)
+        return _geometric(start, stop, per)
+    if isinstance(spec, str):
+        text = spec.strip()
+        if ":" in text:
+            parts = text.split(":")
+            if len(parts) not in (2, 3) or not all(p.strip() for p in parts):
+                raise _bad_sweep("a range is START:STOP or START:STOP:PER_OCTAVE", spec, where)
+            start, stop = (_whole(p, spec, where) for p in parts[:2])
+            if len(parts) == 3:
+                per = _whole(parts[2], spec, where)
+                if per > 64:
+                    raise _bad_sweep("at most 64 points per octave", spec, where)
+            if stop < start:
+                raise _bad_sweep("the range must not run backwards (START <= STOP)", spec, where)
+            return _geometric(start, stop, per)
+        items = [p for p in text.replace(",", " ").split() if p]
+        if not items:
+            raise _bad_sweep("no snapshot counts given", spec, where)
+        counts = [_whole(p, spec, where) for p in items]
+    else:
+        try:
+            items = list(spec)
+        except TypeError:
+            raise _bad_sweep("expected a list of snapshot counts or a range", spec, where) from None
+        if not items:
+            raise _bad_sweep("no snapshot counts given", spec, where)
+        counts = []
+        for p in items:
+            if isinstance(p, (bool, np.bool_)) or not isinstance(p, (int, float, np.integer, np.floating)):
+                raise _bad_sweep("snapshot counts must be whole numbers", spec, where)
+            counts.append(_whole(p, spec, where))
+    out = np.unique(np.asarray(counts, dtype=np.int64))
+    if out.size > MAX_POINTS:
+        raise _bad_sweep(f"at most {MAX_POINTS} sweep points", spec, where)
+    return out
+
+
+def _geometric(start: int, stop: int, per_octave: int) -> np.ndarray:
+    n = max(1, int(math.ceil(math.log2(stop / start) * per_octave)) + 1)
+    out = np.unique(np.round(np.geomspace(start, stop, n)).astype(np.int64))
+    if out.size > MAX_POINTS:
+        raise _bad_sweep(f"at most {MAX_POINTS} sweep points", f"{start}:{stop}:{per_octave}",
+                         "snapshots")
+    return out
+
+
+# --------------------------------------------------------------------------- statistics
+def stays_met(ok: np.ndarray) -> np.ndarray:
+    """Index (along the last axis) of the first point from which ``ok`` holds at every
+    later point; the axis length when it never does. Shape ``ok.shape[:-1]``."""
+    ok = np.asarray(ok, dtype=bool)
+    if ok.ndim < 1 or ok.shape[-1] == 0:
+        raise ValueError("need at least one point")
+    held = np.flip(np.logical_and.accumulate(np.flip(ok, -1), -1), -1)
+    return np.where(held.any(-1), np.argmax(held, -1), ok.shape[-1])
+
+
+def clopper_pearson(successes, trials, level: float = CONFIDENCE) -> tuple[np.ndarray, np.ndarray]:
+    """Exact (Clopper and Pearson 1934) two-sided binomial interval for a proportion:
+    lower ``Beta(alpha/2; m, n-m+1)``, upper ``Beta(1-alpha/2; m+1, n-m)`` quantiles
+    (scipy.stats.beta), 0 for m = 0 and 1 for m = n. Checkable fact: the interval holds
+    the proportion with probability >= level for every true proportion."""
+    m = np.asarray(successes, dtype=float)
+    n = np.asarray(trials, dtype=float)
+    if not 0 < level < 1:
+        raise ValueError(f"level must be in (0, 1), got {level}")
+    if np.any(m < 0) or np.any(m > n) or np.any(n < 1):
+        raise ValueError("need 0 <= successes <= trials and trials >= 1")
+    alpha = 1.0 - level
+    with np.errstate(invalid="ignore"):
+        lo = np.where(m > 0, stats.beta.ppf(alpha / 2, np.maximum(m, 1), n - m + 1), 0.0)
+        hi = np.where(m < n, stats.beta.ppf(1 - alpha / 2, m + 1, np.maximum(n - m, 1)), 1.0)
+    return lo, hi
+
+
+def bootstrap_required(rho: np.ndarray, target: float, seed: int,
+                       resamples: int = BOOTSTRAP_RESAMPLES) -> np.ndarray:
+    """Sweep-point index at which the mean criterion is met, for each of ``resamples``
+    bootstrap resamples of the trials (Efron and Tibshirani, *An Introduction to the
+    Bootstrap*, 1993: resample trials with replacement, recompute the statistic).
+
+    rho: (T, C) normalised SINR (NaN: undefined, left out). Each resample is a
+    multinomial count vector over the trials, so a resample's means are one matrix
+    product; resamples are processed in groups bounding memory. Returns (resamples,)
+    indices, C meaning "not met within the sweep". Deterministic for a given seed.
+    """
+    rho = np.asarray(rho, dtype=float)
+    if rho.ndim != 2 or rho.shape[0] < 1:
+        raise ValueError("rho must have shape (trials, points)")
+    if resamples < 1:
+        raise ValueError(f"resamples must be >= 1, got {resamples}")
+    t_ = rho.shape[0]
+    finite = np.isfinite(rho)
+    filled = np.where(finite, rho, 0.0)
+    rng = np.random.default_rng(np.random.SeedSequence(int(seed), spawn_key=(_BOOT_KEY,)))
+    group = max(1, _BOOT_BUDGET // t_)
+    out = []
+    p = np.full(t_, 1.0 / t_)
+    for start in range(0, resamples, group):
+        w = rng.multinomial(t_, p, size=min(group, resamples - start)).astype(float)
+        num, den = w @ filled, w @ finite
+        with np.errstate(invalid="ignore", divide="ignore"):
+            means = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+        out.append(stays_met(means >= target))
+    return np.concatenate(out)
+
+
+def _index_range(indices: np.ndarray, level: float = CONFIDENCE) -> tuple[int, int]:
+    q = (1.0 - level) / 2
+    lo, hi = np.quantile(indices, [q, 1 - q], method="inverted_cdf")
+    return int(lo), int(hi)
+
+
+def _count_at(points: np.ndarray, index: int) -> int | None:
+    return int(points[index]) if index < len(points) else None
+
+
+def _pct_loss(rho_q: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(rho_q > 0, -10 * np.log10(np.where(rho_q > 0, rho_q, 1.0)), np.inf)
+
+
+def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float,
+                      fraction: float, seed: int, law: theory.Law | None = None) -> dict:
+    """Per-point statistics and the two sizing answers for one processor.
+
+    rho: (T, C) normalised SINR at the sweep ``points`` (C,). Returns the JSON-ready
+    mapping described in the module docstring (points, required counts, ranges, theory
+    columns and disagreements).
+    """
+    rho = np.asarray(rho, dtype=float)
+    points = np.asarray(points, dtype=np.int64)
+    if rho.ndim != 2 or rho.shape[1] != len(points):
+        raise ValueError("rho must have shape (trials, len(points))")
+    target = 10.0 ** (-target_loss_db / 10.0)
+    finite = np.isfinite(rho)
+    n = finite.sum(0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(n > 0, np.where(finite, rho, 0).sum(0) / np.maximum(n, 1), np.nan)
+        dev = np.where(finite, rho - mean, 0.0)
+        sem = np.where(n > 1, np.sqrt((dev ** 2).sum(0) / np.maximum(n - 1, 1) / np.maximum(n, 1)),
+                       np.nan)
+    qs = np.full((3, len(points)), np.nan)
+    ok_cols = n > 0
+    if ok_cols.any():
+        qs[:, ok_cols] = np.nanquantile(rho[:, ok_cols], [0.9, 0.5, 0.1], axis=0)
+    loss_p10, loss_med, loss_p90 = _pct_loss(qs[0]), _pct_loss(qs[1]), _pct_loss(qs[2])
+    meets = (finite & (rho >= target)).sum(0)
+    frac = np.where(n > 0, meets / np.maximum(n, 1), np.nan)
+    cp_lo, cp_hi = clopper_pearson(meets, np.maximum(n, 1))
+    cp_lo, cp_hi = np.where(n > 0, cp_lo, 0.0), np.where(n > 0, cp_hi, 1.0)
+
+    th_mean = law.mean(points) if law is not None else np.full(len(points), np.nan)
+    th_q = (law.quantile(np.array([[0.9], [0.1]]), points[None, :]) if law is not None
+            else np.full((2, len(points)), np.nan))
+
+    i_mean = int(stays_met(np.nan_to_num(mean, nan=-1.0) >= target))
+    boot = bootstrap_required(rho, target, seed)
+    b_lo, b_hi = _index_range(boot)
+    i_frac = int(stays_met(np.nan_to_num(frac, nan=-1.0) >= fraction))
+    i_frac_early = int(stays_met(cp_hi >= fraction))
+    i_frac_late = int(stays_met(cp_lo >= fraction))
+
+    rows = []
+    disagreements = []
+    for c, k in enumerate(points):
+        th = float(th_mean[c])
+        rows.append({
+            "snapshots": int(k),
+            "normalized_sinr_mean": float(mean[c]),
+            "normalized_sinr_sem": float(sem[c]),
+            "loss_db_mean": float(_pct_loss(np.array([mean[c]]))[0]),
+            "loss_db_median": float(loss_med[c]),
+            "loss_db_p10": float(loss_p10[c]),
+            "loss_db_p90": float(loss_p90[c]),
+            "fraction_meeting_target": float(frac[c]),
+            "fraction_interval": [float(cp_lo[c]), float(cp_hi[c])],
+            "theory_normalized_sinr_mean": th if math.isfinite(th) else None,
+            "theory_loss_db_p10": float(_pct_loss(th_q[0, c:c + 1])[0]) if math.isfinite(th) else None,
+            "theory_loss_db_p90": float(_pct_loss(th_q[1, c:c + 1])[0]) if math.isfinite(th) else None,
+            "trials_defined": int(n[c]),
+        })
+        if math.isfinite(th) and np.isfinite(sem[c]) and sem[c] > 0:
+            z = (mean[c] - th) / sem[c]
+            if abs(z) > DISAGREE_SEM:
+                disagreements.append({"snapshots": int(k), "simulated": float(mean[c]),
+                                      "theory": th, "sem": float(sem[c]),
+                                      "standard_errors": float(z)})
+    limit = int(points[-1])
+    return {
+        "points": rows,
+        "required_snapshots_mean": _count_at(points, i_mean),
+        "required_snapshots_mean_range": [_count_at(points, b_lo), _count_at(points, b_hi)],
+        "required_snapshots_fraction": _count_at(points, i_frac),
+        "required_snapshots_fraction_range": [_count_at(points, i_frac_early),
+                                              _count_at(points, i_frac_late)],
+        "met_at_first_point": bool(i_mean == 0 or i_frac == 0),
+        "theory_required_snapshots": (law.required_snapshots(target, limit)
+                                      if law is not None else None),
+        "disagreements": disagreements,
+    }
+
+
+def _unloaded_smi(proc: Processor) -> bool:
+    return proc.method == "smi" and effective_loading(proc.params)[0] is None
+
+
+def _compact_spec(proc: Processor) -> str:
+    """Method, the parameters that differ from their defaults, and a custom label: a
+    spec that rebuilds the processor with ``parse_spec``."""
+    words = [proc.method] + [f"{k}={_plain(v)}" for k, v in proc.params.items()
+                             if v != proc.parameters[k].default]
+    if proc.label != proc.default_label():
+        words.append(f"label={proc.label}")
+    return " ".join(words)
+
+
+def _plain(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, float):
+        return f"{v:g}"
+    return "none" if v is None else str(v)
+
+
+# --------------------------------------------------------------------------- rules of thumb
+def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | None:
+    """The rule of thumb for one processor, or None (methods other than smi)."""
+    if proc.method != "smi":
+        return None
+    n = scene.elements
+    mode, db = effective_loading(proc.params)
+    if mode is not None:
+        j = theory.strong_interferers(scene, db)
+        return {"snapshots": theory.loaded_rule_of_thumb(j), "strong_interferers": j,
+                "text": f"about 2J = {2 * j} (J = {j} interferer eigenvalue(s) above the "
+                        f"{db:g} dB load; {theory.CARLSON_SOURCE})"}
+    if scene.training == "signal":
+        k = max(n, int(round((n - 1) * (2.0 + sinr_opt) - 1)))
+        return {"snapshots": k, "strong_interferers": None,
+                "text": f"about (N-1)(2+SINR_opt)-1 = {k} with the signal in the training "
+                        "data (derived in adapt.theory; Boroson 1980)"}
+    return {"snapshots": theory.unloaded_rule_of_thumb(n), "strong_interferers": None,
+            "text": f"about 2N = {2 * n} (3 dB in the mean at exactly 2N-3 = "
+                    f"{theory.rmb_three_db_snapshots(n)}; {theory.RMB_SOURCE})"}
+
+
+# --------------------------------------------------------------------------- text
+def _k(v) -> str:
+    return "-" if v is None else f"{v}"
+
+
+def _range(r, limit: int) -> str:
+    if r[0] is None:
+        return "beyond the sweep"
+    hi = f">{limit}" if r[1] is None else str(r[1])
+    return str(r[0]) if hi == str(r[0]) else f"{r[0]}-{hi}"
+
+
+def recommendation(proc: dict, target_loss_db: float, fraction: float, limit: int) -> str:
+    """One plain-language line for one processor record of sizing.json."""
+    t = f"{target_loss_db:g} dB"
+    m = proc["required_snapshots_mean"]
+    f = proc["required_snapshots_fraction"]
+    pct = f"{100 * fraction:g} %"
+    lvl = f"{100 * CONFIDENCE:g} %"
+    if m is None:
+        head = f"{proc['label']}: the mean loss stays above {t} up to {limit} snapshots"
+    else:
+        head = (f"{proc['label']}: {t} in the mean after {m} snapshots (bootstrap {lvl} range "
+                f"{_range(proc['required_snapshots_mean_range'], limit)})")
+    if f is None:
+        tail = f"fewer than {pct} of trials within {t} by {limit}"
+    else:
+        tail = (f"{pct} of trials by {f} "
+                f"({_range(proc['required_snapshots_fraction_range'], limit)})")
+    out = f"{head}; {tail}"
+    th = proc.get("theory")
+    if th:
+        k = th.get("required_snapshots")
+        out += (f"; {th['title']} says {k}" if k is not None
+                else f"; {th['title']} says more than {limit}")
+    rule = proc.get("rule_of_thumb")
+    if rule and not th:
+        out += f"; rule of thumb {rule['text']}"
+    if proc.get("met_at_first_point"):
+        out += ("; met already at the first sweep point: fewer snapshots may do (extend "
+                "the sweep downwards)")
+    return out
+
+
+def _disagreement_text(proc: dict, violations: Sequence[str]) -> str | None:
+    d = proc["disagreements"]
+    if not d:
+        return None
+    worst = max(d, key=lambda x: abs(x["standard_errors"]))
+    th = proc["theory"]["title"]
+    text = (f"{proc['label']}: simulation departs from {th} by more than "
+            f"{DISAGREE_SEM:g} standard errors at {len(d)} of "
+            f"{sum(p['theory_normalized_sinr_mean'] is not None for p in proc['points'])} "
+            f"points (worst at {worst['snapshots']} snapshots: mean normalised SINR "
+            f"{worst['simulated']:.4f} against {worst['theory']:.4f}, "
+            f"{worst['standard_errors']:+.1f} standard errors)")
+    if violations:
+        text += "; likely reason: the scene breaks the law's assumptions: " + "; ".join(violations)
+    else:
+        text += ("; the scene breaks none of the law's assumptions, so this is a genuine "
+                 "discrepancy worth investigating (by chance alone it happens at a given "
+                 "point about once in 16,000)")
+    return text
+
+
+def _f(v, fmt="{:.3f}") -> str:
+    return "-" if v is None or (isinstance(v, float) and not math.isfinite(v)) else fmt.format(v)
+
+
+def render_table(record: dict) -> str:
+    """The terminal report: one table per processor, recommendations, disagreements."""
+    lines = [f"Snapshot sizing - {record['scene']}: {record['elements']} elements, "
+             f"{record['trials']} trials, seed {record['seed']}, optimum SINR "
+             f"{_f(record['optimum_sinr_db'], '{:.1f}')} dB, target loss "
+             f"{record['target_loss_db']:g} dB (normalised SINR >= "
+             f"{record['target_normalized_sinr']:.4f})"]
+    head = (f"{'snapshots':>9} {'mean rho':>9} {'sem':>7} {'loss(mean)':>10} {'median':>7} "
+            f"{'p10':>6} {'p90':>6} {'within':>7} {'theory':>8}")
+    for p in record["processors"]:
+        name = p["label"] if p["label"] == p["spec"] else f"{p['label']}  ({p['spec']})"
+        lines += ["", name, head]
+        for r in p["points"]:
+            lines.append(
+                f"{r['snapshots']:>9} {_f(r['normalized_sinr_mean'], '{:.4f}'):>9} "
+                f"{_f(r['normalized_sinr_sem'], '{:.4f}'):>7} {_f(r['loss_db_mean'], '{:.2f}'):>10} "
+                f"{_f(r['loss_db_median'], '{:.2f}'):>7} {_f(r['loss_db_p10'], '{:.2f}'):>6} "
+                f"{_f(r['loss_db_p90'], '{:.2f}'):>6} "
+                f"{_f(100 * r['fraction_meeting_target'], '{:.0f} %') if r['fraction_meeting_target'] is not None else '-':>7} "
+                f"{_f(r['theory_normalized_sinr_mean'], '{:.4f}'):>8}")
+    lines += ["", "loss in dB; p10 = best 10 % of trials, p90 = worst 10 %; 'within' = "
+              f"trials within {record['target_loss_db']:g} dB; theory = closed-form mean "
+              "normalised SINR", "", "Recommendations:"]
+    lines += [f"  {p['recommendation']}" for p in record["processors"]]
+    if record["assumption_violations"]:
+        lines += ["", "Assumptions of the closed forms this scene breaks:"]
+        lines += [f"  {v}" for v in record["assumption_violations"]]
+    if record["disagreements"]:
+        lines += ["", "Simulation against theory:"]
+        lines += [f"  {t}" for t in record["disagreements"]]
+    lines += ["", CAUTION]
+    return "\n".join(lines)
+
+
+CAUTION = ("Simulation only: sizes come from a modelled scene; real data (non-Gaussian, "
+           "non-stationary, calibration errors) usually need more snapshots.")
+
+
+# --------------------------------------------------------------------------- the run
+@dataclass
+class Sizing:
+    """Result of :func:`size`: the sizing.json mapping (``record``), the evaluation it
+    came from (per-trial arrays), the scene as run and its processors."""
+    record: dict
+    evaluation: Evaluation
+    scene: Scene
+    processors: list = field(default_factory=list)
+    seconds: float = 0.0
+
+    def table(self) -> str:
+        return render_table(self.record)
+
+    def __str__(self) -> str:
+        return self.table()
+
+
+def _number(value, name: str, low: float, high: float, low_open=False) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        v = float("nan")
+    if isinstance(value, bool) or not math.isfinite(v) or v > high or v < low or (low_open and v == low):
+        lo = "(" if low_open else "["
+        raise InputError(f"{name} out of range or not a number", path=name, value=value,
+                         allowed=f"a number in {lo}{low:g}, {high:g}]")
+    return v
+
+
+def size(scene, processors: Sequence | None = None, snapshots=None, trials: int | None = None,
+         seed: int | None = None, target_loss_db: float = 3.0, fraction: float = 0.9,
+         progress: Callable[[int], None] | None = None) -> Sizing:
+    """Size the training of ``processors`` on ``scene`` (a Scene or a scene file path).
+
+    processors: specs or Processor objects (default :data:`DEFAULT_PROCESSORS`, unloaded
+    and 10 dB-loaded SMI; the scene's own list is not used since sizing concerns
+    sample-covariance methods); snapshots: the sweep (see :func:`sweep_points`; default
+    geometric, 8 per octave, from N to the scene's snapshots when every processor is
+    unloaded SMI, else from 1, since loaded methods may need fewer than N); trials, seed: override the scene's
+    (at least 2 trials); target_loss_db: the loss the answer must meet; fraction: the
+    share of trials for the per-trial answer; progress: called with trial-snapshots done.
+    InputError for bad values (exit code 2 on the command line).
+    """
+    from .compare import prepare_scene
+    from .scenefile import load_scene
+    t0 = time.perf_counter()
+    if isinstance(scene, (str, Path)):
+        scene = load_scene(scene)
+    if not isinstance(scene, Scene):
+        raise InputError("expected a scene or the path of a scene file", value=type(scene).__name__)
+    target_loss_db = _number(target_loss_db, "target_loss_db", 0.0, 100.0, low_open=True)
+    fraction = _number(fraction, "fraction", 0.0, 1.0, low_open=True)
+    if trials is not None and not isinstance(trials, bool) and isinstance(trials, (int, np.integer)) \
+            and trials < 2:
+        raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
+                         path="trials", value=trials, allowed="an integer >= 2")
+    procs_in = list(DEFAULT_PROCESSORS) if processors is None else processors
+    _, procs = prepare_scene(scene, procs_in, trials, None, seed)
+    if snapshots is None and not all(_unloaded_smi(p) for p in procs):
+        # loaded and other methods may need fewer than N snapshots: start the sweep at 1
+        points = sweep_points(f"1:{scene.snapshots}", scene.elements, scene.snapshots)
+    else:
+        points = sweep_points(snapshots, scene.elements, scene.snapshots)
+    used, procs = prepare_scene(scene, procs_in, trials, int(points[-1]), seed)
+    if used.trials < 2:
+        raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
+                         path="trials", value=used.trials, allowed="an integer >= 2")
+    n = used.elements
+    chunk = max(1, min(used.trials, (1 << 16) // max(1, n)))
+    block = None
+    if progress is not None:
+        from .streams import default_block_size
+        total = int(points[-1])
+        block = min(default_block_size(chunk, n, total), max(64, -(-total // 20)))
+    with warnings.catch_warnings():
+        # below N snapshots unloaded SMI uses the minimum-norm weight; the sweep shows it
+        warnings.filterwarnings("ignore", message=".*sample covariance is singular",
+                                category=RuntimeWarning)
+        ev = evaluate(used, procs, points, chunk=chunk, tail=0, block=block,
+                      progress=progress)
+
+    facts = theory.scene_facts(used)
+    opt = np.asarray(ev.optimum_sinr, dtype=float)
+    opt_mean = float(np.nanmean(opt)) if np.isfinite(opt).any() else float("nan")
+    if math.isfinite(opt_mean) and opt_mean > 0:
+        facts["optimum_sinr"] = opt_mean              # what was simulated (trial mean)
+    violations = list(facts["violations"])
+    target = 10.0 ** (-target_loss_db / 10.0)
+    limit = int(points[-1])
+    records, disagreements = [], []
+    for proc, scores in zip(procs, ev.processors):
+        law = theory.theory_for(proc, facts)
+        rec = {"label": proc.label, "method": proc.method, "params": dict(proc.params),
+               "spec": _compact_spec(proc)}
+        rec.update(analyse_processor(scores.normalised, points, target_loss_db, fraction,
+                                     used.seed, law))
+        if law is not None:
+            title = "RMB theory" if law.name == "rmb" else "signal-present theory"
+            rec["theory"] = {"name": law.name, "title": title, "source": law.source,
+                             "required_snapshots": rec.pop("theory_required_snapshots"),
+                             "half_power_snapshots": law.three_db_snapshots(),
+                             "optimum_sinr": law.sinr_opt if law.name != "rmb" else None,
+                             "violations": list(law.violations)}
+        else:
+            rec.pop("theory_required_snapshots")
+            rec["theory"] = None
+        rec["rule_of_thumb"] = _rule_of_thumb(proc, used, facts["optimum_sinr"])
+        rec["recommendation"] = recommendation(rec, target_loss_db, fraction, limit)
+        text = _disagreement_text(rec, violations) if law is not None else None
+        rec["disagreement_summary"] = text
+        if text:
+            disagreements.append(text)
+        records.append(rec)
+    record = {
+        "scene": used.name,
+        "elements": n,
+        "trials": used.trials,
+        "seed": used.seed,
+        "training": used.training,
+        "optimum_sinr_db": 10 * math.log10(opt_mean) if opt_mean > 0 else None,
+        "target_loss_db": target_loss_db,
+        "target_normalized_sinr": target,
+        "fraction": fraction,
+        "confidence": CONFIDENCE,
+        "bootstrap_resamples": BOOTSTRAP_RESAMPLES,
+        "snapshots": [int(k) for k in points],
+        "rules_of_thumb": {
+            "unloaded_2n": theory.unloaded_rule_of_thumb(n) if n >= 2 else None,
+            "rmb_half_power": theory.rmb_three_db_snapshots(n) if n >= 2 else None,
+            "strong_interferers": facts["strong_interferers"],
+            "strong_definition": "interference eigenvalues above the load (10 dB over the "
+                                 "noise when unloaded); a lone interferer counts when N x "
+                                 "its per-element INR exceeds the load",
+            "loaded_2j": facts["loaded_rule"],
+        },
+        "interference_eigenvalues_db": facts["interference_eigenvalues_db"],
+        "assumption_violations": violations,
+        "disagreements": disagreements,
+        "processors": records,
+    }
+    seconds = time.perf_counter() - t0
+    record["seconds"] = seconds
+    return Sizing(record=record, evaluation=ev, scene=used, processors=procs, seconds=seconds)
+
+
+# --------------------------------------------------------------------------- run folder
+def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None = None) -> Path:
+    """Write a NEW run folder under ``out_root``: ``scene.yaml`` (the scene as run),
+    ``sizing.json``, ``sizing.png``, ``report.html`` and ``manifest.json`` (versions,
+    seed, command line, sha256 of every file); every file atomically."""
+    from . import io
+    from .report.html import build_page
+    from .report.sizing_figures import sizing_figure_png, sizing_sections
+    from .scenefile import dump_scene
+    if not isinstance(sizing, Sizing):
+        raise ValueError(f"expected a Sizing, got {type(sizing).__name__}")
+    rec = sizing.record
+    folder = io.new_run_folder(out_root, f"size-{sizing.scene.name}")
+    io.atomic_write_text(folder / "scene.yaml",
+                         "# The scene exactly as sized (defaults filled in; trials, seed and "
+                         "the largest\n# snapshot count as run). Re-run with: adapt size "
+                         "scene.yaml\n" + dump_scene(sizing.scene))
+    io.write_json(folder / "sizing.json", rec)
+    png = sizing_figure_png(rec)
+    io.atomic_write_bytes(folder / "sizing.png", png)
+    page = build_page(f"Snapshot sizing: {rec['scene']}", sizing_sections(rec, png),
+                      footer=f"adapt size, seed {rec['seed']}, {rec['trials']} trials")
+    io.atomic_write_text(folder / "report.html", page)
+    io.write_manifest(folder, {"kind": "size", "scene": rec["scene"], "seed": rec["seed"],
+                               "trials": rec["trials"], "command_line": command_line,
+                               "seconds": sizing.seconds})
+    return folder
