@@ -427,6 +427,13 @@ SPECS = ["optimum", "smi", "smi loading_db=10", "smi loading=auto",
          "eigenspace rank=2", "eigenspace variant=projection", "eigenspace"]
 
 
+@pytest.mark.parametrize("spec", SPECS + ["smi loading_db=10 label=loaded"])
+def test_spec_round_trip(spec):
+    p = parse_spec(spec)
+    q = parse_spec(p.spec())
+    assert (q.params, q.label) == (p.params, p.label)
+
+
 @pytest.fixture(scope="module")
 def invariance_scene():
     jams = ((-35.0, 30.0), (25.0, 20.0, Pulsing(start=10, period=20, on=12)))

@@ -24,7 +24,7 @@ import numpy as np
 
 from ..errors import SpecError
 from ._linalg import solve_hermitian
-from .base import Context, Parameter, Processor
+from .base import Context, Parameter, Processor, _fmt
 
 __all__ = ["outer_sum", "GrowingSums", "SlidingSums", "hermitian_part", "loading_level",
            "noise_floor_estimate", "solve_sample", "SampleCovarianceProcessor",
@@ -273,6 +273,15 @@ class SampleCovarianceProcessor(Processor):
     method = ""
     #: warn when unloaded data are singular (a subclass that does not solve with R sets False)
     warns_singular = True
+
+    def spec(self) -> str:
+        """The spec string that rebuilds this processor (an unset ``loading`` is left
+        out, so ``loading_db`` alone still reads as fixed loading)."""
+        parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()
+                                 if not (k == "loading" and v is None)]
+        if self.label != self.default_label():
+            parts.append(f"label={self.label}")
+        return " ".join(parts)
 
     # -- settings a subclass may override ------------------------------------------
     def window_settings(self) -> tuple[str, int | None, int]:
