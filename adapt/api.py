@@ -1,0 +1,124 @@
+"""The notebook-facing API: everything the commands do, from Python, in the same words.
+
+    from adapt.api import load_scene, generate, run, evaluate, compare, write_run
+    scene = load_scene("scenes/single_jammer.yaml")
+    batch, block = generate(scene, trials=4, snapshots=256)      # block.data: (4, 256, 8)
+    results = run(scene, ["conventional", "smi loading_db=10"], trials=4, snapshots=256)
+    results[1].weights.shape                                      # (4, checkpoints, 8)
+    result = compare(scene, ["conventional", "smi loading_db=10"], trials=20)
+    print(result.table())                                         # the terminal table
+    result.evaluation.by_label("smi loading_db=10").loss_db       # (20, C) numpy array
+    folder = write_run(result, "runs")                            # a new run folder
+
+Every function accepts a :class:`~adapt.scene.Scene` or a scene file path, and processor
+specs as text (``"smi loading_db=10"``), mappings (``{"method": "smi", ...}``) or
+processor objects. Results are plain objects holding numpy arrays:
+:class:`~adapt.streams.TrialBatch` / :class:`~adapt.streams.Block` (samples),
+:class:`~adapt.processors.ProcessorResult` (weights, outputs),
+:class:`~adapt.evaluate.Evaluation` (scores per processor, checkpoint and trial) and
+:class:`~adapt.compare.Comparison` (evaluation + summary metrics + table). Bad input
+raises :class:`adapt.errors.InputError` (SceneError, SpecError) with the same message
+the command line prints.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Sequence
+
+from . import scores
+from .compare import Comparison, _checkpoints, compare, prepare_scene, write_compare_run
+from .errors import InputError, SceneError, SpecError
+from .evaluate import Evaluation, ProcessorScores, default_checkpoints
+from .evaluate import evaluate as _evaluate
+from .processors import Processor, ProcessorResult, parse_spec, parse_specs, registry
+from .processors import run_processors as _run_processors
+from .processors import Context
+from .runs import read_run
+from .scene import Scene
+from .scenefile import dump_scene, load_scene, parse_scene
+from .streams import Block, TrialBatch
+
+__all__ = ["load_scene", "parse_scene", "dump_scene", "generate", "processors", "methods",
+           "run", "evaluate", "compare", "write_run", "read_run", "scores",
+           "Scene", "TrialBatch", "Block", "ProcessorResult", "Evaluation",
+           "ProcessorScores", "Comparison", "InputError", "SceneError", "SpecError"]
+
+
+def _scene(scene) -> Scene:
+    if isinstance(scene, (str, Path)):
+        return load_scene(scene)
+    if isinstance(scene, Scene):
+        return scene
+    raise InputError("expected a Scene or the path of a scene file", value=type(scene).__name__)
+
+
+def generate(scene, trials: int | None = None, snapshots: int | None = None,
+             seed: int | None = None) -> tuple[TrialBatch, Block]:
+    """Draw seeded sample streams: ``(batch, block)`` with ``block.data`` (T, K, N) the
+    array snapshots, ``block.signal`` the wanted part, ``block.training`` what the
+    processors train on, ``block.reference`` (T, K) the wanted waveform; ``batch`` gives
+    the true steering vectors and covariances (``batch.covariance()``). Trial i is the
+    same whatever ``trials`` is. Defaults come from the scene."""
+    sc = _with(_scene(scene), trials, snapshots, seed)
+    batch = TrialBatch(sc)
+    return batch, batch.samples(sc.snapshots)
+
+
+def _with(scene: Scene, trials, snapshots, seed) -> Scene:
+    """The scene with run settings overridden and validated (processors untouched)."""
+    used, _ = prepare_scene(scene, ["conventional"], trials, snapshots, seed)
+    return scene.with_overrides(trials=used.trials, snapshots=used.snapshots, seed=used.seed)
+
+
+def processors(specs=None, scene=None) -> list[Processor]:
+    """Processor objects from specs (default: the scene's own list)."""
+    if specs is None:
+        if scene is None:
+            raise InputError("give processor specs or a scene that lists them")
+        sc = _scene(scene)
+        return parse_specs(list(sc.processors))
+    if isinstance(specs, (str, dict)):
+        specs = [specs]
+    return [s if isinstance(s, Processor) else parse_spec(s, f"processors[{i}]")
+            for i, s in enumerate(specs)]
+
+
+def methods() -> dict[str, str]:
+    """Every available method name with its one-line summary."""
+    return {name: cls.summary for name, cls in registry().items()}
+
+
+def run(scene, specs: Sequence | None = None, trials: int | None = None,
+        snapshots: int | None = None, seed: int | None = None, checkpoints=None,
+        outputs: bool = False) -> list[ProcessorResult]:
+    """Run processors over one batch of trials and return their weights.
+
+    Each :class:`ProcessorResult` has ``weights`` (T, C, N) at ``checkpoints`` (default:
+    4 per octave up to the snapshots) and, with ``outputs=True``, the output samples
+    ``y = w^H x`` (T, K) under the held-weight convention (see
+    :mod:`adapt.processors.base`). Scores are not computed; use :func:`evaluate`.
+    """
+    sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
+    cps = default_checkpoints(sc.snapshots) if checkpoints is None else checkpoints
+    cps = _checkpoints(cps, sc.snapshots)
+    batch = TrialBatch(sc)
+    return _run_processors(procs, batch.blocks(sc.snapshots), Context.from_batch(batch), cps,
+                           outputs=outputs, snapshots=sc.snapshots)
+
+
+def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
+             snapshots: int | None = None, seed: int | None = None, checkpoints=None,
+             tail: int = 256) -> Evaluation:
+    """Run and score processors (the Monte Carlo engine, :func:`adapt.evaluate.evaluate`):
+    per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
+    gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C)."""
+    sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
+    cps = _checkpoints(checkpoints, sc.snapshots)
+    chunk = max(1, min(sc.trials, (1 << 16) // max(1, sc.elements)))
+    return _evaluate(sc, procs, cps, chunk=chunk, tail=tail)
+
+
+def write_run(comparison: Comparison, out="runs", command_line: str | None = None) -> Path:
+    """Write a comparison to a new run folder under ``out`` (as ``adapt compare`` does);
+    returns the folder path."""
+    return write_compare_run(comparison, out, command_line=command_line)

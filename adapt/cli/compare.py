@@ -1,0 +1,97 @@
+"""``adapt compare SCENE``: score processors on a scene and write a run folder.
+
+Thin wrapper over :func:`adapt.compare.compare` and
+:func:`adapt.compare.write_compare_run`: parses the options, shows a progress bar over
+the Monte Carlo work (trials x (snapshots + tail) trial-snapshots, on stderr), prints the
+summary table and the run folder path. Exit 0 on success, 2 on bad input.
+"""
+from __future__ import annotations
+
+import shlex
+import sys
+
+ORDER = 20
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser(
+        "compare", help="score processors on a scene, write a run folder",
+        description="Run Monte Carlo trials of a scene through adaptive processors, score "
+                    "output SINR against the clairvoyant optimum, convergence, null depths "
+                    "and white-noise gain, print a summary table and write a new run folder "
+                    "(scene.yaml, metrics.json, curves.csv, figures, report.html, "
+                    "manifest.json). Simulation only.")
+    p.add_argument("scene", metavar="SCENE", help="scene YAML file")
+    p.add_argument("--processor", "-p", dest="processors", action="append", metavar="SPEC",
+                   help="processor spec, e.g. 'smi loading_db=10' (repeatable; default: the "
+                        "scene's processors list)")
+    p.add_argument("--trials", type=str, metavar="T", help="Monte Carlo trials (default: scene)")
+    p.add_argument("--snapshots", type=str, metavar="K", help="snapshots per trial (default: scene)")
+    p.add_argument("--seed", type=str, metavar="S", help="root random seed (default: scene)")
+    p.add_argument("--checkpoints", metavar="LIST",
+                   help="snapshot counts to score, e.g. 1,2,4,8,16 (default: 4 per octave)")
+    p.add_argument("--out", default="runs", metavar="DIR",
+                   help="folder that receives the run folder (default: runs)")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    p.set_defaults(func=run)
+
+
+def _integer(text, option: str):
+    from ..errors import InputError
+    if text is None:
+        return None
+    try:
+        return int(str(text).strip().replace("_", ""))
+    except ValueError:
+        raise InputError("expected a whole number", path=option, value=text) from None
+
+
+def command_line(args) -> str:
+    """The command as a canonical, shell-quoted line (recorded in the manifest)."""
+    words = ["adapt", "compare", args.scene]
+    for spec in args.processors or []:
+        words += ["--processor", spec]
+    for name in ("trials", "snapshots", "seed", "checkpoints"):
+        value = getattr(args, name)
+        if value is not None:
+            words += [f"--{name}", str(value)]
+    words += ["--out", str(args.out)]
+    return shlex.join(words)
+
+
+def run(args) -> int:
+    from ..compare import TAIL, compare, prepare_scene, write_compare_run
+    from ..errors import InputError
+    trials = _integer(args.trials, "--trials")
+    snapshots = _integer(args.snapshots, "--snapshots")
+    seed = _integer(args.seed, "--seed")
+    try:
+        used, _ = prepare_scene(args.scene, args.processors, trials, snapshots, seed,
+                                where="--processor")
+    except InputError as exc:
+        if exc.path in ("trials", "snapshots", "seed"):
+            raise exc.__class__(exc.message, path=f"--{exc.path}", value=exc.value,
+                                allowed=exc.allowed) from None
+        raise
+    total = used.trials * (used.snapshots + TAIL)
+    bar = None
+    if not args.no_progress:
+        from tqdm import tqdm
+        bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
+                   disable=None, leave=False, desc="compare")
+    try:
+        result = compare(used, args.processors, checkpoints=args.checkpoints,
+                         progress=bar.update if bar is not None else None)
+    except InputError as exc:
+        if exc.path == "checkpoints":
+            raise exc.__class__(exc.message, path="--checkpoints", value=exc.value,
+                                allowed=exc.allowed) from None
+        raise
+    finally:
+        if bar is not None:
+            bar.close()
+    folder = write_compare_run(result, args.out, command_line=command_line(args))
+    print(result.table())
+    print()
+    print(f"run folder: {folder}")
+    return 0

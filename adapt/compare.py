@@ -1,0 +1,424 @@
+"""Compare processors on one scene: Monte Carlo scores, a summary table, a run folder.
+
+``compare(scene, processors)`` runs :func:`adapt.evaluate.evaluate` and condenses it into
+plain dictionaries (``Comparison.metrics``, the ``metrics.json`` schema below);
+``Comparison.table()`` renders the terminal summary; :func:`write_compare_run` writes a
+new run folder (``scene.yaml``, ``metrics.json``, ``curves.csv``, figures,
+``report.html``, ``manifest.json``). The command ``adapt compare`` is a thin wrapper.
+
+Conventions of the summary (all "mean" values are over Monte Carlo trials):
+
+* ``sinr_db_mean`` is the mean over trials of the output SINR in dB at the final
+  checkpoint; ``optimum_sinr_db`` the mean over trials of the optimum (clairvoyant MVDR,
+  ``sigma_s^2 a^H R^-1 a``, Van Trees 2002 ch. 6) SINR in dB at the final checkpoint's
+  moment (for a stationary scene: *the* optimum); ``loss_db_mean`` the mean over trials
+  of the per-trial loss in dB, so ``loss_db_mean = optimum_sinr_db - sinr_db_mean``
+  whenever every trial's SINR is defined;
+* ``snapshots_to_3db`` is the first checkpoint at which the loss of the MEAN normalised
+  SINR, ``-10 log10(mean rho)`` (:func:`adapt.scores.mean_loss_db`, the quantity of Reed,
+  Mallett and Brennan 1974), is at most 3 dB; ``snapshots_to_3db_fraction`` the first
+  checkpoint at which at least 90 % of the trials are within 3 dB; null if never;
+* null depths and white-noise gain are means over trials of dB values at the final
+  checkpoint, pointing error and peak sidelobe come from the final weights on each
+  trial's true array (:func:`adapt.scores.pointing_error_deg`,
+  :func:`adapt.scores.peak_sidelobe_db`);
+* ``measured_sinr_db_mean`` is the SINR measured from output samples (the held final
+  weight over the ``tail`` snapshots after the last checkpoint): a cross-check of the
+  covariance-based SINR, unbiased only on average.
+"""
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+
+from . import scores
+from .errors import InputError, SceneError, SpecError
+from .evaluate import Evaluation, default_checkpoints, evaluate
+from .processors import Processor, parse_specs
+from .processors.base import normalised_checkpoints
+from .scene import Scene
+
+__all__ = ["Comparison", "compare", "summarise", "write_compare_run", "prepare_scene",
+           "CAUTION", "TAIL", "MAX_TRIALS", "MAX_SNAPSHOTS"]
+
+#: printed under every summary table
+CAUTION = ("Simulation only: scores come from a modelled scene; validate against measured "
+           "hardware before relying on any processor.")
+#: extra snapshots after the last checkpoint used to measure the output SINR from samples
+TAIL = 256
+MAX_TRIALS = 1_000_000
+MAX_SNAPSHOTS = 1_000_000_000
+#: trial x direction x element budget of the pattern scores (pointing, sidelobes)
+_PATTERN_BUDGET = 50_000_000
+
+
+# --------------------------------------------------------------------------- inputs
+def _count(value, name: str, high: int, low: int = 1) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer, float, np.floating)):
+        raise InputError(f"{name} must be a whole number", path=name, value=value,
+                         allowed=f"an integer in [{low}, {high:,}]")
+    if not math.isfinite(float(value)) or float(value) != int(value):
+        raise InputError(f"{name} must be a whole number", path=name, value=value,
+                         allowed=f"an integer in [{low}, {high:,}]")
+    v = int(value)
+    if not low <= v <= high:
+        raise InputError(f"{name} out of range", path=name, value=v,
+                         allowed=f"an integer in [{low}, {high:,}]")
+    return v
+
+
+def _checkpoints(value, snapshots: int) -> np.ndarray:
+    if value is None:
+        return default_checkpoints(snapshots)
+    if isinstance(value, str):
+        parts = [p for p in value.replace(",", " ").split() if p]
+        try:
+            value = [int(p) for p in parts]
+        except ValueError:
+            raise InputError("checkpoints must be whole snapshot counts", path="checkpoints",
+                             value=value.strip(), allowed="e.g. 1,2,4,8,16") from None
+    try:
+        arr = np.asarray(value)
+        if arr.dtype == object or arr.dtype.kind not in "iuf":
+            raise ValueError("checkpoints must be whole snapshot counts")
+        return normalised_checkpoints(arr, snapshots)
+    except ValueError as exc:
+        raise InputError(str(exc), path="checkpoints", value=value,
+                         allowed=f"whole numbers in [1, {snapshots}] (the snapshots)") from None
+
+
+def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None,
+                  where: str = "processors") -> tuple[Scene, list[Processor]]:
+    """The scene as it will be run (overrides applied and re-validated) and its parsed
+    processors. ``scene`` may be a :class:`Scene` or a scene file path; ``processors``
+    a list of specs (strings, mappings) or :class:`Processor` objects, default the
+    scene's own list. InputError (exit code 2 on the command line) for bad values."""
+    from .scenefile import load_scene, parse_scene, scene_to_mapping
+    if isinstance(scene, (str, Path)):
+        scene = load_scene(scene)
+    if not isinstance(scene, Scene):
+        raise InputError("expected a scene or the path of a scene file",
+                         value=type(scene).__name__)
+    if processors is None:
+        if not scene.processors:
+            raise SpecError("the scene lists no processors and none were given",
+                            file=scene.source_file, path="processors",
+                            allowed="a 'processors:' list in the scene or --processor SPEC")
+        procs = parse_specs(list(scene.processors), where="processors")
+    else:
+        if isinstance(processors, (str, dict, Processor)):
+            processors = [processors]
+        processors = list(processors)
+        if not processors:
+            raise SpecError("no processors given", path=where,
+                            allowed="one or more specs, e.g. 'smi loading_db=10'")
+        specs = [p for p in processors if not isinstance(p, Processor)]
+        parsed = iter(parse_specs(specs, where=where)) if specs else iter(())
+        procs = [p if isinstance(p, Processor) else next(parsed) for p in processors]
+        labels = [p.label for p in procs]
+        for i, label in enumerate(labels):
+            if label in labels[:i]:
+                raise SpecError(f"two processors share the label '{label}'; add label=... to one",
+                                path=f"{where}[{i}]", value=label)
+    t_ = _count(scene.trials if trials is None else trials, "trials", MAX_TRIALS)
+    k_ = _count(scene.snapshots if snapshots is None else snapshots, "snapshots", MAX_SNAPSHOTS)
+    s_ = _count(scene.seed if seed is None else seed, "seed", 2 ** 63 - 1, low=0)
+    mapping = dict(scene.resolved) if scene.resolved else scene_to_mapping(scene)
+    if processors is None:
+        given = list(scene.processors)
+    else:
+        # the specs as given (they rebuild the same processors); objects by their spec
+        given = [p.spec() if isinstance(p, Processor) else p for p in processors]
+    mapping.update(trials=t_, snapshots=k_, seed=s_, processors=given)
+    try:
+        used = parse_scene(mapping, file=scene.source_file)
+    except SceneError as exc:
+        raise SceneError(f"{exc.message} (with trials={t_}, snapshots={k_}, seed={s_})",
+                         file=exc.file, path=exc.path, value=exc.value,
+                         allowed=exc.allowed) from None
+    return used, procs
+
+
+# --------------------------------------------------------------------------- summary
+def _db(x) -> np.ndarray:
+    """dB of positive values; zero, negative or NaN -> NaN (undefined, not -inf)."""
+    x = np.asarray(x, dtype=float)
+    out = np.full(x.shape, np.nan)
+    ok = np.isfinite(x) & (x > 0)
+    out[ok] = 10.0 * np.log10(x[ok])
+    return out
+
+
+def _nanmean(x, axis=0):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(np.asarray(x, dtype=float), axis=axis)
+
+
+def _first(x) -> float:
+    return float(np.asarray(x).ravel()[0])
+
+
+def _pattern_scores(evaluation: Evaluation, weights: np.ndarray) -> dict:
+    sc = evaluation.scene
+    pos = evaluation.positions
+    gains = evaluation.element_gains
+    t_, n = weights.shape
+    if pos is None:
+        pos = np.broadcast_to(sc.array.positions, (t_, n, 3))
+    ap = max(float(sc.array.aperture), 0.5)
+    step = float(np.clip(np.rad2deg(1.0 / ap) / 10.0, 0.01, 0.25))
+    span = 180.0 if np.ptp(np.asarray(sc.array.positions)[:, 1]) < 1e-9 else 360.0
+    points = int(span / step) + 1
+    use = int(max(1, min(t_, _PATTERN_BUDGET // max(1, points * n))))
+    w = weights[:use]
+    args = dict(positions=pos[:use], look_azimuth=float(sc.look_azimuth),
+                look_elevation=float(sc.look_elevation),
+                gains=None if gains is None else gains[:use])
+    with np.errstate(all="ignore"):
+        pe = scores.pointing_error_deg(w, **args)
+        psl = scores.peak_sidelobe_db(w, step_deg=step, **args)
+    return {"pointing_error_deg_mean": _nanmean(pe),
+            "pointing_error_deg_rms": float(np.sqrt(_nanmean(pe ** 2))),
+            "peak_sidelobe_db_mean": _nanmean(psl),
+            "pattern_trials": use}
+
+
+def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 0.9,
+              seconds: float | None = None, patterns: bool = True) -> dict:
+    """The ``metrics.json`` dictionary of an evaluation (see the module docstring and
+    README for the schema and the meaning of each mean)."""
+    if not isinstance(evaluation, Evaluation):
+        raise ValueError(f"expected an Evaluation, got {type(evaluation).__name__}")
+    if not np.isfinite(target_db):
+        raise ValueError(f"target_db must be finite, got {target_db}")
+    if not 0 < fraction <= 1:
+        raise ValueError(f"fraction must be in (0, 1], got {fraction}")
+    sc = evaluation.scene
+    cps = np.asarray(evaluation.checkpoints)
+    opt_db = _db(evaluation.optimum_sinr)                               # (T, C)
+    out = {
+        "scene": sc.name,
+        "elements": int(sc.elements),
+        "trials": int(evaluation.trials),
+        "snapshots": int(evaluation.snapshots),
+        "seed": int(evaluation.seed),
+        "optimum_sinr_db": _nanmean(opt_db[:, -1]),
+        "stationary": bool(sc.stationary),
+        "interferers": list(evaluation.interferers),
+        "target_db": float(target_db),
+        "fraction": float(fraction),
+        "checkpoints": [int(c) for c in cps],
+        "optimum_curve": {"snapshots": [int(c) for c in cps],
+                          "sinr_db_mean": _nanmean(opt_db, axis=0).tolist()},
+        "processors": [],
+    }
+    if seconds is not None:
+        out["seconds"] = float(seconds)
+    for p in evaluation.processors:
+        sinr_db = _db(p.sinr)
+        with np.errstate(all="ignore"):
+            loss = np.where(np.isnan(p.normalised), np.nan, np.asarray(p.loss_db, float))
+        rho = np.asarray(p.normalised, dtype=float)
+        loss_stats = scores.trial_summary(loss)
+        sinr_stats = scores.trial_summary(sinr_db)
+        rho_stats = scores.trial_summary(rho)
+        with np.errstate(all="ignore"):
+            rho_ok = np.where(np.isfinite(rho), rho, np.nan)
+            loss_of_mean = -10 * np.log10(_nanmean(rho_ok, axis=0))
+        frac = scores.fraction_meeting(loss, target_db)
+        to_mean, to_frac = scores.snapshots_to_target(cps, np.nan_to_num(rho, nan=0.0),
+                                                      target_db, fraction)
+        measured_db = _db(p.measured_sinr)
+        wng_db = _db(p.white_noise_gain)
+        nd = np.asarray(p.null_depth_db, dtype=float)
+        final = {
+            "sinr_db_mean": _first(sinr_stats["mean"][-1]),
+            "sinr_db_p10": _first(sinr_stats["p10"][-1]),
+            "sinr_db_p90": _first(sinr_stats["p90"][-1]),
+            "loss_db_mean": _first(loss_stats["mean"][-1]),
+            "loss_db_median": _first(loss_stats["median"][-1]),
+            "loss_db_p10": _first(loss_stats["p10"][-1]),
+            "loss_db_p90": _first(loss_stats["p90"][-1]),
+            "loss_db_of_mean": _first(loss_of_mean[-1]),
+            "normalized_sinr_mean": _first(rho_stats["mean"][-1]),
+            "normalized_sinr_sem": _first(rho_stats["sem"][-1]),
+            "white_noise_gain_db": _first(_nanmean(wng_db[:, -1])),
+            "null_depth_db": {name: _first(_nanmean(nd[:, -1, j]))
+                              for j, name in enumerate(evaluation.interferers)},
+            "measured_sinr_db_mean": _first(_nanmean(measured_db[:, -1])),
+        }
+        if patterns:
+            final.update(_pattern_scores(evaluation, np.asarray(p.final_weights)))
+        out["processors"].append({
+            "label": p.label,
+            "method": p.method,
+            "params": dict(p.params),
+            "spec": p.spec,
+            "final": final,
+            "snapshots_to_3db": to_mean,
+            "snapshots_to_3db_fraction": to_frac,
+            "seconds": float(p.seconds),
+            "curve": {
+                "snapshots": [int(c) for c in cps],
+                "normalized_sinr_mean": rho_stats["mean"].tolist(),
+                "sinr_db_mean": sinr_stats["mean"].tolist(),
+                "loss_db_mean": loss_stats["mean"].tolist(),
+                "loss_db_of_mean": loss_of_mean.tolist(),
+                "loss_db_p10": loss_stats["p10"].tolist(),
+                "loss_db_median": loss_stats["median"].tolist(),
+                "loss_db_p90": loss_stats["p90"].tolist(),
+                "fraction_meeting_target": frac.tolist(),
+                "measured_sinr_db_mean": _nanmean(measured_db, axis=0).tolist(),
+            },
+        })
+    return out
+
+
+# --------------------------------------------------------------------------- table
+def _cell(v, fmt: str = "{:.2f}", none: str = "-") -> str:
+    if v is None:
+        return none
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return str(v)
+    if not math.isfinite(f):
+        return none
+    text = fmt.format(f)
+    # no "-0.00": a loss of -1e-12 dB is zero at the shown precision
+    return text[1:] if text.startswith("-") and not any(ch in "123456789" for ch in text) else text
+
+
+def render_table(metrics: dict, width: int = 100) -> str:
+    """Plain-text summary of a ``metrics`` dictionary, aligned, at most ``width``
+    columns wide (labels are shortened to fit)."""
+    heads = [("SINR dB", "final"), ("loss dB", "vs opt"), ("to 3 dB", "mean"),
+             ("to 3 dB", f"{metrics.get('fraction', 0.9) * 100:.0f}% trials"),
+             ("worst null", "dB"), ("WNG", "dB"), ("time", "s")]
+    rows = []
+    for p in metrics["processors"]:
+        f = p["final"]
+        nulls = [v for v in f["null_depth_db"].values() if v is not None]
+        rows.append([p["label"],
+                     _cell(f["sinr_db_mean"]), _cell(f["loss_db_mean"]),
+                     _cell(p["snapshots_to_3db"], "{:.0f}", "never"),
+                     _cell(p["snapshots_to_3db_fraction"], "{:.0f}", "never"),
+                     _cell(max(nulls) if nulls else None, "{:.1f}"),
+                     _cell(f["white_noise_gain_db"]), _cell(p["seconds"], "{:.2f}")])
+    numw = [max(len(h[0]), len(h[1]), *(len(r[i + 1]) for r in rows)) for i, h in enumerate(heads)]
+    fixed = sum(numw) + 2 * len(numw)
+    labw = max(9, min(max([len(r[0]) for r in rows] + [9]), max(9, width - fixed)))
+
+    def line(cells):
+        first = cells[0] if len(cells[0]) <= labw else cells[0][:labw - 3] + "..."
+        return (first.ljust(labw) + "".join("  " + c.rjust(w) for c, w in zip(cells[1:], numw))).rstrip()
+
+    k = metrics["snapshots"]
+    what = (f"{metrics['scene']}: {metrics['elements']} elements, {metrics['trials']} trials, "
+            f"{k} snapshots, seed {metrics['seed']}")
+    opt = (f"optimum SINR (clairvoyant MVDR): {_cell(metrics['optimum_sinr_db'])} dB, mean over "
+           f"trials" + ("" if metrics.get("stationary", True) else " at the last snapshot"))
+    out = [what, opt, "",
+           line(["processor"] + [h[0] for h in heads]),
+           line([""] + [h[1] for h in heads]),
+           "-" * min(width, labw + fixed)]
+    out += [line(r) for r in rows]
+    out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
+                f"until the loss is within {metrics.get('target_db', 3):g} dB ('never': not within "
+                f"{k})", CAUTION]
+    return "\n".join(_wrap(t, width) for t in out)
+
+
+def _wrap(text: str, width: int) -> str:
+    if len(text) <= width:
+        return text
+    import textwrap
+    return "\n".join(textwrap.wrap(text, width))
+
+
+# --------------------------------------------------------------------------- compare
+@dataclass
+class Comparison:
+    """Result of :func:`compare`: the scored :class:`Evaluation` (numpy arrays per
+    processor, checkpoint and trial), the summary ``metrics`` (the ``metrics.json``
+    dictionary), the scene as run and the processors."""
+    evaluation: Evaluation
+    metrics: dict
+    scene: Scene
+    processors: list = field(default_factory=list)
+    seconds: float = 0.0
+
+    def table(self, width: int = 100) -> str:
+        """The terminal summary table (plain text)."""
+        return render_table(self.metrics, width)
+
+    def processor(self, label: str) -> dict:
+        """The metrics entry of one processor, by label."""
+        for p in self.metrics["processors"]:
+            if p["label"] == label:
+                return p
+        raise KeyError(label)
+
+    @property
+    def labels(self) -> list[str]:
+        return [p["label"] for p in self.metrics["processors"]]
+
+    def __str__(self) -> str:
+        return self.table()
+
+
+def compare(scene, processors: Sequence | None = None, trials: int | None = None,
+            snapshots: int | None = None, seed: int | None = None, checkpoints=None,
+            progress: Callable[[int], None] | None = None, *, target_db: float = 3.0,
+            fraction: float = 0.9, tail: int = TAIL) -> Comparison:
+    """Run and score ``processors`` on ``scene`` (a :class:`Scene` or a scene file).
+
+    processors: specs or Processor objects (default: the scene's ``processors`` list;
+    SpecError if there are none); trials, snapshots, seed: override the scene's;
+    checkpoints: snapshot counts to score (list or "1,2,4" text; default geometric,
+    4 per octave); progress: called with the number of trial-snapshots done after each
+    block (the total is ``trials * (snapshots + tail)``). Results do not depend on how
+    the work is split into blocks or trial chunks.
+    """
+    used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
+    cps = _checkpoints(checkpoints, used.snapshots)
+    if tail < 0:
+        raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
+    t0 = time.perf_counter()
+    total = used.snapshots + tail
+    n = used.elements
+    chunk = max(1, min(used.trials, (1 << 16) // max(1, n)))
+    block = None
+    if progress is not None:
+        from .streams import default_block_size
+        block = min(default_block_size(chunk, n, total), max(64, -(-total // 20)))
+    ev = evaluate(used, procs, cps, chunk=chunk, tail=tail, block=block, progress=progress)
+    metrics = summarise(ev, target_db, fraction)
+    seconds = time.perf_counter() - t0
+    metrics["seconds"] = seconds
+    return Comparison(evaluation=ev, metrics=metrics, scene=used, processors=procs,
+                      seconds=seconds)
+
+
+def write_compare_run(comparison: Comparison, out_root="runs",
+                      command_line: str | None = None, figures: bool = True) -> Path:
+    """Write ``comparison`` to a NEW run folder under ``out_root`` and return its path.
+
+    Contents: ``scene.yaml`` (the scene as run), ``metrics.json``, ``curves.csv``,
+    the figures and ``report.html`` (when :mod:`adapt.report` provides them) and
+    ``manifest.json`` (versions, seed, command line, sha256 of every file). Every file
+    is written atomically; an existing folder is never touched.
+    """
+    from . import runs
+    if not isinstance(comparison, Comparison):
+        raise ValueError(f"expected a Comparison, got {type(comparison).__name__}")
+    return runs.write_run(comparison.scene, comparison.evaluation, comparison.metrics,
+                          out_root=out_root, command_line=command_line, kind="compare",
+                          figures=figures, table=comparison.table())
