@@ -92,13 +92,14 @@ def test_optimum_sinr_equals_inverse_covariance_form_and_woodbury_closed_form():
 
 
 def test_optimum_follows_a_jammer_that_switches_on():
-    # The optimum at checkpoint c uses the true covariance of snapshot c-1.
+    # The optimum at checkpoint c uses the true covariance of snapshot c (the moment the
+    # scores use): the jammer switching on at snapshot 50 is nulled from checkpoint 50.
     n = 8
     scene = make_scene(n=n, jammers=((20.0, 40.0, Pulsing(start=50)),), trials=2)
-    batch, (w,) = run(scene, ["optimum"], [50, 51, 80], block=7)
+    batch, (w,) = run(scene, ["optimum"], [49, 50, 80], block=7)
     look = batch.look
     np.testing.assert_allclose(w[:, 0], np.broadcast_to(look / n, (2, n)), atol=1e-12)
-    # from checkpoint 51 on, the 40 dB jammer is nulled (MVDR residual ~ 1/(N P))
+    # from checkpoint 50 on, the 40 dB jammer is nulled (MVDR residual ~ 1/(N P))
     v = batch.steering(1)
     assert np.all(np.abs(np.einsum("tcn,tn->tc", np.conj(w[:, 1:]), v)) < 1e-4)
     np.testing.assert_array_equal(w[:, 1], w[:, 2])

@@ -4,7 +4,8 @@ Source: Van Trees, Optimum Array Processing (2002), ch. 6 (the MVDR beamformer);
 "High-resolution frequency-wavenumber spectrum analysis", Proc. IEEE 1969.
 
 Weight at checkpoint c: ``w = R^-1 a / (a^H R^-1 a)`` with R the TRUE interference-plus-
-noise covariance at the last snapshot seen (snapshot c-1, 0-based) and ``a`` the ASSUMED
+noise covariance at snapshot index c (0-based), the first snapshot the weight is applied
+to and the moment the scores use (see adapt.evaluate), and ``a`` the ASSUMED
 look steering vector (nominal array, no hardware errors). Under pointing or calibration
 mismatch this is the optimum for the assumed steering, not the matched-filter bound.
 
@@ -57,7 +58,7 @@ class Optimum(Processor):
         stops = np.asarray(stops, dtype=np.int64)
         if not stops.size:
             return np.empty((t_, 0, n), dtype=complex)
-        r = self.context.covariance(stops - 1)                  # (T, C, N, N)
+        r = self.context.covariance(stops)                      # (T, C, N, N)
         if np.all(r == r[:, :1]):
             w = self._solve(r[:, 0])
             return np.repeat(w[:, None, :], len(stops), axis=1)
