@@ -298,7 +298,7 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
         "required_snapshots_fraction": _count_at(points, i_frac),
         "required_snapshots_fraction_range": [_count_at(points, i_frac_early),
                                               _count_at(points, i_frac_late)],
-        "met_at_first_point": bool(i_mean == 0 or i_frac == 0),
+        "met_at_first_point": bool((i_mean == 0 or i_frac == 0) and points[0] > 1),
         "theory_required_snapshots": (law.required_snapshots(target, limit)
                                       if law is not None else None),
         "disagreements": disagreements,
@@ -361,6 +361,10 @@ def _range(r, limit: int) -> str:
     return str(r[0]) if hi == str(r[0]) else f"{r[0]}-{hi}"
 
 
+def _snaps(k: int) -> str:
+    return f"{k} snapshot" + ("" if k == 1 else "s")
+
+
 def recommendation(proc: dict, target_loss_db: float, fraction: float, limit: int) -> str:
     """One plain-language line for one processor record of sizing.json."""
     t = f"{target_loss_db:g} dB"
@@ -371,7 +375,7 @@ def recommendation(proc: dict, target_loss_db: float, fraction: float, limit: in
     if m is None:
         head = f"{proc['label']}: the mean loss stays above {t} up to {limit} snapshots"
     else:
-        head = (f"{proc['label']}: {t} in the mean after {m} snapshots (bootstrap {lvl} range "
+        head = (f"{proc['label']}: {t} in the mean after {_snaps(m)} (bootstrap {lvl} range "
                 f"{_range(proc['required_snapshots_mean_range'], limit)})")
     if f is None:
         tail = f"fewer than {pct} of trials within {t} by {limit}"
