@@ -664,9 +664,12 @@ def _load_case(folder: Path, name: str) -> ReferenceCase:
         with_ref = bool(meta["uses_reference"])
     except (KeyError, TypeError, ValueError):
         raise _corrupt("lacks snapshots, elements or uses_reference", folder / "case.json") from None
-    cps_raw = read_npy(folder / "checkpoints.npy") if (folder / "checkpoints.npy").exists() else None
-    if cps_raw is None:
-        raise _corrupt("missing", folder / "checkpoints.npy")
+    try:
+        cps_raw = read_npy(folder / "checkpoints.npy")
+    except FileNotFoundError:
+        raise _corrupt("missing", folder / "checkpoints.npy") from None
+    except (OSError, ValueError, EOFError) as exc:
+        raise _corrupt(f"not a readable .npy array ({exc})", folder / "checkpoints.npy") from None
     if cps_raw.ndim != 1 or cps_raw.dtype.kind not in "iu":
         raise _corrupt("must be a 1-D integer array", folder / "checkpoints.npy")
     try:

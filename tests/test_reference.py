@@ -322,6 +322,13 @@ def test_nan_in_reference_reported(run_cli, smi_set, tmp_path):
         load_reference(bad)
     code, text, err = run_cli(["verify", bad, "--python", "adapt.reference:reference_implementation"])
     assert code == 2 and "case-0000/sinr_db.npy" in err and "NaN" in err
+    # a pickled (object) array is never loaded (numpy allow_pickle=False)
+    write_npy(bad / "case-0000" / "sinr_db.npy", np.zeros(6))
+    np.save(bad / "case-0001" / "weights.npy", np.array([{"x": 1}], dtype=object),
+            allow_pickle=True)
+    write_manifest(bad, {})
+    with pytest.raises(CorruptReferenceError, match="case-0001/weights.npy: not a readable"):
+        load_reference(bad)
 
 
 # ---------------------------------------------------------------------------- SigMF
