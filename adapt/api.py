@@ -28,7 +28,7 @@ from typing import Sequence
 from . import scores
 from .compare import Comparison, _checkpoints, compare, prepare_scene, write_compare_run
 from .errors import InputError, SceneError, SpecError
-from .evaluate import Evaluation, ProcessorScores, default_checkpoints
+from .evaluate import Evaluation, ProcessorScores
 from .evaluate import evaluate as _evaluate
 from .processors import Processor, ProcessorResult, parse_spec, parse_specs, registry
 from .processors import run_processors as _run_processors
@@ -99,8 +99,7 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
     :mod:`adapt.processors.base`). Scores are not computed; use :func:`evaluate`.
     """
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
-    cps = default_checkpoints(sc.snapshots) if checkpoints is None else checkpoints
-    cps = _checkpoints(cps, sc.snapshots)
+    cps = _checkpoints(checkpoints, sc.snapshots)
     batch = TrialBatch(sc)
     return _run_processors(procs, batch.blocks(sc.snapshots), Context.from_batch(batch), cps,
                            outputs=outputs, snapshots=sc.snapshots)

@@ -37,7 +37,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from . import scores
+from . import geometry, scores
 from .errors import InputError, SceneError, SpecError
 from .evaluate import Evaluation, default_checkpoints, evaluate
 from .processors import Processor, parse_specs
@@ -178,9 +178,12 @@ def _pattern_scores(evaluation: Evaluation, weights: np.ndarray) -> dict:
     points = int(span / step) + 1
     use = int(max(1, min(t_, _PATTERN_BUDGET // max(1, points * n))))
     w = weights[:use]
+    g = None if gains is None or np.all(gains[:use] == 1) else gains[:use]
+    bw = geometry.half_power_beamwidth_deg(sc.array.positions, sc.look_azimuth,
+                                           sc.look_elevation, resolution_deg=0.01)
     args = dict(positions=pos[:use], look_azimuth=float(sc.look_azimuth),
-                look_elevation=float(sc.look_elevation),
-                gains=None if gains is None else gains[:use])
+                look_elevation=float(sc.look_elevation), gains=g,
+                beamwidth_deg=float(bw) if np.isfinite(bw) and bw > 0 else None)
     with np.errstate(all="ignore"):
         pe = scores.pointing_error_deg(w, **args)
         psl = scores.peak_sidelobe_db(w, step_deg=step, **args)

@@ -201,10 +201,10 @@ def trial_summary(values: np.ndarray, axis: int = 0) -> dict[str, np.ndarray]:
         n = np.sum(np.isfinite(x), axis=axis)
         sem = np.where(n > 1, np.nanstd(x, axis=axis, ddof=1) / np.sqrt(np.maximum(n, 1)), np.nan) \
             if x.shape[axis] > 1 else np.full(np.delete(x.shape, axis), np.nan)
-        return {"mean": np.nanmean(x, axis=axis),
-                "median": np.nanmedian(x, axis=axis),
-                "p10": np.nanpercentile(x, 10, axis=axis),
-                "p90": np.nanpercentile(x, 90, axis=axis),
+        # plain percentiles when nothing is missing (nanpercentile loops over columns)
+        pct = np.percentile if not np.isnan(x).any() else np.nanpercentile
+        p10, p50, p90 = pct(x, [10, 50, 90], axis=axis)
+        return {"mean": np.nanmean(x, axis=axis), "median": p50, "p10": p10, "p90": p90,
                 "sem": sem}
 
 
@@ -233,14 +233,24 @@ def azimuth_cut(weights: np.ndarray, positions: np.ndarray, azimuths_deg,
     g = None if gains is None else np.asarray(gains)
     lead = np.broadcast_shapes(w.shape[:-1], pos.shape[:-2], () if g is None else g.shape[:-1])
     n = w.shape[-1]
-    step = max(1, _CUT_VALUES // max(1, int(np.prod(lead, dtype=np.int64)) * n))
+    # w^H (g * a) = (conj(w) g) . a: fold the gains into the weights
+    wc = np.conj(w) if g is None else np.conj(w) * g
+    if pos.ndim > 2:
+        flat = pos.reshape(-1, n, 3)
+        if np.all(flat == flat[0]):
+            pos = flat[0]                 # one array for all trials: a shared steering matrix
     out = np.empty(lead + az.shape)
-    wc = np.conj(w)
+    if pos.ndim == 2:
+        wc = np.broadcast_to(wc, lead + (n,))
+        step = max(1, _CUT_VALUES // n)
+        for lo in range(0, az.size, step):
+            a = geometry.steering_vector(pos, az[lo:lo + step], elevation_deg)   # (d, N)
+            out[..., lo:lo + step] = np.abs(wc @ a.T) ** 2
+        return out
+    step = max(1, _CUT_VALUES // max(1, int(np.prod(lead, dtype=np.int64)) * n))
     for lo in range(0, az.size, step):
         u = geometry.direction_vector(az[lo:lo + step], elevation_deg)           # (d, 3)
         a = np.exp(1j * 2 * np.pi * np.einsum("dk,...nk->...dn", u, pos))      # (..., d, N)
-        if g is not None:
-            a = a * g[..., None, :]
         out[..., lo:lo + step] = np.abs(np.einsum("...n,...dn->...d", wc, a)) ** 2
     return out
 

@@ -115,6 +115,19 @@ def test_processors_default_to_the_scene_and_errors_are_input_errors():
         compare(scene, ["conventional", "conventional"])
 
 
+def test_progress_counts_every_trial_snapshot_and_results_do_not_depend_on_it():
+    # progress total = trials x (snapshots + tail); blocks change, results do not
+    from adapt.compare import TAIL
+    scene = parse_scene(SCENE)
+    done = []
+    with_bar = compare(scene, ["smi loading_db=10"], trials=3, snapshots=40,
+                       checkpoints=[5, 40], progress=done.append)
+    plain = compare(scene, ["smi loading_db=10"], trials=3, snapshots=40, checkpoints=[5, 40])
+    assert sum(done) == 3 * (40 + TAIL) and len(done) > 1
+    np.testing.assert_array_equal(with_bar.evaluation.processors[0].sinr,
+                                  plain.evaluation.processors[0].sinr)
+
+
 # ------------------------------------------------------------------ run folders
 def test_run_folders_are_complete_verified_and_never_overwritten(small, tmp_path):
     first = write_compare_run(small, tmp_path / "runs", command_line="adapt compare x")

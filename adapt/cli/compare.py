@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import shlex
 import sys
+import warnings
+from pathlib import Path
 
 ORDER = 20
 
@@ -79,18 +81,25 @@ def run(args) -> int:
         from tqdm import tqdm
         bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
                    disable=None, leave=False, desc="compare")
-    try:
-        result = compare(used, args.processors, checkpoints=args.checkpoints,
-                         progress=bar.update if bar is not None else None)
-    except InputError as exc:
-        if exc.path == "checkpoints":
-            raise exc.__class__(exc.message, path="--checkpoints", value=exc.value,
-                                allowed=exc.allowed) from None
-        raise
-    finally:
-        if bar is not None:
-            bar.close()
-    folder = write_compare_run(result, args.out, command_line=command_line(args))
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            result = compare(used, args.processors, checkpoints=args.checkpoints,
+                             progress=bar.update if bar is not None else None)
+        except InputError as exc:
+            if exc.path == "checkpoints":
+                raise exc.__class__(exc.message, path="--checkpoints", value=exc.value,
+                                    allowed=exc.allowed) from None
+            raise
+        finally:
+            if bar is not None:
+                bar.close()
+        folder = write_compare_run(result, args.out, command_line=command_line(args))
+    # the library's own warnings (e.g. a singular sample covariance), once each, one line
+    for text in dict.fromkeys(str(w.message) for w in caught
+                              if issubclass(w.category, UserWarning)
+                              or "adapt" in Path(w.filename).parts):
+        print(f"adapt: warning: {text}", file=sys.stderr)
     print(result.table())
     print()
     print(f"run folder: {folder}")
