@@ -431,3 +431,25 @@ def test_rls_converges_in_a_few_n_snapshots_whatever_the_eigenvalue_spread():
     assert loss[0].mean() + 5 * se[0] < 1.5                            # RLS near optimum
     for lms_loss, lms_se in zip(loss[1:], se[1:]):
         assert lms_loss.mean() - 5 * lms_se > loss[0].mean() + 5 * se[0] + 3.0
+
+
+def test_auto_step_needs_the_true_covariance(strong_scene):
+    # without the truth (a candidate implementation's context) auto cannot be resolved
+    ctx = dataclasses.replace(Context.from_batch(TrialBatch(strong_scene, trials=2)),
+                              data_covariance=None, training_covariance=None)
+    for spec in ("lms", "frost"):
+        with pytest.raises(SpecError, match="numeric step"):
+            parse_spec(spec).check(ctx)
+    parse_spec("lms step=1e-5").check(ctx)                 # an explicit step runs unchecked
+
+
+def test_shared_covariance_view_equals_the_per_trial_covariance(rough_scene):
+    # without hardware errors every trial has the same covariance: the context computes
+    # it once; it must equal the per-trial truth (adapt.streams.TrialBatch.covariance)
+    scene = make_scene(sources=list(rough_scene.resolved["sources"]), training="signal")
+    batch = TrialBatch(scene, trials=4, first_trial=2)
+    ctx = Context.from_batch(batch)
+    k = np.array([0, 45, 250])
+    full = batch.covariance(k, training=True)
+    np.testing.assert_allclose(ctx.training_covariance(k), full, atol=1e-12)
+    np.testing.assert_allclose(ctx.data_covariance(k), full, atol=1e-12)

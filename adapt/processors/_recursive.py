@@ -107,11 +107,17 @@ def eigen_extent(covariance: np.ndarray, basis: np.ndarray | None = None
     eigenvalues as ``P R P`` with P the projector onto it). Returns two (T,) arrays.
     """
     r = np.asarray(covariance)
+    trials = r.shape[0]
+    shared = trials > 1 and r.strides[0] == 0        # one covariance broadcast over trials
+    if shared:
+        r = r[:1]
     if basis is not None:
-        r = np.einsum("na,tmnk,kb->tmab", np.conj(basis), r, basis)
-    lam = np.linalg.eigvalsh(r)[..., -1]                                  # (T, M)
-    tr = np.real(np.trace(r, axis1=-2, axis2=-1))
-    return lam.max(axis=1), tr.max(axis=1)
+        r = np.conj(basis).T @ r @ basis
+    lam = np.linalg.eigvalsh(r)[..., -1].max(axis=1)                      # (T,)
+    tr = np.real(np.trace(r, axis1=-2, axis2=-1)).max(axis=1)
+    if shared:
+        lam, tr = np.repeat(lam, trials), np.repeat(tr, trials)
+    return lam, tr
 
 
 def extent_over_moments(covariance_fn, moments: np.ndarray, trials: int, elements: int,

@@ -144,14 +144,14 @@ class Context:
         covariance at snapshot indices k; only clairvoyant processors (the optimum) use it.
     training_covariance: callable ``k -> (T, len(k), N, N)``: true covariance of the
         data the processors train on (adds the wanted signal in the signal-present case);
-        used to check stability bounds, never to adapt.
+        used to check stability bounds, never to adapt (may be a read-only view).
     has_reference: True when a reference waveform is available (always, in simulation).
     look_direction: (azimuth, elevation) in degrees of the assumed look direction, or
         None when unknown (processors that constrain derivatives of the response need it).
     data_covariance: callable ``k -> (T, len(k), N, N)``: true covariance of the received
         data ``block.data`` (interference, noise and the wanted signal, whatever the
         scene trains on): what reference-trained processors (LMS, RLS) adapt on; used to
-        check step-size bounds, never to adapt.
+        check step-size bounds, never to adapt (may be a read-only view).
     moments: snapshot indices at which stability checks evaluate covariances (None:
         snapshot 0 only, exact for a stationary scene).
     """
@@ -176,11 +176,29 @@ class Context:
         return cls(look=batch.look, positions=batch.scene.array.positions,
                    trials=batch.trials, noise_power=1.0,
                    covariance=lambda k: batch.covariance(np.asarray(k)),
-                   training_covariance=lambda k: batch.covariance(np.asarray(k), training=True),
+                   training_covariance=lambda k: _shared_covariance(batch, k, "training"),
                    look_direction=(float(batch.scene.look_azimuth),
                                    float(batch.scene.look_elevation)),
-                   data_covariance=lambda k: _data_covariance(batch, k),
+                   data_covariance=lambda k: _shared_covariance(batch, k, "data"),
                    moments=_check_moments(batch.scene))
+
+
+def _shared_covariance(batch, k, kind: str) -> np.ndarray:
+    """Training (``kind="training"``) or data covariance (T, len(k), N, N) at snapshot
+    indices k. Without hardware errors every trial has the same covariance: it is then
+    computed once and returned as a read-only broadcast view over the trials."""
+    kk = np.atleast_1d(np.asarray(k))
+
+    def one(b):
+        return (b.covariance(kk, training=True) if kind == "training"
+                else _data_covariance(b, kk))
+
+    if batch.trials > 1 and not batch.scene.array.errors.any:
+        single = type(batch)(batch.scene, trials=1, seed=batch.seed,
+                             first_trial=batch.first_trial)
+        r = one(single)
+        return np.broadcast_to(r, (batch.trials,) + r.shape[1:])
+    return one(batch)
 
 
 def _data_covariance(batch, k) -> np.ndarray:
@@ -195,13 +213,13 @@ def _data_covariance(batch, k) -> np.ndarray:
 
 
 def _check_moments(scene) -> np.ndarray:
-    """Snapshot indices for stability checks: 0 for a stationary scene; otherwise 129
+    """Snapshot indices for stability checks: 0 for a stationary scene; otherwise 65
     moments spread over the scene's snapshots plus every pulse's first on-snapshot
     (capped at 1024 moments)."""
     if scene.stationary:
         return np.array([0])
     last = max(int(scene.snapshots) - 1, 0)
-    k = [np.linspace(0, last, 129).round().astype(np.int64)]
+    k = [np.linspace(0, last, 65).round().astype(np.int64)]
     for s in scene.sources:
         p = s.pulsing
         if p is not None and p.start <= last:

@@ -109,8 +109,9 @@ class FrostConstrainedLms(AutoStep):
         step = self.params["step"]
         if context.training_covariance is None:
             if step is None:
-                raise ValueError("frost: step=auto needs the training covariance in the "
-                                 "context; give a step")
+                raise SpecError("step=auto needs the true training covariance (known in simulation "
+                                "only); give a numeric step", path="step", value="auto",
+                                allowed="a number > 0")
             self._steps = np.full(context.trials, float(step))
         else:
             lam, tr = extent_over_moments(context.training_covariance, moments_of(context),

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..errors import SpecError
 from .base import Context, Parameter
 from ._recursive import (AutoStep, extent_over_moments, local_marks, lms_pass,
                          moments_of, per_snapshot, starting_weights, step_from_bound)
@@ -58,8 +59,9 @@ class LeastMeanSquares(AutoStep):
         step = self.params["step"]
         if context.data_covariance is None:
             if step is None:
-                raise ValueError("lms: step=auto needs the data covariance in the context; "
-                                 "give a step")
+                raise SpecError("step=auto needs the true data covariance (known in simulation "
+                                "only); give a numeric step", path="step", value="auto",
+                                allowed="a number > 0")
             self._steps = np.full(context.trials, float(step))
         else:
             lam, tr = extent_over_moments(context.data_covariance, moments_of(context),

@@ -26,7 +26,8 @@ Checkable fact: convergence in about 2N snapshots independent of the eigenvalue 
 of the data covariance (Haykin), unlike LMS whose slowest mode takes
 ``1 / (mu lambda_min)`` snapshots.
 
-Cost per snapshot and trial: about 3 N^2 complex multiply-adds.
+Cost per snapshot and trial: about 3 N^2 complex multiply-adds (trials are run in
+cache-sized groups, each group through a whole block, to keep P in cache).
 """
 from __future__ import annotations
 
@@ -38,6 +39,8 @@ from .lms import INITIAL_HELP
 
 #: P is re-symmetrised after every this many snapshots (counted from the stream start)
 SYMMETRISE_EVERY = 256
+#: trials are processed in groups of about this many P-matrix entries (cache-sized)
+TRIAL_GROUP_VALUES = 1 << 16
 
 
 class RecursiveLeastSquares(Processor):
@@ -61,20 +64,29 @@ class RecursiveLeastSquares(Processor):
         delta = context.noise_power * 10.0 ** (self.params["loading_db"] / 10.0)
         self._p = np.zeros((t_, n, n), dtype=complex)
         self._p[:, np.arange(n), np.arange(n)] = 1.0 / delta
-        self._outer = np.empty_like(self._p)
         self._wc = np.conj(self.initial_weights(context))
-        self._seen = 0
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
         marks = [int(j) for j in local_marks(block, stops)]
         x = per_snapshot(block.data)                          # (B, T, N)
-        xc = np.conj(x)
         d = per_snapshot(block.reference)                     # (B, T)
-        lam = float(self.params["forgetting"])
-        p, outer, wc = self._p, self._outer, self._wc
-        t_, n = wc.shape
+        t_, n = self._wc.shape
         out = np.empty((t_, len(marks), n), dtype=complex)
-        tmp = np.empty((t_, n), dtype=complex)
+        # trials in groups whose P matrices stay in cache over the block's snapshots
+        group = max(8, TRIAL_GROUP_VALUES // (n * n))
+        for lo in range(0, t_, group):
+            hi = min(t_, lo + group)
+            self._run_group(x[:, lo:hi], d[:, lo:hi], self._p[lo:hi], self._wc[lo:hi],
+                            marks, out[lo:hi], block.start)
+        return out
+
+    def _run_group(self, x, d, p, wc, marks, out, start) -> None:
+        """The recursion over one block for a group of trials; p, wc, out are views
+        updated in place."""
+        lam = float(self.params["forgetting"])
+        xc = np.conj(x)
+        outer = np.empty_like(p)
+        tmp = np.empty_like(wc)
         nxt = 0
         for j in range(x.shape[0]):
             u = x[j]
@@ -90,11 +102,9 @@ class RecursiveLeastSquares(Processor):
             if lam != 1.0:
                 p *= 1.0 / lam
             p -= outer
-            self._seen += 1
-            if self._seen % SYMMETRISE_EVERY == 0:
+            if (start + j + 1) % SYMMETRISE_EVERY == 0:
                 p += np.conj(np.swapaxes(p, 1, 2))
                 p *= 0.5
             while nxt < len(marks) and marks[nxt] == j:
                 np.conjugate(wc, out=out[:, nxt, :])
                 nxt += 1
-        return out
