@@ -333,9 +333,11 @@ def render_table(metrics: dict, width: int = 100) -> str:
            line([""] + [h[1] for h in heads]),
            "-" * min(width, labw + fixed)]
     out += [line(r) for r in rows]
+    total = metrics.get("seconds")
     out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
                 f"until the loss is within {metrics.get('target_db', 3):g} dB ('never': not within "
-                f"{k})", CAUTION]
+                f"{k}); time = each processor's own compute time"
+            + (f" (whole comparison {total:.1f} s)" if total is not None else ""), CAUTION]
     return "\n".join(_wrap(t, width) for t in out)
 
 
