@@ -438,7 +438,7 @@ def test_auto_step_needs_the_true_covariance(strong_scene):
     ctx = dataclasses.replace(Context.from_batch(TrialBatch(strong_scene, trials=2)),
                               data_covariance=None, training_covariance=None)
     for spec in ("lms", "frost"):
-        with pytest.raises(SpecError, match="numeric step"):
+        with pytest.raises(SpecError, match="give a step"):
             parse_spec(spec).check(ctx)
     parse_spec("lms step=1e-5").check(ctx)                 # an explicit step runs unchecked
 

@@ -60,7 +60,7 @@ class LeastMeanSquares(AutoStep):
         if context.data_covariance is None:
             if step is None:
                 raise SpecError("step=auto needs the true data covariance (known in simulation "
-                                "only); give a numeric step", path="step", value="auto",
+                                "only); give a step as a number", path="step", value="auto",
                                 allowed="a number > 0")
             self._steps = np.full(context.trials, float(step))
         else:
