@@ -94,7 +94,8 @@ def ring():
     sc = parse_scene({
         "name": "ring with errors",
         "array": {"layout": "ring", "elements": 12,
-                  "errors": {"gain_db_rms": 0.5, "phase_deg_rms": 3}},
+                  "errors": {"gain_db_rms": 0.5, "phase_deg_rms": 3,
+                             "position_rms": 0.02}},
         "sources": [
             {"name": "wanted", "role": "desired", "azimuth": 20, "power_db": 0},
             {"name": "behind", "role": "interferer", "azimuth": 150, "power_db": 30}]})
@@ -170,24 +171,38 @@ def test_first_sidelobe_of_uniform_line(stationary):
     assert abs(F.mean_beam_pattern_db(stationary, "conventional", [0.0])[0]) < 1e-9
 
 
+def looped_pattern_db(evaluation, label, az):
+    """Independent reference: a plain loop over trials with each trial's true positions
+    and gains, elevation 0, normalised per trial to the look direction."""
+    sc = evaluation.scene
+    w = evaluation.by_label(label).final_weights
+    u = np.stack([np.sin(np.deg2rad(az)), np.cos(np.deg2rad(az)), 0 * az], -1)
+    u0 = np.array([np.sin(np.deg2rad(sc.look_azimuth)), np.cos(np.deg2rad(sc.look_azimuth)), 0])
+    ratios = []
+    for t in range(evaluation.trials):
+        g, p = evaluation.element_gains[t], evaluation.positions[t]
+        a = g * np.exp(2j * np.pi * (u @ p.T))
+        a0 = g * np.exp(2j * np.pi * p @ u0)
+        ratios.append(np.abs(a @ np.conj(w[t])) ** 2 / np.abs(np.vdot(w[t], a0)) ** 2)
+    return 10 * np.log10(np.mean(ratios, axis=0))
+
+
 def test_pattern_uses_true_array_of_each_trial(ring):
-    # independent per-trial loop over the TRUE positions and gains
+    import dataclasses
     sc = ring.scene
     az = np.linspace(-180, 180, 181)
+    # position errors: every trial has its own steering matrix
     got = F.mean_beam_pattern_db(ring, "smi", az)
-    w = ring.by_label("smi").final_weights
-    ratios = []
-    for t in range(ring.trials):
-        a = ring.element_gains[t] * np.exp(2j * np.pi * (
-            np.stack([np.sin(np.deg2rad(az)), np.cos(np.deg2rad(az)), 0 * az], -1)
-            @ ring.positions[t].T))
-        u0 = np.array([np.sin(np.deg2rad(sc.look_azimuth)), np.cos(np.deg2rad(sc.look_azimuth)), 0])
-        a0 = ring.element_gains[t] * np.exp(2j * np.pi * ring.positions[t] @ u0)
-        ratios.append(np.abs(a @ np.conj(w[t])) ** 2 / np.abs(np.vdot(w[t], a0)) ** 2)
-    want = 10 * np.log10(np.mean(ratios, axis=0))
-    np.testing.assert_allclose(got, want, atol=1e-9)
-    # with hardware errors the pattern of the nominal array differs
-    import dataclasses
+    np.testing.assert_allclose(got, looped_pattern_db(ring, "smi", az), atol=1e-9)
+    # nominal positions with per-trial gains: the shared-steering path
+    same = dataclasses.replace(ring, positions=np.broadcast_to(
+        sc.array.positions, ring.positions.shape).copy())
+    np.testing.assert_allclose(F.mean_beam_pattern_db(same, "smi", az),
+                               looped_pattern_db(same, "smi", az), atol=1e-9)
+    # several processors at once give the same patterns
+    both = F.mean_beam_patterns_db(ring, ["conventional", "smi"], az)
+    np.testing.assert_allclose(both[1], got, atol=1e-12)
+    # the hardware errors matter: the nominal array's pattern differs
     nominal = dataclasses.replace(ring, positions=None, element_gains=None)
     assert np.max(np.abs(F.mean_beam_pattern_db(nominal, "smi", az) - got)) > 0.1
     # a ring has depth along y: the cut covers the whole circle
@@ -214,7 +229,7 @@ def test_nonstationary_optimum_is_a_curve(nonstationary):
     y = np.asarray(opt[0].get_ydata(), float)
     # the pulsed jammer switches on at snapshot 64: the optimum of the moment moves
     assert np.nanmax(y) - np.nanmin(y) > 0.1
-    assert "nonstationary" in fig._suptitle.get_text()
+    assert "nonstationary" in fig.get_suptitle()
 
 
 def test_null_depth_figure_annotates_jnr(stationary):

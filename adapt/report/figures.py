@@ -23,7 +23,7 @@ Figures of a run (:class:`adapt.evaluate.Evaluation`):
   SINR, and the loss against the optimum in a second panel;
 * :func:`beam_pattern_figure` - trial-averaged power pattern of each processor's final
   weights on the azimuth cut at the look elevation, computed with each trial's TRUE array
-  (:func:`mean_beam_pattern_db`), every source marked;
+  (:func:`mean_beam_pattern_db`, :func:`mean_beam_patterns_db`), every source marked;
 * :func:`null_depth_figure` - grouped bars of the response toward each interferer
   relative to the look direction at the final checkpoint, with each interferer's JNR.
 
@@ -47,7 +47,7 @@ __all__ = [
     "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
     "series_styles", "new_figure", "style_axes", "add_title", "legend_outside",
     "save_png", "figure_to_png", "is_png", "run_title",
-    "default_azimuths", "mean_beam_pattern_db",
+    "default_azimuths", "mean_beam_pattern_db", "mean_beam_patterns_db",
     "convergence_figure", "beam_pattern_figure", "null_depth_figure",
     "standard_figures", "FIGURE_TEXT",
 ]
@@ -311,19 +311,42 @@ def mean_beam_pattern_db(evaluation, label: str, azimuths, elevation: float | No
     the scene's look elevation. ``weights`` (T, N) replaces the final weights (e.g. the
     weights of another checkpoint). Trials whose look response is zero are left out.
 
-    Vectorised over trials; azimuths are processed in chunks to bound memory at about
-    ``T x 4096 x N`` complex values. Checkable fact: for the untapered conventional
-    processor on a uniform half-wavelength line the first sidelobe is -13.26 dB
-    (Balanis, *Antenna Theory*, ch. 6).
+    Checkable fact: for the untapered conventional processor on a uniform
+    half-wavelength line the first sidelobe is -13.26 dB (Balanis, *Antenna Theory*,
+    ch. 6). See :func:`mean_beam_patterns_db` for several processors at once.
     """
     _check_evaluation(evaluation)
     if weights is None:
-        labels = [p.label for p in evaluation.processors]
-        if label not in labels:
-            raise ValueError(f"no processor labelled {label!r}; the run has: {', '.join(labels)}")
-        w = np.asarray(evaluation.by_label(label).final_weights)
-    else:
-        w = np.asarray(weights)
+        return mean_beam_patterns_db(evaluation, [label], azimuths, elevation)[0]
+    w = np.asarray(weights)
+    return _patterns(evaluation, w[None] if w.ndim == 2 else w[None, None], [label],
+                     azimuths, elevation)[0]
+
+
+def mean_beam_patterns_db(evaluation, labels: Sequence[str], azimuths,
+                          elevation: float | None = None) -> np.ndarray:
+    """:func:`mean_beam_pattern_db` of several processors, (len(labels), len(azimuths)).
+
+    The true steering vectors of every trial are computed once and shared by all the
+    processors. Vectorised over trials; azimuths go in chunks of about 4 million
+    trial-azimuth-element values to bound memory; when every trial has the nominal
+    element positions (no position errors) the steering matrix is common to all trials
+    and only the gains differ, which needs one matrix product.
+    """
+    _check_evaluation(evaluation)
+    have = [p.label for p in evaluation.processors]
+    labels = list(labels)
+    if not labels:
+        raise ValueError("no processor labels given")
+    for label in labels:
+        if label not in have:
+            raise ValueError(f"no processor labelled {label!r}; the run has: {', '.join(have)}")
+    w = np.stack([np.asarray(evaluation.by_label(lb).final_weights) for lb in labels])
+    return _patterns(evaluation, w, labels, azimuths, elevation)
+
+
+def _patterns(evaluation, w: np.ndarray, labels, azimuths, elevation) -> np.ndarray:
+    """Core of the pattern functions: weights w (P, T, N) -> (P, D) dB."""
     az = np.atleast_1d(np.asarray(azimuths, dtype=float))
     if az.ndim != 1 or az.size == 0 or not np.all(np.isfinite(az)):
         raise ValueError("azimuths must be a non-empty 1-D list of finite angles in degrees")
@@ -332,11 +355,9 @@ def mean_beam_pattern_db(evaluation, label: str, azimuths, elevation: float | No
     if not np.isfinite(el) or abs(el) > 90:
         raise ValueError(f"elevation must be within [-90, 90] degrees, got {elevation}")
     n = sc.elements
+    p_, t_ = w.shape[0], w.shape[1]
     pos = evaluation.positions
     gains = evaluation.element_gains
-    if w.ndim == 1:
-        w = w[None, :]
-    t_ = w.shape[0]
     if pos is None:
         pos = np.broadcast_to(sc.array.positions, (t_, n, 3))
     if gains is None:
@@ -344,25 +365,32 @@ def mean_beam_pattern_db(evaluation, label: str, azimuths, elevation: float | No
     pos = np.asarray(pos, dtype=float)
     gains = np.asarray(gains)
     if w.shape[-1] != n or pos.shape != (t_, n, 3) or gains.shape != (t_, n):
-        raise ValueError(f"weights {w.shape}, positions {pos.shape} and gains {gains.shape} "
-                         f"do not describe {t_} trials of {n} elements")
-    wc = np.conj(w) * gains                                          # (T, N): w^H diag(g)
+        raise ValueError(f"weights {w.shape[1:]}, positions {pos.shape} and gains "
+                         f"{gains.shape} do not describe {t_} trials of {n} elements")
+    wc = np.conj(w) * gains[None]                                # (P, T, N): w^H diag(g)
+    common = bool(np.all(pos == pos[:1]))                        # no position errors
 
-    def response(az_chunk: np.ndarray) -> np.ndarray:
-        u = geometry.direction_vector(az_chunk, el)                   # (D, 3)
-        phase = 2 * np.pi * np.einsum("tnk,dk->tdn", pos, u)          # (T, D, N)
-        return np.einsum("tn,tdn->td", wc, np.exp(1j * phase))
+    def response(az_chunk: np.ndarray, el_: float) -> np.ndarray:
+        u = geometry.direction_vector(az_chunk, el_)             # (D, 3)
+        if common:
+            a = np.exp(2j * np.pi * (u @ pos[0].T))              # (D, N)
+            return wc @ a.T                                      # (P, T, D)
+        a = np.exp(2j * np.pi * np.einsum("tnk,dk->tdn", pos, u))  # (T, D, N)
+        return np.einsum("ptn,tdn->ptd", wc, a)
 
-    u0 = geometry.direction_vector(sc.look_azimuth, sc.look_elevation)     # (3,)
-    look = np.abs(np.einsum("tn,tn->t", wc, np.exp(2j * np.pi * (pos @ u0)))) ** 2
+    look = np.abs(response(np.array([float(sc.look_azimuth)]),
+                           float(sc.look_elevation))[..., 0]) ** 2  # (P, T)
     keep = look > 0
-    if not keep.any():
-        raise ValueError(f"processor {label!r} has no response toward the look direction")
-    chunk = max(1, int(4096 * 16 // max(n, 1)))
-    acc = np.empty(az.size)
+    for i, label in enumerate(labels):
+        if not keep[i].any():
+            raise ValueError(f"processor {label!r} has no response toward the look direction")
+    inv = np.where(keep, 1.0 / np.where(keep, look, 1.0), 0.0)   # left-out trials weigh 0
+    counts = keep.sum(axis=1)                                     # (P,)
+    chunk = max(1, (1 << 22) // max(t_ * (1 if common else n) * p_, 1))
+    acc = np.empty((p_, az.size))
     for s in range(0, az.size, chunk):
-        r = response(az[s:s + chunk])[keep]                          # (T', D)
-        acc[s:s + chunk] = np.mean(np.abs(r) ** 2 / look[keep, None], axis=0)
+        r = response(az[s:s + chunk], el)                         # (P, T, D)
+        acc[:, s:s + chunk] = np.einsum("ptd,pt->pd", np.abs(r) ** 2, inv) / counts[:, None]
     with np.errstate(divide="ignore"):
         return 10.0 * np.log10(acc)
 
@@ -399,9 +427,9 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     az = default_azimuths(sc) if azimuths is None else np.asarray(azimuths, dtype=float)
     styles = series_styles(p.label for p in evaluation.processors)
     fig, ax = new_figure(size=(8.6, 4.9))
-    for p in evaluation.processors:
+    patterns = mean_beam_patterns_db(evaluation, [p.label for p in evaluation.processors], az)
+    for p, pat in zip(evaluation.processors, patterns):
         st = styles[p.label]
-        pat = mean_beam_pattern_db(evaluation, p.label, az)
         ax.plot(az, np.maximum(pat, floor_db), color=st["color"], linestyle=st["linestyle"],
                 linewidth=1.3, label=p.label)
     top = 10.0
