@@ -56,7 +56,8 @@ def sinr(w, a, r_in, power):
 
 def optimum_sinr(a, r_in, power):
     """``P_s a^H R_in^-1 a`` (Reed, Mallett & Brennan 1974; Van Trees 2002)."""
-    return power * np.einsum("tn,tn->t", np.conj(a), np.linalg.solve(r_in, a[..., None])[..., 0]).real
+    x = np.linalg.solve(r_in, a[..., None])[..., 0]
+    return power * np.einsum("tn,tn->t", np.conj(a), x).real
 
 
 def assert_mean_near(weights, target, bias_bound, sigmas=5.0):

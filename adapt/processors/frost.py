@@ -22,7 +22,9 @@ start weight is F (for the look constraint alone, a / N: the conventional beam).
 
 Step-size convention: ``step`` is the unnormalised ``mu`` in inverse noise-power units.
 The mean weight converges iff ``0 < mu < 2 / lambda_max(P R P)`` with R the training
-covariance (Frost 1972, with his factor-2-free step); ``check`` refuses a larger step.
+covariance: the mean weight error obeys ``e(k+1) = (I - mu P R P) e(k)`` on the range of
+P (Frost 1972; the bound as derived in this convention, where the instantaneous gradient
+``x y^*`` carries no factor 2); ``check`` refuses a larger step.
 Default ``step=auto`` (or none): ``0.1 / tr(P R P)`` per trial, always inside the bound.
 
 Checkable fact: the mean weight converges to the constrained optimum

@@ -32,7 +32,8 @@ from .lms import INITIAL_HELP
 
 def normalised_gain(x: np.ndarray, step: float, eps: float) -> np.ndarray:
     """NLMS gain ``step / (eps + |x|^2)`` for (B, T, M) vectors -> (B, T)."""
-    power = np.einsum("...m,...m->...", x.real, x.real) + np.einsum("...m,...m->...", x.imag, x.imag)
+    power = (np.einsum("...m,...m->...", x.real, x.real)
+             + np.einsum("...m,...m->...", x.imag, x.imag))
     return step / (eps + power)
 
 
