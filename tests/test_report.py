@@ -148,6 +148,7 @@ def test_series_colours_consistent_across_figures(stationary):
     many = F.series_styles(f"p{i}" for i in range(len(F.PALETTE) + 1))
     first, extra = many["p0"], many[f"p{len(F.PALETTE)}"]
     assert first["color"] == extra["color"] and first["linestyle"] != extra["linestyle"]
+    assert first["hatch"] != extra["hatch"]
 
 
 def test_first_sidelobe_of_uniform_line(stationary):

@@ -64,6 +64,7 @@ PALETTE = ("#0072B2",   # blue
 #: (the palette's black is kept for reference curves and the wanted source's marker)
 LINE_STYLES = ("-", "--", "-.", ":")
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
+HATCHES = ("", "////", "....", "xxxx")
 #: colour of reference curves (the optimum) and of source markers
 REFERENCE_COLOUR = "#404040"
 DESIRED_COLOUR = "#000000"
@@ -82,7 +83,7 @@ NULL_FLOOR_DB = -100.0
 # ---------------------------------------------------------------------------- style
 def series_styles(labels: Iterable[str]) -> dict[str, dict]:
     """One style per label, in the order given: ``{label: {"color", "linestyle",
-    "marker"}}``.
+    "marker", "hatch"}}`` (hatch: for bars, changes with the line style).
 
     The i-th label gets colour ``PALETTE[i % 7]`` and line style
     ``LINE_STYLES[(i // 7) % 4]``, so up to 28 series differ; pass the same label list to
@@ -96,7 +97,8 @@ def series_styles(labels: Iterable[str]) -> dict[str, dict]:
         i = len(out)
         out[label] = {"color": PALETTE[i % len(PALETTE)],
                       "linestyle": LINE_STYLES[(i // len(PALETTE)) % len(LINE_STYLES)],
-                      "marker": MARKERS[i % len(MARKERS)]}
+                      "marker": MARKERS[i % len(MARKERS)],
+                      "hatch": HATCHES[(i // len(PALETTE)) % len(HATCHES)]}
     return out
 
 
@@ -122,7 +124,7 @@ def style_axes(ax) -> None:
     ax.grid(True, which="minor", color="#EEEEEE", linewidth=0.4)
     for side in ("top", "right"):
         ax.spines[side].set_visible(False)
-    ax.tick_params(labelsize=TICK_SIZE)
+    ax.tick_params(which="both", labelsize=TICK_SIZE)
 
 
 def label_axes(ax, xlabel: str | None = None, ylabel: str | None = None) -> None:
@@ -258,6 +260,7 @@ def convergence_figure(evaluation) -> Figure:
         top.set_xlim(cps[0] / 2, cps[0] * 2)
     else:
         top.set_xlim(cps[0], cps[-1])
+    _plain_log_ticks(bottom, wide=single is False and cps[-1] / cps[0] >= 10)
     label_axes(top, ylabel="output SINR, dB\n(mean over trials of dB)")
     label_axes(bottom, xlabel="snapshots seen (log scale)",
                ylabel="loss vs optimum, dB\n(mean over trials)")
@@ -273,6 +276,15 @@ def convergence_figure(evaluation) -> Figure:
         sub += "; nonstationary scene: optimum of the moment"
     add_title(fig, title, sub)
     return fig
+
+
+def _plain_log_ticks(ax, wide: bool) -> None:
+    """Snapshot counts as plain numbers (1, 10, 100) on a log axis; minor ticks
+    labelled only when the axis spans less than a decade."""
+    from matplotlib.ticker import FuncFormatter, NullFormatter
+    plain = FuncFormatter(lambda v, _: f"{v:g}")
+    ax.xaxis.set_major_formatter(plain)
+    ax.xaxis.set_minor_formatter(NullFormatter() if wide else plain)
 
 
 # ----------------------------------------------------------------------- patterns
@@ -324,14 +336,17 @@ def mean_beam_pattern_db(evaluation, label: str, azimuths, elevation: float | No
 
 
 def mean_beam_patterns_db(evaluation, labels: Sequence[str], azimuths,
-                          elevation: float | None = None) -> np.ndarray:
+                          elevation: float | None = None,
+                          skip_dead: bool = False) -> np.ndarray:
     """:func:`mean_beam_pattern_db` of several processors, (len(labels), len(azimuths)).
 
     The true steering vectors of every trial are computed once and shared by all the
     processors. Vectorised over trials; azimuths go in chunks of about 4 million
     trial-azimuth-element values to bound memory; when every trial has the nominal
     element positions (no position errors) the steering matrix is common to all trials
-    and only the gains differ, which needs one matrix product.
+    and only the gains differ, which needs one matrix product. A processor with no
+    response toward the look direction in any trial raises ValueError, or gets a row of
+    NaN with ``skip_dead``.
     """
     _check_evaluation(evaluation)
     have = [p.label for p in evaluation.processors]
@@ -342,10 +357,11 @@ def mean_beam_patterns_db(evaluation, labels: Sequence[str], azimuths,
         if label not in have:
             raise ValueError(f"no processor labelled {label!r}; the run has: {', '.join(have)}")
     w = np.stack([np.asarray(evaluation.by_label(lb).final_weights) for lb in labels])
-    return _patterns(evaluation, w, labels, azimuths, elevation)
+    return _patterns(evaluation, w, labels, azimuths, elevation, skip_dead)
 
 
-def _patterns(evaluation, w: np.ndarray, labels, azimuths, elevation) -> np.ndarray:
+def _patterns(evaluation, w: np.ndarray, labels, azimuths, elevation,
+              skip_dead: bool = False) -> np.ndarray:
     """Core of the pattern functions: weights w (P, T, N) -> (P, D) dB."""
     az = np.atleast_1d(np.asarray(azimuths, dtype=float))
     if az.ndim != 1 or az.size == 0 or not np.all(np.isfinite(az)):
@@ -382,10 +398,11 @@ def _patterns(evaluation, w: np.ndarray, labels, azimuths, elevation) -> np.ndar
                            float(sc.look_elevation))[..., 0]) ** 2  # (P, T)
     keep = look > 0
     for i, label in enumerate(labels):
-        if not keep[i].any():
+        if not keep[i].any() and not skip_dead:
             raise ValueError(f"processor {label!r} has no response toward the look direction")
     inv = np.where(keep, 1.0 / np.where(keep, look, 1.0), 0.0)   # left-out trials weigh 0
-    counts = keep.sum(axis=1)                                     # (P,)
+    counts = keep.sum(axis=1).astype(float)                       # (P,)
+    counts[counts == 0] = np.nan                                  # dead processors: NaN
     chunk = max(1, (1 << 22) // max(t_ * (1 if common else n) * p_, 1))
     acc = np.empty((p_, az.size))
     for s in range(0, az.size, chunk):
@@ -427,11 +444,13 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     az = default_azimuths(sc) if azimuths is None else np.asarray(azimuths, dtype=float)
     styles = series_styles(p.label for p in evaluation.processors)
     fig, ax = new_figure(size=(8.6, 4.9))
-    patterns = mean_beam_patterns_db(evaluation, [p.label for p in evaluation.processors], az)
+    patterns = mean_beam_patterns_db(evaluation, [p.label for p in evaluation.processors],
+                                     az, skip_dead=True)
     for p, pat in zip(evaluation.processors, patterns):
         st = styles[p.label]
+        dead = not np.any(np.isfinite(pat))
         ax.plot(az, np.maximum(pat, floor_db), color=st["color"], linestyle=st["linestyle"],
-                linewidth=1.3, label=p.label)
+                linewidth=1.3, label=p.label + (" (no response toward look)" if dead else ""))
     top = 10.0
     ax.set_ylim(floor_db, top)
     ax.set_xlim(az[0], az[-1])
@@ -509,7 +528,7 @@ def null_depth_figure(evaluation) -> Figure:
         x = x0 - 0.4 + width * (i + 0.5)
         st = styles[p.label]
         bars = ax.bar(x, mean, width=width * 0.92, color=st["color"], label=p.label,
-                      edgecolor="white", linewidth=0.4)
+                      edgecolor="white", linewidth=0.4, hatch=st["hatch"] or None)
         if count * len(names) <= 24:
             for text in ax.bar_label(bars, labels=[_depth_text(v) for v in mean],
                                      label_type="center", fontsize=TICK_SIZE - 1,
