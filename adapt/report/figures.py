@@ -45,7 +45,8 @@ from .. import geometry
 
 __all__ = [
     "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
-    "series_styles", "new_figure", "style_axes", "add_title", "legend_outside",
+    "HATCHES", "PATTERN_FLOOR_DB", "NULL_FLOOR_DB",
+    "series_styles", "new_figure", "style_axes", "label_axes", "add_title", "legend_outside",
     "save_png", "figure_to_png", "is_png", "run_title",
     "default_azimuths", "mean_beam_pattern_db", "mean_beam_patterns_db",
     "convergence_figure", "beam_pattern_figure", "null_depth_figure",
