@@ -39,7 +39,8 @@ from .scenefile import dump_scene, load_scene, parse_scene
 from .streams import Block, TrialBatch
 
 __all__ = ["load_scene", "parse_scene", "dump_scene", "generate", "processors", "methods",
-           "run", "evaluate", "compare", "write_run", "read_run", "scores",
+           "run", "evaluate", "compare", "write_run", "read_run", "size", "record", "verify",
+           "scores",
            "Scene", "TrialBatch", "Block", "ProcessorResult", "Evaluation",
            "ProcessorScores", "Comparison", "InputError", "SceneError", "SpecError"]
 
@@ -121,3 +122,28 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
     """Write a comparison to a new run folder under ``out`` (as ``adapt compare`` does);
     returns the folder path."""
     return write_compare_run(comparison, out, command_line=command_line)
+
+
+def size(scene, specs: Sequence | None = None, **options):
+    """Snapshot sizing sweep (as ``adapt size``): see :func:`adapt.sizing.size`. Returns
+    a :class:`adapt.sizing.Sizing` with per-processor points, the required snapshot
+    counts with their uncertainty, and the theory beside the simulation."""
+    from .sizing import size as _size
+    return _size(_scene(scene), specs, **options)
+
+
+def record(scene, spec, out_dir, trials: int | None = None, snapshots: int | None = None,
+           checkpoints=None, tolerances=None) -> Path:
+    """Write a reference set (as ``adapt record``): see :func:`adapt.reference.record`.
+    Defaults: 3 cases, the scene's snapshots, checkpoints N, 2N, 4N, ... and K."""
+    from .reference import record as _record
+    return _record(_scene(scene), spec, trials, snapshots, checkpoints, out_dir,
+                   tolerances=tolerances)
+
+
+def verify(reference_dir, implementation, **options):
+    """Check an implementation (a callable ``f(case) -> weights`` or a command template
+    ``'PROGRAM {case} {out}'``) against a reference set (as ``adapt verify``): see
+    :func:`adapt.reference.verify`."""
+    from .reference import load_reference, verify as _verify
+    return _verify(load_reference(reference_dir), implementation, **options)
