@@ -172,8 +172,15 @@ def has_grating_lobe(positions: np.ndarray, azimuth_deg: float = 0.0,
     dist = np.linalg.norm((u - u0) @ basis.T, axis=-1)
     keep = dist > 1.0 / aperture(pos)
     w = steering_vector(pos, azimuth_deg, elevation_deg) / len(pos)
-    p = np.abs(np.exp(1j * 2 * np.pi * (u[keep] @ pos.T)) @ np.conj(w)) ** 2
-    return bool(p.size and 10 * np.log10(p.max()) > threshold_db)
+    u = u[keep]
+    if not len(u):
+        return False
+    # evaluate in chunks of directions so memory stays bounded for large arrays
+    chunk = max(1, (1 << 20) // len(pos))
+    peak = max(float(np.max(np.abs(np.exp(1j * 2 * np.pi * (u[i:i + chunk] @ pos.T))
+                                   @ np.conj(w)) ** 2))
+               for i in range(0, len(u), chunk))
+    return bool(10 * np.log10(peak) > threshold_db)
 
 
 def grating_lobe_free_spacing(max_scan_deg: float) -> float:

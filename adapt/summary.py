@@ -7,8 +7,9 @@ are the geometric tests behind them.
 Warnings (each a plain sentence):
 
 * grating lobe: the uniform beam steered to the look direction has another lobe within
-  1 dB of its peak in visible space (:func:`adapt.geometry.has_grating_lobe`); for a line
-  the handbook rule is spacing ``d < 1 / (1 + |sin theta0|)``;
+  1 dB of its peak in visible space (:func:`grating_lobe`: the criterion of
+  :func:`adapt.geometry.has_grating_lobe`, evaluated in closed form for lines and grids;
+  handbook rule for a line: free of grating lobes when ``d (1 + |sin theta0|) < 1``);
 * too many interferers: as many interferers as degrees of freedom (N - 1) or more; a
   linearly constrained processor with one look constraint can null at most N - 1
   independent directions (Van Trees, Optimum Array Processing, ch. 6);
@@ -33,6 +34,7 @@ from . import geometry
 from .scene import Scene, Source
 
 __all__ = ["summarise_scene", "scene_warnings", "main_lobe_contains", "beamwidth_deg",
+           "grating_lobe",
            "angle_between_deg", "describe_waveform", "describe_behaviour"]
 
 
@@ -99,6 +101,55 @@ def main_lobe_contains(positions: np.ndarray, look: tuple[float, float],
     return bool(np.all(np.diff(p) <= 1e-9))
 
 
+def _uniform_factor(n: int, d: float, delta: np.ndarray) -> np.ndarray:
+    """Power pattern of n uniform elements spaced d, at direction-cosine offsets delta
+    from the steering direction: ``|sin(pi n d delta) / (n sin(pi d delta))|^2``."""
+    x = np.pi * d * np.asarray(delta, float)
+    den = n * np.sin(x)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        f = np.where(np.abs(den) > 1e-12, np.sin(n * x) / den, 1.0)
+    return np.minimum(f * f, 1.0)
+
+
+def grating_lobe(scene: Scene, threshold_db: float = -1.0) -> bool:
+    """True when the uniform beam steered to the look direction has another lobe within
+    ``threshold_db`` of its peak in visible space (directions more than one
+    aperture-null width, 1/aperture in direction-cosine space, from the main beam), as in
+    :func:`adapt.geometry.has_grating_lobe`.
+
+    Uniform lines and grids are evaluated in direction-cosine space with the closed-form
+    uniform pattern (separable for a grid), finely and at any size; rings and custom
+    layouts use :func:`adapt.geometry.has_grating_lobe`. Handbook rule for a line:
+    lobes at ``u0 + m / d``, free when ``d (1 + |u0|) < 1``.
+    """
+    arr = scene.array
+    st = arr.settings
+    u0 = geometry.direction_vector(scene.look_azimuth, scene.look_elevation)
+    level = 10.0 ** (threshold_db / 10.0)
+    if arr.layout == "line" and st:
+        n, d = int(st["elements"]), float(st["spacing"])
+        if n < 2:
+            return False
+        u = np.linspace(-1.0, 1.0, 40001)
+        keep = np.abs(u - u0[0]) > 1.0 / ((n - 1) * d)
+        return bool(np.any(_uniform_factor(n, d, u[keep] - u0[0]) > level))
+    if arr.layout == "grid" and st:
+        rows, cols = int(st["rows"]), int(st["columns"])
+        if rows * cols < 2:
+            return False
+        dx, dz = float(st["spacing"]), float(st["row_spacing"])
+        u = np.linspace(-1.0, 1.0, 2001)
+        fx = _uniform_factor(cols, dx, u - u0[0])
+        fz = _uniform_factor(rows, dz, u - u0[2])
+        ux, uz = np.meshgrid(u, u, indexing="ij")
+        dist = np.hypot(ux - u0[0], uz - u0[2]) if rows > 1 and cols > 1 else (
+            np.abs(ux - u0[0]) if rows == 1 else np.abs(uz - u0[2]))
+        keep = (ux ** 2 + uz ** 2 <= 1.0) & (dist > 1.0 / arr.aperture)
+        return bool(np.any((fx[:, None] * fz[None, :])[keep] > level))
+    return arr.elements >= 2 and geometry.has_grating_lobe(
+        arr.positions, scene.look_azimuth, scene.look_elevation, threshold_db)
+
+
 def describe_waveform(src: Source) -> str:
     wf = src.waveform
     if wf.kind == "tone":
@@ -141,7 +192,7 @@ def scene_warnings(scene: Scene) -> list[str]:
     n = scene.elements
     look = (scene.look_azimuth, scene.look_elevation)
     out: list[str] = []
-    if n >= 2 and geometry.has_grating_lobe(pos, *look):
+    if grating_lobe(scene):
         out.append(f"grating lobe: with this element spacing the beam steered to az "
                    f"{look[0]:g}, el {look[1]:g} has a grating lobe in visible space "
                    "(a line is free of them for spacing < 1/(1 + |sin(scan angle)|) "

@@ -14,8 +14,8 @@ import yaml
 from adapt import __version__, geometry
 from adapt.errors import InputError, SceneError, SpecError
 from adapt.scenefile import dump_scene, load_scene, parse_scene, scene_to_mapping
-from adapt.summary import (angle_between_deg, beamwidth_deg, main_lobe_contains,
-                           scene_warnings, summarise_scene)
+from adapt.summary import (angle_between_deg, beamwidth_deg, grating_lobe,
+                           main_lobe_contains, scene_warnings, summarise_scene)
 
 from conftest import ROOT, SCENES
 
@@ -401,3 +401,30 @@ def test_summary_contents():
                   "gain 0.5 dB rms"):
         assert words in text, words
     assert len(text.splitlines()) < 40
+
+
+@pytest.mark.parametrize("spacing", [0.5, 0.6, 0.9, 1.0])
+def test_grating_lobe_closed_form_matches_search(spacing):
+    # lines and grids use the closed-form uniform pattern; it agrees with the numerical
+    # whole-sphere search of geometry.has_grating_lobe (same -1 dB criterion), including
+    # the handbook edge d (1 + |sin theta0|) = 1 (antenna handbook)
+    for arr in ({"elements": 12, "spacing": spacing},
+                {"layout": "grid", "rows": 4, "columns": 5, "spacing": spacing,
+                 "row_spacing": 0.5}):
+        for az, el in ((0, 0), (30, 0), (60, 0), (20, 25)):
+            data = mutate(array=arr, sources__0__azimuth=az)
+            data["sources"][0]["elevation"] = el
+            data["sources"][1]["azimuth"] = -az
+            scene = parse_scene(data)
+            assert grating_lobe(scene) == geometry.has_grating_lobe(
+                scene.array.positions, az, el), (arr, az, el)
+
+
+def test_check_is_quick_on_a_large_line(run_cli, write_file):
+    import time
+    big = mutate(array__elements=1024)
+    file = write_file("big.yaml", yaml.safe_dump(big))
+    started = time.perf_counter()
+    code, out, _ = run_cli(["check", file])
+    assert code == 0 and "1023 degrees of freedom" in out
+    assert time.perf_counter() - started < 30
