@@ -309,10 +309,23 @@ class SampleCovarianceProcessor(Processor):
             self._warned = True
             warnings.warn(f"{self.label}: {message}", RuntimeWarning, stacklevel=4)
 
+    def update_times(self, stops) -> np.ndarray:
+        """Update time ``u = floor(c/interval) * interval`` behind each checkpoint c."""
+        every = self._interval
+        return (np.asarray(stops, dtype=np.int64) // every) * every
+
+    def window_start(self, times) -> np.ndarray:
+        """First snapshot of the training window ending at each update time (exclusive
+        end): 0 for a growing window, ``max(0, u - length)`` for a sliding one."""
+        times = np.asarray(times, dtype=np.int64)
+        if isinstance(self._sums, SlidingSums):
+            return np.maximum(times - self._sums.length, 0)
+        return np.zeros_like(times)
+
     def update(self, block, stops: np.ndarray) -> np.ndarray:
         stops = np.asarray(stops, dtype=np.int64)
         every = self._interval
-        times = (stops // every) * every
+        times = self.update_times(stops)
         last = (block.stop // every) * every
         wanted = np.union1d(times[times > block.start],
                             [last] if last > block.start else []).astype(np.int64)
@@ -334,6 +347,16 @@ class SampleCovarianceProcessor(Processor):
                 table[:, i] = self._held[0]
         if wanted.size:
             self._held = (sums[:, -1], int(wanted[-1]))
+        return self.weights_from_sums(stops, distinct, table)
+
+    def weights_from_sums(self, stops, distinct: np.ndarray, table: np.ndarray) -> np.ndarray:
+        """Weights (T, len(stops), N) at checkpoints ``stops`` from the window sums
+        ``table`` (T, len(distinct), N, N) at the distinct nonzero update times
+        ``distinct`` (sorted) behind them. Shared by the streaming path and the drawn
+        covariance path (:mod:`adapt.wishart`)."""
+        stops = np.asarray(stops, dtype=np.int64)
+        times = self.update_times(stops)
+        t_, n = self.context.trials, self.context.elements
         w = np.empty((t_, len(stops), n), dtype=complex)
         w[:, times == 0] = self._initial[:, None, :]
         if distinct.size:
