@@ -55,6 +55,8 @@ DRAWS = ("samples", "covariance")
 _DRAWN_KEY = 2
 #: methods that need no training data at all
 _DATA_FREE = ("optimum", "conventional")
+#: complex values per (trials, spans, N, N) array of one trial group (about 4 MB)
+_GROUP_VALUES = 1 << 18
 _COVARIANCE_METHODS = "smi, eigenspace, lcmv, power_inversion, optimum, conventional"
 
 
@@ -127,16 +129,17 @@ def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
     if n < 1:
         raise ValueError(f"elements must be >= 1, got {elements}")
     shape = np.maximum(lengths[:, None] - np.arange(n)[None, :], 0).astype(float)   # (S, N)
-    low = np.tril_indices(n, -1)
+    # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)
+    si, ii, jj = np.nonzero((np.arange(n)[None, None, :] < np.arange(n)[None, :, None])
+                            & (np.arange(n)[None, None, :] < lengths[:, None, None]))
     gam = np.empty((t_, s_, n))
-    z = np.empty((t_, s_, len(low[0]), 2))
+    z = np.empty((t_, len(si), 2))
     for t, g in enumerate(gens):          # one call per trial and kind: independent streams
         g.standard_gamma(shape, out=gam[t])
         g.standard_normal(out=z[t])
     a = np.zeros((t_, s_, n, n), dtype=complex)
-    a[..., low[0], low[1]] = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
-    # for n_s < N only the first n_s columns are populated (rank n_s)
-    a *= (np.arange(n)[None, :] < lengths[:, None])[None, :, None, :]
+    z *= np.sqrt(0.5)
+    a[:, si, ii, jj] = z.view(np.complex128)[..., 0]
     idx = np.arange(n)
     a[..., idx, idx] = np.sqrt(gam)
     return a
@@ -175,10 +178,12 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
     """Weights (T, C, N) of every processor at ``checkpoints`` (sorted, >= 1) from drawn
     window sums, for the trials of ``batch`` (a :class:`~adapt.streams.TrialBatch`).
     The counterpart of :func:`adapt.processors.run_processors` for ``draw="covariance"``;
-    InputError when the scene or a processor does not allow it."""
+    InputError when the scene or a processor does not allow it. Trials are worked in
+    cache-sized groups (results do not depend on the grouping)."""
     cps = np.asarray(checkpoints, dtype=np.int64)
     procs = list(processors)
     check_covariance_draw(batch.scene, procs)
+    t_, n = batch.trials, batch.scene.elements
     seconds = [0.0] * len(procs)
     initial = []
     for i, p in enumerate(procs):
@@ -187,36 +192,50 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
         p.begin(context)
         initial.append(p.initial_weights(context))
         seconds[i] += time.perf_counter() - t0
-    t0 = time.perf_counter()
-    cuts = cut_points(procs, cps)
-    spans = total = None
-    if len(cuts) > 1:                     # spans [cuts[s], cuts[s+1]); none past the last
-        r = batch.covariance(training=True)
-        spans = span_sums(r, _trial_generators(batch.seed, batch.trial_indices),
-                          np.diff(cuts))
-        # running totals: total[s] = sum of spans 0..s-1 (growing windows read it directly)
-        total = np.concatenate([np.zeros_like(spans[:, :1]), np.cumsum(spans, axis=1)], axis=1)
-    shared = (time.perf_counter() - t0) / max(1, len(procs))
-    out = []
+    weights = [np.empty((t_, len(cps), n), dtype=complex) for _ in procs]
     for i, p in enumerate(procs):
-        t1 = time.perf_counter()
-        if isinstance(p, SampleCovarianceProcessor):
+        if not isinstance(p, SampleCovarianceProcessor):
+            t0 = time.perf_counter()
+            weights[i][:] = p.update(_Span(0, int(cps[-1])), cps)
+            seconds[i] += time.perf_counter() - t0
+    cov = [(i, p) for i, p in enumerate(procs) if isinstance(p, SampleCovarianceProcessor)]
+    cuts = cut_points(procs, cps)
+    if cov and len(cuts) > 1:                # spans [cuts[s], cuts[s+1]); none past the last
+        t0 = time.perf_counter()
+        r = batch.covariance(training=True)                         # (T, N, N)
+        gens = _trial_generators(batch.seed, batch.trial_indices)
+        lengths = np.diff(cuts)
+        plans = []
+        for i, p in cov:
             times = p.update_times(cps)
             distinct = np.unique(times[times > 0])
-            lo = p.window_start(distinct)
-            hi_i = np.searchsorted(cuts, distinct)       # spans before index hi_i end by u
-            lo_i = np.searchsorted(cuts, lo)
-            if np.all(lo_i == 0):
-                table = total[:, hi_i]
-            else:                                        # sliding: add the spans inside
-                mask = ((np.arange(len(cuts))[None, :] >= lo_i[:, None])
-                        & (np.arange(len(cuts))[None, :] < hi_i[:, None])).astype(float)
-                table = np.einsum("us,tsij->tuij", mask, spans)
-            w = p.weights_from_sums(cps, distinct, table)
-        else:
-            w = p.update(_Span(0, int(cps[-1])), cps)
-        seconds[i] += time.perf_counter() - t1 + shared
-        out.append(ProcessorResult(label=p.label, method=p.method, params=dict(p.params),
-                                   checkpoints=cps, weights=w, initial=initial[i],
-                                   seconds=seconds[i]))
-    return out
+            lo_i = np.searchsorted(cuts, p.window_start(distinct))
+            hi_i = np.searchsorted(cuts, distinct)     # spans before index hi_i end by u
+            s_i = np.arange(len(lengths))[None, :]
+            mask = ((s_i >= lo_i[:, None]) & (s_i < hi_i[:, None])).astype(float)
+            plans.append((i, p, distinct, hi_i, None if np.all(lo_i == 0) else mask))
+        growing = any(m is None for *_, m in plans)
+        shared = time.perf_counter() - t0
+        group = max(1, _GROUP_VALUES // (len(lengths) * n * n))
+        for lo in range(0, t_, group):
+            hi = min(t_, lo + group)
+            t0 = time.perf_counter()
+            spans = span_sums(r[lo:hi], gens[lo:hi], lengths)         # (G, S, N, N)
+            if growing:      # running totals: total[s] = sum of spans 0..s-1
+                total = np.zeros((hi - lo, len(lengths) + 1, n, n), dtype=complex)
+                np.cumsum(spans, axis=1, out=total[:, 1:])
+            shared += time.perf_counter() - t0
+            for i, p, distinct, hi_i, mask in plans:
+                t1 = time.perf_counter()
+                table = (total[:, hi_i] if mask is None          # sliding: spans inside
+                         else np.einsum("us,tsij->tuij", mask, spans))
+                weights[i][lo:hi] = p.weights_from_sums(cps, distinct, table, slice(lo, hi))
+                seconds[i] += time.perf_counter() - t1
+        for i, _ in cov:
+            seconds[i] += shared / len(cov)
+    elif cov:                                  # every checkpoint before the first update
+        for i, p in cov:
+            weights[i][:] = initial[i][:, None, :]
+    return [ProcessorResult(label=p.label, method=p.method, params=dict(p.params),
+                            checkpoints=cps, weights=weights[i], initial=initial[i],
+                            seconds=seconds[i]) for i, p in enumerate(procs)]

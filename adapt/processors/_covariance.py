@@ -44,7 +44,10 @@ def outer_sum(x: np.ndarray) -> np.ndarray:
 
 def hermitian_part(r: np.ndarray) -> np.ndarray:
     """``(R + R^H) / 2`` for a stack (..., N, N)."""
-    return 0.5 * (r + np.conj(np.swapaxes(r, -1, -2)))
+    out = np.conj(np.swapaxes(r, -1, -2))          # one temporary (same values as
+    out += r                                        # 0.5 * (r + r^H): the sum is
+    out *= 0.5                                      # commutative, the halving exact)
+    return out
 
 
 def _check_stops(start: int, size: int, stops: np.ndarray) -> np.ndarray:
@@ -349,19 +352,21 @@ class SampleCovarianceProcessor(Processor):
             self._held = (sums[:, -1], int(wanted[-1]))
         return self.weights_from_sums(stops, distinct, table)
 
-    def weights_from_sums(self, stops, distinct: np.ndarray, table: np.ndarray) -> np.ndarray:
+    def weights_from_sums(self, stops, distinct: np.ndarray, table: np.ndarray,
+                          rows: slice = slice(None)) -> np.ndarray:
         """Weights (T, len(stops), N) at checkpoints ``stops`` from the window sums
         ``table`` (T, len(distinct), N, N) at the distinct nonzero update times
-        ``distinct`` (sorted) behind them. Shared by the streaming path and the drawn
+        ``distinct`` (sorted) behind them; ``rows`` selects the trials of the batch the
+        table holds (all by default). Shared by the streaming path and the drawn
         covariance path (:mod:`adapt.wishart`)."""
         stops = np.asarray(stops, dtype=np.int64)
         times = self.update_times(stops)
-        t_, n = self.context.trials, self.context.elements
+        t_, n = table.shape[0], self.context.elements
         w = np.empty((t_, len(stops), n), dtype=complex)
-        w[:, times == 0] = self._initial[:, None, :]
+        w[:, times == 0] = self._initial[rows][:, None, :]
         if distinct.size:
             counts = self._sums.count(distinct)
-            r = hermitian_part(table / counts[None, :, None, None])
+            r = hermitian_part(table * (1.0 / counts)[None, :, None, None])
             mode, db = self.loading_settings()
             load = loading_level(r, counts, mode, db, self.context.noise_power)
             if load is not None:
