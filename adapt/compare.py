@@ -382,29 +382,34 @@ class Comparison:
 def compare(scene, processors: Sequence | None = None, trials: int | None = None,
             snapshots: int | None = None, seed: int | None = None, checkpoints=None,
             progress: Callable[[int], None] | None = None, *, target_db: float = 3.0,
-            fraction: float = 0.9, tail: int = TAIL) -> Comparison:
+            fraction: float = 0.9, tail: int = TAIL, chunk: int | None = None,
+            workers: int | None = None, scheduler: str | None = None, store=None,
+            on_chunk: Callable[[int, int], None] | None = None) -> Comparison:
     """Run and score ``processors`` on ``scene`` (a :class:`Scene` or a scene file).
 
     processors: specs or Processor objects (default: the scene's ``processors`` list;
     SpecError if there are none); trials, snapshots, seed: override the scene's;
     checkpoints: snapshot counts to score (list or "1,2,4" text; default geometric,
     4 per octave); progress: called with the number of trial-snapshots done after each
-    block (the total is ``trials * (snapshots + tail)``). Results do not depend on how
-    the work is split into blocks or trial chunks.
+    block (the total is ``trials * (snapshots + tail)``); chunk: trials per chunk
+    (default :func:`adapt.execute.chunk_size`); workers: run on that many local Dask
+    worker processes, or scheduler: on an existing Dask cluster; store: a folder that
+    keeps finished chunks, so an interrupted run resumes where it stopped (a callable
+    returning the folder is called once the work starts); on_chunk: called with (first
+    trial, count) after each finished chunk. Results are bit-identical whatever the
+    chunking, the number of workers or any interruption and resume.
     """
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
     cps = _checkpoints(checkpoints, used.snapshots)
     if tail < 0:
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
+    from .execute import check_cluster_options
+    check_cluster_options(workers, scheduler)
+    if chunk is not None:
+        chunk = _count(chunk, "chunk", MAX_TRIALS)
     t0 = time.perf_counter()
-    total = used.snapshots + tail
-    n = used.elements
-    chunk = max(1, min(used.trials, (1 << 16) // max(1, n)))
-    block = None
-    if progress is not None:
-        from .streams import default_block_size
-        block = min(default_block_size(chunk, n, total), max(64, -(-total // 20)))
-    ev = evaluate(used, procs, cps, chunk=chunk, tail=tail, block=block, progress=progress)
+    ev = evaluate(used, procs, cps, chunk=chunk, tail=tail, progress=progress,
+                  workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk)
     metrics = summarise(ev, target_db, fraction)
     seconds = time.perf_counter() - t0
     metrics["seconds"] = seconds
@@ -413,17 +418,20 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
 
 
 def write_compare_run(comparison: Comparison, out_root="runs",
-                      command_line: str | None = None, figures: bool = True) -> Path:
+                      command_line: str | None = None, figures: bool = True,
+                      folder=None) -> Path:
     """Write ``comparison`` to a NEW run folder under ``out_root`` and return its path.
 
     Contents: ``scene.yaml`` (the scene as run), ``metrics.json``, ``curves.csv``,
     the figures and ``report.html`` (when :mod:`adapt.report` provides them) and
     ``manifest.json`` (versions, seed, command line, sha256 of every file). Every file
-    is written atomically; an existing folder is never touched.
+    is written atomically; an existing folder is never touched, except ``folder``: the
+    run folder this comparison was computed into (resumable, see
+    :func:`adapt.execute.start_run_folder`), which is completed and sealed.
     """
     from . import runs
     if not isinstance(comparison, Comparison):
         raise ValueError(f"expected a Comparison, got {type(comparison).__name__}")
     return runs.write_run(comparison.scene, comparison.evaluation, comparison.metrics,
                           out_root=out_root, command_line=command_line, kind="compare",
-                          figures=figures, table=comparison.table())
+                          figures=figures, table=comparison.table(), folder=folder)

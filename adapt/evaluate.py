@@ -229,11 +229,18 @@ def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
              seed: int | None = None, chunk: int | None = None, tail: int = 256,
              block: int | None = None,
              progress: Callable[[int], None] | None = None,
-             draw: str = "samples") -> Evaluation:
+             draw: str = "samples", workers: int | None = None,
+             scheduler: str | None = None, store=None,
+             on_chunk: Callable[[int, int], None] | None = None) -> Evaluation:
     """Run and score ``processors`` over ``trials`` Monte Carlo trials of ``scene``.
 
     checkpoints: snapshot counts to score (default :func:`default_checkpoints`);
-    chunk: trials per batch (default all; results do not depend on it);
+    chunk: trials per batch (default :func:`adapt.execute.chunk_size`; results do not
+    depend on it); block: snapshots per block (default
+    :func:`adapt.execute.block_size`, fixed by the elements and stream length);
+    workers / scheduler: run the chunks on a Dask cluster; store: a folder keeping
+    finished chunks so an interrupted run can be resumed (see :mod:`adapt.execute`);
+    on_chunk: called with (first trial, count) after each finished chunk;
     tail: extra snapshots after the last checkpoint, used only to measure the final
     weights' output SINR from samples; progress: called with the number of
     trial-snapshots done after each block; draw: ``samples`` (default) or
@@ -247,8 +254,7 @@ def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
     if not processors:
         raise ValueError("no processors to evaluate")
     cps = default_checkpoints(k_) if checkpoints is None else checkpoints
-    parts = [evaluate_batch(TrialBatch(scene, trials=n, seed=s_, first_trial=f),
-                            processors, cps, k_, tail=tail, block=block, progress=progress,
-                            draw=draw)
-             for f, n in trial_chunks(t_, chunk)]
-    return merge(parts)
+    from .execute import run_chunks
+    return run_chunks(scene, processors, cps, trials=t_, snapshots=k_, seed=s_, tail=tail,
+                      chunk=chunk, block=block, workers=workers, scheduler=scheduler,
+                      store=store, progress=progress, on_chunk=on_chunk, draw=draw)

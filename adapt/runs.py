@@ -164,14 +164,19 @@ def write_report_files(folder, evaluation, metrics: dict, scene=None,
 
 
 def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: str | None = None,
-              kind: str = "compare", figures: bool = True, table: str | None = None) -> Path:
+              kind: str = "compare", figures: bool = True, table: str | None = None,
+              folder=None) -> Path:
     """Write a complete run folder (see the module docstring) and return its path.
 
     A new folder is created under ``out_root`` (timestamp + scene name, suffixed when
     taken); nothing outside it is touched. ``manifest.json`` is written last, so a
-    folder with a manifest is complete.
+    folder with a manifest is complete. With ``folder`` (a resumable run folder made by
+    :func:`adapt.execute.start_run_folder`), the outputs go there and its resume state
+    (``partial/``, ``resume.json``, ``INCOMPLETE``) is removed just before the manifest.
     """
-    folder = io.new_run_folder(out_root, scene.name)
+    if folder is None:
+        folder = io.new_run_folder(out_root, scene.name)
+    folder = Path(folder)
     write_scene_yaml(folder, scene)
     io.write_json(folder / "metrics.json", metrics)
     write_curves_csv(folder, metrics)
@@ -188,6 +193,8 @@ def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: s
             "command_line": command_line,
             "created": _dt.datetime.now().astimezone().isoformat(timespec="seconds"),
             "report": "report.html" in extra}
+    from .execute import seal
+    seal(folder)
     io.write_manifest(folder, info)
     return folder
 

@@ -492,7 +492,9 @@ def _number(value, name: str, low: float, high: float, low_open=False) -> float:
 
 def size(scene, processors: Sequence | None = None, snapshots=None, trials: int | None = None,
          seed: int | None = None, target_loss_db: float = 3.0, fraction: float = 0.9,
-         progress: Callable[[int], None] | None = None) -> Sizing:
+         progress: Callable[[int], None] | None = None, *, chunk: int | None = None,
+         workers: int | None = None, scheduler: str | None = None, store=None,
+         on_chunk: Callable[[int, int], None] | None = None) -> Sizing:
     """Size the training of ``processors`` on ``scene`` (a Scene or a scene file path).
 
     processors: specs or Processor objects (default :data:`DEFAULT_PROCESSORS`, unloaded
@@ -501,7 +503,9 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     geometric, 8 per octave, from N to the scene's snapshots when every processor is
     unloaded SMI, else from 1, since loaded methods may need fewer than N); trials, seed: override the scene's
     (at least 2 trials); target_loss_db: the loss the answer must meet; fraction: the
-    share of trials for the per-trial answer; progress: called with trial-snapshots done.
+    share of trials for the per-trial answer; progress: called with trial-snapshots done;
+    chunk, workers, scheduler, store, on_chunk: chunked execution on a Dask cluster and
+    resumable runs, as in :func:`adapt.compare.compare` (results never depend on them).
     InputError for bad values (exit code 2 on the command line).
     """
     from .compare import prepare_scene
@@ -529,18 +533,17 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
-    chunk = max(1, min(used.trials, (1 << 16) // max(1, n)))
-    block = None
-    if progress is not None:
-        from .streams import default_block_size
-        total = int(points[-1])
-        block = min(default_block_size(chunk, n, total), max(64, -(-total // 20)))
+    from .compare import MAX_TRIALS, _count
+    from .execute import check_cluster_options
+    check_cluster_options(workers, scheduler)
+    if chunk is not None:
+        chunk = _count(chunk, "chunk", MAX_TRIALS)
     with warnings.catch_warnings():
         # below N snapshots unloaded SMI uses the minimum-norm weight; the sweep shows it
         warnings.filterwarnings("ignore", message=".*sample covariance is singular",
                                 category=RuntimeWarning)
-        ev = evaluate(used, procs, points, chunk=chunk, tail=0, block=block,
-                      progress=progress)
+        ev = evaluate(used, procs, points, chunk=chunk, tail=0, progress=progress,
+                      workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk)
 
     facts = theory.scene_facts(used)
     opt = np.asarray(ev.optimum_sinr, dtype=float)
@@ -607,10 +610,13 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
 
 
 # --------------------------------------------------------------------------- run folder
-def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None = None) -> Path:
+def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None = None,
+                     folder=None) -> Path:
     """Write a NEW run folder under ``out_root``: ``scene.yaml`` (the scene as run),
     ``sizing.json``, ``sizing.png``, ``report.html`` and ``manifest.json`` (versions,
-    seed, command line, sha256 of every file); every file atomically."""
+    seed, command line, sha256 of every file); every file atomically. With ``folder``
+    (a resumable run folder, :func:`adapt.execute.start_run_folder`) the outputs go
+    there and its resume state is removed just before the manifest."""
     from . import io
     from .report.html import build_page
     from .report.sizing_figures import sizing_figure_png, sizing_sections
@@ -618,7 +624,10 @@ def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None =
     if not isinstance(sizing, Sizing):
         raise ValueError(f"expected a Sizing, got {type(sizing).__name__}")
     rec = sizing.record
-    folder = io.new_run_folder(out_root, f"size-{sizing.scene.name}")
+    from .execute import seal
+    if folder is None:
+        folder = io.new_run_folder(out_root, f"size-{sizing.scene.name}")
+    folder = Path(folder)
     io.atomic_write_text(folder / "scene.yaml",
                          "# The scene exactly as sized (defaults filled in; trials, seed and "
                          "the largest\n# snapshot count as run). Re-run with: adapt size "
@@ -629,6 +638,7 @@ def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None =
     page = build_page(f"Snapshot sizing: {rec['scene']}", sizing_sections(rec, png),
                       footer=f"adapt size, seed {rec['seed']}, {rec['trials']} trials")
     io.atomic_write_text(folder / "report.html", page)
+    seal(folder)
     io.write_manifest(folder, {"kind": "size", "scene": rec["scene"], "seed": rec["seed"],
                                "trials": rec["trials"], "command_line": command_line,
                                "seconds": sizing.seconds})
