@@ -60,7 +60,8 @@ from .streams import TrialBatch
 
 __all__ = ["Plan", "ChunkStore", "Terminated", "run_chunks", "run_chunk", "block_size",
            "chunk_size", "part_arrays", "part_evaluation", "check_cluster_options",
-           "cluster_client", "start_run_folder", "open_for_resume", "seal",
+           "cluster_client", "start_run_folder", "open_for_resume", "seal", "kept_chunks",
+           "remove_if_empty", "interrupted_message",
            "stop_on_signals", "exit_code", "CHUNK_WORK", "MAX_CHUNK", "RESUME_FILE",
            "MARKER", "PARTIAL", "INSTALL_HINT", "MAX_WORKERS"]
 

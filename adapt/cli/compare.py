@@ -12,6 +12,8 @@ import sys
 import warnings
 from pathlib import Path
 
+from . import _run
+
 ORDER = 20
 
 
@@ -23,7 +25,8 @@ def register(subparsers) -> None:
                     "and white-noise gain, print a summary table and write a new run folder "
                     "(scene.yaml, metrics.json, curves.csv, figures, report.html, "
                     "manifest.json). Simulation only.")
-    p.add_argument("scene", metavar="SCENE", help="scene YAML file")
+    p.add_argument("scene", metavar="SCENE", nargs="?",
+                   help="scene YAML file (not with --resume)")
     p.add_argument("--processor", "-p", dest="processors", action="append", metavar="SPEC",
                    help="processor spec, e.g. 'smi loading_db=10' (repeatable; default: the "
                         "scene's processors list)")
@@ -32,9 +35,10 @@ def register(subparsers) -> None:
     p.add_argument("--seed", type=str, metavar="S", help="root random seed (default: scene)")
     p.add_argument("--checkpoints", metavar="LIST",
                    help="snapshot counts to score, e.g. 1,2,4,8,16 (default: 4 per octave)")
-    p.add_argument("--out", default="runs", metavar="DIR",
+    p.add_argument("--out", default=None, metavar="DIR",
                    help="folder that receives the run folder (default: runs)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    _run.add_options(p)
     p.set_defaults(func=run)
 
 
@@ -57,35 +61,69 @@ def command_line(args) -> str:
         value = getattr(args, name)
         if value is not None:
             words += [f"--{name}", str(value)]
-    words += ["--out", str(args.out)]
+    words += ["--out", str(args.out or _run.DEFAULT_OUT)]
     return shlex.join(words)
 
 
 def run(args) -> int:
-    from ..compare import TAIL, compare, prepare_scene, write_compare_run
+    from ..compare import TAIL, _checkpoints, compare, prepare_scene, write_compare_run
     from ..errors import InputError
+    execution = _run.cluster_options(args)
+    if args.resume is not None:
+        return _resume(args, execution)
+    if args.scene is None:
+        raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
+                         path="SCENE")
     trials = _integer(args.trials, "--trials")
     snapshots = _integer(args.snapshots, "--snapshots")
     seed = _integer(args.seed, "--seed")
     try:
         used, _ = prepare_scene(args.scene, args.processors, trials, snapshots, seed,
                                 where="--processor")
+        cps = _checkpoints(args.checkpoints, used.snapshots)
     except InputError as exc:
-        if exc.path in ("trials", "snapshots", "seed"):
+        if exc.path in ("trials", "snapshots", "seed", "checkpoints"):
             raise exc.__class__(exc.message, path=f"--{exc.path}", value=exc.value,
                                 allowed=exc.allowed) from None
         raise
-    total = used.trials * (used.snapshots + TAIL)
+    settings = {"scene": used.resolved, "checkpoints": [int(c) for c in cps],
+                "chunk": execution["chunk"], "tail": TAIL}
+    folder = _run.Folder("compare", args.out, used.name, settings, command_line(args))
+    return _execute(args, folder, used, settings, execution, command_line(args))
+
+
+def _resume(args, execution) -> int:
+    from ..execute import open_for_resume
+    from ..scenefile import parse_scene
+    _run.refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor",
+                                   "trials": "--trials", "snapshots": "--snapshots",
+                                   "seed": "--seed", "checkpoints": "--checkpoints",
+                                   "out": "--out", "chunk": "--chunk"})
+    record = open_for_resume(args.resume, "compare")
+    settings = record["settings"]
+    used = parse_scene(settings["scene"])
+    execution = dict(execution, chunk=settings.get("chunk"))
+    folder = _run.Folder("compare", existing=args.resume)
+    return _execute(args, folder, used, settings, execution, record.get("command_line"))
+
+
+def _execute(args, folder, used, settings, execution, line) -> int:
+    from ..compare import compare, write_compare_run
+    from ..errors import InputError
+    tail = int(settings.get("tail", 256))
+    total = used.trials * (used.snapshots + tail)
     bar = None
     if not args.no_progress:
         from tqdm import tqdm
         bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
                    disable=None, leave=False, desc="compare")
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+
+    def work(store):
         try:
-            result = compare(used, args.processors, checkpoints=args.checkpoints,
-                             progress=bar.update if bar is not None else None)
+            return compare(used, None, checkpoints=settings["checkpoints"], tail=tail,
+                           progress=bar.update if bar is not None else None,
+                           chunk=execution["chunk"], workers=execution["workers"],
+                           scheduler=execution["scheduler"], store=store)
         except InputError as exc:
             if exc.path == "checkpoints":
                 raise exc.__class__(exc.message, path="--checkpoints", value=exc.value,
@@ -94,13 +132,21 @@ def run(args) -> int:
         finally:
             if bar is not None:
                 bar.close()
-        folder = write_compare_run(result, args.out, command_line=command_line(args))
+
+    def finish(result, path):
+        return write_compare_run(result, command_line=line, folder=path)
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result, written, code = _run.execute(folder, work, finish)
     # the library's own warnings (e.g. a singular sample covariance), once each, one line
     for text in dict.fromkeys(str(w.message) for w in caught
                               if issubclass(w.category, UserWarning)
                               or "adapt" in Path(w.filename).parts):
         print(f"adapt: warning: {text}", file=sys.stderr)
+    if code is not None:
+        return code
     print(result.table())
     print()
-    print(f"run folder: {folder}")
+    print(f"run folder: {written}")
     return 0

@@ -10,6 +10,8 @@ from __future__ import annotations
 import shlex
 import sys
 
+from . import _run
+
 ORDER = 30
 
 #: library argument names -> command-line options, for error messages
@@ -30,7 +32,8 @@ def register(subparsers) -> None:
                     "the mean (bootstrap range) and for a share of trials (Clopper-Pearson "
                     "range). Writes a new run folder (scene.yaml, sizing.json, sizing.png, "
                     "report.html, manifest.json). Simulation only.")
-    p.add_argument("scene", metavar="SCENE", help="scene YAML file")
+    p.add_argument("scene", metavar="SCENE", nargs="?",
+                   help="scene YAML file (not with --resume)")
     p.add_argument("--processor", "-p", dest="processors", action="append", metavar="SPEC",
                    help="processor spec, e.g. 'smi loading_db=10' (repeatable; default: "
                         "'smi' and 'smi loading_db=10')")
@@ -41,13 +44,14 @@ def register(subparsers) -> None:
                         "is sized) to the scene's snapshots")
     p.add_argument("--trials", metavar="T", help="Monte Carlo trials (default: scene; >= 2)")
     p.add_argument("--seed", metavar="S", help="root random seed (default: scene)")
-    p.add_argument("--target-loss", dest="target_loss", default="3", metavar="DB",
+    p.add_argument("--target-loss", dest="target_loss", default=None, metavar="DB",
                    help="loss against the optimum to meet, dB (default 3)")
-    p.add_argument("--fraction", default="0.9", metavar="F",
+    p.add_argument("--fraction", default=None, metavar="F",
                    help="share of trials that must meet the target (default 0.9)")
-    p.add_argument("--out", default="runs", metavar="DIR",
+    p.add_argument("--out", default=None, metavar="DIR",
                    help="folder that receives the run folder (default: runs)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
+    _run.add_options(p)
     p.set_defaults(func=run)
 
 
@@ -78,8 +82,8 @@ def command_line(args) -> str:
         value = getattr(args, name)
         if value is not None:
             words += [f"--{name}", str(value)]
-    words += ["--target-loss", str(args.target_loss), "--fraction", str(args.fraction),
-              "--out", str(args.out)]
+    words += ["--target-loss", str(args.target_loss or "3"),
+              "--fraction", str(args.fraction or "0.9"), "--out", str(args.out or _run.DEFAULT_OUT)]
     return shlex.join(words)
 
 
@@ -98,32 +102,77 @@ def _relocated(exc):
 def run(args) -> int:
     from ..errors import InputError
     from ..scenefile import load_scene
-    from ..sizing import size, sweep_points, write_sizing_run
-    trials = _integer(args.trials, "--trials")
-    seed = _integer(args.seed, "--seed")
-    target = _real(args.target_loss, "--target-loss")
-    fraction = _real(args.fraction, "--fraction")
+    execution = _run.cluster_options(args)
+    if args.resume is not None:
+        return _resume(args, execution)
+    if args.scene is None:
+        raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
+                         path="SCENE")
+    settings = {"processors": args.processors, "snapshots": args.snapshots,
+                "trials": _integer(args.trials, "--trials"),
+                "seed": _integer(args.seed, "--seed"),
+                "target_loss_db": _real(args.target_loss or "3", "--target-loss"),
+                "fraction": _real(args.fraction or "0.9", "--fraction"),
+                "chunk": execution["chunk"]}
     scene = load_scene(args.scene)
+    settings["scene"] = scene.resolved
+    folder = _run.Folder("size", args.out, f"size-{scene.name}", settings, command_line(args))
+    return _execute(args, folder, scene, settings, execution, command_line(args))
+
+
+def _resume(args, execution) -> int:
+    from ..execute import open_for_resume
+    from ..scenefile import parse_scene
+    _run.refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor",
+                                   "snapshots": "--snapshots", "trials": "--trials",
+                                   "seed": "--seed", "target_loss": "--target-loss",
+                                   "fraction": "--fraction", "out": "--out",
+                                   "chunk": "--chunk"})
+    record = open_for_resume(args.resume, "size")
+    settings = record["settings"]
+    scene = parse_scene(settings["scene"])
+    execution = dict(execution, chunk=settings.get("chunk"))
+    folder = _run.Folder("size", existing=args.resume)
+    return _execute(args, folder, scene, settings, execution, record.get("command_line"))
+
+
+def _execute(args, folder, scene, settings, execution, line) -> int:
+    from ..errors import InputError
+    from ..sizing import size, sweep_points, write_sizing_run
     bar = None
-    try:
-        last = (scene.snapshots if args.snapshots is None else
-                int(sweep_points(args.snapshots, scene.elements, scene.snapshots,
-                                 where="--snapshots")[-1]))
-        if not args.no_progress:
-            from tqdm import tqdm
-            total = (scene.trials if trials is None else max(trials, 0)) * last
-            bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
-                       disable=None, leave=False, desc="size")
-        result = size(scene, args.processors, snapshots=args.snapshots,
-                      trials=trials, seed=seed, target_loss_db=target, fraction=fraction,
-                      progress=bar.update if bar is not None else None)
-    except InputError as exc:
-        raise _relocated(exc) from None
-    finally:
-        if bar is not None:
-            bar.close()
-    folder = write_sizing_run(result, args.out, command_line=command_line(args))
+
+    def work(store):
+        nonlocal bar
+        try:
+            if not args.no_progress:
+                from tqdm import tqdm
+                last = (scene.snapshots if settings["snapshots"] is None else
+                        int(sweep_points(settings["snapshots"], scene.elements,
+                                         scene.snapshots, where="--snapshots")[-1]))
+                trials = settings["trials"]
+                total = (scene.trials if trials is None else max(trials, 0)) * last
+                bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True,
+                           file=sys.stderr, disable=None, leave=False, desc="size")
+            return size(scene, settings["processors"], snapshots=settings["snapshots"],
+                        trials=settings["trials"], seed=settings["seed"],
+                        target_loss_db=settings["target_loss_db"],
+                        fraction=settings["fraction"],
+                        progress=bar.update if bar is not None else None,
+                        chunk=execution["chunk"], workers=execution["workers"],
+                        scheduler=execution["scheduler"], store=store)
+        except InputError as exc:
+            raise _relocated(exc) from None
+        finally:
+            if bar is not None:
+                bar.close()
+
+    def finish(result, path):
+        return write_sizing_run(result, command_line=line, folder=path)
+
+    result, written, code = _run.execute(folder, work, finish)
+    if code is not None:
+        return code
     print(result.table())
     print()
-    print(f"run folder: {folder}")
+    print(f"run folder: {written}")
     return 0

@@ -1,0 +1,103 @@
+"""Shared command-line plumbing for chunked, resumable runs (``compare``, ``size``).
+
+Options ``--workers N`` / ``--scheduler ADDRESS`` (Dask), ``--chunk TRIALS`` and
+``--resume RUNDIR``; :func:`execute` runs the work with SIGTERM turned into an
+interruption, and on Ctrl-C / SIGTERM prints what was kept and how to resume, returning
+exit code 130 (SIGINT) or 143 (SIGTERM). The logic lives in :mod:`adapt.execute`.
+"""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+from ..errors import InputError
+
+DEFAULT_OUT = "runs"
+
+
+def add_options(p, resumable: bool = True) -> None:
+    g = p.add_argument_group("execution (results never depend on these)")
+    g.add_argument("--workers", metavar="N",
+                   help="run the trials on N local Dask worker processes (loopback only; "
+                        "needs pip install 'adapt[cluster]')")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the trials on an existing Dask cluster, e.g. tcp://host:8786 "
+                        "(started with dask-scheduler and dask-worker)")
+    g.add_argument("--chunk", metavar="TRIALS",
+                   help="trials per chunk (default: about 1-2 s of work, at most 1000)")
+    if resumable:
+        g.add_argument("--resume", metavar="RUNDIR",
+                       help="finish an interrupted run folder (all settings come from it)")
+
+
+def _whole(text, option: str):
+    if text is None:
+        return None
+    try:
+        return int(str(text).strip().replace("_", ""))
+    except ValueError:
+        raise InputError("expected a whole number", path=option, value=text) from None
+
+
+def cluster_options(args) -> dict:
+    """``{"workers": .., "scheduler": .., "chunk": ..}`` checked (InputError)."""
+    from ..execute import check_cluster_options
+    workers = _whole(args.workers, "--workers")
+    scheduler = args.scheduler
+    check_cluster_options(workers, scheduler)
+    chunk = _whole(args.chunk, "--chunk")
+    if chunk is not None and chunk < 1:
+        raise InputError("a chunk must hold at least one trial", path="--chunk", value=chunk,
+                         allowed="an integer >= 1")
+    return {"workers": workers, "scheduler": scheduler, "chunk": chunk}
+
+
+def refuse_with_resume(args, options: dict) -> None:
+    """InputError if any run setting is given beside ``--resume`` (they come from the
+    folder). ``options``: attribute name -> option text; unset means None or []."""
+    given = [opt for name, opt in options.items() if getattr(args, name, None) not in (None, [])]
+    if given:
+        raise InputError("--resume takes every setting from the run folder; do not give "
+                         + ", ".join(given), path="--resume", value=args.resume,
+                         allowed="--resume RUNDIR alone, optionally with --workers, "
+                                 "--scheduler or --no-progress")
+
+
+class Folder:
+    """The run folder of this command: created when the work starts (fresh run) or the
+    folder being resumed. Calling it returns the chunk store path."""
+
+    def __init__(self, kind: str, out=None, name=None, settings=None, command_line=None,
+                 existing=None):
+        self.kind, self.out, self.name = kind, out, name
+        self.settings, self.command_line = settings, command_line
+        self.path = Path(existing) if existing is not None else None
+        self.new = existing is None
+
+    def __call__(self) -> Path:
+        from ..execute import PARTIAL, start_run_folder
+        if self.path is None:
+            self.path = start_run_folder(self.out or DEFAULT_OUT, self.name, self.kind,
+                                         self.settings, self.command_line)
+        return self.path / PARTIAL
+
+
+def execute(folder: Folder, work, finish):
+    """Run ``work(store)`` then ``finish(result, folder_path)``; returns ``(result,
+    written folder, None)`` or ``(None, None, exit code)`` when interrupted."""
+    from ..execute import exit_code, interrupted_message, remove_if_empty, stop_on_signals
+    with stop_on_signals():
+        try:
+            result = work(folder)
+            written = finish(result, folder.path)
+            return result, written, None
+        except KeyboardInterrupt as exc:
+            if folder.path is None:
+                print("adapt: interrupted before any work was kept", file=sys.stderr)
+            else:
+                print(interrupted_message(folder.path, folder.kind, exc), file=sys.stderr)
+            return None, None, exit_code(exc)
+        except BaseException:
+            if folder.path is not None and folder.new:
+                remove_if_empty(folder.path)
+            raise
