@@ -33,6 +33,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import SpecError
+from . import _kernels
 from .base import Context, Parameter
 from ._recursive import (AutoStep, extent_over_moments, local_marks, lms_pass,
                          moments_of, per_snapshot, starting_weights, step_from_bound)
@@ -82,5 +83,8 @@ class LeastMeanSquares(AutoStep):
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
         marks = local_marks(block, stops)
+        if _kernels.compiled():
+            return _kernels.lms_block(self._wc, block.data, marks, gain=self._steps,
+                                      desired=block.reference)
         return lms_pass(self._wc, per_snapshot(block.data), marks, self._steps,
                         desired=per_snapshot(block.reference))

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import _kernels
 from .base import Context, Parameter, Processor
 from ._recursive import local_marks, lms_pass, per_snapshot, starting_weights
 from .lms import INITIAL_HELP
@@ -58,6 +59,10 @@ class NormalisedLms(Processor):
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
         marks = local_marks(block, stops)
+        if _kernels.compiled():
+            return _kernels.lms_block(self._wc, block.data, marks, gain=None,
+                                      desired=block.reference, step=self.params["step"],
+                                      eps=self.params["eps"])
         x = per_snapshot(block.data)
         gain = normalised_gain(x, self.params["step"], self.params["eps"])
         return lms_pass(self._wc, x, marks, gain, desired=per_snapshot(block.reference))

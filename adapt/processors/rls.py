@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from . import _kernels
 from .base import Context, Parameter, Processor
 from ._recursive import local_marks, per_snapshot, starting_weights
 from .lms import INITIAL_HELP
@@ -67,6 +68,10 @@ class RecursiveLeastSquares(Processor):
         self._wc = np.conj(self.initial_weights(context))
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
+        if _kernels.compiled():
+            return _kernels.rls_block(self._p, self._wc, block.data, block.reference,
+                                      float(self.params["forgetting"]), block.start,
+                                      local_marks(block, stops))
         marks = [int(j) for j in local_marks(block, stops)]
         x = per_snapshot(block.data)                          # (B, T, N)
         d = per_snapshot(block.reference)                     # (B, T)
