@@ -313,15 +313,57 @@ def default_reference_checkpoints(snapshots: int, elements: int) -> np.ndarray:
     return np.unique(np.array(c + [k], dtype=np.int64))
 
 
+def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapshots: int,
+                  checkpoints, with_ref: bool) -> dict:
+    """Worker entry point of :func:`record` on a Dask cluster: the expected weights and
+    outputs of cases ``first .. first + count - 1``, rebuilt from plain data (the
+    resolved scene mapping and the processor spec). Each case draws from its own seed,
+    so the arrays equal the matching rows of a one-batch recording bit for bit."""
+    from .scenefile import parse_scene
+    sc = parse_scene(scene_mapping)
+    proc = parse_spec(spec, "processor")
+    batch = TrialBatch(sc, trials=int(count), first_trial=int(first))
+    blk = batch.samples(int(snapshots))
+    samples = np.ascontiguousarray(blk.data if with_ref else blk.training, dtype=complex)
+    reference = np.ascontiguousarray(blk.reference, dtype=complex) if with_ref else None
+    look_dir = (float(sc.look_azimuth), float(sc.look_elevation))
+    ctx = _candidate_context(batch.look, sc.array.positions, int(count), 1.0, with_ref, look_dir)
+    res = _run_on_stream(proc, samples, reference, ctx, np.asarray(checkpoints, dtype=np.int64),
+                         outputs=True)
+    return {"weights": res.weights, "outputs": res.outputs}
+
+
+def _record_on_cluster(sc: Scene, proc: Processor, trials: int, snapshots: int, cps,
+                       with_ref: bool, workers, scheduler) -> tuple[np.ndarray, np.ndarray]:
+    from .execute import _scene_mapping, _shippable_specs, cluster_client
+    from .evaluate import trial_chunks
+    spec = _shippable_specs([proc])[0]
+    mapping = _scene_mapping(sc)
+    share = workers if workers is not None else 4
+    chunks = trial_chunks(trials, max(1, -(-trials // (4 * share))))
+    with cluster_client(workers, scheduler) as client:
+        futures = [client.submit(_record_chunk, mapping, spec, f, c, snapshots,
+                                 [int(x) for x in cps], with_ref, pure=False) for f, c in chunks]
+        try:
+            parts = client.gather(futures)
+        finally:
+            client.cancel(futures)
+    return (np.concatenate([p["weights"] for p in parts], axis=0),
+            np.concatenate([p["outputs"] for p in parts], axis=0))
+
+
 def record(scene, processor, trials, snapshots, checkpoints, out_dir,
-           tolerances=None) -> Path:
+           tolerances=None, *, workers: int | None = None,
+           scheduler: str | None = None) -> Path:
     """Record a reference set of ``processor`` on ``trials`` cases of ``scene``.
 
     scene: a :class:`Scene` or a scene file path; processor: a Processor or a spec
     (``"smi loading_db=10"``); trials: number of cases (None: 3); snapshots: K (None: the
     scene's); checkpoints: snapshot counts (None: N, 2N, 4N, ... and K); out_dir:
     a new or empty folder (anything else is refused, never overwritten); tolerances:
-    overrides of :data:`DEFAULT_TOLERANCES` (mapping or ``NAME=VALUE`` strings).
+    overrides of :data:`DEFAULT_TOLERANCES` (mapping or ``NAME=VALUE`` strings);
+    workers / scheduler: compute the expected weights on a Dask cluster (local worker
+    processes or an existing scheduler; the arrays are identical to a local recording).
 
     The set is built in a temporary sibling folder and renamed into place when complete.
     The expected weights are produced by the processor fed the stored samples alone
@@ -347,6 +389,8 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
                else normalised_checkpoints(checkpoints, k))
     except ValueError as exc:
         raise InputError(str(exc), path="checkpoints", value=checkpoints) from None
+    from .execute import check_cluster_options
+    check_cluster_options(workers, scheduler)
     out = _prepare_out_dir(out_dir)
 
     batch = TrialBatch(sc, trials=t_)
@@ -361,13 +405,17 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     look_dir = (float(sc.look_azimuth), float(sc.look_elevation))
     ctx = _candidate_context(batch.look, sc.array.positions, t_, 1.0, with_ref, look_dir)
     try:
-        result = _run_on_stream(proc, samples, reference, ctx, cps, outputs=True)
+        if workers is None and scheduler is None:
+            result = _run_on_stream(proc, samples, reference, ctx, cps, outputs=True)
+            weights, outputs = result.weights, result.outputs
+        else:
+            weights, outputs = _record_on_cluster(sc, proc, t_, k, cps, with_ref, workers,
+                                                  scheduler)
     except (SpecError, ValueError) as exc:
         raise SpecError(f"'{_short_spec(proc)}' cannot be recorded as a reference: it needs what "
                         f"a candidate implementation is not given ({exc}); give explicit "
                         "settings (e.g. a numeric step) or choose an adaptive method",
                         path="processor", value=_short_spec(proc)) from None
-    weights, outputs = result.weights, result.outputs
     if not (np.all(np.isfinite(weights)) and np.all(np.isfinite(outputs))):
         raise SpecError(f"'{_short_spec(proc)}' produced non-finite weights on this scene; nothing "
                         "written", path="processor", value=_short_spec(proc))

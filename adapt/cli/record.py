@@ -37,6 +37,11 @@ def register(subparsers) -> None:
                         "weight_error_db (-40), output_evm_db (-40), in dB")
     p.add_argument("--out", required=True, metavar="DIR",
                    help="new (or empty) folder for the reference set; never overwritten")
+    p.add_argument("--workers", metavar="N",
+                   help="compute the cases on N local Dask worker processes (needs pip "
+                        "install 'adapt[cluster]'); the set is identical")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="compute the cases on an existing Dask cluster, e.g. tcp://host:8786")
     p.set_defaults(func=run)
 
 
@@ -59,8 +64,10 @@ def run(args) -> int:
     import numpy as np
 
     from ..reference import load_reference, record
+    from ._run import _whole
     out = record(args.scene, args.processor, args.trials, args.snapshots,
-                 parse_checkpoints(args.checkpoints), args.out, tolerances=args.tolerance)
+                 parse_checkpoints(args.checkpoints), args.out, tolerances=args.tolerance,
+                 workers=_whole(args.workers, "--workers"), scheduler=args.scheduler)
     ref = load_reference(out)
     info = ref.info
     last = np.array([c.sinr_db[-1] for c in ref.cases])
