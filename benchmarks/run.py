@@ -1,0 +1,410 @@
+"""Speed benchmark of adapt: the product beside plain reference code, in one run.
+
+    python benchmarks/run.py            # full sizes (about 10 minutes on 2 cores)
+    python benchmarks/run.py --quick    # scaled-down smoke check (well under a minute)
+
+Workloads (16-element half-wavelength line, six 40 dB noise-like jammers, wanted source
+broadside at 0 dB, training on interference plus noise):
+
+* W1 sizing: unloaded and 10 dB-loaded SMI, checkpoints 16..1024 snapshots (powers of
+  two), 2000 trials. Product: ``evaluate(..., draw="covariance")`` (the drawn complex-
+  Wishart window covariances; also timed: ``draw="samples"``). Reference: the plain
+  per-trial loop (draw the samples, form each window's sample covariance, solve, score).
+* W2 recursive: LMS, NLMS and RLS, 2000 trials x 4096 snapshots. Product: ``evaluate``
+  with each processor alone and all three on one stream. Reference: a per-trial,
+  per-snapshot Python loop, timed on a few trials and scaled linearly to 2000 (the
+  full reference would take hours).
+* W3 long stream: one trial of 10,000,000 snapshots in blocks, sliding-window SMI and
+  NLMS: snapshots per second, and peak memory (tracemalloc peak of traced allocations,
+  numpy's included, during the run; the process's maxrss is reported beside it).
+* Floors: the unavoidable work with the same libraries in the same run. W1: drawing the
+  samples' random numbers, one batched covariance accumulation and the batched solves.
+  W2: drawing the samples' random numbers (per-trial generators, as the product).
+
+Targets (PASS/MISS printed): W1 >= 20x its reference; W2 >= 20x its reference and within
+2x of its floor; W3 peak memory < 300 MB and NLMS >= 1,000,000 snapshots/s.
+
+Figures are printed and written as JSON (``--json``, default ``runs/benchmark.json``).
+On machines that set OPENBLAS_CORETYPE / OPENBLAS_L2_SIZE (for old OpenBLAS builds), a
+current numpy runs slower; to benchmark, unset both together for this command only:
+``env -u OPENBLAS_CORETYPE -u OPENBLAS_L2_SIZE python benchmarks/run.py``. The BLAS
+kernel in use is reported (threadpoolctl when installed).
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+import tracemalloc
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+N = 16
+JAMMER_AZIMUTHS = (-60.0, -35.0, -15.0, 20.0, 40.0, 65.0)
+JAMMER_DB = 40.0
+SEED = 20240
+FULL = {"w1_trials": 2000, "w2_trials": 2000, "w2_snapshots": 4096, "w2_reference_trials": 4,
+        "w3_snapshots": 10_000_000, "w3_block": 16384}
+QUICK = {"w1_trials": 200, "w2_trials": 100, "w2_snapshots": 1024, "w2_reference_trials": 2,
+         "w3_snapshots": 500_000, "w3_block": 16384}
+W1_CHECKPOINTS = tuple(2 ** k for k in range(4, 11))          # 16 .. 1024
+
+
+# ----------------------------------------------------------------------------- scene
+def scene(trials: int, snapshots: int):
+    """The benchmark scene as an adapt Scene."""
+    from adapt.scenefile import parse_scene
+    sources = [{"name": "wanted", "role": "desired", "azimuth": 0, "power_db": 0,
+                "waveform": "gaussian"}]
+    sources += [{"name": f"jam-{i + 1}", "role": "interferer", "azimuth": az,
+                 "power_db": JAMMER_DB, "waveform": "gaussian"}
+                for i, az in enumerate(JAMMER_AZIMUTHS)]
+    return parse_scene({"name": "benchmark", "array": {"layout": "line", "elements": N,
+                                                       "spacing": 0.5},
+                        "sources": sources, "snapshots": snapshots, "trials": trials,
+                        "seed": SEED, "training": "interference"})
+
+
+def _plain_truth():
+    """Steering vectors and covariance of the scene, written out by hand (the reference
+    code does not use adapt): a_n = exp(j 2 pi 0.5 n sin(az))."""
+    n = np.arange(N)
+    jam = np.exp(2j * np.pi * 0.5 * n[None, :] * np.sin(np.deg2rad(JAMMER_AZIMUTHS))[:, None])
+    look = np.ones(N, dtype=complex)
+    p = 10 ** (JAMMER_DB / 10)
+    r_in = np.eye(N) + p * jam.T @ jam.conj()
+    return jam, look, p, r_in
+
+
+def _timed(fn, *args, **kwargs):
+    t0 = time.perf_counter()
+    out = fn(*args, **kwargs)
+    return time.perf_counter() - t0, out
+
+
+# ----------------------------------------------------------------------------- W1
+def w1_product(trials: int, draw: str = "covariance") -> dict:
+    """Unloaded and 10 dB-loaded SMI through adapt's evaluate; mean rho per checkpoint."""
+    import adapt.scores  # noqa: F401  (import order: scores before evaluate)
+    from adapt.evaluate import evaluate
+    from adapt.processors import parse_specs
+    sc = scene(trials, W1_CHECKPOINTS[-1])
+    procs = parse_specs(["smi", "smi loading_db=10"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        seconds, ev = _timed(evaluate, sc, procs, list(W1_CHECKPOINTS), tail=0, draw=draw)
+    return {"seconds": seconds,
+            "mean_rho": {p.label: p.normalised.mean(axis=0).tolist() for p in ev.processors}}
+
+
+def w1_reference(trials: int) -> dict:
+    """The straightforward per-trial loop: draw the samples, form each window's sample
+    covariance, solve, score the normalised SINR against the true covariance."""
+    jam, look, p, r_in = _plain_truth()
+    opt = np.real(look.conj() @ np.linalg.solve(r_in, look))
+    k_max = W1_CHECKPOINTS[-1]
+    rho = np.empty((trials, 2, len(W1_CHECKPOINTS)))
+    t0 = time.perf_counter()
+    for t in range(trials):
+        rng = np.random.default_rng([SEED, t])
+        noise = (rng.standard_normal((k_max, N)) + 1j * rng.standard_normal((k_max, N))) * np.sqrt(0.5)
+        s = (rng.standard_normal((k_max, len(jam))) + 1j * rng.standard_normal((k_max, len(jam))))
+        x = noise + (s * np.sqrt(p / 2)) @ jam
+        for c, k in enumerate(W1_CHECKPOINTS):
+            r = x[:k].T @ x[:k].conj() / k
+            for j, load in enumerate((0.0, 10.0)):
+                w = np.linalg.solve(r + load * np.eye(N), look)
+                sinr = np.abs(w.conj() @ look) ** 2 / np.real(w.conj() @ r_in @ w)
+                rho[t, j, c] = sinr / opt
+    seconds = time.perf_counter() - t0
+    return {"seconds": seconds, "mean_rho": {"smi": rho[:, 0].mean(0).tolist(),
+                                             "smi loading_db=10": rho[:, 1].mean(0).tolist()}}
+
+
+def w1_floor(trials: int, group: int = 128) -> dict:
+    """Unavoidable work of a sample-based W1 run: per-trial generator draws of the
+    samples' random numbers, one batched covariance accumulation (window sums at every
+    checkpoint), the batched solves (two loadings x seven checkpoints per trial)."""
+    jam, look, p, _ = _plain_truth()
+    k_max = W1_CHECKPOINTS[-1]
+    cps = np.array(W1_CHECKPOINTS)
+    t0 = time.perf_counter()
+    for lo in range(0, trials, group):
+        g_ = min(group, trials - lo)
+        z = np.empty((g_, k_max, N + len(jam), 2))
+        for t in range(g_):
+            np.random.Generator(np.random.PCG64([SEED, lo + t])).standard_normal(out=z[t])
+        zc = z.view(np.complex128)[..., 0]
+        x = zc[..., :N] + zc[..., N:] @ (np.sqrt(p) * jam)
+        edges = np.concatenate([[0], cps])
+        parts = np.stack([np.swapaxes(x[:, a:b], 1, 2) @ x[:, a:b].conj()
+                          for a, b in zip(edges[:-1], edges[1:])], axis=1)
+        r = np.cumsum(parts, axis=1) / cps[None, :, None, None]
+        r = np.concatenate([r, r + 10 * np.eye(N)], axis=1)
+        np.linalg.solve(r, np.broadcast_to(look, r.shape[:-1])[..., None])
+    return {"seconds": time.perf_counter() - t0}
+
+
+# ----------------------------------------------------------------------------- W2
+W2_SPECS = ("lms", "nlms", "rls")
+
+
+def w2_product(trials: int, snapshots: int, specs=W2_SPECS) -> dict:
+    """The recursive processors through adapt's evaluate (one stream for all given)."""
+    import adapt.scores  # noqa: F401
+    from adapt.evaluate import evaluate
+    from adapt.processors import parse_specs
+    sc = scene(trials, snapshots)
+    cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
+    seconds, ev = _timed(evaluate, sc, parse_specs(list(specs)), cps, tail=0)
+    return {"seconds": seconds,
+            "processor_seconds": {p.label: p.seconds for p in ev.processors},
+            "final_mean_rho": {p.label: float(np.nanmean(p.normalised[:, -1]))
+                               for p in ev.processors}}
+
+
+def w2_reference(trials: int, snapshots: int, spec: str) -> dict:
+    """Per-trial, per-snapshot Python loop with numpy vectors (LMS step 0.1/tr(R_xx)
+    as adapt's automatic step, NLMS step 0.05, RLS lambda 1 and delta 1)."""
+    jam, look, p, r_in = _plain_truth()
+    r_xx = r_in + np.outer(look, look.conj())
+    mu = 0.1 / np.real(np.trace(r_xx))
+    t0 = time.perf_counter()
+    final = []
+    for t in range(trials):
+        rng = np.random.default_rng([SEED, 1, t])
+        z = (rng.standard_normal((snapshots, N + len(jam) + 1))
+             + 1j * rng.standard_normal((snapshots, N + len(jam) + 1))) * np.sqrt(0.5)
+        d = z[:, -1]
+        x = z[:, :N] + (z[:, N:-1] * np.sqrt(p)) @ jam + d[:, None] * look
+        w = look / N
+        pm = np.eye(N, dtype=complex)
+        for k in range(snapshots):
+            u = x[k]
+            e = d[k] - np.vdot(w, u)
+            if spec == "lms":
+                w = w + mu * u * np.conj(e)
+            elif spec == "nlms":
+                w = w + 0.05 / (1e-6 + np.vdot(u, u).real) * u * np.conj(e)
+            else:
+                pi = pm @ u
+                den = 1.0 + np.vdot(u, pi).real
+                w = w + pi / den * np.conj(e)
+                pm = pm - np.outer(pi, pi.conj()) / den
+        final.append(w)
+    return {"seconds": time.perf_counter() - t0, "trials": trials}
+
+
+def w2_floor(trials: int, snapshots: int) -> dict:
+    """Drawing the samples' random numbers with per-trial generators: noise (K, N) and
+    seven source waveforms (K,) per trial, complex, into reused buffers."""
+    sources = len(JAMMER_AZIMUTHS) + 1
+    z = np.empty((snapshots, N, 2))
+    s = np.empty((snapshots, 2))
+    t0 = time.perf_counter()
+    for t in range(trials):
+        np.random.Generator(np.random.PCG64([SEED, t, 0])).standard_normal(out=z)
+        for j in range(sources):
+            np.random.Generator(np.random.PCG64([SEED, t, j + 1])).standard_normal(out=s)
+    return {"seconds": time.perf_counter() - t0}
+
+
+def kernel_compile_seconds() -> float | None:
+    """Seconds to compile the numba kernels from scratch (a fresh cache folder, in a
+    subprocess); None when the kernels are off or numba is absent."""
+    code = ("from adapt.processors import _kernels; import sys; "
+            "sys.stdout.write(repr(_kernels.warm_up() if _kernels.compiled() else -1.0))")
+    with tempfile.TemporaryDirectory() as cache:
+        env = dict(os.environ, NUMBA_CACHE_DIR=cache)
+        out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                             text=True, check=True)
+    value = float(out.stdout.strip())
+    return None if value < 0 else value
+
+
+# ----------------------------------------------------------------------------- W3
+def w3_run(snapshots: int, specs, block: int, trace: bool = False) -> dict:
+    """One trial of ``snapshots`` snapshots through evaluate in blocks of ``block``."""
+    import adapt.scores  # noqa: F401
+    from adapt.evaluate import evaluate
+    from adapt.processors import parse_specs
+    sc = scene(1, snapshots)
+    cps = sorted({int(k) for k in np.linspace(0, snapshots, 11)[1:].round()})
+    rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    if trace:
+        tracemalloc.start()
+    seconds, ev = _timed(evaluate, sc, parse_specs(list(specs)), cps, tail=0, block=block)
+    peak = None
+    if trace:
+        peak = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+    rss1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return {"seconds": seconds, "snapshots_per_second": snapshots / seconds,
+            "tracemalloc_peak_mb": None if peak is None else peak / 2 ** 20,
+            "maxrss_mb": rss1 / 1024, "maxrss_growth_mb": (rss1 - rss0) / 1024,
+            "final_rho": {p.label: float(p.normalised[0, -1]) for p in ev.processors}}
+
+
+W3_SMI = "smi window=sliding length=1024 loading_db=10"
+
+
+# ----------------------------------------------------------------------------- machine
+def machine() -> dict:
+    cpu = platform.processor() or "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    info = {"cpu": cpu, "cores": os.cpu_count(), "python": platform.python_version(),
+            "numpy": np.__version__,
+            "OPENBLAS_CORETYPE": os.environ.get("OPENBLAS_CORETYPE"),
+            "OPENBLAS_L2_SIZE": os.environ.get("OPENBLAS_L2_SIZE"),
+            "ADAPT_KERNELS": os.environ.get("ADAPT_KERNELS", "auto")}
+    try:
+        import numba
+        info["numba"] = numba.__version__
+    except ImportError:
+        info["numba"] = None
+    try:
+        from threadpoolctl import threadpool_info
+        info["blas"] = [{k: d.get(k) for k in ("internal_api", "version", "architecture",
+                                                "num_threads", "threading_layer")}
+                        for d in threadpool_info() if d.get("user_api") == "blas"]
+    except ImportError:
+        cfg = np.show_config(mode="dicts")["Build Dependencies"]["blas"]
+        info["blas"] = [{"name": cfg.get("name"), "version": cfg.get("version"),
+                         "architecture": "unknown (install threadpoolctl to see the kernel)"}]
+    return info
+
+
+# ----------------------------------------------------------------------------- driver
+def _verdict(ok: bool) -> str:
+    return "PASS" if ok else "MISS"
+
+
+def run(quick: bool = False, sizes: dict | None = None, say=print) -> dict:
+    """Run every workload; returns the figures (also printed through ``say``)."""
+    from adapt.processors import _kernels
+    z = dict(QUICK if quick else FULL)
+    if sizes:
+        z.update(sizes)
+    out = {"mode": "quick" if quick else "full", "sizes": z, "machine": machine()}
+    say(f"machine: {out['machine']}")
+    say(f"sizes: {z}")
+
+    # kernels: compile from scratch (subprocess), then load for this process
+    out["kernels_compiled"] = _kernels.compiled()
+    out["kernel_compile_seconds"] = kernel_compile_seconds() if not quick else None
+    out["kernel_load_seconds"] = _kernels.warm_up()
+    say(f"kernels: compiled={out['kernels_compiled']} compile from scratch "
+        f"{out['kernel_compile_seconds']} s, load {out['kernel_load_seconds']:.2f} s "
+        "(not included in the timings below)")
+
+    # W1
+    t1 = z["w1_trials"]
+    w1 = {"product_covariance": w1_product(t1, "covariance"),
+          "product_samples": w1_product(t1, "samples"),
+          "reference": w1_reference(t1), "floor": w1_floor(t1)}
+    w1["speedup"] = w1["reference"]["seconds"] / w1["product_covariance"]["seconds"]
+    w1["speedup_samples"] = w1["reference"]["seconds"] / w1["product_samples"]["seconds"]
+    w1["over_floor"] = w1["product_covariance"]["seconds"] / w1["floor"]["seconds"]
+    w1["samples_over_floor"] = w1["product_samples"]["seconds"] / w1["floor"]["seconds"]
+    w1["target_speedup_met"] = w1["speedup"] >= 20
+    out["w1"] = w1
+    say(f"\nW1 sizing ({t1} trials, checkpoints {W1_CHECKPOINTS[0]}..{W1_CHECKPOINTS[-1]}, "
+        "smi and smi loading_db=10)")
+    say(f"  product draw=covariance  {w1['product_covariance']['seconds']:9.3f} s")
+    say(f"  product draw=samples     {w1['product_samples']['seconds']:9.3f} s")
+    say(f"  reference (per trial)    {w1['reference']['seconds']:9.3f} s")
+    say(f"  floor (draws+accumulate+solve) {w1['floor']['seconds']:9.3f} s")
+    say(f"  speedup covariance {w1['speedup']:.1f}x, samples {w1['speedup_samples']:.1f}x; "
+        f"product/floor covariance {w1['over_floor']:.2f}, samples {w1['samples_over_floor']:.2f}")
+    for label in ("smi", "smi loading_db=10"):
+        say(f"  mean rho {label:18s} covariance "
+            + " ".join(f"{v:.3f}" for v in w1["product_covariance"]["mean_rho"][label])
+            + " | reference " + " ".join(f"{v:.3f}" for v in w1["reference"]["mean_rho"][label]))
+    say(f"  target >= 20x reference: {_verdict(w1['target_speedup_met'])}")
+
+    # W2
+    t2, k2, tr = z["w2_trials"], z["w2_snapshots"], z["w2_reference_trials"]
+    w2 = {"floor": w2_floor(t2, k2), "processors": {}}
+    say(f"\nW2 recursive ({t2} trials x {k2} snapshots); reference timed on {tr} trials "
+        f"and scaled x{t2 / tr:g}")
+    say(f"  floor (random draws)     {w2['floor']['seconds']:9.3f} s")
+    for spec in W2_SPECS:
+        prod = w2_product(t2, k2, [spec])
+        ref = w2_reference(tr, k2, spec)
+        ref_scaled = ref["seconds"] * t2 / tr
+        rec = {"product": prod, "reference_measured": ref, "reference_scaled_seconds": ref_scaled,
+               "speedup": ref_scaled / prod["seconds"],
+               "over_floor": prod["seconds"] / w2["floor"]["seconds"]}
+        rec["target_speedup_met"] = rec["speedup"] >= 20
+        rec["target_floor_met"] = rec["over_floor"] <= 2
+        w2["processors"][spec] = rec
+        say(f"  {spec:5s} product {prod['seconds']:8.3f} s (processor's own "
+            f"{prod['processor_seconds'][spec]:.3f} s) | reference {ref_scaled:9.1f} s "
+            f"(measured {ref['seconds']:.2f} s) | speedup {rec['speedup']:7.1f}x "
+            f"{_verdict(rec['target_speedup_met'])} | product/floor {rec['over_floor']:.2f} "
+            f"{_verdict(rec['target_floor_met'])}")
+    both = w2_product(t2, k2, W2_SPECS)
+    w2["all_three"] = both
+    w2["all_three_over_floor"] = both["seconds"] / w2["floor"]["seconds"]
+    say(f"  all three on one stream {both['seconds']:8.3f} s, processors' own "
+        + ", ".join(f"{k} {v:.2f} s" for k, v in both["processor_seconds"].items())
+        + f"; product/floor {w2['all_three_over_floor']:.2f}")
+    out["w2"] = w2
+
+    # W3
+    k3, b3 = z["w3_snapshots"], z["w3_block"]
+    say(f"\nW3 long stream (1 trial x {k3:,} snapshots, blocks of {b3})")
+    w3 = {"nlms": w3_run(k3, ["nlms"], b3), "smi_sliding": w3_run(k3, [W3_SMI], b3)}
+    w3["both_traced"] = w3_run(k3, ["nlms", W3_SMI], b3, trace=True)
+    w3["peak_mb"] = w3["both_traced"]["tracemalloc_peak_mb"]
+    w3["target_memory_met"] = w3["peak_mb"] < 300
+    w3["target_rate_met"] = w3["nlms"]["snapshots_per_second"] >= 1_000_000
+    out["w3"] = w3
+    say(f"  nlms          {w3['nlms']['seconds']:8.2f} s  "
+        f"{w3['nlms']['snapshots_per_second']:12,.0f} snapshots/s "
+        f"{_verdict(w3['target_rate_met'])} (target 1,000,000)")
+    say(f"  sliding SMI   {w3['smi_sliding']['seconds']:8.2f} s  "
+        f"{w3['smi_sliding']['snapshots_per_second']:12,.0f} snapshots/s ({W3_SMI})")
+    say(f"  both, traced  {w3['both_traced']['seconds']:8.2f} s  peak traced memory "
+        f"{w3['peak_mb']:.1f} MB {_verdict(w3['target_memory_met'])} (target < 300 MB); "
+        f"process maxrss {w3['both_traced']['maxrss_mb']:.0f} MB")
+
+    out["targets"] = {
+        "w1_speedup_20x": w1["target_speedup_met"],
+        **{f"w2_{s}_speedup_20x": w2["processors"][s]["target_speedup_met"] for s in W2_SPECS},
+        **{f"w2_{s}_within_2x_floor": w2["processors"][s]["target_floor_met"] for s in W2_SPECS},
+        "w3_peak_under_300mb": w3["target_memory_met"],
+        "w3_nlms_1M_per_s": w3["target_rate_met"]}
+    say("\ntargets: " + ", ".join(f"{k} {_verdict(v)}" for k, v in out["targets"].items()))
+    return out
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description="adapt speed benchmark (see module docstring)")
+    ap.add_argument("--quick", action="store_true", help="scaled-down smoke check")
+    ap.add_argument("--json", default="runs/benchmark.json", help="where to write the figures")
+    args = ap.parse_args(argv)
+    figures = run(quick=args.quick)
+    path = Path(args.json)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(figures, indent=2, default=float))
+    print(f"\nfigures written to {path}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
