@@ -494,7 +494,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
          seed: int | None = None, target_loss_db: float = 3.0, fraction: float = 0.9,
          progress: Callable[[int], None] | None = None, *, chunk: int | None = None,
          workers: int | None = None, scheduler: str | None = None, store=None,
-         on_chunk: Callable[[int, int], None] | None = None) -> Sizing:
+         on_chunk: Callable[[int, int], None] | None = None, draw: str = "samples") -> Sizing:
     """Size the training of ``processors`` on ``scene`` (a Scene or a scene file path).
 
     processors: specs or Processor objects (default :data:`DEFAULT_PROCESSORS`, unloaded
@@ -505,7 +505,10 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     (at least 2 trials); target_loss_db: the loss the answer must meet; fraction: the
     share of trials for the per-trial answer; progress: called with trial-snapshots done;
     chunk, workers, scheduler, store, on_chunk: chunked execution on a Dask cluster and
-    resumable runs, as in :func:`adapt.compare.compare` (results never depend on them).
+    resumable runs, as in :func:`adapt.compare.compare` (results never depend on them);
+    draw: ``samples`` (default) or ``covariance``: window covariances drawn directly from
+    the complex-Wishart law (:mod:`adapt.wishart`; Gaussian stationary scenes, covariance
+    processors only), the same distribution at a cost independent of the snapshot count.
     InputError for bad values (exit code 2 on the command line).
     """
     from .compare import prepare_scene
@@ -543,7 +546,8 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         warnings.filterwarnings("ignore", message=".*sample covariance is singular",
                                 category=RuntimeWarning)
         ev = evaluate(used, procs, points, chunk=chunk, tail=0, progress=progress,
-                      workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk)
+                      workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
+                      draw=draw)
 
     facts = theory.scene_facts(used)
     opt = np.asarray(ev.optimum_sinr, dtype=float)
@@ -582,6 +586,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         "elements": n,
         "trials": used.trials,
         "seed": used.seed,
+        "draw": draw,
         "training": used.training,
         "optimum_sinr_db": 10 * math.log10(opt_mean) if opt_mean > 0 else None,
         "target_loss_db": target_loss_db,
