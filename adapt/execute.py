@@ -343,9 +343,19 @@ def cluster_client(workers: int | None = None, scheduler: str | None = None,
                                  value=scheduler,
                                  allowed="the address a running dask-scheduler prints") from None
         else:
-            cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,
-                                   processes=True, host="127.0.0.1",
-                                   dashboard_address=None, silence_logs=logging.ERROR)
+            # the worker processes inherit an ignored SIGINT, so Ctrl-C in a terminal
+            # (sent to the whole process group) stops only this process, which then
+            # closes the cluster cleanly
+            import threading
+            main = threading.current_thread() is threading.main_thread()
+            previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main else None
+            try:
+                cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,
+                                       processes=True, host="127.0.0.1",
+                                       dashboard_address=None, silence_logs=logging.ERROR)
+            finally:
+                if previous is not None:
+                    signal.signal(signal.SIGINT, previous)
             client = Client(cluster, timeout=timeout)
         try:
             yield client

@@ -13,6 +13,11 @@ A run folder (``runs/YYYYmmdd-HHMMSS-scene-name/``, made by
 * ``manifest.json`` - library versions, seed, command line and the sha256 and size of
   every other file (:func:`adapt.io.write_manifest`; check with
   :func:`adapt.io.check_manifest`).
+
+While ``adapt compare`` / ``adapt size`` run, the folder also holds ``INCOMPLETE``,
+``resume.json`` and ``partial/`` (finished chunks, see :mod:`adapt.execute`); they are
+removed just before the manifest is written, so a folder without a manifest is an
+unfinished run that ``--resume`` can complete.
 """
 from __future__ import annotations
 

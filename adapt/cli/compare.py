@@ -3,7 +3,10 @@
 Thin wrapper over :func:`adapt.compare.compare` and
 :func:`adapt.compare.write_compare_run`: parses the options, shows a progress bar over
 the Monte Carlo work (trials x (snapshots + tail) trial-snapshots, on stderr), prints the
-summary table and the run folder path. Exit 0 on success, 2 on bad input.
+summary table and the run folder path. Exit 0 on success, 2 on bad input, 130 when stopped by Ctrl-C (SIGINT) and 143
+by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
+``adapt compare --resume RUNDIR`` finishes it with identical results. ``--workers N``
+/ ``--scheduler ADDRESS`` run the trials on a Dask cluster (:mod:`adapt.execute`).
 """
 from __future__ import annotations
 

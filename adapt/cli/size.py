@@ -3,7 +3,10 @@
 Thin wrapper over :func:`adapt.sizing.size` and :func:`adapt.sizing.write_sizing_run`:
 parses the options, shows a progress bar (trials x largest snapshot count
 trial-snapshots, on stderr), prints the table, the recommendations and any disagreement
-with theory, and the run folder path. Exit 0 on success, 2 on bad input.
+with theory, and the run folder path. Exit 0 on success, 2 on bad input, 130 when stopped by Ctrl-C (SIGINT) and 143
+by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
+``adapt size --resume RUNDIR`` finishes it with identical results. ``--workers N``
+/ ``--scheduler ADDRESS`` run the trials on a Dask cluster (:mod:`adapt.execute`).
 """
 from __future__ import annotations
 
