@@ -42,6 +42,7 @@ from typing import Sequence
 import numpy as np
 
 from .errors import InputError
+from .processors import _kernels
 from .processors.base import Context, Processor, ProcessorResult
 from .processors._covariance import SampleCovarianceProcessor
 from .scene import Scene
@@ -113,6 +114,27 @@ def cut_points(processors: Sequence[Processor], checkpoints) -> np.ndarray:
     return np.unique(np.concatenate(cuts))
 
 
+def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int):
+    """Per trial, one call for the gamma variates (S, N) and one for the normals of the
+    below-diagonal entries (E, 2) of every span; returns (gam, z, (si, ii, jj))."""
+    lengths = np.asarray(lengths, dtype=np.int64)
+    if lengths.ndim != 1 or lengths.size == 0 or lengths.min() < 1:
+        raise ValueError("span lengths must be a non-empty list of counts >= 1")
+    if n < 1:
+        raise ValueError(f"elements must be >= 1, got {n}")
+    s_, t_ = len(lengths), len(gens)
+    shape = np.maximum(lengths[:, None] - np.arange(n)[None, :], 0).astype(float)   # (S, N)
+    # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)
+    where = np.nonzero((np.arange(n)[None, None, :] < np.arange(n)[None, :, None])
+                       & (np.arange(n)[None, None, :] < lengths[:, None, None]))
+    gam = np.empty((t_, s_, n))
+    z = np.empty((t_, len(where[0]), 2))
+    for t, g in enumerate(gens):          # one call per trial and kind: independent streams
+        g.standard_gamma(shape, out=gam[t])
+        g.standard_normal(out=z[t])
+    return gam, z, where
+
+
 def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
                      elements: int) -> np.ndarray:
     """(T, S, N, N) Bartlett factors A of ``CW_N(n_s, I)`` for each trial's generator and
@@ -120,24 +142,11 @@ def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
     products of independent CN(0, I) vectors (Goodman 1963; Bartlett decomposition).
 
     Per trial, one call for the gamma variates (S, N) and one for the normals
-    (S, N(N-1)/2, 2); the arithmetic is batched over trials.
+    (E, 2); the arithmetic is batched over trials.
     """
-    lengths = np.asarray(lengths, dtype=np.int64)
-    if lengths.ndim != 1 or lengths.size == 0 or lengths.min() < 1:
-        raise ValueError("span lengths must be a non-empty list of counts >= 1")
-    n, s_, t_ = int(elements), len(lengths), len(gens)
-    if n < 1:
-        raise ValueError(f"elements must be >= 1, got {elements}")
-    shape = np.maximum(lengths[:, None] - np.arange(n)[None, :], 0).astype(float)   # (S, N)
-    # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)
-    si, ii, jj = np.nonzero((np.arange(n)[None, None, :] < np.arange(n)[None, :, None])
-                            & (np.arange(n)[None, None, :] < lengths[:, None, None]))
-    gam = np.empty((t_, s_, n))
-    z = np.empty((t_, len(si), 2))
-    for t, g in enumerate(gens):          # one call per trial and kind: independent streams
-        g.standard_gamma(shape, out=gam[t])
-        g.standard_normal(out=z[t])
-    a = np.zeros((t_, s_, n, n), dtype=complex)
+    n = int(elements)
+    gam, z, (si, ii, jj) = _draws(gens, lengths, n)
+    a = np.zeros(gam.shape + (n,), dtype=complex)
     z *= np.sqrt(0.5)
     a[:, si, ii, jj] = z.view(np.complex128)[..., 0]
     idx = np.arange(n)
@@ -149,13 +158,20 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
               lengths: np.ndarray) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite:
-    ``L_R A A^H L_R^H`` with A from :func:`bartlett_factors`."""
+    ``L_R A A^H L_R^H`` with A from :func:`bartlett_factors`. With the compiled kernels
+    on (:mod:`adapt.processors._kernels`) the same draws are combined in a compiled loop
+    that skips the triangles' zeros (equal to rounding)."""
     r = np.asarray(covariance)
     if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] != len(gens):
         raise ValueError(f"covariance must be (T, N, N) with T = {len(gens)} generators, "
                          f"got {r.shape}")
     chol = np.linalg.cholesky(r)                                   # (T, N, N)
-    g = chol[:, None] @ bartlett_factors(gens, lengths, r.shape[-1])
+    n = r.shape[-1]
+    if _kernels.compiled():
+        gam, z, (si, ii, jj) = _draws(gens, lengths, n)
+        counts = np.bincount(si, minlength=len(lengths))
+        return _kernels.wishart_spans(chol, gam, z, ii, jj, counts)
+    g = chol[:, None] @ bartlett_factors(gens, lengths, n)
     return g @ np.conj(np.swapaxes(g, -1, -2))
 
 

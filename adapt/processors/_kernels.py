@@ -24,7 +24,8 @@ import time
 
 import numpy as np
 
-__all__ = ["mode", "compiled", "lms_block", "rls_block", "warm_up", "SYMMETRISE_EVERY"]
+__all__ = ["mode", "compiled", "lms_block", "rls_block", "wishart_spans", "warm_up",
+           "SYMMETRISE_EVERY"]
 
 #: P is re-symmetrised after every this many snapshots (as in the numpy RLS path)
 SYMMETRISE_EVERY = 256
@@ -60,11 +61,12 @@ def compiled() -> bool:
 
 _LMS = None
 _RLS = None
+_WISHART = None
 
 
 def _build():
     """Compile (or load from the on-disk cache) the kernels on first use."""
-    global _LMS, _RLS
+    global _LMS, _RLS, _WISHART
     if _LMS is not None:
         return
     njit = _numba.njit
@@ -155,7 +157,39 @@ def _build():
                         out[t, nxt, r] = np.conj(wc[t, r])
                     nxt += 1
 
-    _LMS, _RLS = lms_kernel, rls_kernel
+    @njit(cache=True, nogil=True)
+    def wishart_kernel(chol, gam, z, ii, jj, counts, out):
+        # chol (T, N, N) lower; gam (T, S, N); z (T, E, 2) below-diagonal normals of all
+        # spans in order, counts[s] of them for span s at rows ii, columns jj;
+        # out (T, S, N, N) <- (L A)(L A)^H with A the Bartlett factor of each span
+        t_, s_, n = gam.shape
+        a = np.zeros((n, n), dtype=np.complex128)
+        g = np.zeros((n, n), dtype=np.complex128)
+        half = np.sqrt(0.5)
+        for t in range(t_):
+            pos = 0
+            for s in range(s_):
+                a[:, :] = 0j
+                for e in range(pos, pos + counts[s]):
+                    a[ii[e], jj[e]] = complex(z[t, e, 0] * half, z[t, e, 1] * half)
+                pos += counts[s]
+                for i in range(n):
+                    a[i, i] = np.sqrt(gam[t, s, i])
+                for i in range(n):                 # G = L A, both lower triangular
+                    for j in range(n):
+                        v = 0j
+                        for k in range(j, i + 1):
+                            v += chol[t, i, k] * a[k, j]
+                        g[i, j] = v
+                for i in range(n):                 # G G^H, Hermitian by construction
+                    for j in range(i + 1):
+                        v = 0j
+                        for k in range(j + 1):
+                            v += g[i, k] * np.conj(g[j, k])
+                        out[t, s, i, j] = v
+                        out[t, s, j, i] = np.conj(v)
+
+    _LMS, _RLS, _WISHART = lms_kernel, rls_kernel, wishart_kernel
 
 
 def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
@@ -215,6 +249,22 @@ def rls_block(p: np.ndarray, wc: np.ndarray, x: np.ndarray, d: np.ndarray, lam: 
     return out
 
 
+def wishart_spans(chol: np.ndarray, gam: np.ndarray, z: np.ndarray, rows: np.ndarray,
+                  cols: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Span sums ``(L A)(L A)^H`` (T, S, N, N) of :func:`adapt.wishart.span_sums`,
+    compiled: chol (T, N, N) Cholesky factors, gam (T, S, N) the diagonal's gamma
+    variates, z (T, E, 2) the below-diagonal normals of all spans in order (``counts[s]``
+    of them for span s, at ``rows``/``cols``). Both triangular products skip the zeros."""
+    _build()
+    t_, s_, n = gam.shape
+    out = np.empty((t_, s_, n, n), dtype=complex)
+    _WISHART(np.ascontiguousarray(chol, dtype=complex), np.ascontiguousarray(gam),
+             np.ascontiguousarray(z), np.ascontiguousarray(rows, dtype=np.int64),
+             np.ascontiguousarray(cols, dtype=np.int64),
+             np.ascontiguousarray(counts, dtype=np.int64), out)
+    return out
+
+
 def warm_up() -> float:
     """Compile (or load from cache) the kernels for the block layouts the processors
     use; returns the seconds it took (0 when the kernels are off)."""
@@ -229,4 +279,6 @@ def warm_up() -> float:
     lms_block(np.zeros((2, 3), complex), x, marks, gain=None, desired=d, step=0.1, eps=1e-6)
     p = np.broadcast_to(np.eye(3, dtype=complex), (2, 3, 3)).copy()
     rls_block(p, np.zeros((2, 3), complex), x, d, 1.0, 0, marks)
+    wishart_spans(p, np.ones((2, 1, 3)), np.zeros((2, 3, 2)), np.array([1, 2, 2]),
+                  np.array([0, 0, 1]), np.array([3]))
     return time.perf_counter() - t0
