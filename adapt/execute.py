@@ -23,8 +23,8 @@ vectorised along the trial axis with no cross-trial sums, and the block boundari
 So any chunk size, worker count or interruption gives bit-identical arrays.
 
 Chunk size (:func:`chunk_size`, documented in README): about ``CHUNK_WORK`` units of
-``trials x (snapshots + tail) x N^2 x processors`` (measured at roughly 1-2 s of one
-core on the example scenes), at most ``MAX_CHUNK`` trials and bounded memory; on a
+``trials x (snapshots + tail) x N^2 x processors`` (measured at roughly 0.5-2 s of
+one core on the example scenes), at most ``MAX_CHUNK`` trials and bounded memory; on a
 cluster at most a quarter of an even share per worker so the load balances.
 
 Run folders of ``adapt compare`` / ``adapt size`` are resumable: :func:`start_run_folder`
@@ -65,8 +65,8 @@ __all__ = ["Plan", "ChunkStore", "Terminated", "run_chunks", "run_chunk", "block
            "stop_on_signals", "exit_code", "CHUNK_WORK", "MAX_CHUNK", "RESUME_FILE",
            "MARKER", "PARTIAL", "INSTALL_HINT", "MAX_WORKERS"]
 
-#: work per chunk in trials x (snapshots + tail) x N^2 x processors (about 1-2 s on one
-#: core for the example scenes, measured; common practice: seconds-sized tasks)
+#: work per chunk in trials x (snapshots + tail) x N^2 x processors (about 0.5-2 s on
+#: one core for the example scenes, measured; common practice: seconds-sized tasks)
 CHUNK_WORK = 2.0e8
 #: largest chunk, trials
 MAX_CHUNK = 1000

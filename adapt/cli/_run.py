@@ -24,7 +24,7 @@ def add_options(p, resumable: bool = True) -> None:
                    help="run the trials on an existing Dask cluster, e.g. tcp://host:8786 "
                         "(started with dask-scheduler and dask-worker)")
     g.add_argument("--chunk", metavar="TRIALS",
-                   help="trials per chunk (default: about 1-2 s of work, at most 1000)")
+                   help="trials per chunk (default: about 0.5-2 s of work, at most 1000)")
     if resumable:
         g.add_argument("--resume", metavar="RUNDIR",
                        help="finish an interrupted run folder (all settings come from it)")
