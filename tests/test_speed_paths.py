@@ -26,6 +26,8 @@ JAMMERS = [{"name": "j1", "role": "interferer", "azimuth": 40, "power_db": 20,
             "waveform": "gaussian"},
            {"name": "j2", "role": "interferer", "azimuth": -25, "power_db": 25,
             "waveform": "gaussian"}]
+#: numba is an optional extra ('adapt[fast]'); without it the compiled paths must refuse
+HAVE_NUMBA = importlib.util.find_spec("numba") is not None
 #: KS p-values below this reject (a fixed-seed test: deterministic, never flaky)
 ALPHA = 1e-3
 
@@ -164,14 +166,25 @@ def _recursive_weights(monkeypatch, mode, specs, scene, snapshots, block):
     return [r.weights for r in res]
 
 
+def _refuses_numba(monkeypatch):
+    monkeypatch.setenv("ADAPT_KERNELS", "numba")
+    with pytest.raises(RuntimeError, match="numba is not installed"):
+        _kernels.compiled()
+    monkeypatch.setenv("ADAPT_KERNELS", "auto")
+    assert not _kernels.compiled()
+
+
 def test_kernels_match_numpy_path(monkeypatch):
     # the compiled recursions are the numpy ones (Widrow & Hoff 1960; Haykin's RLS):
     # identical to 1e-10 relative to the weight norm, at every checkpoint, whatever block
     sc = _scene()
     specs = ["lms", "lms step=0.001 initial=zero", "nlms", "nlms step=0.5", "rls",
              "rls forgetting=0.98 loading_db=10"]
-    assert _kernels.compiled()                        # numba is installed here
+    if not HAVE_NUMBA:
+        _refuses_numba(monkeypatch)
+        return
     fast = _recursive_weights(monkeypatch, "numba", specs, sc, 700, 97)
+    assert _kernels.compiled()
     slow = _recursive_weights(monkeypatch, "numpy", specs, sc, 700, 256)
     assert not _kernels.compiled()
     for spec, a, b in zip(specs, fast, slow):
@@ -220,6 +233,9 @@ def test_compiled_wishart_spans_match_numpy(monkeypatch):
     m = rng.standard_normal((5, 5)) + 1j * rng.standard_normal((5, 5))
     r = np.broadcast_to(m @ m.conj().T + np.eye(5), (7, 5, 5))
     lengths = np.array([1, 3, 5, 40])
+    if not HAVE_NUMBA:
+        _refuses_numba(monkeypatch)
+        return
     out = {}
     for mode in ("numba", "numpy"):
         monkeypatch.setenv("ADAPT_KERNELS", mode)
