@@ -69,6 +69,8 @@ def _build():
     global _LMS, _RLS, _WISHART
     if _LMS is not None:
         return
+    if _numba is None:
+        raise RuntimeError("the compiled kernels need numba (pip install 'adapt[fast]')")
     njit = _numba.njit
 
     @njit(cache=True, nogil=True)
@@ -203,7 +205,6 @@ def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
     direction_conj: (T, B, M) ``conj(v)`` or None for ``conj(x)``.
     Returns the weights w after each mark, (T, len(marks), M).
     """
-    _build()
     t_, b, m = x.shape
     if wc.shape != (t_, m) or wc.dtype != np.complex128 or not wc.flags.writeable:
         raise ValueError(f"weight state must be a writable complex (T, M) = {(t_, m)} array")
@@ -227,6 +228,7 @@ def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
          else np.asarray(desired, dtype=complex))
     dirc = (np.zeros((t_, 0, m), dtype=complex) if direction_conj is None
             else np.asarray(direction_conj, dtype=complex))
+    _build()
     _LMS(wc, np.asarray(x, dtype=complex), d, gmode, gain_t, gain_tb, float(step),
          float(eps), dirc, marks, out)
     return out
