@@ -9,17 +9,45 @@ traceback for these.
 from __future__ import annotations
 
 import difflib
+import reprlib
 from typing import Any, Iterable
 
 #: exit code for bad input or usage (documented in README)
 EXIT_USAGE = 2
 
 
+_REPR = reprlib.Repr()
+_REPR.maxlevel, _REPR.maxstring, _REPR.maxother = 3, 100, 100
+_REPR.maxlist = _REPR.maxtuple = _REPR.maxdict = _REPR.maxset = 8
+
+
 def _show(value: Any, limit: int = 80) -> str:
-    text = repr(value)
+    """Short repr of a user's value: bounded work whatever its size (nested containers
+    are abbreviated, so an alias bomb or a recursive list prints in microseconds)."""
+    try:
+        text = _REPR.repr(value) if isinstance(value, (list, tuple, dict, set)) else repr(value)
+    except ValueError:            # an int too long for str() (Python's digit limit)
+        text = "an integer of more than 4300 digits"
     if len(text) > limit:
         text = text[: limit - 3] + "..."
     return text
+
+
+def _clip(text: str, limit: int) -> str:
+    """``text`` shortened in the middle to at most ``limit`` characters (a user's key of
+    10,000 characters must not make a 10,000-character message)."""
+    if len(text) <= limit:
+        return text
+    half = (limit - 5) // 2
+    return f"{text[:half]} ... {text[-half:]}"
+
+
+def _one_line(text: str) -> str:
+    """Escape control characters (line breaks, tabs, NUL...) so a message stays on one
+    line whatever text the user's keys or values hold."""
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
 
 
 def did_you_mean(word: str, choices: Iterable[str]) -> str:
@@ -55,15 +83,15 @@ class InputError(ValueError):
     def render(self) -> str:
         where = []
         if self.file:
-            where.append(str(self.file))
+            where.append(_clip(str(self.file), 300))
         if self.path:
-            where.append(self.path)
-        text = (": ".join(where) + ": " if where else "") + self.message
+            where.append(_clip(str(self.path), 120))
+        text = (": ".join(where) + ": " if where else "") + _clip(str(self.message), 400)
         if self.value is not InputError._NOVALUE:
             text += f" (got {_show(self.value)})"
         if self.allowed:
-            text += f"; allowed: {self.allowed}"
-        return text
+            text += f"; allowed: {_clip(str(self.allowed), 400)}"
+        return _one_line(text)
 
     def at(self, *, file: str | None = None, path_prefix: str | None = None) -> "InputError":
         """Return a copy located in ``file`` and/or under ``path_prefix``."""

@@ -49,7 +49,9 @@ def parse_spec(spec: Any, where: str = "") -> Processor:
         try:
             words = shlex.split(spec)
         except ValueError as exc:
-            raise SpecError(f"cannot split the spec: {exc}", path=where or None, value=spec) from None
+            raise SpecError(f"cannot split the spec: {exc}", path=where or None, value=spec,
+                            allowed="a method name then key=value pairs; quotes must be "
+                                    "closed") from None
         if not words:
             raise SpecError("empty processor spec", path=where or None,
                             allowed="a method name then key=value pairs, e.g. 'smi loading_db=10'")
@@ -60,7 +62,8 @@ def parse_spec(spec: Any, where: str = "") -> Processor:
                 raise SpecError("expected key=value", path=f"{prefix}{word}" if where else word,
                                 value=word, allowed="key=value pairs after the method name")
             if key in params:
-                raise SpecError(f"parameter '{key}' given twice", path=f"{prefix}{key}", value=spec)
+                raise SpecError(f"parameter '{key}' given twice", path=f"{prefix}{key}", value=spec,
+                                allowed="each parameter once")
             params[key] = value
     elif isinstance(spec, dict):
         params = dict(spec)
@@ -70,7 +73,8 @@ def parse_spec(spec: Any, where: str = "") -> Processor:
         method = params.pop("method")
         for key in params:
             if not isinstance(key, str):
-                raise SpecError("parameter names must be text", path=where or None, value=key)
+                raise SpecError("parameter names must be text", path=where or None, value=key,
+                                allowed="'method' and the method's parameter names")
     else:
         raise SpecError("a processor spec is a string or a mapping", path=where or None,
                         value=spec, allowed="e.g. 'smi loading_db=10' or {method: smi, loading_db: 10}")
@@ -84,7 +88,7 @@ def parse_spec(spec: Any, where: str = "") -> Processor:
     label = params.pop("label", None)
     if label is not None and (not isinstance(label, str) or not label.strip() or len(label) > 80):
         raise SpecError("label must be non-empty text of at most 80 characters",
-                        path=f"{prefix}label", value=label)
+                        path=f"{prefix}label", value=label, allowed="text of 1 to 80 characters")
     cls = classes[method]
     checked = cls.validate(params, prefix)
     proc = cls.__new__(cls)

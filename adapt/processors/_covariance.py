@@ -18,6 +18,7 @@ window, which also removes expiring snapshots); O(N^3) per weight computation.
 from __future__ import annotations
 
 import math
+import shlex
 import warnings
 
 import numpy as np
@@ -284,7 +285,7 @@ class SampleCovarianceProcessor(Processor):
                                  if not (k == "loading" and v is None)]
         if self.label != self.default_label():
             parts.append(f"label={self.label}")
-        return " ".join(parts)
+        return " ".join(shlex.quote(p) for p in parts)      # parse_spec splits with shlex
 
     # -- settings a subclass may override ------------------------------------------
     def window_settings(self) -> tuple[str, int | None, int]:

@@ -116,7 +116,10 @@ class Parameter:
             except ValueError:
                 raise bad("expected a number") from None
         elif isinstance(value, (int, float, np.integer, np.floating)):
-            number = float(value)
+            try:
+                number = float(value)
+            except OverflowError:             # an integer beyond the float range
+                raise bad("out of range") from None
         else:
             raise bad("expected a number")
         if not math.isfinite(number):
@@ -282,11 +285,13 @@ class Processor:
         return " ".join([self.method] + changed)
 
     def spec(self) -> str:
-        """The spec string that rebuilds this processor."""
+        """The spec string that rebuilds this processor (words holding spaces or quotes
+        are shell-quoted, as :func:`adapt.processors.parse_spec` splits with shlex)."""
+        import shlex
         parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()]
         if self.label != self.default_label():
             parts.append(f"label={self.label}")
-        return " ".join(parts)
+        return " ".join(shlex.quote(p) for p in parts)
 
     # -- the kernel interface --------------------------------------------------
     def check(self, context: Context) -> None:

@@ -112,7 +112,7 @@ class LinearlyConstrained(SampleCovarianceProcessor):
             if key in given:
                 try:
                     given[key] = _angle_list(given[key])
-                except (ValueError, TypeError):
+                except (ValueError, TypeError, OverflowError):
                     raise SpecError("expected a list of angles", path=f"{where}{key}",
                                     value=given[key], allowed="degrees in [-180, 180], "
                                     "comma-separated text or a list, e.g. 20,35.5") from None
@@ -124,17 +124,20 @@ class LinearlyConstrained(SampleCovarianceProcessor):
         elev = parse_angles(params["null_elevations"])
         if elev.size and not nulls.size:
             raise SpecError("null_elevations given without nulls", path=f"{where}null_elevations",
-                            value=params["null_elevations"])
+                            value=params["null_elevations"],
+                            allowed="null_elevations together with nulls")
         if elev.size not in (0, 1, nulls.size):
             raise SpecError(f"{elev.size} null elevations for {nulls.size} nulls",
                             path=f"{where}null_elevations", value=params["null_elevations"],
                             allowed="one elevation per null, or a single one for all")
         if np.any(np.abs(elev) > 90):
             raise SpecError("elevations must be within [-90, 90] degrees",
-                            path=f"{where}null_elevations", value=params["null_elevations"])
+                            path=f"{where}null_elevations", value=params["null_elevations"],
+                            allowed="degrees in [-90, 90]")
         if params["second_derivative"] and not params["derivative"]:
             raise SpecError("second_derivative needs derivative=true",
-                            path=f"{where}second_derivative", value=True)
+                            path=f"{where}second_derivative", value=True,
+                            allowed="second_derivative=true together with derivative=true")
 
     def constraints(self, context: Context) -> tuple[np.ndarray, np.ndarray]:
         """Constraint matrix C (N, M) and responses f (M,); SpecError if unusable."""
