@@ -28,7 +28,11 @@ _TMP_PREFIX = ".partial-"
 
 
 def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
-    """Write ``data`` to ``path`` atomically (temporary file + fsync + rename)."""
+    """Write ``data`` to ``path`` atomically (temporary file + fsync + rename).
+
+    On any failure (disk full, permission denied, a parent that is not a folder) the
+    temporary file is removed, ``path`` is left as it was, and the OSError names
+    ``path`` itself (not the temporary name)."""
     path = Path(path)
     tmp = path.with_name(f"{_TMP_PREFIX}{path.name}.{os.getpid()}")
     try:
@@ -37,11 +41,13 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         try:
             tmp.unlink()
         except OSError:
             pass
+        if isinstance(exc, OSError) and exc.errno is not None:
+            raise OSError(exc.errno, exc.strerror, str(path)) from exc
         raise
     return path
 

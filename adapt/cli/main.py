@@ -5,7 +5,8 @@ its sub-parser and sets ``func`` (a callable taking the parsed namespace and ret
 an exit code). The CLI holds no logic of its own.
 
 Exit codes: 0 success, 1 a check failed (verify), 2 bad input or usage,
-130 interrupted.
+3 the file system refused to write (or read) a file: disk full, permission denied, a
+path through a file, 130 interrupted (Ctrl-C), 143 stopped (SIGTERM).
 """
 from __future__ import annotations
 
@@ -58,6 +59,30 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("adapt: interrupted", file=sys.stderr)
         return 130
+    except OSError as exc:          # the file system refused: disk full, permissions...
+        print(f"adapt: error: {file_system_message(exc)}", file=sys.stderr)
+        return EXIT_FILE_SYSTEM
+
+
+#: exit code when a file could not be written (or read) by the file system
+EXIT_FILE_SYSTEM = 3
+
+
+def file_system_message(exc: OSError) -> str:
+    """One line for an OSError: the path, the system's reason and a hint."""
+    import errno
+    where = exc.filename if exc.filename is not None else ""
+    reason = exc.strerror or str(exc) or type(exc).__name__
+    hint = {errno.ENOSPC: "free some space or choose another --out",
+            errno.EDQUOT: "free some space or choose another --out",
+            errno.EACCES: "choose a folder you may write to",
+            errno.EPERM: "choose a folder you may write to",
+            errno.EROFS: "choose a folder on a writable file system",
+            errno.ENOTDIR: "a part of the path is a file, not a folder",
+            errno.EEXIST: "a part of the path is a file, not a folder"}.get(exc.errno)
+    text = f"{where}: {reason}" if where else reason
+    return text + (f" ({hint}); nothing was written under that name" if hint else
+                   "; nothing was written under that name")
 
 
 if __name__ == "__main__":  # pragma: no cover
