@@ -5,13 +5,13 @@ Covers Python-object YAML tags, deep nesting, alias bombs ("billion laughs": 9 l
 long lines, binary garbage, a file just over ``scenefile.MAX_FILE_BYTES``, a directory
 and a missing file. Every case goes through the command line (``adapt check``: exit 2,
 one ``adapt: error:`` line, no traceback) while tracemalloc records the peak Python
-memory. The time limit below is a hang guard (an expanded alias bomb or a quadratic
-walk takes hours), not a speed measurement; measured times are all under 1.5 s.
+memory. Refusal is bounded by construction (depth, value-count and size budgets that
+are checked while the YAML is composed, before anything expands); there is no wall-time
+assertion here (speed figures belong in benchmarks/), measured times are under 1.5 s.
 """
 from __future__ import annotations
 
 import random
-import time
 import tracemalloc
 from pathlib import Path
 
@@ -25,7 +25,6 @@ from conftest import SCENES
 
 #: a hang guard, not a speed test (an expanded alias bomb runs for hours): far above the
 #: 1.5 s worst case measured on an idle 2-core machine, so a loaded CI machine passes
-HANG_GUARD_S = 30.0
 PEAK_LIMIT = 100 * 2 ** 20    # bytes of Python allocations (tracemalloc peak)
 
 BASE = (SCENES / "single_jammer.yaml").read_text(encoding="utf-8")
@@ -105,19 +104,16 @@ CASES = {
 
 
 def _measure(call):
-    """Run ``call`` twice: timed as is, then under tracemalloc (which slows pure-Python
-    parsing several times) for the peak of Python allocations. Returns (the first
-    result, seconds, peak bytes)."""
-    t0 = time.perf_counter()
-    result = call()
-    seconds = time.perf_counter() - t0
+    """Run ``call`` under tracemalloc for the peak of Python allocations. Returns (the
+    result, peak bytes). No wall-time assertion: refusals are bounded by construction
+    (depth, node and size budgets), and speed figures belong in benchmarks/."""
     tracemalloc.start()
     try:
-        call()
+        result = call()
     finally:
         peak = tracemalloc.get_traced_memory()[1]
         tracemalloc.stop()
-    return result, seconds, peak
+    return result, peak
 
 
 def _one_error_line(code, out, err):
@@ -137,11 +133,10 @@ def test_hostile_scene_refused_through_cli(name, tmp_path, run_cli, monkeypatch)
     (path.write_bytes if isinstance(content, bytes) else
      lambda c: path.write_text(c, encoding="utf-8"))(content)
     monkeypatch.chdir(tmp_path)
-    (code, out, err), seconds, peak = _measure(lambda: run_cli(["check", path]))
+    (code, out, err), peak = _measure(lambda: run_cli(["check", path]))
     line = _one_error_line(code, out, err)
     assert words in line, line
     assert str(path) in line                      # the message names the file
-    assert seconds < HANG_GUARD_S, seconds
     assert peak < PEAK_LIMIT, peak
     assert not (tmp_path / SIDE_EFFECT).exists()  # nothing was executed
 
@@ -176,10 +171,10 @@ def test_file_just_over_the_size_limit(tmp_path, run_cli):
     pad = MAX_FILE_BYTES + 1 - len(BASE.encode())
     path.write_bytes(BASE.encode() + b"#" * (pad - 1) + b"\n")
     assert path.stat().st_size == MAX_FILE_BYTES + 1
-    (code, out, err), seconds, peak = _measure(lambda: run_cli(["check", path]))
+    (code, out, err), peak = _measure(lambda: run_cli(["check", path]))
     line = _one_error_line(code, out, err)
     assert f"file is {MAX_FILE_BYTES + 1} bytes" in line and str(MAX_FILE_BYTES) in line
-    assert seconds < HANG_GUARD_S and peak < 10 * 2 ** 20     # never read into memory
+    assert peak < 10 * 2 ** 20     # never read into memory
     # exactly at the limit it is read and loads (comments are free)
     path.write_bytes(BASE.encode() + b"#" * (pad - 2) + b"\n")
     assert path.stat().st_size == MAX_FILE_BYTES
@@ -190,9 +185,9 @@ def test_file_just_over_the_size_limit(tmp_path, run_cli):
 def test_ten_megabyte_line(tmp_path, run_cli):
     path = tmp_path / "line.yaml"
     path.write_text("name: " + "x" * 10_000_000 + "\n", encoding="utf-8")
-    (code, out, err), seconds, peak = _measure(lambda: run_cli(["check", path]))
+    (code, out, err), peak = _measure(lambda: run_cli(["check", path]))
     assert "bytes; a scene file is at most" in _one_error_line(code, out, err)
-    assert seconds < HANG_GUARD_S and peak < PEAK_LIMIT
+    assert peak < PEAK_LIMIT
     # the same text handed to the Python API is refused by length, without parsing
     with pytest.raises(SceneError, match="a scene is at most"):
         parse_scene("name: " + "x" * 10_000_000)
@@ -210,7 +205,7 @@ sys.exit(code)
 
 
 def test_long_line_just_under_the_limit(tmp_path):
-    # a real process: wall time and peak resident memory of the whole CLI (VmHWM, which
+    # a real process: peak resident memory of the whole CLI (VmHWM, which
     # unlike wait4's ru_maxrss does not inherit the forking parent's size), for a scene
     # whose name is a line of almost MAX_FILE_BYTES characters
     import subprocess
@@ -219,13 +214,10 @@ def test_long_line_just_under_the_limit(tmp_path):
     text = _replace("name: single jammer", "name: " + "x" * (MAX_FILE_BYTES - len(BASE)))
     path.write_text(text, encoding="utf-8")
     assert path.stat().st_size <= MAX_FILE_BYTES
-    t0 = time.perf_counter()
     proc = subprocess.run([sys.executable, "-c", _CHILD, str(tmp_path / "peak"), "check",
                            str(path)], capture_output=True, text=True, timeout=300)
-    seconds = time.perf_counter() - t0
     line = _one_error_line(proc.returncode, proc.stdout, proc.stderr)
     assert "name: expected non-empty text" in line and "text of 1 to 200" in line
-    assert seconds < 2 * HANG_GUARD_S, seconds           # includes starting Python
     peak = int((tmp_path / "peak").read_text()) * 1024
     assert peak < 400 * 2 ** 20, peak                    # whole process, numpy included
 
@@ -261,9 +253,9 @@ def test_hostile_scene_through_compare_and_record(tmp_path, run_cli):
     for argv in (["compare", path, "--no-progress", "--out", tmp_path / "runs"],
                  ["size", path, "--no-progress", "--out", tmp_path / "runs"],
                  ["record", path, "--processor", "smi", "--out", tmp_path / "ref"]):
-        (code, out, err), seconds, peak = _measure(lambda: run_cli(argv))
+        (code, out, err), peak = _measure(lambda: run_cli(argv))
         assert "alias bomb" in _one_error_line(code, out, err)
-        assert seconds < HANG_GUARD_S and peak < PEAK_LIMIT
+        assert peak < PEAK_LIMIT
     assert not (tmp_path / "ref").exists()
 
 
@@ -306,11 +298,11 @@ def test_hostile_python_values(make, field):
         m["processors"] = [value]
     else:
         m[field] = value
-    (exc, seconds, peak) = _measure(lambda: _raises(lambda: parse_scene(m)))
+    (exc, peak) = _measure(lambda: _raises(lambda: parse_scene(m)))
     assert isinstance(exc, InputError)
     text = str(exc)
     assert len(text) < 1000 and "\n" not in text
-    assert seconds < HANG_GUARD_S and peak < PEAK_LIMIT
+    assert peak < PEAK_LIMIT
 
 
 def _raises(call):
