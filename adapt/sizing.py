@@ -497,9 +497,9 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
          on_chunk: Callable[[int, int], None] | None = None, draw: str = "samples") -> Sizing:
     """Size the training of ``processors`` on ``scene`` (a Scene or a scene file path).
 
-    processors: specs or Processor objects (default :data:`DEFAULT_PROCESSORS`, unloaded
-    and 10 dB-loaded SMI; the scene's own list is not used since sizing concerns
-    sample-covariance methods); snapshots: the sweep (see :func:`sweep_points`; default
+    processors: specs or Processor objects (default: the scene's ``processors`` list, or
+    :data:`DEFAULT_PROCESSORS`, unloaded and 10 dB-loaded SMI, when it lists none);
+    snapshots: the sweep (see :func:`sweep_points`; default
     geometric, 8 per octave, from N to the scene's snapshots when every processor is
     unloaded SMI, else from 1, since loaded methods may need fewer than N); trials, seed: override the scene's
     (at least 2 trials); target_loss_db: the loss the answer must meet; fraction: the
@@ -524,7 +524,10 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
             and trials < 2:
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=trials, allowed="an integer >= 2")
-    procs_in = list(DEFAULT_PROCESSORS) if processors is None else processors
+    if processors is None:
+        procs_in = list(scene.processors) or list(DEFAULT_PROCESSORS)
+    else:
+        procs_in = processors
     _, procs = prepare_scene(scene, procs_in, trials, None, seed)
     if snapshots is None and not all(_unloaded_smi(p) for p in procs):
         # loaded and other methods may need fewer than N snapshots: start the sweep at 1

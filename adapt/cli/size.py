@@ -38,8 +38,9 @@ def register(subparsers) -> None:
     p.add_argument("scene", metavar="SCENE", nargs="?",
                    help="scene YAML file (not with --resume)")
     p.add_argument("--processor", "-p", dest="processors", action="append", metavar="SPEC",
-                   help="processor spec, e.g. 'smi loading_db=10' (repeatable; default: "
-                        "'smi' and 'smi loading_db=10')")
+                   help="processor spec, e.g. 'smi loading_db=10' (repeatable; default: the "
+                        "scene's processors list, or 'smi' and 'smi loading_db=10' if it "
+                        "lists none)")
     p.add_argument("--snapshots", metavar="LIST|START:STOP",
                    help="snapshot counts: a list 8,12,16 or a geometric range START:STOP "
                         "(8 per octave; START:STOP:PER_OCTAVE to choose); default: from "
