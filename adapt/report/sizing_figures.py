@@ -69,7 +69,7 @@ def sizing_figure(record: dict):
         lo = _neg(r["loss_db_p90"] for r in pts)
         hi = _neg(r["loss_db_p10"] for r in pts)
         many = len(k) > 12
-        ax.plot(k, mean_db, color=st["color"], linestyle="-", linewidth=1.6,
+        ax.plot(k, mean_db, color=st["color"], linestyle=st["linestyle"], linewidth=1.6,
                 marker=None if many else st["marker"], markersize=3.5,
                 label=f"{p['label']} (simulation, mean)")
         ax.fill_between(k, lo, hi, color=st["color"], alpha=0.15, linewidth=0)
@@ -87,13 +87,14 @@ def sizing_figure(record: dict):
                label=f"target: {record['target_loss_db']:g} dB loss")
     all_k = [r["snapshots"] for p in record["processors"] for r in p["points"]]
     kmin, kmax = min(all_k), max(all_k)
-    for kk, labels in sorted(marks.items()):
-        if kmin <= kk <= kmax:
-            ax.axvline(kk, color=REFERENCE_COLOUR, linewidth=0.8, linestyle=(0, (1, 3)))
-            ax.annotate(f"rule of thumb {kk}\n({', '.join(labels)})", xy=(kk, 1.0),
-                        xycoords=("data", "axes fraction"), xytext=(2, -2),
-                        textcoords="offset points", fontsize=7, va="top",
-                        color=REFERENCE_COLOUR)
+    shown = [(kk, labels) for kk, labels in sorted(marks.items()) if kmin <= kk <= kmax]
+    for i, (kk, labels) in enumerate(shown):
+        ax.axvline(kk, color=REFERENCE_COLOUR, linewidth=0.8, linestyle=(0, (1, 3)))
+        # staggered downwards so neighbouring marks' labels never overlap
+        ax.annotate(f"rule of thumb {kk}\n({', '.join(labels)})", xy=(kk, 1.0),
+                    xycoords=("data", "axes fraction"), xytext=(2, -2 - 22 * i),
+                    textcoords="offset points", fontsize=7, va="top",
+                    color=REFERENCE_COLOUR)
     ax.set_xscale("log")
     _count_ticks(ax, kmin, kmax)
     if kmax > kmin:
