@@ -243,3 +243,21 @@ def test_compiled_wishart_spans_match_numpy(monkeypatch):
         out[mode] = wishart.span_sums(r, gens, lengths)
     scale = np.abs(out["numpy"]).max(axis=(-1, -2), keepdims=True)
     assert np.max(np.abs(out["numba"] - out["numpy"]) / scale) < 1e-12
+
+
+def test_size_command_draws_covariance(tmp_path, capsys):
+    # adapt size --draw covariance: recorded in sizing.json; refused (exit 2) for LMS
+    from adapt.cli.main import main
+    from adapt.scenefile import dump_scene
+    scene_file = tmp_path / "scene.yaml"
+    scene_file.write_text(dump_scene(_scene(trials=40, snapshots=32)))
+    out = tmp_path / "runs"
+    code = main(["size", str(scene_file), "-p", "smi loading_db=10", "--draw", "covariance",
+                 "--no-progress", "--out", str(out)])
+    assert code == 0
+    (folder,) = out.iterdir()
+    assert '"draw": "covariance"' in (folder / "sizing.json").read_text()
+    code = main(["size", str(scene_file), "-p", "lms", "--draw", "covariance",
+                 "--no-progress", "--out", str(out)])
+    assert code == 2
+    assert "--draw" in capsys.readouterr().err

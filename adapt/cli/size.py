@@ -19,7 +19,7 @@ ORDER = 30
 
 #: library argument names -> command-line options, for error messages
 _OPTIONS = {"snapshots": "--snapshots", "trials": "--trials", "seed": "--seed",
-            "target_loss_db": "--target-loss", "fraction": "--fraction"}
+            "target_loss_db": "--target-loss", "fraction": "--fraction", "draw": "--draw"}
 
 
 def register(subparsers) -> None:
@@ -54,6 +54,12 @@ def register(subparsers) -> None:
                    help="share of trials that must meet the target (default 0.9)")
     p.add_argument("--out", default=None, metavar="DIR",
                    help="folder that receives the run folder (default: runs)")
+    p.add_argument("--draw", choices=("samples", "covariance"), default=None,
+                   help="samples (default): simulate the snapshot streams; covariance: "
+                        "draw each window's sample covariance directly from its complex-"
+                        "Wishart law, the same statistics at a cost independent of the "
+                        "snapshot count (Gaussian stationary scenes without quantisation, "
+                        "covariance-based processors only; no measured SINR)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     _run.add_options(p)
     p.set_defaults(func=run)
@@ -88,6 +94,8 @@ def command_line(args) -> str:
             words += [f"--{name}", str(value)]
     words += ["--target-loss", str(args.target_loss or "3"),
               "--fraction", str(args.fraction or "0.9"), "--out", str(args.out or _run.DEFAULT_OUT)]
+    if getattr(args, "draw", None) not in (None, "samples"):
+        words += ["--draw", args.draw]
     return shlex.join(words)
 
 
@@ -117,7 +125,7 @@ def run(args) -> int:
                 "seed": _integer(args.seed, "--seed"),
                 "target_loss_db": _real(args.target_loss or "3", "--target-loss"),
                 "fraction": _real(args.fraction or "0.9", "--fraction"),
-                "chunk": execution["chunk"]}
+                "chunk": execution["chunk"], "draw": args.draw or "samples"}
     scene = load_scene(args.scene)
     settings["scene"] = scene.resolved
     folder = _run.Folder("size", args.out, f"size-{scene.name}", settings, command_line(args))
@@ -131,7 +139,7 @@ def _resume(args, execution) -> int:
                                    "snapshots": "--snapshots", "trials": "--trials",
                                    "seed": "--seed", "target_loss": "--target-loss",
                                    "fraction": "--fraction", "out": "--out",
-                                   "chunk": "--chunk"})
+                                   "chunk": "--chunk", "draw": "--draw"})
     record = open_for_resume(args.resume, "size")
     settings = record["settings"]
     scene = parse_scene(settings["scene"])
@@ -163,7 +171,8 @@ def _execute(args, folder, scene, settings, execution, line) -> int:
                         fraction=settings["fraction"],
                         progress=bar.update if bar is not None else None,
                         chunk=execution["chunk"], workers=execution["workers"],
-                        scheduler=execution["scheduler"], store=store)
+                        scheduler=execution["scheduler"], store=store,
+                        draw=settings.get("draw", "samples"))
         except InputError as exc:
             raise _relocated(exc) from None
         finally:
