@@ -7,7 +7,9 @@ exit code 130 (SIGINT) or 143 (SIGTERM). The logic lives in :mod:`adapt.execute`
 """
 from __future__ import annotations
 
+import shlex
 import sys
+import warnings
 from pathlib import Path
 
 from ..errors import InputError
@@ -30,7 +32,8 @@ def add_options(p, resumable: bool = True) -> None:
                        help="finish an interrupted run folder (all settings come from it)")
 
 
-def _whole(text, option: str):
+def whole_number(text, option: str):
+    """An option's text as an int (None stays None); InputError naming the option."""
     if text is None:
         return None
     try:
@@ -39,13 +42,73 @@ def _whole(text, option: str):
         raise InputError("expected a whole number", path=option, value=text) from None
 
 
+def real_number(text, option: str) -> float:
+    """An option's text as a float; InputError naming the option."""
+    try:
+        return float(str(text).strip())
+    except ValueError:
+        raise InputError("expected a number", path=option, value=text) from None
+
+
+def relocated(exc: InputError, options: dict) -> InputError:
+    """The library's error re-addressed to the command-line option it came from:
+    ``options`` maps library argument names to option texts; ``processors[i]...``
+    becomes ``--processor[i]...``."""
+    path = exc.path or ""
+    head = path.split(".")[0].split("[")[0]
+    if head in options and path == head:
+        return exc.__class__(exc.message, file=exc.file, path=options[head], value=exc.value,
+                             allowed=exc.allowed)
+    if head == "processors":
+        return exc.__class__(exc.message, file=exc.file, path="--processor" + path[len(head):],
+                             value=exc.value, allowed=exc.allowed)
+    return exc
+
+
+def command_line(command: str, args, options: dict, fixed: dict) -> str:
+    """The command as a canonical, shell-quoted line (recorded in manifests): the scene,
+    each ``--processor``, every option in ``options`` (attribute -> option text) that
+    was given, then ``fixed`` (option text -> value, always written)."""
+    words = ["adapt", command, args.scene]
+    for spec in args.processors or []:
+        words += ["--processor", spec]
+    for name, option in options.items():
+        value = getattr(args, name, None)
+        if value is not None:
+            words += [option, str(value)]
+    for option, value in fixed.items():
+        words += [option, str(value)]
+    return shlex.join(words)
+
+
+def progress_bar(args, total: int, desc: str):
+    """A tqdm bar on stderr counting trial-snapshots (None with --no-progress; drawn
+    only on a terminal)."""
+    if args.no_progress:
+        return None
+    from tqdm import tqdm
+    return tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
+                disable=None, leave=False, desc=desc)
+
+
+def print_outcome(result, written, code) -> int:
+    """Print the table and the run folder of a finished run; pass an interruption's
+    exit code through."""
+    if code is not None:
+        return code
+    print(result.table())
+    print()
+    print(f"run folder: {written}")
+    return 0
+
+
 def cluster_options(args) -> dict:
     """``{"workers": .., "scheduler": .., "chunk": ..}`` checked (InputError)."""
     from ..execute import check_cluster_options
-    workers = _whole(args.workers, "--workers")
+    workers = whole_number(args.workers, "--workers")
     scheduler = args.scheduler
     check_cluster_options(workers, scheduler)
-    chunk = _whole(args.chunk, "--chunk")
+    chunk = whole_number(args.chunk, "--chunk")
     if chunk is not None and chunk < 1:
         raise InputError("a chunk must hold at least one trial", path="--chunk", value=chunk,
                          allowed="an integer >= 1")
@@ -84,7 +147,21 @@ class Folder:
 
 def execute(folder: Folder, work, finish):
     """Run ``work(store)`` then ``finish(result, folder_path)``; returns ``(result,
-    written folder, None)`` or ``(None, None, exit code)`` when interrupted."""
+    written folder, None)`` or ``(None, None, exit code)`` when interrupted. The
+    library's own warnings (e.g. a singular sample covariance) are printed once each as
+    one ``adapt: warning:`` line."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            return _execute(folder, work, finish)
+        finally:
+            for text in dict.fromkeys(str(w.message) for w in caught
+                                      if issubclass(w.category, UserWarning)
+                                      or "adapt" in Path(w.filename).parts):
+                print(f"adapt: warning: {text}", file=sys.stderr)
+
+
+def _execute(folder: Folder, work, finish):
     from ..execute import exit_code, interrupted_message, remove_if_empty, stop_on_signals
     with stop_on_signals():
         try:

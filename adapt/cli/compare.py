@@ -10,11 +10,6 @@ by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
 """
 from __future__ import annotations
 
-import shlex
-import sys
-import warnings
-from pathlib import Path
-
 from . import _run
 
 ORDER = 20
@@ -45,31 +40,19 @@ def register(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-def _integer(text, option: str):
-    from ..errors import InputError
-    if text is None:
-        return None
-    try:
-        return int(str(text).strip().replace("_", ""))
-    except ValueError:
-        raise InputError("expected a whole number", path=option, value=text) from None
+#: library argument names -> command-line options, for error messages
+_OPTIONS = {"trials": "--trials", "snapshots": "--snapshots", "seed": "--seed",
+            "checkpoints": "--checkpoints"}
 
 
 def command_line(args) -> str:
     """The command as a canonical, shell-quoted line (recorded in the manifest)."""
-    words = ["adapt", "compare", args.scene]
-    for spec in args.processors or []:
-        words += ["--processor", spec]
-    for name in ("trials", "snapshots", "seed", "checkpoints"):
-        value = getattr(args, name)
-        if value is not None:
-            words += [f"--{name}", str(value)]
-    words += ["--out", str(args.out or _run.DEFAULT_OUT)]
-    return shlex.join(words)
+    return _run.command_line("compare", args, {name: f"--{name}" for name in _OPTIONS},
+                             {"--out": args.out or _run.DEFAULT_OUT})
 
 
 def run(args) -> int:
-    from ..compare import TAIL, _checkpoints, compare, prepare_scene, write_compare_run
+    from ..compare import TAIL, _checkpoints, prepare_scene
     from ..errors import InputError
     execution = _run.cluster_options(args)
     if args.resume is not None:
@@ -77,18 +60,15 @@ def run(args) -> int:
     if args.scene is None:
         raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
                          path="SCENE")
-    trials = _integer(args.trials, "--trials")
-    snapshots = _integer(args.snapshots, "--snapshots")
-    seed = _integer(args.seed, "--seed")
+    trials = _run.whole_number(args.trials, "--trials")
+    snapshots = _run.whole_number(args.snapshots, "--snapshots")
+    seed = _run.whole_number(args.seed, "--seed")
     try:
         used, _ = prepare_scene(args.scene, args.processors, trials, snapshots, seed,
                                 where="--processor")
         cps = _checkpoints(args.checkpoints, used.snapshots)
     except InputError as exc:
-        if exc.path in ("trials", "snapshots", "seed", "checkpoints"):
-            raise exc.__class__(exc.message, path=f"--{exc.path}", value=exc.value,
-                                allowed=exc.allowed) from None
-        raise
+        raise _run.relocated(exc, _OPTIONS) from None
     settings = {"scene": used.resolved, "checkpoints": [int(c) for c in cps],
                 "chunk": execution["chunk"], "tail": TAIL}
     folder = _run.Folder("compare", args.out, used.name, settings, command_line(args))
@@ -114,12 +94,7 @@ def _execute(args, folder, used, settings, execution, line) -> int:
     from ..compare import compare, write_compare_run
     from ..errors import InputError
     tail = int(settings.get("tail", 256))
-    total = used.trials * (used.snapshots + tail)
-    bar = None
-    if not args.no_progress:
-        from tqdm import tqdm
-        bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
-                   disable=None, leave=False, desc="compare")
+    bar = _run.progress_bar(args, used.trials * (used.snapshots + tail), "compare")
 
     def work(store):
         try:
@@ -128,10 +103,7 @@ def _execute(args, folder, used, settings, execution, line) -> int:
                            chunk=execution["chunk"], workers=execution["workers"],
                            scheduler=execution["scheduler"], store=store)
         except InputError as exc:
-            if exc.path == "checkpoints":
-                raise exc.__class__(exc.message, path="--checkpoints", value=exc.value,
-                                    allowed=exc.allowed) from None
-            raise
+            raise _run.relocated(exc, _OPTIONS) from None
         finally:
             if bar is not None:
                 bar.close()
@@ -139,17 +111,4 @@ def _execute(args, folder, used, settings, execution, line) -> int:
     def finish(result, path):
         return write_compare_run(result, command_line=line, folder=path)
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        result, written, code = _run.execute(folder, work, finish)
-    # the library's own warnings (e.g. a singular sample covariance), once each, one line
-    for text in dict.fromkeys(str(w.message) for w in caught
-                              if issubclass(w.category, UserWarning)
-                              or "adapt" in Path(w.filename).parts):
-        print(f"adapt: warning: {text}", file=sys.stderr)
-    if code is not None:
-        return code
-    print(result.table())
-    print()
-    print(f"run folder: {written}")
-    return 0
+    return _run.print_outcome(*_run.execute(folder, work, finish))

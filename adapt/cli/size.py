@@ -10,9 +10,6 @@ by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
 """
 from __future__ import annotations
 
-import shlex
-import sys
-
 from . import _run
 
 ORDER = 30
@@ -65,50 +62,14 @@ def register(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-def _integer(text, option: str):
-    from ..errors import InputError
-    if text is None:
-        return None
-    try:
-        return int(str(text).strip().replace("_", ""))
-    except ValueError:
-        raise InputError("expected a whole number", path=option, value=text) from None
-
-
-def _real(text, option: str) -> float:
-    from ..errors import InputError
-    try:
-        return float(str(text).strip())
-    except ValueError:
-        raise InputError("expected a number", path=option, value=text) from None
-
-
 def command_line(args) -> str:
     """The command as a canonical, shell-quoted line (recorded in the manifest)."""
-    words = ["adapt", "size", args.scene]
-    for spec in args.processors or []:
-        words += ["--processor", spec]
-    for name in ("snapshots", "trials", "seed"):
-        value = getattr(args, name)
-        if value is not None:
-            words += [f"--{name}", str(value)]
-    words += ["--target-loss", str(args.target_loss or "3"),
-              "--fraction", str(args.fraction or "0.9"), "--out", str(args.out or _run.DEFAULT_OUT)]
+    fixed = {"--target-loss": args.target_loss or "3", "--fraction": args.fraction or "0.9",
+             "--out": args.out or _run.DEFAULT_OUT}
     if getattr(args, "draw", None) not in (None, "samples"):
-        words += ["--draw", args.draw]
-    return shlex.join(words)
-
-
-def _relocated(exc):
-    path = exc.path or ""
-    head = path.split(".")[0].split("[")[0]
-    if head in _OPTIONS and path == head:
-        return exc.__class__(exc.message, file=exc.file, path=_OPTIONS[head], value=exc.value,
-                             allowed=exc.allowed)
-    if head == "processors":
-        return exc.__class__(exc.message, file=exc.file, path="--processor" + path[len(head):],
-                             value=exc.value, allowed=exc.allowed)
-    return exc
+        fixed["--draw"] = args.draw
+    return _run.command_line("size", args, {"snapshots": "--snapshots", "trials": "--trials",
+                                            "seed": "--seed"}, fixed)
 
 
 def run(args) -> int:
@@ -121,10 +82,10 @@ def run(args) -> int:
         raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
                          path="SCENE")
     settings = {"processors": args.processors, "snapshots": args.snapshots,
-                "trials": _integer(args.trials, "--trials"),
-                "seed": _integer(args.seed, "--seed"),
-                "target_loss_db": _real(args.target_loss or "3", "--target-loss"),
-                "fraction": _real(args.fraction or "0.9", "--fraction"),
+                "trials": _run.whole_number(args.trials, "--trials"),
+                "seed": _run.whole_number(args.seed, "--seed"),
+                "target_loss_db": _run.real_number(args.target_loss or "3", "--target-loss"),
+                "fraction": _run.real_number(args.fraction or "0.9", "--fraction"),
                 "chunk": execution["chunk"], "draw": args.draw or "samples"}
     scene = load_scene(args.scene)
     settings["scene"] = scene.resolved
@@ -157,14 +118,12 @@ def _execute(args, folder, scene, settings, execution, line) -> int:
         nonlocal bar
         try:
             if not args.no_progress:
-                from tqdm import tqdm
                 last = (scene.snapshots if settings["snapshots"] is None else
                         int(sweep_points(settings["snapshots"], scene.elements,
                                          scene.snapshots, where="--snapshots")[-1]))
                 trials = settings["trials"]
                 total = (scene.trials if trials is None else max(trials, 0)) * last
-                bar = tqdm(total=total, unit=" trial-snapshots", unit_scale=True,
-                           file=sys.stderr, disable=None, leave=False, desc="size")
+                bar = _run.progress_bar(args, total, "size")
             return size(scene, settings["processors"], snapshots=settings["snapshots"],
                         trials=settings["trials"], seed=settings["seed"],
                         target_loss_db=settings["target_loss_db"],
@@ -174,7 +133,7 @@ def _execute(args, folder, scene, settings, execution, line) -> int:
                         scheduler=execution["scheduler"], store=store,
                         draw=settings.get("draw", "samples"))
         except InputError as exc:
-            raise _relocated(exc) from None
+            raise _run.relocated(exc, _OPTIONS) from None
         finally:
             if bar is not None:
                 bar.close()
@@ -182,10 +141,4 @@ def _execute(args, folder, scene, settings, execution, line) -> int:
     def finish(result, path):
         return write_sizing_run(result, command_line=line, folder=path)
 
-    result, written, code = _run.execute(folder, work, finish)
-    if code is not None:
-        return code
-    print(result.table())
-    print()
-    print(f"run folder: {written}")
-    return 0
+    return _run.print_outcome(*_run.execute(folder, work, finish))

@@ -28,7 +28,7 @@ Writing a processor (one file in this package):
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Callable, ClassVar, Iterable
 
 import numpy as np

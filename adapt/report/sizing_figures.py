@@ -169,7 +169,7 @@ def sizing_sections(record: dict, png: bytes | None = None) -> list:
     if record.get("disagreements"):
         parts += [paragraph("Finding: " + d) for d in record["disagreements"]]
     elif any(p.get("theory") for p in record["processors"]):
-        parts.append(paragraph(f"Simulation and theory agree within 4 standard errors at "
+        parts.append(paragraph("Simulation and theory agree within 4 standard errors at "
                                "every point where a closed form applies."))
     else:
         parts.append(paragraph("No closed form applies to these processors (loaded or "
