@@ -126,6 +126,23 @@ def refuse_with_resume(args, options: dict) -> None:
                                  "--scheduler or --no-progress")
 
 
+def resume(args, kind: str, refused: dict, execution: dict, execute_run):
+    """Finish the interrupted run folder ``args.resume`` of command ``kind``: refuse the
+    scene, ``--processor``, ``--out``, ``--chunk`` and the command's own run settings
+    (``refused``: attribute -> option text), rebuild the scene from the folder and call
+    ``execute_run(args, folder, scene, settings, execution, command_line)``."""
+    from ..execute import open_for_resume
+    from ..scenefile import parse_scene
+    refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor", **refused,
+                              "out": "--out", "chunk": "--chunk"})
+    record = open_for_resume(args.resume, kind)
+    settings = record["settings"]
+    scene = parse_scene(settings["scene"])
+    execution = dict(execution, chunk=settings.get("chunk"))
+    return execute_run(args, Folder(kind, existing=args.resume), scene, settings, execution,
+                       record.get("command_line"))
+
+
 class Folder:
     """The run folder of this command: created when the work starts (fresh run) or the
     folder being resumed. Calling it returns the chunk store path."""

@@ -76,18 +76,8 @@ def run(args) -> int:
 
 
 def _resume(args, execution) -> int:
-    from ..execute import open_for_resume
-    from ..scenefile import parse_scene
-    _run.refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor",
-                                   "trials": "--trials", "snapshots": "--snapshots",
-                                   "seed": "--seed", "checkpoints": "--checkpoints",
-                                   "out": "--out", "chunk": "--chunk"})
-    record = open_for_resume(args.resume, "compare")
-    settings = record["settings"]
-    used = parse_scene(settings["scene"])
-    execution = dict(execution, chunk=settings.get("chunk"))
-    folder = _run.Folder("compare", existing=args.resume)
-    return _execute(args, folder, used, settings, execution, record.get("command_line"))
+    return _run.resume(args, "compare", {name: f"--{name}" for name in _OPTIONS}, execution,
+                       _execute)
 
 
 def _execute(args, folder, used, settings, execution, line) -> int:

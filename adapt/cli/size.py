@@ -94,19 +94,10 @@ def run(args) -> int:
 
 
 def _resume(args, execution) -> int:
-    from ..execute import open_for_resume
-    from ..scenefile import parse_scene
-    _run.refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor",
-                                   "snapshots": "--snapshots", "trials": "--trials",
-                                   "seed": "--seed", "target_loss": "--target-loss",
-                                   "fraction": "--fraction", "out": "--out",
-                                   "chunk": "--chunk", "draw": "--draw"})
-    record = open_for_resume(args.resume, "size")
-    settings = record["settings"]
-    scene = parse_scene(settings["scene"])
-    execution = dict(execution, chunk=settings.get("chunk"))
-    folder = _run.Folder("size", existing=args.resume)
-    return _execute(args, folder, scene, settings, execution, record.get("command_line"))
+    return _run.resume(args, "size", {"snapshots": "--snapshots", "trials": "--trials",
+                                      "seed": "--seed", "target_loss": "--target-loss",
+                                      "fraction": "--fraction", "draw": "--draw"},
+                       execution, _execute)
 
 
 def _execute(args, folder, scene, settings, execution, line) -> int:
