@@ -45,6 +45,7 @@ from .errors import InputError
 from .processors import _kernels
 from .processors.base import Context, Processor, ProcessorResult
 from .processors._covariance import SampleCovarianceProcessor
+from .processors._linalg import compiled_solves
 from .scene import Scene
 
 __all__ = ["DRAWS", "covariance_draw_refusal", "check_covariance_draw", "cut_points",
@@ -155,12 +156,14 @@ def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
 
 
 def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
-              lengths: np.ndarray) -> np.ndarray:
+              lengths: np.ndarray, cumulative: bool = False) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite:
     ``L_R A A^H L_R^H`` with A from :func:`bartlett_factors`. With the compiled kernels
     on (:mod:`adapt.processors._kernels`) the same draws are combined in a compiled loop
-    that skips the triangles' zeros (equal to rounding)."""
+    that skips the triangles' zeros (equal to rounding); its sums are exactly Hermitian.
+    ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
+    growing-window sums; ``np.cumsum`` order)."""
     r = np.asarray(covariance)
     if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] != len(gens):
         raise ValueError(f"covariance must be (T, N, N) with T = {len(gens)} generators, "
@@ -170,9 +173,10 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
     if _kernels.compiled():
         gam, z, (si, ii, jj) = _draws(gens, lengths, n)
         counts = np.bincount(si, minlength=len(lengths))
-        return _kernels.wishart_spans(chol, gam, z, ii, jj, counts)
+        return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative)
     g = chol[:, None] @ bartlett_factors(gens, lengths, n)
-    return g @ np.conj(np.swapaxes(g, -1, -2))
+    spans = g @ np.conj(np.swapaxes(g, -1, -2))
+    return np.cumsum(spans, axis=1) if cumulative else spans
 
 
 def _trial_generators(seed: int, trials: np.ndarray) -> list[np.random.Generator]:
@@ -233,19 +237,28 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
         growing = any(m is None for *_, m in plans)
         shared = time.perf_counter() - t0
         group = max(1, _GROUP_VALUES // (len(lengths) * n * n))
+        only_growing = all(m is None for *_, m in plans)
+        hermitian = _kernels.compiled()          # the compiled sums are exactly Hermitian
         for lo in range(0, t_, group):
             hi = min(t_, lo + group)
             t0 = time.perf_counter()
-            spans = span_sums(r[lo:hi], gens[lo:hi], lengths)         # (G, S, N, N)
-            if growing:      # running totals: total[s] = sum of spans 0..s-1
-                total = np.zeros((hi - lo, len(lengths) + 1, n, n), dtype=complex)
-                np.cumsum(spans, axis=1, out=total[:, 1:])
+            if only_growing:     # running totals straight from the draw: total[s] = spans 0..s
+                total = span_sums(r[lo:hi], gens[lo:hi], lengths, cumulative=True)
+            else:
+                spans = span_sums(r[lo:hi], gens[lo:hi], lengths)     # (G, S, N, N)
+                if growing:
+                    total = np.cumsum(spans, axis=1)
             shared += time.perf_counter() - t0
             for i, p, distinct, hi_i, mask in plans:
                 t1 = time.perf_counter()
-                table = (total[:, hi_i] if mask is None          # sliding: spans inside
-                         else np.einsum("us,tsij->tuij", mask, spans))
-                weights[i][lo:hi] = p.weights_from_sums(cps, distinct, table, slice(lo, hi))
+                if mask is None:                     # growing: the totals up to hi_i
+                    every = len(hi_i) == len(lengths) and np.all(hi_i == np.arange(1, len(hi_i) + 1))
+                    table = total if every else total[:, hi_i - 1]
+                else:                                # sliding: the spans inside
+                    table = np.einsum("us,tsij->tuij", mask, spans)
+                with compiled_solves():
+                    weights[i][lo:hi] = p.weights_from_sums(
+                        cps, distinct, table, slice(lo, hi), hermitian=hermitian and mask is None)
                 seconds[i] += time.perf_counter() - t1
         for i, _ in cov:
             seconds[i] += shared / len(cov)

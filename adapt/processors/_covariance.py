@@ -213,7 +213,9 @@ def solve_sample(r: np.ndarray, b: np.ndarray, counts, exact: np.ndarray) -> np.
     rhs = b[..., None] if vec else b
     x = np.empty(np.broadcast_shapes(r.shape[:-1], rhs.shape[:-1]) + rhs.shape[-1:],
                  dtype=np.result_type(r, rhs, complex))
-    if exact.any():
+    if exact.all():                                # no copies of the whole stack
+        x[...] = solve_hermitian(r, rhs)
+    elif exact.any():
         x[:, exact] = solve_hermitian(r[:, exact], rhs[:, exact])
     for c in np.flatnonzero(~exact):               # a loop over checkpoints, never trials
         lam, e = np.linalg.eigh(r[:, c])
@@ -354,12 +356,14 @@ class SampleCovarianceProcessor(Processor):
         return self.weights_from_sums(stops, distinct, table)
 
     def weights_from_sums(self, stops, distinct: np.ndarray, table: np.ndarray,
-                          rows: slice = slice(None)) -> np.ndarray:
+                          rows: slice = slice(None), hermitian: bool = False) -> np.ndarray:
         """Weights (T, len(stops), N) at checkpoints ``stops`` from the window sums
         ``table`` (T, len(distinct), N, N) at the distinct nonzero update times
         ``distinct`` (sorted) behind them; ``rows`` selects the trials of the batch the
-        table holds (all by default). Shared by the streaming path and the drawn
-        covariance path (:mod:`adapt.wishart`)."""
+        table holds (all by default); ``hermitian``: the caller guarantees the sums are
+        exactly Hermitian, so the symmetrisation is skipped (it would change nothing).
+        Shared by the streaming path and the drawn covariance path
+        (:mod:`adapt.wishart`)."""
         stops = np.asarray(stops, dtype=np.int64)
         times = self.update_times(stops)
         t_, n = table.shape[0], self.context.elements
@@ -367,11 +371,14 @@ class SampleCovarianceProcessor(Processor):
         w[:, times == 0] = self._initial[rows][:, None, :]
         if distinct.size:
             counts = self._sums.count(distinct)
-            r = hermitian_part(table * (1.0 / counts)[None, :, None, None])
+            r = table * (1.0 / counts)[None, :, None, None]
+            if not hermitian:
+                r = hermitian_part(r)
             mode, db = self.loading_settings()
             load = loading_level(r, counts, mode, db, self.context.noise_power)
             if load is not None:
-                r = r + load[..., None, None] * np.eye(n)
+                idx = np.arange(n)
+                r[..., idx, idx] += load[..., None]           # r is a fresh array
                 exact = np.ones(len(distinct), dtype=bool)
             else:
                 exact = counts >= n

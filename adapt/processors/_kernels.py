@@ -24,8 +24,8 @@ import time
 
 import numpy as np
 
-__all__ = ["mode", "compiled", "lms_block", "rls_block", "wishart_spans", "warm_up",
-           "SYMMETRISE_EVERY"]
+__all__ = ["mode", "compiled", "lms_block", "rls_block", "wishart_spans", "cholesky_solve",
+           "warm_up", "SYMMETRISE_EVERY"]
 
 #: P is re-symmetrised after every this many snapshots (as in the numpy RLS path)
 SYMMETRISE_EVERY = 256
@@ -62,11 +62,12 @@ def compiled() -> bool:
 _LMS = None
 _RLS = None
 _WISHART = None
+_CHOLESKY = None
 
 
 def _build():
     """Compile (or load from the on-disk cache) the kernels on first use."""
-    global _LMS, _RLS, _WISHART
+    global _LMS, _RLS, _WISHART, _CHOLESKY
     if _LMS is not None:
         return
     if _numba is None:
@@ -160,10 +161,11 @@ def _build():
                     nxt += 1
 
     @njit(cache=True, nogil=True)
-    def wishart_kernel(chol, gam, z, ii, jj, counts, out):
+    def wishart_kernel(chol, gam, z, ii, jj, counts, cumulative, out):
         # chol (T, N, N) lower; gam (T, S, N); z (T, E, 2) below-diagonal normals of all
         # spans in order, counts[s] of them for span s at rows ii, columns jj;
-        # out (T, S, N, N) <- (L A)(L A)^H with A the Bartlett factor of each span
+        # out (T, S, N, N) <- (L A)(L A)^H with A the Bartlett factor of each span, or
+        # with cumulative the running totals out[s] = out[s - 1] + (L A)(L A)^H
         t_, s_, n = gam.shape
         a = np.zeros((n, n), dtype=np.complex128)
         g = np.zeros((n, n), dtype=np.complex128)
@@ -188,10 +190,68 @@ def _build():
                         v = 0j
                         for k in range(j + 1):
                             v += g[i, k] * np.conj(g[j, k])
+                        if cumulative and s > 0:
+                            v = out[t, s - 1, i, j] + v
                         out[t, s, i, j] = v
                         out[t, s, j, i] = np.conj(v)
 
+    @njit(cache=True, nogil=True)
+    def cholesky_kernel(r, b, x, ok):
+        # r (M, N, N): only the lower triangle and the real diagonal are read (as LAPACK's
+        # zpotrf with uplo L); b (M, N, K); x (M, N, K) <- R^-1 b; ok[m] False where the
+        # factorisation meets a pivot that is not positive (x left unset there).
+        # Complex arithmetic written out on real and imaginary parts (L in lr, li).
+        m_, n, k_ = b.shape
+        lr = np.zeros((n, n))
+        li = np.zeros((n, n))
+        d = np.zeros(n)
+        yr = np.zeros(n)
+        yi = np.zeros(n)
+        for m in range(m_):
+            good = True
+            for j in range(n):
+                s = r[m, j, j].real
+                for k in range(j):
+                    s -= lr[j, k] * lr[j, k] + li[j, k] * li[j, k]
+                if not s > 0.0:              # also catches NaN
+                    good = False
+                    break
+                dj = np.sqrt(s)
+                lr[j, j] = dj
+                li[j, j] = 0.0
+                d[j] = 1.0 / dj
+                for i in range(j + 1, n):
+                    vr = r[m, i, j].real
+                    vi = r[m, i, j].imag
+                    for k in range(j):       # L_ij = (R_ij - sum_k L_ik conj(L_jk)) / L_jj
+                        vr -= lr[i, k] * lr[j, k] + li[i, k] * li[j, k]
+                        vi -= li[i, k] * lr[j, k] - lr[i, k] * li[j, k]
+                    lr[i, j] = vr * d[j]
+                    li[i, j] = vi * d[j]
+            ok[m] = good
+            if not good:
+                continue
+            for c in range(k_):
+                for i in range(n):           # L y = b
+                    vr = b[m, i, c].real
+                    vi = b[m, i, c].imag
+                    for k in range(i):
+                        vr -= lr[i, k] * yr[k] - li[i, k] * yi[k]
+                        vi -= lr[i, k] * yi[k] + li[i, k] * yr[k]
+                    yr[i] = vr * d[i]
+                    yi[i] = vi * d[i]
+                for i in range(n - 1, -1, -1):   # L^H x = y
+                    vr = yr[i]
+                    vi = yi[i]
+                    for k in range(i + 1, n):
+                        vr -= lr[k, i] * yr[k] + li[k, i] * yi[k]
+                        vi -= lr[k, i] * yi[k] - li[k, i] * yr[k]
+                    yr[i] = vr * d[i]
+                    yi[i] = vi * d[i]
+                    x[m, i, c] = complex(yr[i], yi[i])
+
     _LMS, _RLS, _WISHART = lms_kernel, rls_kernel, wishart_kernel
+    _CHOLESKY = cholesky_kernel
 
 
 def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
@@ -252,19 +312,45 @@ def rls_block(p: np.ndarray, wc: np.ndarray, x: np.ndarray, d: np.ndarray, lam: 
 
 
 def wishart_spans(chol: np.ndarray, gam: np.ndarray, z: np.ndarray, rows: np.ndarray,
-                  cols: np.ndarray, counts: np.ndarray) -> np.ndarray:
+                  cols: np.ndarray, counts: np.ndarray, cumulative: bool = False) -> np.ndarray:
     """Span sums ``(L A)(L A)^H`` (T, S, N, N) of :func:`adapt.wishart.span_sums`,
     compiled: chol (T, N, N) Cholesky factors, gam (T, S, N) the diagonal's gamma
     variates, z (T, E, 2) the below-diagonal normals of all spans in order (``counts[s]``
-    of them for span s, at ``rows``/``cols``). Both triangular products skip the zeros."""
+    of them for span s, at ``rows``/``cols``). Both triangular products skip the zeros.
+    ``cumulative``: the running totals over the spans instead (entry s holds spans
+    0..s, added in order as ``np.cumsum`` does); exactly Hermitian either way."""
     _build()
     t_, s_, n = gam.shape
     out = np.empty((t_, s_, n, n), dtype=complex)
     _WISHART(np.ascontiguousarray(chol, dtype=complex), np.ascontiguousarray(gam),
              np.ascontiguousarray(z), np.ascontiguousarray(rows, dtype=np.int64),
              np.ascontiguousarray(cols, dtype=np.int64),
-             np.ascontiguousarray(counts, dtype=np.int64), out)
+             np.ascontiguousarray(counts, dtype=np.int64), bool(cumulative), out)
     return out
+
+
+def cholesky_solve(r: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``R^-1 b`` by Cholesky factorisation for a stack of Hermitian positive-definite
+    ``r`` (..., N, N) (lower triangle and real diagonal read, as LAPACK's ``zpotrf``)
+    and ``b`` (..., N, K), compiled: factorisation and both triangular solves per item in
+    one loop (no LAPACK call per small matrix). Raises ``np.linalg.LinAlgError`` if any
+    item is not positive definite, like ``np.linalg.cholesky``."""
+    r = np.asarray(r)
+    b = np.asarray(b)
+    if r.ndim < 2 or r.shape[-1] != r.shape[-2] or b.ndim != r.ndim \
+            or b.shape[:-1] != r.shape[:-1]:
+        raise ValueError(f"need r (..., N, N) and b (..., N, K) with equal stacks, got "
+                         f"{r.shape} and {b.shape}")
+    _build()
+    n, k = r.shape[-1], b.shape[-1]
+    rf = np.ascontiguousarray(r.reshape((-1, n, n)), dtype=np.complex128)
+    bf = np.ascontiguousarray(b.reshape((-1, n, k)), dtype=np.complex128)
+    x = np.empty(bf.shape, dtype=np.complex128)
+    ok = np.empty(len(rf), dtype=np.bool_)
+    _CHOLESKY(rf, bf, x, ok)
+    if not ok.all():
+        raise np.linalg.LinAlgError("Matrix is not positive definite")
+    return x.reshape(b.shape)
 
 
 def warm_up() -> float:
@@ -283,4 +369,5 @@ def warm_up() -> float:
     rls_block(p, np.zeros((2, 3), complex), x, d, 1.0, 0, marks)
     wishart_spans(p, np.ones((2, 1, 3)), np.zeros((2, 3, 2)), np.array([1, 2, 2]),
                   np.array([0, 0, 1]), np.array([3]))
+    cholesky_solve(p, x[:, :3, :1])
     return time.perf_counter() - t0
