@@ -34,6 +34,7 @@ from typing import Iterator
 import numpy as np
 
 from .scene import Scene
+from .seeding import trial_generators
 
 __all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise"]
 
@@ -129,8 +130,8 @@ class TrialBatch:
         n = sc.elements
         s = len(sc.sources)
         draws = np.empty((self.trials, 5 * n + s))
-        for t, i in enumerate(self.trial_indices):
-            g = np.random.Generator(np.random.PCG64(self._seed(i, _CONSTANTS)))
+        gens = trial_generators(self.seed, self.trial_indices, _CONSTANTS)
+        for t, g in enumerate(gens):
             g.standard_normal(out=draws[t, : 5 * n])
             draws[t, 5 * n:] = g.random(s)
         err = sc.array.errors
@@ -246,9 +247,8 @@ class TrialBatch:
             raise ValueError(f"block must be >= 1 snapshot, got {b}")
         idx = self.trial_indices
 
-        def gens_for(key: int):
-            return [np.random.Generator(np.random.PCG64(self._seed(i, _STREAMS, key)))
-                    for i in idx]
+        def gens_for(key: int):       # Generator(PCG64(SeedSequence(seed, (i, 1, key))))
+            return trial_generators(self.seed, idx, _STREAMS, key)
 
         noise_gens = gens_for(_NOISE_KEY)
         source_gens = {i: gens_for(_component_key(s.name))

@@ -47,6 +47,7 @@ from .processors.base import Context, Processor, ProcessorResult
 from .processors._covariance import SampleCovarianceProcessor
 from .processors._linalg import compiled_solves
 from .scene import Scene
+from .seeding import trial_generators
 
 __all__ = ["DRAWS", "covariance_draw_refusal", "check_covariance_draw", "cut_points",
            "bartlett_factors", "span_sums", "run_drawn"]
@@ -180,8 +181,8 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
 
 
 def _trial_generators(seed: int, trials: np.ndarray) -> list[np.random.Generator]:
-    return [np.random.Generator(np.random.PCG64(
-        np.random.SeedSequence(int(seed), spawn_key=(int(i), _DRAWN_KEY)))) for i in trials]
+    # Generator(PCG64(SeedSequence(seed, spawn_key=(i, 2)))) per trial, hashed together
+    return trial_generators(int(seed), trials, _DRAWN_KEY)
 
 
 class _Span:
