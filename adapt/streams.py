@@ -158,14 +158,17 @@ class TrialBatch:
         ``k`` None: at snapshot 0, shape (T, N). ``k`` an array of snapshot indices:
         shape (T, len(k), N).
         """
+        return self._steering(source, k, slice(None))
+
+    def _steering(self, source: int, k, rows: slice) -> np.ndarray:
         src = self.scene.sources[source]
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
         az, el = src.direction(kk)
         azr, elr = np.deg2rad(az), np.deg2rad(el)
         u = np.stack([np.sin(azr) * np.cos(elr), np.cos(azr) * np.cos(elr), np.sin(elr)], -1)
         # elementwise products (not matmul) so results do not depend on batch shape
-        phase = 2 * np.pi * (self.positions[:, None, :, :] * u[None, :, None, :]).sum(-1)
-        a = self.element_gains[:, None, :] * np.exp(1j * phase)
+        phase = 2 * np.pi * (self.positions[rows, None, :, :] * u[None, :, None, :]).sum(-1)
+        a = self.element_gains[rows, None, :] * np.exp(1j * phase)
         return a[:, 0, :] if k is None else a
 
     def steering_toward(self, azimuth_deg: float, elevation_deg: float = 0.0) -> np.ndarray:
@@ -191,16 +194,21 @@ class TrialBatch:
         sc = self.scene
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
         n = sc.elements
-        r = np.zeros((self.trials, len(kk), n, n), dtype=complex)
+        # without hardware errors every trial has the same array: one row, repeated
+        uniform = self.trials > 1 and not sc.array.errors.any
+        rows = slice(0, 1) if uniform else slice(None)
+        r = np.zeros((1 if uniform else self.trials, len(kk), n, n), dtype=complex)
         r += np.eye(n)
         members = list(sc.interferer_indices)
         if training and sc.training == "signal":
             members.append(sc.desired_index)
         for i in members:
             src = sc.sources[i]
-            a = self.steering(i, kk)                                   # (T, M, N)
+            a = self._steering(i, kk, rows)                            # (T or 1, M, N)
             p = src.power * src.active(kk).astype(float)              # (M,)
             r += p[None, :, None, None] * (a[..., :, None] * np.conj(a[..., None, :]))
+        if uniform:
+            r = np.repeat(r, self.trials, axis=0)
         return r[:, 0] if k is None else r
 
     # ------------------------------------------------------------------ streams
