@@ -36,7 +36,8 @@ import numpy as np
 from ..errors import SpecError, did_you_mean
 
 __all__ = ["Parameter", "Processor", "Context", "ProcessorResult", "held_outputs",
-           "run_processor", "run_processors", "normalised_checkpoints"]
+           "run_processor", "run_processors", "normalised_checkpoints", "check_processors",
+           "require_finite"]
 
 
 @dataclass(frozen=True)
@@ -253,6 +254,9 @@ class Processor:
     parameters: ClassVar[dict[str, Parameter]] = {}
     #: the method trains on the reference waveform (LMS family)
     uses_reference: ClassVar[bool] = False
+    #: fewest elements the method works with (2 for anything that adapts under a
+    #: look constraint: one element leaves no freedom)
+    min_elements: ClassVar[int] = 1
 
     def __init__(self, label: str | None = None, **params: Any):
         self.params = self.validate(params)
@@ -383,8 +387,7 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
     import time
     cps = normalised_checkpoints(checkpoints, snapshots)
     procs = list(processors)
-    for p in procs:
-        p.check(context)
+    check_processors(procs, context)
     seconds = [0.0] * len(procs)
     held, initial = [], []
     for i, p in enumerate(procs):
@@ -408,6 +411,7 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
             w = p.update(block, inside)
             seconds[i] += time.perf_counter() - t0
             if inside.size:
+                require_finite(p, i, w, inside)
                 found[i].append(w)
             if on_block is not None:
                 on_block(i, block, inside, w, held[i])
@@ -425,6 +429,34 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
                             outputs=np.concatenate(outs[i], axis=1) if outputs else None,
                             initial=initial[i], seconds=seconds[i])
             for i, p in enumerate(procs)]
+
+
+def check_processors(processors, context: Context) -> None:
+    """Each processor's own scene checks (stability bounds, constraints) and its
+    element minimum; a SpecError is located at ``processors[i]``."""
+    for i, p in enumerate(processors):
+        if context.elements < p.min_elements:
+            raise SpecError(f"'{p.method}' needs at least {p.min_elements} elements; this "
+                            f"array has {context.elements}", path=f"processors[{i}]",
+                            value=p.label, allowed="a method that works on one element "
+                                                   "(conventional, optimum, smi, ...)")
+        try:
+            p.check(context)
+        except SpecError as exc:
+            raise exc.at(path_prefix=f"processors[{i}]") from None
+
+
+def require_finite(processor: Processor, index: int, weights: np.ndarray,
+                   checkpoints: np.ndarray) -> None:
+    """Refuse non-finite weights (a diverged recursion, an overflow): scores are never
+    computed from NaN silently."""
+    ok = np.isfinite(weights).all(axis=(0, 2))
+    if not ok.all():
+        first = int(checkpoints[int(np.argmin(ok))])
+        raise SpecError(f"'{processor.label}' diverged: its weights are not finite after "
+                        f"{first} snapshots; choose settings inside the method's stable "
+                        "range (a smaller step, a forgetting factor nearer 1, more loading)",
+                        path=f"processors[{index}]", value=processor.spec())
 
 
 def run_processor(processor: Processor, blocks: Iterable, context: Context, checkpoints,

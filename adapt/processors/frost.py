@@ -90,6 +90,7 @@ def look_constraints(look: np.ndarray, positions: np.ndarray,
 
 class FrostConstrainedLms(AutoStep):
     method = "frost"
+    min_elements = 2
     summary = "Frost's constrained LMS: minimum output power with unit look response"
     parameters = {
         "step": Parameter("float", None,

@@ -45,6 +45,7 @@ from .nlms import normalised_gain
 
 class GeneralisedSidelobeCanceller(Processor):
     method = "gsc"
+    min_elements = 2
     summary = "Griffiths-Jim sidelobe canceller: look beam minus NLMS-adapted blocked branch"
     parameters = {
         "step": Parameter("float", 0.05, "normalised step mu of the adaptive branch; stable "

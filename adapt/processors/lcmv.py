@@ -93,6 +93,7 @@ def steering_derivatives(positions: np.ndarray, azimuth_deg: float, elevation_de
 
 class LinearlyConstrained(SampleCovarianceProcessor):
     method = "lcmv"
+    min_elements = 2
     summary = "minimum variance with look, null and derivative constraints (Frost)"
     parameters = {
         "nulls": Parameter("str", None, "azimuths forced to zero response, e.g. 20,35.5",
