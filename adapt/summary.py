@@ -33,7 +33,7 @@ import numpy as np
 from . import geometry
 from .scene import Scene, Source
 
-__all__ = ["summarise_scene", "scene_warnings", "main_lobe_contains", "beamwidth_deg",
+__all__ = ["summarise_scene", "scene_warnings", "check_processor_settings", "main_lobe_contains", "beamwidth_deg",
            "grating_lobe",
            "angle_between_deg", "describe_waveform", "describe_behaviour"]
 
@@ -227,6 +227,23 @@ def scene_warnings(scene: Scene) -> list[str]:
                    f"is {worst:.3g} degrees from the desired source '{d.name}'"
                    + (" (largest over the run)" if len(ks) > 1 else ""))
     return out
+
+
+def check_processor_settings(scene: Scene) -> None:
+    """Run every listed processor's own scene checks (element minimum, stability bounds
+    such as an LMS step against 2/lambda_max, constraint counts) on one trial of the
+    scene, as ``compare`` would before starting; SpecError located in the scene file."""
+    if not scene.processors:
+        return
+    from .errors import SpecError
+    from .processors import Context, parse_specs
+    from .processors.base import check_processors
+    from .streams import TrialBatch
+    procs = parse_specs(list(scene.processors))
+    try:
+        check_processors(procs, Context.from_batch(TrialBatch(scene, trials=1)))
+    except SpecError as exc:
+        raise exc.at(file=scene.source_file) from None
 
 
 def _processor_labels(scene: Scene) -> list[str]:

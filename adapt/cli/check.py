@@ -26,13 +26,14 @@ def register(subparsers) -> None:
 
 def run(args) -> int:
     from ..scenefile import load_scene
-    from ..summary import summarise_scene
+    from ..summary import check_processor_settings, summarise_scene
     bad = 0
     for i, path in enumerate(args.scenes):
         if i:
             print()
         try:
             scene = load_scene(path)
+            check_processor_settings(scene)
             text = summarise_scene(scene)
         except InputError as exc:
             bad += 1
