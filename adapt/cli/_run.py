@@ -7,6 +7,7 @@ exit code 130 (SIGINT) or 143 (SIGTERM). The logic lives in :mod:`adapt.execute`
 """
 from __future__ import annotations
 
+import contextlib
 import shlex
 import sys
 import warnings
@@ -162,20 +163,27 @@ class Folder:
         return self.path / PARTIAL
 
 
-def execute(folder: Folder, work, finish):
-    """Run ``work(store)`` then ``finish(result, folder_path)``; returns ``(result,
-    written folder, None)`` or ``(None, None, exit code)`` when interrupted. The
-    library's own warnings (e.g. a singular sample covariance) are printed once each as
-    one ``adapt: warning:`` line."""
+@contextlib.contextmanager
+def library_warnings():
+    """Show the library's own warnings (e.g. a singular sample covariance) once each,
+    as one ``adapt: warning:`` line, when the block ends."""
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            return _execute(folder, work, finish)
+            yield
         finally:
             for text in dict.fromkeys(str(w.message) for w in caught
                                       if issubclass(w.category, UserWarning)
                                       or "adapt" in Path(w.filename).parts):
                 print(f"adapt: warning: {text}", file=sys.stderr)
+
+
+def execute(folder: Folder, work, finish):
+    """Run ``work(store)`` then ``finish(result, folder_path)``; returns ``(result,
+    written folder, None)`` or ``(None, None, exit code)`` when interrupted; library
+    warnings as in :func:`library_warnings`."""
+    with library_warnings():
+        return _execute(folder, work, finish)
 
 
 def _execute(folder: Folder, work, finish):

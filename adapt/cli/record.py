@@ -64,10 +64,12 @@ def run(args) -> int:
     import numpy as np
 
     from ..reference import load_reference, record
-    from ._run import whole_number
-    out = record(args.scene, args.processor, args.trials, args.snapshots,
-                 parse_checkpoints(args.checkpoints), args.out, tolerances=args.tolerance,
-                 workers=whole_number(args.workers, "--workers"), scheduler=args.scheduler)
+    from ._run import library_warnings, whole_number
+    with library_warnings():
+        out = record(args.scene, args.processor, args.trials, args.snapshots,
+                     parse_checkpoints(args.checkpoints), args.out, tolerances=args.tolerance,
+                     workers=whole_number(args.workers, "--workers"),
+                     scheduler=args.scheduler)
     ref = load_reference(out)
     info = ref.info
     last = np.array([c.sinr_db[-1] for c in ref.cases])
