@@ -355,8 +355,8 @@ def test_power_inversion_nulls_strong_jammers_deeper_than_30_db():
 # ----------------------------------------------------------------------------- eigenspace
 def test_dmr_with_the_right_rank_converges_in_about_2j_snapshots():
     # With J strong jammers the eigenspace (DMR / projection) normalised SINR is close to
-    # Beta(K-J+1, J), mean (K+1-J)/(K+1) (Haimovich 1996, "Asymptotic distribution of the
-    # conditional SNR in an eigenanalysis-based adaptive array"; from memory, valid for
+    # Beta(K-J+1, J), mean (K+1-J)/(K+1) (Haimovich, "Asymptotic distribution of the
+    # conditional SNR in an eigenanalysis-based adaptive array", IEEE Trans. AES; from memory, valid for
     # INR >> 1; 0.015 allowed for that approximation). Unloaded SMI needs K = 2N-3 for a
     # mean of 1/2 (RMB 1974); DMR is above 1/2 already at K = 2J.
     n, trials = 16, 400

@@ -23,7 +23,9 @@ the eigenvalues above ``threshold_db`` (default 10 dB) over the known noise powe
 
 Checkable fact: with the right rank against J strong jammers (INR >> 1) the normalised
 SINR of DMR and of the projection is close to Beta(K-J+1, J), mean (K+1-J)/(K+1)
-(Haimovich 1996, from memory; measured in the tests): within 3 dB on average from
+(Haimovich, "Asymptotic distribution of the conditional SNR in an eigenanalysis-based
+adaptive array", IEEE Trans. AES, 1997; citation details from memory, the law is
+measured in the tests): within 3 dB on average from
 K = 2J snapshots, where unloaded SMI needs K = 2N-3 (Reed-Mallett-Brennan), because only
 the J dominant eigenvectors must be estimated.
 
