@@ -26,7 +26,8 @@ from pathlib import Path
 from typing import Sequence
 
 from . import scores
-from .compare import Comparison, _checkpoints, compare, prepare_scene, write_compare_run
+from .compare import Comparison, compare, write_compare_run
+from .runsettings import checkpoints_for, prepare_scene
 from .errors import InputError, SceneError, SpecError
 from .evaluate import Evaluation, ProcessorScores
 from .evaluate import evaluate as _evaluate
@@ -100,7 +101,7 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
     :mod:`adapt.processors.base`). Scores are not computed; use :func:`evaluate`.
     """
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
-    cps = _checkpoints(checkpoints, sc.snapshots)
+    cps = checkpoints_for(checkpoints, sc.snapshots)
     batch = TrialBatch(sc)
     return _run_processors(procs, batch.blocks(sc.snapshots), Context.from_batch(batch), cps,
                            outputs=outputs, snapshots=sc.snapshots)
@@ -113,7 +114,7 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
     per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
     gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C)."""
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
-    cps = _checkpoints(checkpoints, sc.snapshots)
+    cps = checkpoints_for(checkpoints, sc.snapshots)
     chunk = max(1, min(sc.trials, (1 << 16) // max(1, sc.elements)))
     return _evaluate(sc, procs, cps, chunk=chunk, tail=tail)
 

@@ -38,111 +38,19 @@ from typing import Callable, Sequence
 import numpy as np
 
 from . import geometry, scores
-from .errors import InputError, SceneError, SpecError
-from .evaluate import Evaluation, default_checkpoints, evaluate
-from .processors import Processor, parse_specs
-from .processors.base import normalised_checkpoints
+from .evaluate import Evaluation, evaluate
+from .runsettings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
 from .scene import Scene
 
-__all__ = ["Comparison", "compare", "summarise", "write_compare_run", "prepare_scene",
-           "CAUTION", "TAIL", "MAX_TRIALS", "MAX_SNAPSHOTS"]
+__all__ = ["Comparison", "compare", "summarise", "write_compare_run", "CAUTION", "TAIL"]
 
 #: printed under every summary table
 CAUTION = ("Simulation only: scores come from a modelled scene; validate against measured "
            "hardware before relying on any processor.")
 #: extra snapshots after the last checkpoint used to measure the output SINR from samples
 TAIL = 256
-MAX_TRIALS = 1_000_000
-MAX_SNAPSHOTS = 1_000_000_000
 #: trial x direction x element budget of the pattern scores (pointing, sidelobes)
 _PATTERN_BUDGET = 50_000_000
-
-
-# --------------------------------------------------------------------------- inputs
-def _count(value, name: str, high: int, low: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer, float, np.floating)):
-        raise InputError(f"{name} must be a whole number", path=name, value=value,
-                         allowed=f"an integer in [{low}, {high:,}]")
-    if not math.isfinite(float(value)) or float(value) != int(value):
-        raise InputError(f"{name} must be a whole number", path=name, value=value,
-                         allowed=f"an integer in [{low}, {high:,}]")
-    v = int(value)
-    if not low <= v <= high:
-        raise InputError(f"{name} out of range", path=name, value=v,
-                         allowed=f"an integer in [{low}, {high:,}]")
-    return v
-
-
-def _checkpoints(value, snapshots: int) -> np.ndarray:
-    if value is None:
-        return default_checkpoints(snapshots)
-    if isinstance(value, str):
-        parts = [p for p in value.replace(",", " ").split() if p]
-        try:
-            value = [int(p) for p in parts]
-        except ValueError:
-            raise InputError("checkpoints must be whole snapshot counts", path="checkpoints",
-                             value=value.strip(), allowed="e.g. 1,2,4,8,16") from None
-    try:
-        arr = np.asarray(value)
-        if arr.dtype == object or arr.dtype.kind not in "iuf":
-            raise ValueError("checkpoints must be whole snapshot counts")
-        return normalised_checkpoints(arr, snapshots)
-    except ValueError as exc:
-        raise InputError(str(exc), path="checkpoints", value=value,
-                         allowed=f"whole numbers in [1, {snapshots}] (the snapshots)") from None
-
-
-def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None,
-                  where: str = "processors") -> tuple[Scene, list[Processor]]:
-    """The scene as it will be run (overrides applied and re-validated) and its parsed
-    processors. ``scene`` may be a :class:`Scene` or a scene file path; ``processors``
-    a list of specs (strings, mappings) or :class:`Processor` objects, default the
-    scene's own list. InputError (exit code 2 on the command line) for bad values."""
-    from .scenefile import load_scene, parse_scene, scene_to_mapping
-    if isinstance(scene, (str, Path)):
-        scene = load_scene(scene)
-    if not isinstance(scene, Scene):
-        raise InputError("expected a scene or the path of a scene file",
-                         value=type(scene).__name__)
-    if processors is None:
-        if not scene.processors:
-            raise SpecError("the scene lists no processors and none were given",
-                            file=scene.source_file, path="processors",
-                            allowed="a 'processors:' list in the scene or --processor SPEC")
-        procs = parse_specs(list(scene.processors), where="processors")
-    else:
-        if isinstance(processors, (str, dict, Processor)):
-            processors = [processors]
-        processors = list(processors)
-        if not processors:
-            raise SpecError("no processors given", path=where,
-                            allowed="one or more specs, e.g. 'smi loading_db=10'")
-        specs = [p for p in processors if not isinstance(p, Processor)]
-        parsed = iter(parse_specs(specs, where=where)) if specs else iter(())
-        procs = [p if isinstance(p, Processor) else next(parsed) for p in processors]
-        labels = [p.label for p in procs]
-        for i, label in enumerate(labels):
-            if label in labels[:i]:
-                raise SpecError(f"two processors share the label '{label}'; add label=... to one",
-                                path=f"{where}[{i}]", value=label)
-    t_ = _count(scene.trials if trials is None else trials, "trials", MAX_TRIALS)
-    k_ = _count(scene.snapshots if snapshots is None else snapshots, "snapshots", MAX_SNAPSHOTS)
-    s_ = _count(scene.seed if seed is None else seed, "seed", 2 ** 63 - 1, low=0)
-    mapping = dict(scene.resolved) if scene.resolved else scene_to_mapping(scene)
-    if processors is None:
-        given = list(scene.processors)
-    else:
-        # the specs as given (they rebuild the same processors); objects by their spec
-        given = [p.spec() if isinstance(p, Processor) else p for p in processors]
-    mapping.update(trials=t_, snapshots=k_, seed=s_, processors=given)
-    try:
-        used = parse_scene(mapping, file=scene.source_file)
-    except SceneError as exc:
-        raise SceneError(f"{exc.message} (with trials={t_}, snapshots={k_}, seed={s_})",
-                         file=exc.file, path=exc.path, value=exc.value,
-                         allowed=exc.allowed) from None
-    return used, procs
 
 
 # --------------------------------------------------------------------------- summary
@@ -405,13 +313,13 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     chunking, the number of workers or any interruption and resume.
     """
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
-    cps = _checkpoints(checkpoints, used.snapshots)
+    cps = checkpoints_for(checkpoints, used.snapshots)
     if tail < 0:
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
     from .execute import check_cluster_options
     check_cluster_options(workers, scheduler)
     if chunk is not None:
-        chunk = _count(chunk, "chunk", MAX_TRIALS)
+        chunk = whole_count(chunk, "chunk", MAX_TRIALS)
     t0 = time.perf_counter()
     ev = evaluate(used, procs, cps, chunk=chunk, tail=tail, progress=progress,
                   workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk)

@@ -20,7 +20,7 @@ import numpy as np
 __all__ = [
     "line_positions", "grid_positions", "ring_positions", "direction_vector",
     "steering_vector", "array_response", "beam_pattern_db", "half_power_beamwidth_deg",
-    "grating_lobe_free_spacing", "has_grating_lobe", "aperture",
+    "grating_lobe_free_spacing", "has_grating_lobe", "aperture", "angle_between_deg",
 ]
 
 
@@ -104,6 +104,15 @@ def beam_pattern_db(weights: np.ndarray, positions: np.ndarray, azimuth_deg,
         if normalise:
             out = out - 10 * np.log10(np.max(p, axis=-1, keepdims=True))
     return out
+
+
+def angle_between_deg(az1, el1, az2, el2) -> float:
+    """Great-circle angle in degrees between two directions (degrees)."""
+    u = direction_vector(az1, el1)
+    v = direction_vector(az2, el2)
+    c = float(np.clip(np.dot(u, v), -1.0, 1.0))
+    # atan2 form: accurate for small angles too
+    return float(np.degrees(np.arctan2(np.linalg.norm(np.cross(u, v)), c)))
 
 
 def aperture(positions: np.ndarray) -> float:

@@ -511,7 +511,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     processors only), the same distribution at a cost independent of the snapshot count.
     InputError for bad values (exit code 2 on the command line).
     """
-    from .compare import prepare_scene
+    from .runsettings import prepare_scene
     from .scenefile import load_scene
     t0 = time.perf_counter()
     if isinstance(scene, (str, Path)):
@@ -539,11 +539,11 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
-    from .compare import MAX_TRIALS, _count
+    from .runsettings import MAX_TRIALS, whole_count
     from .execute import check_cluster_options
     check_cluster_options(workers, scheduler)
     if chunk is not None:
-        chunk = _count(chunk, "chunk", MAX_TRIALS)
+        chunk = whole_count(chunk, "chunk", MAX_TRIALS)
     with warnings.catch_warnings():
         # below N snapshots unloaded SMI uses the minimum-norm weight; the sweep shows it
         warnings.filterwarnings("ignore", message=".*sample covariance is singular",

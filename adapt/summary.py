@@ -31,20 +31,12 @@ import math
 import numpy as np
 
 from . import geometry
+from .geometry import angle_between_deg
 from .scene import Scene, Source
 
 __all__ = ["summarise_scene", "scene_warnings", "check_processor_settings", "main_lobe_contains", "beamwidth_deg",
            "grating_lobe",
            "angle_between_deg", "describe_waveform", "describe_behaviour"]
-
-
-def angle_between_deg(az1, el1, az2, el2) -> float:
-    """Great-circle angle in degrees between two directions (degrees)."""
-    u = geometry.direction_vector(az1, el1)
-    v = geometry.direction_vector(az2, el2)
-    c = float(np.clip(np.dot(u, v), -1.0, 1.0))
-    # atan2 form: accurate for small angles too
-    return float(np.degrees(np.arctan2(np.linalg.norm(np.cross(u, v)), c)))
 
 
 def _rotate_about_z(positions: np.ndarray, azimuth_deg: float) -> np.ndarray:

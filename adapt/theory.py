@@ -280,7 +280,6 @@ def assumption_violations(scene: Scene) -> list[str]:
     present, pulsing or moving sources (non-stationary), quantisation, hardware errors
     and pointing mismatch (the weight is steered with a vector other than the true one).
     """
-    from .summary import angle_between_deg
     out = []
     odd = [f"{s.name} ({s.waveform.kind})" for s in scene.interferers
            if s.waveform.kind != "gaussian"]
@@ -300,7 +299,7 @@ def assumption_violations(scene: Scene) -> list[str]:
     if scene.array.errors.any:
         out.append("hardware errors (gain, phase or position): the look steering vector "
                    "differs from the true response")
-    miss = angle_between_deg(scene.look_azimuth, scene.look_elevation, d.azimuth, d.elevation)
+    miss = geometry.angle_between_deg(scene.look_azimuth, scene.look_elevation, d.azimuth, d.elevation)
     if miss > 1e-6:
         out.append(f"pointing mismatch of {miss:.3g} degrees between the look direction and "
                    f"'{d.name}'")

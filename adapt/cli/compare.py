@@ -52,7 +52,8 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from ..compare import TAIL, _checkpoints, prepare_scene
+    from ..compare import TAIL
+    from ..runsettings import checkpoints_for, prepare_scene
     from ..errors import InputError
     execution = _run.cluster_options(args)
     if args.resume is not None:
@@ -66,7 +67,7 @@ def run(args) -> int:
     try:
         used, _ = prepare_scene(args.scene, args.processors, trials, snapshots, seed,
                                 where="--processor")
-        cps = _checkpoints(args.checkpoints, used.snapshots)
+        cps = checkpoints_for(args.checkpoints, used.snapshots)
     except InputError as exc:
         raise _run.relocated(exc, _OPTIONS) from None
     settings = {"scene": used.resolved, "checkpoints": [int(c) for c in cps],

@@ -17,7 +17,6 @@ window, which also removes expiring snapshots); O(N^3) per weight computation.
 """
 from __future__ import annotations
 
-import math
 import shlex
 import warnings
 
