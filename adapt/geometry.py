@@ -21,6 +21,7 @@ __all__ = [
     "line_positions", "grid_positions", "ring_positions", "direction_vector",
     "steering_vector", "array_response", "beam_pattern_db", "half_power_beamwidth_deg",
     "grating_lobe_free_spacing", "has_grating_lobe", "aperture", "angle_between_deg",
+    "steering_derivatives",
 ]
 
 
@@ -113,6 +114,27 @@ def angle_between_deg(az1, el1, az2, el2) -> float:
     c = float(np.clip(np.dot(u, v), -1.0, 1.0))
     # atan2 form: accurate for small angles too
     return float(np.degrees(np.arctan2(np.linalg.norm(np.cross(u, v)), c)))
+
+
+def steering_derivatives(positions: np.ndarray, azimuth_deg: float, elevation_deg: float,
+                         order: int, steering: np.ndarray | None = None) -> list[np.ndarray]:
+    """Derivatives of the steering vector ``exp(j 2 pi p.u)`` with respect to azimuth
+    (per radian), orders 1..order, each (N,).
+
+    With ``phi = 2 pi p.u``: ``da/daz = j phi' a`` and ``d2a/daz2 = (j phi'' - phi'^2) a``,
+    ``u' = (cos az cos el, -sin az cos el, 0)``, ``u'' = (-sin az cos el, -cos az cos el, 0)``.
+    ``steering``: the steering vector itself if already at hand (default: computed).
+    Used for derivative constraints (pointing robustness) by lcmv and frost.
+    """
+    az, el = np.deg2rad(azimuth_deg), np.deg2rad(elevation_deg)
+    p = np.asarray(positions, float)
+    a = steering_vector(p, azimuth_deg, elevation_deg) if steering is None else steering
+    d1 = 2 * np.pi * p @ np.array([np.cos(az) * np.cos(el), -np.sin(az) * np.cos(el), 0.0])
+    d2 = 2 * np.pi * p @ np.array([-np.sin(az) * np.cos(el), -np.cos(az) * np.cos(el), 0.0])
+    out = [1j * d1 * a]
+    if order >= 2:
+        out.append((1j * d2 - d1 ** 2) * a)
+    return out
 
 
 def aperture(positions: np.ndarray) -> float:

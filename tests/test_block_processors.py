@@ -15,7 +15,7 @@ from adapt import geometry
 from adapt.errors import SpecError
 from adapt.processors import Context, parse_spec, registry, run_processors
 from adapt.processors._covariance import GrowingSums, SlidingSums, outer_sum
-from adapt.processors.lcmv import steering_derivatives
+from adapt.geometry import steering_derivatives
 from adapt.scene import ArrayLayout, HardwareErrors, Pulsing, Source, Scene
 from adapt.streams import TrialBatch
 

@@ -38,6 +38,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import SpecError
+from ..geometry import steering_derivatives
 from .base import Context, Parameter
 from ._recursive import (AutoStep, Projector, constrained_pass, extent_over_moments,
                          local_marks, moments_of, per_snapshot, step_from_bound)
@@ -59,13 +60,8 @@ def look_constraints(look: np.ndarray, positions: np.ndarray,
         if look_direction is None:
             raise SpecError("derivative constraints need the look direction", path="derivatives",
                             value=derivatives, allowed="0 when the look direction is unknown")
-        az, el = np.deg2rad(look_direction[0]), np.deg2rad(look_direction[1])
-        p = np.asarray(positions, float)
-        du1 = np.array([np.cos(az) * np.cos(el), -np.sin(az) * np.cos(el), 0.0])
-        du2 = np.array([-np.sin(az) * np.cos(el), -np.cos(az) * np.cos(el), 0.0])
-        d1 = 2 * np.pi * (p @ du1)               # phase slope per radian of azimuth
-        d2 = 2 * np.pi * (p @ du2)
-        extra = [1j * d1 * a, (1j * d2 - d1 * d1) * a][:derivatives]
+        extra = steering_derivatives(positions, look_direction[0], look_direction[1],
+                                     derivatives, steering=a)
         for c in extra:
             size = np.linalg.norm(c)
             if size < 1e-9 * np.sqrt(n):

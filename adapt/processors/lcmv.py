@@ -35,7 +35,7 @@ import math
 import numpy as np
 
 from ..errors import SpecError
-from ..geometry import steering_vector
+from ..geometry import steering_derivatives, steering_vector
 from ._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
 from ._linalg import solve_hermitian
 from .base import Context, Parameter
@@ -70,25 +70,6 @@ def _angle_list(value) -> str | None:
 def parse_angles(text: str | None) -> np.ndarray:
     """Angles (degrees) from normalised text "20,35.5"; empty for None."""
     return np.array([float(s) for s in text.split(",")]) if text else np.zeros(0)
-
-
-def steering_derivatives(positions: np.ndarray, azimuth_deg: float, elevation_deg: float,
-                         order: int) -> list[np.ndarray]:
-    """Derivatives of the steering vector ``exp(j 2 pi p.u)`` with respect to azimuth
-    (per radian), orders 1..order, each (N,).
-
-    With ``phi = 2 pi p.u``: ``da/daz = j phi' a`` and ``d2a/daz2 = (j phi'' - phi'^2) a``,
-    ``u' = (cos az cos el, -sin az cos el, 0)``, ``u'' = (-sin az cos el, -cos az cos el, 0)``.
-    """
-    az, el = np.deg2rad(azimuth_deg), np.deg2rad(elevation_deg)
-    p = np.asarray(positions, float)
-    a = steering_vector(p, azimuth_deg, elevation_deg)
-    d1 = 2 * np.pi * p @ np.array([np.cos(az) * np.cos(el), -np.sin(az) * np.cos(el), 0.0])
-    d2 = 2 * np.pi * p @ np.array([-np.sin(az) * np.cos(el), -np.cos(az) * np.cos(el), 0.0])
-    out = [1j * d1 * a]
-    if order >= 2:
-        out.append((1j * d2 - d1 ** 2) * a)
-    return out
 
 
 class LinearlyConstrained(SampleCovarianceProcessor):
