@@ -114,51 +114,125 @@ def _build():
 
     @njit(cache=True, nogil=True)
     def rls_kernel(p, wc, x, d, lam, start, every, marks, out):
-        # p (T, N, N) and wc (T, N) updated in place; x (T, B, N); d (T, B)
+        # p (T, N, N) and wc (T, N) updated in place; x (T, B, N); d (T, B).
+        # Per trial, P is held as real and imaginary parts, column by column, so that
+        # every inner loop runs over contiguous rows of plain floats (vectorised by LLVM);
+        # the rank-one update of P and the product P x of the next snapshot are formed in
+        # the same pass over P. Each element is computed with the operations, in the order,
+        # of the complex form (the same sums over c = 0..N-1), so the results equal those
+        # of the plain complex loops; q q^H keeps P exactly Hermitian between the
+        # re-symmetrisations (which are then exact no-ops, kept as a guard).
         t_, b, n = x.shape
         nm = marks.shape[0]
         inv_lam = 1.0 / lam
+        pr = np.empty((n, n))            # pr[c, r] = Re P[r, c] (column c contiguous)
+        pm = np.empty((n, n))            # pm[c, r] = Im P[r, c]
+        ar = np.empty(n)                 # P x, then the scaled gain direction q
+        ai = np.empty(n)
+        br = np.empty(n)                 # P x of the next snapshot, formed during the update
+        bi = np.empty(n)
+        wr = np.empty(n)
+        wi = np.empty(n)
         for t in range(t_):
-            pi = np.empty(n, dtype=np.complex128)
-            q = np.empty(n, dtype=np.complex128)
+            for r in range(n):
+                for c in range(n):
+                    v = p[t, r, c]
+                    pr[c, r] = v.real
+                    pm[c, r] = v.imag
+                v = wc[t, r]
+                wr[r] = v.real
+                wi[r] = v.imag
             nxt = 0
+            ready = False                # ar, ai already hold P x for snapshot j
             for j in range(b):
-                for r in range(n):
-                    acc = 0j
+                if not ready:
+                    ar[:] = 0.0
+                    ai[:] = 0.0
                     for c in range(n):
-                        acc += p[t, r, c] * x[t, j, c]
-                    pi[r] = acc
+                        v = x[t, j, c]
+                        u = v.real
+                        s = v.imag
+                        for r in range(n):
+                            ar[r] += pr[c, r] * u - pm[c, r] * s
+                            ai[r] += pr[c, r] * s + pm[c, r] * u
                 xp = 0.0
-                y = 0j
+                yr = 0.0
+                yi = 0.0
                 for r in range(n):
-                    xp += (np.conj(x[t, j, r]) * pi[r]).real
-                    y += wc[t, r] * x[t, j, r]
+                    v = x[t, j, r]
+                    xp += v.real * ar[r] + v.imag * ai[r]
+                    yr += wr[r] * v.real - wi[r] * v.imag
+                    yi += wr[r] * v.imag + wi[r] * v.real
                 den = lam + xp
-                e = d[t, j] - y
-                ed = e / den
-                for r in range(n):
-                    wc[t, r] += np.conj(pi[r]) * ed
+                v = d[t, j]
+                er = (v.real - yr) / den
+                ei = (v.imag - yi) / den
                 scale = np.sqrt(1.0 / (den * lam))
                 for r in range(n):
-                    q[r] = pi[r] * scale
-                if lam != 1.0:
-                    for r in range(n):
-                        for c in range(n):
-                            p[t, r, c] = p[t, r, c] * inv_lam - q[r] * np.conj(q[c])
+                    wr[r] += ar[r] * er + ai[r] * ei
+                    wi[r] += ar[r] * ei - ai[r] * er
+                    ar[r] *= scale
+                    ai[r] *= scale
+                sym = (start + j + 1) % every == 0
+                ready = j + 1 < b and not sym
+                if ready:
+                    br[:] = 0.0
+                    bi[:] = 0.0
+                    for c in range(n):
+                        v = x[t, j + 1, c]
+                        u = v.real
+                        s = v.imag
+                        qr = ar[c]
+                        qi = ai[c]
+                        if lam != 1.0:
+                            for r in range(n):
+                                hr = pr[c, r] * inv_lam - (ar[r] * qr + ai[r] * qi)
+                                hi = pm[c, r] * inv_lam - (ai[r] * qr - ar[r] * qi)
+                                pr[c, r] = hr
+                                pm[c, r] = hi
+                                br[r] += hr * u - hi * s
+                                bi[r] += hr * s + hi * u
+                        else:
+                            for r in range(n):
+                                hr = pr[c, r] - (ar[r] * qr + ai[r] * qi)
+                                hi = pm[c, r] - (ai[r] * qr - ar[r] * qi)
+                                pr[c, r] = hr
+                                pm[c, r] = hi
+                                br[r] += hr * u - hi * s
+                                bi[r] += hr * s + hi * u
                 else:
-                    for r in range(n):
-                        for c in range(n):
-                            p[t, r, c] -= q[r] * np.conj(q[c])
-                if (start + j + 1) % every == 0:
-                    for r in range(n):
-                        for c in range(r, n):
-                            h = (p[t, r, c] + np.conj(p[t, c, r])) * 0.5
-                            p[t, r, c] = h
-                            p[t, c, r] = np.conj(h)
+                    for c in range(n):
+                        qr = ar[c]
+                        qi = ai[c]
+                        if lam != 1.0:
+                            for r in range(n):
+                                pr[c, r] = pr[c, r] * inv_lam - (ar[r] * qr + ai[r] * qi)
+                                pm[c, r] = pm[c, r] * inv_lam - (ai[r] * qr - ar[r] * qi)
+                        else:
+                            for r in range(n):
+                                pr[c, r] -= ar[r] * qr + ai[r] * qi
+                                pm[c, r] -= ai[r] * qr - ar[r] * qi
+                if sym:
+                    for c in range(n):
+                        for r in range(c, n):
+                            hr = (pr[c, r] + pr[r, c]) * 0.5
+                            hi = (pm[c, r] - pm[r, c]) * 0.5
+                            pr[c, r] = hr
+                            pr[r, c] = hr
+                            pm[c, r] = hi
+                            pm[r, c] = -hi
                 while nxt < nm and marks[nxt] == j:
                     for r in range(n):
-                        out[t, nxt, r] = np.conj(wc[t, r])
+                        out[t, nxt, r] = complex(wr[r], -wi[r])
                     nxt += 1
+                if ready:
+                    for r in range(n):
+                        ar[r] = br[r]
+                        ai[r] = bi[r]
+            for r in range(n):
+                for c in range(n):
+                    p[t, r, c] = complex(pr[c, r], pm[c, r])
+                wc[t, r] = complex(wr[r], wi[r])
 
     @njit(cache=True, nogil=True)
     def wishart_kernel(chol, gam, z, ii, jj, counts, cumulative, out):
