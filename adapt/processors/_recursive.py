@@ -176,6 +176,24 @@ class AutoStep(Processor):
         return super().validate(given, where)
 
 
+
+def bounded_steps(given: float | None, covariance_fn, context: Context, method: str,
+                  noun: str, what: str, basis: np.ndarray | None = None) -> np.ndarray:
+    """Per-trial steps for an LMS-type recursion trained on data of true covariance
+    ``covariance_fn`` (projected on ``basis`` if given): :func:`step_from_bound` over the
+    context's moments. Without a true covariance (a reference candidate's context) only
+    a numeric step is accepted; ``noun`` names that covariance in the message, ``what``
+    in the bound's message."""
+    if covariance_fn is None:
+        if given is None:
+            raise SpecError(f"step=auto needs the true {noun} (known in simulation only); "
+                            "give a step as a number", path="step", value="auto",
+                            allowed="a number > 0")
+        return np.full(context.trials, float(given))
+    lam, tr = extent_over_moments(covariance_fn, moments_of(context), context.trials,
+                                  context.elements, basis)
+    return step_from_bound(given, lam, tr, method, what)
+
 def look_blocking_matrix(look: np.ndarray) -> np.ndarray:
     """(N, N-1) blocking matrix B with orthonormal columns and ``B^H a = 0``.
 

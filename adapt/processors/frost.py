@@ -40,8 +40,8 @@ import numpy as np
 from ..errors import SpecError
 from ..geometry import steering_derivatives
 from .base import Context, Parameter
-from ._recursive import (AutoStep, Projector, constrained_pass, extent_over_moments,
-                         local_marks, moments_of, per_snapshot, step_from_bound)
+from ._recursive import (AutoStep, Projector, bounded_steps, constrained_pass, local_marks,
+                         per_snapshot)
 
 
 def look_constraints(look: np.ndarray, positions: np.ndarray,
@@ -105,19 +105,10 @@ class FrostConstrainedLms(AutoStep):
                                 getattr(context, "look_direction", None),
                                 self.params["derivatives"])
         self._proj = Projector(c, f)
-        step = self.params["step"]
-        if context.training_covariance is None:
-            if step is None:
-                raise SpecError("step=auto needs the true training covariance (known in simulation "
-                                "only); give a step as a number", path="step", value="auto",
-                                allowed="a number > 0")
-            self._steps = np.full(context.trials, float(step))
-        else:
-            lam, tr = extent_over_moments(context.training_covariance, moments_of(context),
-                                          context.trials, context.elements,
-                                          self._proj.basis())
-            self._steps = step_from_bound(step, lam, tr, self.method,
-                                          "the projected training covariance P R P")
+        self._steps = bounded_steps(self.params["step"], context.training_covariance, context,
+                                    self.method, "training covariance",
+                                    "the projected training covariance P R P",
+                                    basis=self._proj.basis())
         self._prepared_for = context
 
     def check(self, context: Context) -> None:

@@ -32,11 +32,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
 from . import _kernels
 from .base import Context, Parameter
-from ._recursive import (AutoStep, extent_over_moments, local_marks, lms_pass,
-                         moments_of, per_snapshot, starting_weights, step_from_bound)
+from ._recursive import (AutoStep, bounded_steps, local_marks, lms_pass, per_snapshot,
+                         starting_weights)
 
 INITIAL_HELP = "start weight: quiescent (look vector / N, the conventional beam) or zero"
 
@@ -57,18 +56,9 @@ class LeastMeanSquares(AutoStep):
     def _prepare(self, context: Context) -> None:
         if getattr(self, "_prepared_for", None) is context:
             return
-        step = self.params["step"]
-        if context.data_covariance is None:
-            if step is None:
-                raise SpecError("step=auto needs the true data covariance (known in simulation "
-                                "only); give a step as a number", path="step", value="auto",
-                                allowed="a number > 0")
-            self._steps = np.full(context.trials, float(step))
-        else:
-            lam, tr = extent_over_moments(context.data_covariance, moments_of(context),
-                                          context.trials, context.elements)
-            self._steps = step_from_bound(step, lam, tr, self.method,
-                                          "the received data covariance R_xx")
+        self._steps = bounded_steps(self.params["step"], context.data_covariance, context,
+                                    self.method, "data covariance",
+                                    "the received data covariance R_xx")
         self._prepared_for = context
 
     def check(self, context: Context) -> None:
