@@ -116,6 +116,13 @@ def cluster_options(args) -> dict:
     return {"workers": workers, "scheduler": scheduler, "chunk": chunk}
 
 
+def require_scene(args) -> None:
+    """A fresh run needs a scene file (only ``--resume`` goes without one)."""
+    if args.scene is None:
+        raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
+                         path="SCENE")
+
+
 def refuse_with_resume(args, options: dict) -> None:
     """InputError if any run setting is given beside ``--resume`` (they come from the
     folder). ``options``: attribute name -> option text; unset means None or []."""

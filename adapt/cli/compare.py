@@ -58,9 +58,7 @@ def run(args) -> int:
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _resume(args, execution)
-    if args.scene is None:
-        raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
-                         path="SCENE")
+    _run.require_scene(args)
     trials = _run.whole_number(args.trials, "--trials")
     snapshots = _run.whole_number(args.snapshots, "--snapshots")
     seed = _run.whole_number(args.seed, "--seed")

@@ -73,14 +73,11 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from ..errors import InputError
     from ..scenefile import load_scene
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _resume(args, execution)
-    if args.scene is None:
-        raise InputError("give a scene file, or --resume RUNDIR to finish an interrupted run",
-                         path="SCENE")
+    _run.require_scene(args)
     settings = {"processors": args.processors, "snapshots": args.snapshots,
                 "trials": _run.whole_number(args.trials, "--trials"),
                 "seed": _run.whole_number(args.seed, "--seed"),
