@@ -223,8 +223,9 @@ def scene_warnings(scene: Scene) -> list[str]:
 
 def check_processor_settings(scene: Scene) -> None:
     """Run every listed processor's own scene checks (element minimum, stability bounds
-    such as an LMS step against 2/lambda_max, constraint counts) on one trial of the
-    scene, as ``compare`` would before starting; SpecError located in the scene file."""
+    such as an LMS step against 2/lambda_max, constraint counts) on the scene's first
+    trial (``compare`` repeats them over every trial, whose hardware errors differ);
+    SpecError located in the scene file."""
     if not scene.processors:
         return
     from .errors import SpecError
