@@ -131,6 +131,18 @@ class _Measure:
         return out
 
 
+def _stationary_sinr(w: np.ndarray, a: np.ndarray, r: np.ndarray, power: float) -> np.ndarray:
+    """:func:`adapt.scores.output_sinr` for weights (T, C, N) against one steering vector
+    (T, N) and covariance (T, N, N) per trial, ``R w`` as one batched matrix product
+    (equal to rounding; used by the drawn-covariance path, whose realisations differ
+    from the sample path's anyway)."""
+    rw = w @ np.swapaxes(r, -1, -2)                       # (R w) for every checkpoint
+    den = np.einsum("tcn,tcn->tc", np.conj(w), rw).real
+    num = power * np.abs(np.einsum("tcn,tn->tc", np.conj(w), a)) ** 2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+
+
 def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoints,
                    snapshots: int, tail: int = 0, block: int | None = None,
                    progress: Callable[[int], None] | None = None,
@@ -180,7 +192,9 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     out = []
     for i, (p, res) in enumerate(zip(processors, results)):
         w = res.weights                                            # (T, C, N)
-        if sc.stationary:
+        if sc.stationary and draw == "covariance":
+            sinr = _stationary_sinr(w, a_d[:, 0], r_in[:, 0], p_d[0])
+        elif sc.stationary:
             sinr = scores.output_sinr(w, a_d, r_in, p_d[0])
         else:
             sinr = scores.output_sinr(w, a_d, r_in, p_d)
@@ -188,8 +202,11 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
             norm = np.where(opt > 0, sinr / np.where(opt > 0, opt, 1), np.nan)
             loss = -10 * np.log10(norm)
         wng = scores.white_noise_gain(w, look)
-        if a_j:
-            nd = np.stack([scores.response_db(w, aj, look_true[:, None, :]) for aj in a_j], -1)
+        if a_j:       # scores.response_db, the look-direction response computed once
+            ref = scores.to_db(np.abs(np.einsum("...n,...n->...", np.conj(w),
+                                                look_true[:, None, :])) ** 2)
+            nd = np.stack([scores.to_db(np.abs(np.einsum("...n,...n->...", np.conj(w), aj)) ** 2)
+                           - ref for aj in a_j], -1)
         else:
             nd = np.zeros(w.shape[:2] + (0,))
         out.append(ProcessorScores(

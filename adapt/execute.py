@@ -25,7 +25,9 @@ So any chunk size, worker count or interruption gives bit-identical arrays.
 Chunk size (:func:`chunk_size`, documented in README): about ``CHUNK_WORK`` units of
 ``trials x (snapshots + tail) x N^2 x processors`` (measured at roughly 0.5-2 s of
 one core on the example scenes), at most ``MAX_CHUNK`` trials and bounded memory; on a
-cluster at most a quarter of an even share per worker so the load balances.
+cluster at most a quarter of an even share per worker so the load balances. A drawn
+covariance run (``draw="covariance"``) costs per trial what streaming N snapshots per
+span would, so its stream length counts as at most ``N x (2 x checkpoints + 1)``.
 
 Run folders of ``adapt compare`` / ``adapt size`` are resumable: :func:`start_run_folder`
 writes ``resume.json`` (the resolved scene and the command's settings) and an
@@ -393,7 +395,11 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     n = scene.elements
     blk = block_size(n, total) if block is None else int(block)
     share = workers if workers is not None else (4 if scheduler is not None else 1)
-    size = chunk_size(trials, n, total, len(processors), blk, share) if chunk is None else int(chunk)
+    # a drawn covariance costs per trial about what streaming N snapshots per span does
+    # (spans: at most two cuts per checkpoint), whatever the stream length
+    work_length = total if draw != "covariance" else min(total, n * (2 * len(cps) + 1))
+    size = (chunk_size(trials, n, work_length, len(processors), blk, share) if chunk is None
+            else int(chunk))
     if size < 1:
         raise InputError("a chunk must hold at least one trial", path="chunk", value=chunk)
     remote = workers is not None or scheduler is not None
