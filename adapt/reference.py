@@ -276,13 +276,6 @@ def _rebuild(method: str, params, label: str | None = None) -> Processor:
     return parse_spec(spec, "processor")
 
 
-def _short_spec(proc: Processor) -> str:
-    """``method key=value ...`` with only the changed parameters (re-parses)."""
-    from .processors.base import _fmt
-    changed = _changed_params(proc.method, proc.params)
-    return " ".join([proc.method] + [f"{k}={_fmt(v)}" for k, v in changed.items()])
-
-
 def _as_processor(processor) -> Processor:
     if isinstance(processor, Processor):             # a fresh copy: no state carried over
         return _rebuild(processor.method, processor.params, processor.label)
@@ -412,13 +405,13 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             weights, outputs = _record_on_cluster(sc, proc, t_, k, cps, with_ref, workers,
                                                   scheduler)
     except (SpecError, ValueError) as exc:
-        raise SpecError(f"'{_short_spec(proc)}' cannot be recorded as a reference: it needs what "
+        raise SpecError(f"'{proc.compact_spec(label=False)}' cannot be recorded as a reference: it needs what "
                         f"a candidate implementation is not given ({exc}); give explicit "
                         "settings (e.g. a numeric step) or choose an adaptive method",
-                        path="processor", value=_short_spec(proc)) from None
+                        path="processor", value=proc.compact_spec(label=False)) from None
     if not (np.all(np.isfinite(weights)) and np.all(np.isfinite(outputs))):
-        raise SpecError(f"'{_short_spec(proc)}' produced non-finite weights on this scene; nothing "
-                        "written", path="processor", value=_short_spec(proc))
+        raise SpecError(f"'{proc.compact_spec(label=False)}' produced non-finite weights on this scene; nothing "
+                        "written", path="processor", value=proc.compact_spec(label=False))
 
     # truth: scored at snapshot index c, the first snapshot each weight is applied to
     if sc.stationary:
@@ -450,7 +443,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             write_npy(folder / "checkpoints.npy", cps.astype(np.int64))
             write_json(folder / "case.json", {
                 "case": i, "trial": int(batch.first_trial + i), "method": proc.method,
-                "spec": _short_spec(proc), "label": proc.label, "params": proc.params,
+                "spec": proc.compact_spec(label=False), "label": proc.label, "params": proc.params,
                 "uses_reference": with_ref,
                 "stream": "received data" if with_ref else "training data",
                 "noise_power": 1.0, "elements": n, "snapshots": k,
@@ -460,7 +453,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             write_sigmf(folder / "samples", samples[i], cps, description=(
                 f"adapt reference case {i} of scene '{sc.name}' (seed {sc.seed}, trial "
                 f"{batch.first_trial + i}): the {n}-element {'received' if with_ref else 'training'}"
-                f" snapshots '{_short_spec(proc)}' adapts on; one sample per snapshot (sample "
+                f" snapshots '{proc.compact_spec(label=False)}' adapts on; one sample per snapshot (sample "
                 "rate normalised to 1), element e is channel e"))
             write_npy(folder / "weights.npy", weights[i])
             write_npy(folder / "outputs.npy", outputs[i])
@@ -476,7 +469,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
         write_json(tmp / "tolerances.json", {"tolerances": tol, "metrics": METRICS})
         info = {
             "format": FORMAT, "format_version": FORMAT_VERSION, "scene": sc.name,
-            "scene_file": sc.source_file, "seed": int(sc.seed), "processor": _short_spec(proc),
+            "scene_file": sc.source_file, "seed": int(sc.seed), "processor": proc.compact_spec(label=False),
             "method": proc.method, "label": proc.label, "trials": t_, "snapshots": k,
             "elements": n, "checkpoints": cps.tolist(), "cases": names,
             "uses_reference": with_ref, "versions": versions,

@@ -309,24 +309,6 @@ def _unloaded_smi(proc: Processor) -> bool:
     return proc.method == "smi" and effective_loading(proc.params)[0] is None
 
 
-def _compact_spec(proc: Processor) -> str:
-    """Method, the parameters that differ from their defaults, and a custom label: a
-    spec that rebuilds the processor with ``parse_spec``."""
-    words = [proc.method] + [f"{k}={_plain(v)}" for k, v in proc.params.items()
-                             if v != proc.parameters[k].default]
-    if proc.label != proc.default_label():
-        words.append(f"label={proc.label}")
-    return " ".join(words)
-
-
-def _plain(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, float):
-        return f"{v:g}"
-    return "none" if v is None else str(v)
-
-
 # --------------------------------------------------------------------------- rules of thumb
 def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | None:
     """The rule of thumb for one processor, or None (methods other than smi)."""
@@ -564,7 +546,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     for proc, scores in zip(procs, ev.processors):
         law = theory.theory_for(proc, facts)
         rec = {"label": proc.label, "method": proc.method, "params": dict(proc.params),
-               "spec": _compact_spec(proc)}
+               "spec": proc.compact_spec()}
         rec.update(analyse_processor(scores.normalised, points, target_loss_db, fraction,
                                      used.seed, law))
         if law is not None:

@@ -297,6 +297,18 @@ class Processor:
             parts.append(f"label={self.label}")
         return " ".join(shlex.quote(p) for p in parts)
 
+    def compact_spec(self, label: bool = True) -> str:
+        """Like :meth:`spec`, with only the parameters that differ from their defaults
+        (what a person would type; passing defaults back could trip cross-checks between
+        parameters). It rebuilds the same processor; ``label=False`` leaves out a custom
+        label."""
+        import shlex
+        parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()
+                                 if v != self.parameters[k].default]
+        if label and self.label != self.default_label():
+            parts.append(f"label={self.label}")
+        return " ".join(shlex.quote(p) for p in parts)
+
     # -- the kernel interface --------------------------------------------------
     def check(self, context: Context) -> None:
         """Refuse settings that cannot work for this scene (raise SpecError)."""
