@@ -33,6 +33,7 @@ from typing import Iterator
 
 import numpy as np
 
+from . import geometry
 from .scene import Scene
 from .seeding import trial_generators
 
@@ -163,9 +164,7 @@ class TrialBatch:
     def _steering(self, source: int, k, rows: slice) -> np.ndarray:
         src = self.scene.sources[source]
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
-        az, el = src.direction(kk)
-        azr, elr = np.deg2rad(az), np.deg2rad(el)
-        u = np.stack([np.sin(azr) * np.cos(elr), np.cos(azr) * np.cos(elr), np.sin(elr)], -1)
+        u = geometry.direction_vector(*src.direction(kk))                    # (M, 3)
         # elementwise products (not matmul) so results do not depend on batch shape
         phase = 2 * np.pi * (self.positions[rows, None, :, :] * u[None, :, None, :]).sum(-1)
         a = self.element_gains[rows, None, :] * np.exp(1j * phase)
@@ -174,8 +173,7 @@ class TrialBatch:
     def steering_toward(self, azimuth_deg: float, elevation_deg: float = 0.0) -> np.ndarray:
         """True array response (T, N) toward a fixed direction (hardware errors
         included): what a plane wave from there actually produces at the elements."""
-        az, el = np.deg2rad(azimuth_deg), np.deg2rad(elevation_deg)
-        u = np.array([np.sin(az) * np.cos(el), np.cos(az) * np.cos(el), np.sin(el)])
+        u = geometry.direction_vector(azimuth_deg, elevation_deg)
         phase = 2 * np.pi * (self.positions * u).sum(-1)
         return self.element_gains * np.exp(1j * phase)
 

@@ -252,13 +252,13 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
     n = scene.elements
     st = arr.settings
     if arr.layout == "line":
-        shape = f"line of {n} elements, spacing {st.get('spacing', 0):g} wavelengths"
+        shape = f"line of {n} element{'s' if n != 1 else ''}, spacing {st.get('spacing', 0):g} wavelengths"
     elif arr.layout == "grid":
         shape = (f"grid of {st.get('rows')} x {st.get('columns')} = {n} elements, spacing "
                  f"{st.get('spacing', 0):g} (columns) x {st.get('row_spacing', 0):g} (rows) "
                  "wavelengths")
     elif arr.layout == "ring":
-        shape = f"ring of {n} elements, radius {st.get('radius', 0):.4g} wavelengths"
+        shape = f"ring of {n} element{'s' if n != 1 else ''}, radius {st.get('radius', 0):.4g} wavelengths"
     else:
         shape = f"custom layout of {n} elements"
     look = (scene.look_azimuth, scene.look_elevation)

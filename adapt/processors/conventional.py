@@ -85,8 +85,7 @@ class Conventional(Processor):
                             allowed="none for this array") from None
 
     def begin(self, context: Context) -> None:
-        if not hasattr(self, "_taper"):
-            self.check(context)
+        self.check(context)                  # the taper belongs to this context's array
         w = self._taper * context.look
         w = w / np.conj(np.vdot(w, context.look))
         self._w = np.broadcast_to(w, (context.trials, context.elements))
