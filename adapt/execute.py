@@ -154,13 +154,15 @@ class Plan:
             json.dumps(io.to_jsonable(b), sort_keys=True)
 
 
-def _scene_mapping(scene: Scene) -> dict:
+def scene_mapping(scene: Scene) -> dict:
+    """The scene as plain JSON-able data (its resolved mapping), for workers and run
+    folders."""
     from .scenefile import scene_to_mapping
     m = dict(scene.resolved) if getattr(scene, "resolved", None) else scene_to_mapping(scene)
     return io.to_jsonable(m)
 
 
-def _shippable_specs(processors: Sequence[Processor]) -> tuple:
+def shippable_specs(processors: Sequence[Processor]) -> tuple:
     """Spec strings that rebuild each processor exactly (InputError otherwise)."""
     from .processors import parse_spec
     out = []
@@ -405,10 +407,10 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     remote = workers is not None or scheduler is not None
     chunks_store = None
     if store is not None or remote:
-        specs = _shippable_specs(processors)
+        specs = shippable_specs(processors)
     else:
         specs = tuple(p.spec() for p in processors)
-    plan = Plan(scene=_scene_mapping(scene), specs=specs,
+    plan = Plan(scene=scene_mapping(scene), specs=specs,
                 checkpoints=tuple(int(c) for c in cps), snapshots=int(snapshots),
                 tail=int(tail), trials=int(trials), seed=int(seed), chunk=size, block=blk,
                 draw=str(draw))

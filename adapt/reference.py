@@ -100,6 +100,7 @@ from .junit import TestOutcome, write_junit
 from .processors import Context, Processor, parse_spec, run_processors
 from .processors.base import normalised_checkpoints
 from .scene import Scene
+from .scenefile import scene_to_mapping
 from .scores import output_sinr, to_db
 from .streams import Block, TrialBatch
 
@@ -328,10 +329,10 @@ def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapsh
 
 def _record_on_cluster(sc: Scene, proc: Processor, trials: int, snapshots: int, cps,
                        with_ref: bool, workers, scheduler) -> tuple[np.ndarray, np.ndarray]:
-    from .execute import _scene_mapping, _shippable_specs, cluster_client
+    from .execute import cluster_client, scene_mapping, shippable_specs
     from .evaluate import trial_chunks
-    spec = _shippable_specs([proc])[0]
-    mapping = _scene_mapping(sc)
+    spec = shippable_specs([proc])[0]
+    mapping = scene_mapping(sc)
     share = workers if workers is not None else 4
     chunks = trial_chunks(trials, max(1, -(-trials // (4 * share))))
     with cluster_client(workers, scheduler) as client:
@@ -473,7 +474,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             "method": proc.method, "label": proc.label, "trials": t_, "snapshots": k,
             "elements": n, "checkpoints": cps.tolist(), "cases": names,
             "uses_reference": with_ref, "versions": versions,
-            "scene_mapping": sc.resolved or _scene_mapping(sc),
+            "scene_mapping": sc.resolved or scene_to_mapping(sc),
         }
         write_json(tmp / "reference.json", info)
         write_manifest(tmp, {"format": FORMAT, "format_version": FORMAT_VERSION,
@@ -487,11 +488,6 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return out
-
-
-def _scene_mapping(sc: Scene) -> dict:
-    from .scenefile import scene_to_mapping
-    return scene_to_mapping(sc)
 
 
 # ============================================================================ SigMF
