@@ -30,7 +30,7 @@ from .compare import Comparison, compare, write_compare_run
 from .runsettings import checkpoints_for, prepare_scene
 from .errors import InputError, SceneError, SpecError
 from .evaluate import Evaluation, ProcessorScores
-from .evaluate import evaluate as _evaluate
+from .execute import evaluate as _evaluate
 from .processors import Processor, ProcessorResult, parse_spec, parse_specs, registry
 from .processors import run_processors as _run_processors
 from .processors import Context
@@ -110,7 +110,7 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
 def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
              snapshots: int | None = None, seed: int | None = None, checkpoints=None,
              tail: int = 256) -> Evaluation:
-    """Run and score processors (the Monte Carlo engine, :func:`adapt.evaluate.evaluate`):
+    """Run and score processors (the Monte Carlo engine, :func:`adapt.execute.evaluate`):
     per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
     gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C)."""
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)

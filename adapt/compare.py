@@ -1,6 +1,6 @@
 """Compare processors on one scene: Monte Carlo scores, a summary table, a run folder.
 
-``compare(scene, processors)`` runs :func:`adapt.evaluate.evaluate` and condenses it into
+``compare(scene, processors)`` runs :func:`adapt.execute.evaluate` and condenses it into
 plain dictionaries (``Comparison.metrics``, the ``metrics.json`` schema below);
 ``Comparison.table()`` renders the terminal summary; :func:`write_compare_run` writes a
 new run folder (``scene.yaml``, ``metrics.json``, ``curves.csv``, figures,
@@ -38,7 +38,8 @@ from typing import Callable, Sequence
 import numpy as np
 
 from . import geometry, scores
-from .evaluate import Evaluation, evaluate
+from .evaluate import Evaluation
+from .execute import evaluate
 from .runsettings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
 from .scene import Scene
 

@@ -1,6 +1,9 @@
-"""The Monte Carlo engine: draw trials, run processors, score every checkpoint.
+"""The Monte Carlo engine's core: draw a batch of trials, run processors, score every
+checkpoint.
 
-``evaluate`` is what ``compare``, ``size`` and the benchmarks share. For each processor,
+``evaluate_batch`` scores one :class:`~adapt.streams.TrialBatch`; ``merge`` joins
+consecutive batches; :func:`adapt.execute.evaluate` (what ``compare``, ``size`` and the
+benchmarks share) runs the batches serially, on a cluster or resumably. For each processor,
 checkpoint and trial it returns the output SINR on the true covariance of the moment,
 the normalised SINR and loss against the optimum, the white-noise gain, the null depth
 toward every interferer and the SINR measured from the output samples.
@@ -28,7 +31,7 @@ from .processors.base import normalised_checkpoints
 from .scene import Scene
 from .streams import TrialBatch
 
-__all__ = ["ProcessorScores", "Evaluation", "evaluate", "evaluate_batch", "trial_chunks",
+__all__ = ["ProcessorScores", "Evaluation", "evaluate_batch", "merge", "trial_chunks",
            "default_checkpoints"]
 
 
@@ -239,39 +242,3 @@ def merge(parts: Sequence[Evaluation]) -> Evaluation:
                       processors=procs, interferers=first.interferers,
                       positions=np.concatenate([e.positions for e in parts], axis=0),
                       element_gains=np.concatenate([e.element_gains for e in parts], axis=0))
-
-
-def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
-             trials: int | None = None, snapshots: int | None = None,
-             seed: int | None = None, chunk: int | None = None, tail: int = 256,
-             block: int | None = None,
-             progress: Callable[[int], None] | None = None,
-             draw: str = "samples", workers: int | None = None,
-             scheduler: str | None = None, store=None,
-             on_chunk: Callable[[int, int], None] | None = None) -> Evaluation:
-    """Run and score ``processors`` over ``trials`` Monte Carlo trials of ``scene``.
-
-    checkpoints: snapshot counts to score (default :func:`default_checkpoints`);
-    chunk: trials per batch (default :func:`adapt.execute.chunk_size`; results do not
-    depend on it); block: snapshots per block (default
-    :func:`adapt.execute.block_size`, fixed by the elements and stream length);
-    workers / scheduler: run the chunks on a Dask cluster; store: a folder keeping
-    finished chunks so an interrupted run can be resumed (see :mod:`adapt.execute`);
-    on_chunk: called with (first trial, count) after each finished chunk;
-    tail: extra snapshots after the last checkpoint, used only to measure the final
-    weights' output SINR from samples; progress: called with the number of
-    trial-snapshots done after each block; draw: ``samples`` (default) or
-    ``covariance``, the drawn-covariance fast path (see :func:`evaluate_batch`).
-    """
-    t_ = int(scene.trials if trials is None else trials)
-    k_ = int(scene.snapshots if snapshots is None else snapshots)
-    s_ = int(scene.seed if seed is None else seed)
-    if tail < 0:
-        raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
-    if not processors:
-        raise ValueError("no processors to evaluate")
-    cps = default_checkpoints(k_) if checkpoints is None else checkpoints
-    from .execute import run_chunks
-    return run_chunks(scene, processors, cps, trials=t_, snapshots=k_, seed=s_, tail=tail,
-                      chunk=chunk, block=block, workers=workers, scheduler=scheduler,
-                      store=store, progress=progress, on_chunk=on_chunk, draw=draw)

@@ -53,14 +53,14 @@ import numpy as np
 
 from . import io
 from .errors import InputError
-from .evaluate import (Evaluation, ProcessorScores, evaluate_batch, merge,
-                       trial_chunks)
+from .evaluate import (Evaluation, ProcessorScores, default_checkpoints, evaluate_batch,
+                       merge, trial_chunks)
 from .processors import Processor
 from .processors.base import normalised_checkpoints
 from .scene import Scene
 from .streams import TrialBatch
 
-__all__ = ["Plan", "ChunkStore", "Terminated", "run_chunks", "run_chunk", "block_size",
+__all__ = ["evaluate", "Plan", "ChunkStore", "Terminated", "run_chunks", "run_chunk", "block_size",
            "chunk_size", "part_arrays", "part_evaluation", "check_cluster_options",
            "cluster_client", "start_run_folder", "open_for_resume", "seal", "kept_chunks",
            "remove_if_empty", "interrupted_message",
@@ -587,3 +587,38 @@ def interrupted_message(folder, kind: str, exc: BaseException) -> str:
             f"(marked {MARKER}, no manifest).\n"
             f"adapt: finish it with: adapt {kind} --resume {folder}")
 
+
+def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
+             trials: int | None = None, snapshots: int | None = None,
+             seed: int | None = None, chunk: int | None = None, tail: int = 256,
+             block: int | None = None,
+             progress: Callable[[int], None] | None = None,
+             draw: str = "samples", workers: int | None = None,
+             scheduler: str | None = None, store=None,
+             on_chunk: Callable[[int, int], None] | None = None) -> Evaluation:
+    """Run and score ``processors`` over ``trials`` Monte Carlo trials of ``scene``.
+
+    checkpoints: snapshot counts to score (default :func:`default_checkpoints`);
+    chunk: trials per batch (default :func:`chunk_size`; results do not depend on it);
+    block: snapshots per block (default :func:`block_size`, fixed by the elements and
+    stream length);
+    workers / scheduler: run the chunks on a Dask cluster; store: a folder keeping
+    finished chunks so an interrupted run can be resumed (see this module);
+    on_chunk: called with (first trial, count) after each finished chunk;
+    tail: extra snapshots after the last checkpoint, used only to measure the final
+    weights' output SINR from samples; progress: called with the number of
+    trial-snapshots done after each block; draw: ``samples`` (default) or
+    ``covariance``, the drawn-covariance fast path (see
+    :func:`adapt.evaluate.evaluate_batch`).
+    """
+    t_ = int(scene.trials if trials is None else trials)
+    k_ = int(scene.snapshots if snapshots is None else snapshots)
+    s_ = int(scene.seed if seed is None else seed)
+    if tail < 0:
+        raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
+    if not processors:
+        raise ValueError("no processors to evaluate")
+    cps = default_checkpoints(k_) if checkpoints is None else checkpoints
+    return run_chunks(scene, processors, cps, trials=t_, snapshots=k_, seed=s_, tail=tail,
+                      chunk=chunk, block=block, workers=workers, scheduler=scheduler,
+                      store=store, progress=progress, on_chunk=on_chunk, draw=draw)

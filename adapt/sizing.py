@@ -1,6 +1,6 @@
 """Snapshot sizing: how many training snapshots a processor needs, with theory beside it.
 
-``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.evaluate.evaluate`)
+``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.execute.evaluate`)
 whose checkpoints are the sweep's snapshot counts: each trial is one stream of the
 largest count, scored at every count of the growing window, so the points of the sweep
 share their trials (common random numbers; a point agrees with a separate run of that
@@ -46,7 +46,8 @@ from scipy import stats
 
 from . import theory
 from .errors import InputError
-from .evaluate import Evaluation, evaluate
+from .evaluate import Evaluation
+from .execute import evaluate
 from .processors import Processor
 from .processors._covariance import effective_loading
 from .scene import Scene

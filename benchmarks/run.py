@@ -108,7 +108,7 @@ def _best(fn, repeats: int, *args, **kwargs) -> dict:
 def w1_product(trials: int, draw: str = "covariance") -> dict:
     """Unloaded and 10 dB-loaded SMI through adapt's evaluate; mean rho per checkpoint."""
     import adapt.scores  # noqa: F401  (import order: scores before evaluate)
-    from adapt.evaluate import evaluate
+    from adapt.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, W1_CHECKPOINTS[-1])
     procs = parse_specs(["smi", "smi loading_db=10"])
@@ -181,7 +181,7 @@ W2_SPECS = ("lms", "nlms", "rls")
 def w2_product(trials: int, snapshots: int, specs=W2_SPECS) -> dict:
     """The recursive processors through adapt's evaluate (one stream for all given)."""
     import adapt.scores  # noqa: F401
-    from adapt.evaluate import evaluate
+    from adapt.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, snapshots)
     cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
@@ -259,7 +259,7 @@ def kernel_compile_seconds() -> float | None:
 def w3_run(snapshots: int, specs, block: int, trace: bool = False) -> dict:
     """One trial of ``snapshots`` snapshots through evaluate in blocks of ``block``."""
     import adapt.scores  # noqa: F401
-    from adapt.evaluate import evaluate
+    from adapt.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(1, snapshots)
     cps = sorted({int(k) for k in np.linspace(0, snapshots, 11)[1:].round()})

@@ -13,7 +13,7 @@ import pytest
 from scipy.signal import find_peaks
 from scipy.signal.windows import boxcar
 
-from adapt.evaluate import evaluate
+from adapt.execute import evaluate
 from adapt.processors import parse_spec
 from adapt.processors._linalg import solve_hermitian
 from adapt.processors.base import Processor
