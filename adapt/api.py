@@ -109,14 +109,18 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
 
 def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
              snapshots: int | None = None, seed: int | None = None, checkpoints=None,
-             tail: int = 256) -> Evaluation:
+             tail: int = 256, draw: str = "samples", block: int | None = None,
+             workers: int | None = None, scheduler: str | None = None) -> Evaluation:
     """Run and score processors (the Monte Carlo engine, :func:`adapt.execute.evaluate`):
     per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
-    gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C)."""
+    gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C).
+    ``draw="covariance"`` is the drawn-covariance fast path, ``block`` the snapshots per
+    block of a long stream, ``workers``/``scheduler`` a Dask cluster; results never depend
+    on ``block``, ``workers`` or ``scheduler``."""
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, sc.snapshots)
-    chunk = max(1, min(sc.trials, (1 << 16) // max(1, sc.elements)))
-    return _evaluate(sc, procs, cps, chunk=chunk, tail=tail)
+    return _evaluate(sc, procs, cps, tail=tail, draw=draw, block=block, workers=workers,
+                     scheduler=scheduler)
 
 
 def write_run(comparison: Comparison, out="runs", command_line: str | None = None) -> Path:
