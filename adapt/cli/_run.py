@@ -92,6 +92,26 @@ def progress_bar(args, total: int, desc: str):
                 disable=None, leave=False, desc=desc)
 
 
+def complete(folder: "Folder", work, write, line, options: dict, on_exit=None) -> int:
+    """Run ``work(store)`` in ``folder`` (library InputErrors re-addressed to the
+    command-line ``options``; ``on_exit`` called however it ends, e.g. to close the
+    progress bar), write the run with ``write(result, command_line=line, folder=path)``
+    and print the outcome; returns the exit code."""
+    def guarded(store):
+        try:
+            return work(store)
+        except InputError as exc:
+            raise relocated(exc, options) from None
+        finally:
+            if on_exit is not None:
+                on_exit()
+
+    def finish(result, path):
+        return write(result, command_line=line, folder=path)
+
+    return print_outcome(*execute(folder, guarded, finish))
+
+
 def print_outcome(result, written, code) -> int:
     """Print the table and the run folder of a finished run; pass an interruption's
     exit code through."""

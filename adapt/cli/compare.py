@@ -81,23 +81,14 @@ def _resume(args, execution) -> int:
 
 def _execute(args, folder, used, settings, execution, line) -> int:
     from ..compare import compare, write_compare_run
-    from ..errors import InputError
     tail = int(settings.get("tail", 256))
     bar = _run.progress_bar(args, used.trials * (used.snapshots + tail), "compare")
 
     def work(store):
-        try:
-            return compare(used, None, checkpoints=settings["checkpoints"], tail=tail,
-                           progress=bar.update if bar is not None else None,
-                           chunk=execution["chunk"], workers=execution["workers"],
-                           scheduler=execution["scheduler"], store=store)
-        except InputError as exc:
-            raise _run.relocated(exc, _OPTIONS) from None
-        finally:
-            if bar is not None:
-                bar.close()
+        return compare(used, None, checkpoints=settings["checkpoints"], tail=tail,
+                       progress=bar.update if bar is not None else None,
+                       chunk=execution["chunk"], workers=execution["workers"],
+                       scheduler=execution["scheduler"], store=store)
 
-    def finish(result, path):
-        return write_compare_run(result, command_line=line, folder=path)
-
-    return _run.print_outcome(*_run.execute(folder, work, finish))
+    return _run.complete(folder, work, write_compare_run, line, _OPTIONS,
+                         on_exit=bar.close if bar is not None else None)

@@ -98,35 +98,29 @@ def _resume(args, execution) -> int:
 
 
 def _execute(args, folder, scene, settings, execution, line) -> int:
-    from ..errors import InputError
     from ..sizing import size, sweep_points, write_sizing_run
-    bar = None
+    bars = []
 
     def work(store):
-        nonlocal bar
-        try:
-            if not args.no_progress:
-                last = (scene.snapshots if settings["snapshots"] is None else
-                        int(sweep_points(settings["snapshots"], scene.elements,
-                                         scene.snapshots, where="--snapshots")[-1]))
-                trials = settings["trials"]
-                total = (scene.trials if trials is None else max(trials, 0)) * last
-                bar = _run.progress_bar(args, total, "size")
-            return size(scene, settings["processors"], snapshots=settings["snapshots"],
-                        trials=settings["trials"], seed=settings["seed"],
-                        target_loss_db=settings["target_loss_db"],
-                        fraction=settings["fraction"],
-                        progress=bar.update if bar is not None else None,
-                        chunk=execution["chunk"], workers=execution["workers"],
-                        scheduler=execution["scheduler"], store=store,
-                        draw=settings.get("draw", "samples"))
-        except InputError as exc:
-            raise _run.relocated(exc, _OPTIONS) from None
-        finally:
-            if bar is not None:
-                bar.close()
+        if not args.no_progress:
+            last = (scene.snapshots if settings["snapshots"] is None else
+                    int(sweep_points(settings["snapshots"], scene.elements,
+                                     scene.snapshots, where="--snapshots")[-1]))
+            trials = settings["trials"]
+            total = (scene.trials if trials is None else max(trials, 0)) * last
+            bars.append(_run.progress_bar(args, total, "size"))
+        bar = bars[0] if bars else None
+        return size(scene, settings["processors"], snapshots=settings["snapshots"],
+                    trials=settings["trials"], seed=settings["seed"],
+                    target_loss_db=settings["target_loss_db"],
+                    fraction=settings["fraction"],
+                    progress=bar.update if bar is not None else None,
+                    chunk=execution["chunk"], workers=execution["workers"],
+                    scheduler=execution["scheduler"], store=store,
+                    draw=settings.get("draw", "samples"))
 
-    def finish(result, path):
-        return write_sizing_run(result, command_line=line, folder=path)
+    def close_bar():
+        for bar in bars:
+            bar.close()
 
-    return _run.print_outcome(*_run.execute(folder, work, finish))
+    return _run.complete(folder, work, write_sizing_run, line, _OPTIONS, on_exit=close_bar)
