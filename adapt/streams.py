@@ -33,7 +33,7 @@ from typing import Iterator
 
 import numpy as np
 
-from . import geometry
+from . import _kernels, geometry
 from .scene import Scene
 from .seeding import trial_generators
 
@@ -130,12 +130,18 @@ class TrialBatch:
         sc = self.scene
         n = sc.elements
         s = len(sc.sources)
+        err = sc.array.errors
+        if not err.any and not any(src.waveform.kind in ("tone", "chirp") for src in sc.sources):
+            # nothing here is random: the values the draws would give, exactly
+            self.element_gains = np.ones((self.trials, n), dtype=complex)
+            self.positions = np.repeat(sc.array.positions[None, :, :], self.trials, axis=0)
+            self.start_phases = np.zeros((self.trials, s))
+            return
         draws = np.empty((self.trials, 5 * n + s))
         gens = trial_generators(self.seed, self.trial_indices, _CONSTANTS)
         for t, g in enumerate(gens):
             g.standard_normal(out=draws[t, : 5 * n])
             draws[t, 5 * n:] = g.random(s)
-        err = sc.array.errors
         gain_db = err.gain_db_rms * draws[:, :n]
         phase = np.deg2rad(err.phase_deg_rms) * draws[:, n:2 * n]
         dpos = err.position_rms * draws[:, 2 * n:5 * n].reshape(self.trials, n, 3)
@@ -284,12 +290,14 @@ class TrialBatch:
             for t in range(self.trials):
                 noise_gens[t].standard_normal(out=z[t])
             interference = z.view(np.complex128)[..., 0]
-            interference *= np.sqrt(0.5)
             if fixed:
                 env = np.empty((self.trials, size, len(fixed)), dtype=complex)
                 for j, i in enumerate(fixed):
                     env[:, :, j] = envelope(i, start, size, kk)
-                interference += env @ fixed_a                                 # (T, B, N)
+                # noise * sqrt(1/2) + env @ fixed_a, element by element (block-size free)
+                _kernels.add_sources(interference, np.sqrt(0.5), env, fixed_a)
+            else:
+                interference *= np.sqrt(0.5)
             for i in moving:
                 interference += envelope(i, start, size, kk)[..., None] * self.steering(i, kk)
             reference = envelope(d_idx, start, size, kk)

@@ -42,7 +42,7 @@ from typing import Sequence
 import numpy as np
 
 from .errors import InputError
-from .processors import _kernels
+from . import _kernels
 from .processors.base import Context, Processor, ProcessorResult
 from .processors._covariance import SampleCovarianceProcessor
 from .processors._linalg import compiled_solves
@@ -160,8 +160,8 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
               lengths: np.ndarray, cumulative: bool = False) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite:
-    ``L_R A A^H L_R^H`` with A from :func:`bartlett_factors`. With the compiled kernels
-    on (:mod:`adapt.processors._kernels`) the same draws are combined in a compiled loop
+    ``L_R A A^H L_R^H`` (one factorisation when every trial's R is the same) with A from :func:`bartlett_factors`. With the compiled kernels
+    on (:mod:`adapt._kernels`) the same draws are combined in a compiled loop
     that skips the triangles' zeros (equal to rounding); its sums are exactly Hermitian.
     ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
     growing-window sums; ``np.cumsum`` order)."""
@@ -169,7 +169,9 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
     if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] != len(gens):
         raise ValueError(f"covariance must be (T, N, N) with T = {len(gens)} generators, "
                          f"got {r.shape}")
-    chol = np.linalg.cholesky(r)                                   # (T, N, N)
+    # trials without hardware errors share one covariance: factorise it once
+    same = r.shape[0] > 1 and bool(np.all(r == r[:1]))
+    chol = np.linalg.cholesky(r[:1] if same else r)                # (T or 1, N, N)
     n = r.shape[-1]
     if _kernels.compiled():
         gam, z, (si, ii, jj) = _draws(gens, lengths, n)

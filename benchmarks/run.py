@@ -245,7 +245,7 @@ def w2_floor(trials: int, snapshots: int) -> dict:
 def kernel_compile_seconds() -> float | None:
     """Seconds to compile the numba kernels from scratch (a fresh cache folder, in a
     subprocess); None when the kernels are off or numba is absent."""
-    code = ("from adapt.processors import _kernels; import sys; "
+    code = ("from adapt import _kernels; import sys; "
             "sys.stdout.write(repr(_kernels.warm_up() if _kernels.compiled() else -1.0))")
     with tempfile.TemporaryDirectory() as cache:
         env = dict(os.environ, NUMBA_CACHE_DIR=cache)
@@ -325,7 +325,7 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
         only: tuple = WORKLOADS) -> dict:
     """Run the workloads in ``only`` (default all); returns the figures (also printed
     through ``say``)."""
-    from adapt.processors import _kernels
+    from adapt import _kernels
     only = tuple(w.upper() for w in only)
     bad = [w for w in only if w not in WORKLOADS]
     if bad:

@@ -12,7 +12,7 @@ import importlib.util
 import numpy as np
 import pytest
 
-from adapt.processors import _kernels
+from adapt import _kernels
 
 HAVE_NUMBA = importlib.util.find_spec("numba") is not None
 

@@ -16,7 +16,8 @@ import adapt.scores  # noqa: F401  (import order: scores before evaluate)
 from adapt import wishart
 from adapt.errors import InputError
 from adapt.evaluate import evaluate_batch
-from adapt.processors import Context, _kernels, parse_specs, run_processors
+from adapt import _kernels
+from adapt.processors import Context, parse_specs, run_processors
 from adapt.scenefile import parse_scene
 from adapt.streams import TrialBatch
 
@@ -243,6 +244,40 @@ def test_compiled_wishart_spans_match_numpy(monkeypatch):
         out[mode] = wishart.span_sums(r, gens, lengths)
     scale = np.abs(out["numpy"]).max(axis=(-1, -2), keepdims=True)
     assert np.max(np.abs(out["numba"] - out["numpy"]) / scale) < 1e-12
+
+
+def test_add_sources_matches_numpy_and_ignores_block_shape(monkeypatch):
+    # the streams' source mixing: compiled and numpy agree to rounding, each is the same
+    # element by element whatever the block length (a batched matmul is not), and the
+    # result is x * scale + env @ steer (checked against numpy's einsum)
+    rng = np.random.default_rng(8)
+
+    def cplx(*shape):
+        return rng.standard_normal(shape) + 1j * rng.standard_normal(shape)
+
+    x0, env, steer = cplx(3, 50, 6), cplx(3, 50, 4), cplx(3, 4, 6)
+    expect = x0 * 0.7 + np.einsum("tbj,tjn->tbn", env, steer)
+    modes = ("numba", "numpy") if HAVE_NUMBA else ("numpy",)
+    got = {}
+    for mode in modes:
+        monkeypatch.setenv("ADAPT_KERNELS", mode)
+        whole = x0.copy()
+        _kernels.add_sources(whole, 0.7, env, steer)
+        pieces = [x0[:, a:a + 7].copy() for a in range(0, 50, 7)]
+        for a, piece in zip(range(0, 50, 7), pieces):
+            _kernels.add_sources(piece, 0.7, env[:, a:a + 7], steer)
+        assert np.array_equal(np.concatenate(pieces, axis=1), whole), mode
+        assert np.max(np.abs(whole - expect)) < 1e-12 * np.abs(expect).max(), mode
+        shared = x0.copy()
+        _kernels.add_sources(shared, 0.7, env, np.broadcast_to(steer[:1], steer.shape).copy())
+        one = x0.copy()
+        _kernels.add_sources(one, 0.7, env, steer[:1])
+        assert np.array_equal(one, shared), mode
+        got[mode] = whole
+    if HAVE_NUMBA:
+        assert np.max(np.abs(got["numba"] - got["numpy"])) < 1e-12 * np.abs(expect).max()
+    with pytest.raises(ValueError, match="steer"):
+        _kernels.add_sources(x0.copy(), 1.0, env, steer[:, :3])
 
 
 def test_size_command_draws_covariance(tmp_path, capsys):

@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import _kernels
+from .. import _kernels
 from .base import Context, Parameter
 from ._recursive import (AutoStep, bounded_steps, local_marks, lms_pass, per_snapshot,
                          starting_weights)

@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import _kernels
+from .. import _kernels
 from .base import Context, Parameter, Processor
 from ._recursive import local_marks, lms_pass, per_snapshot, starting_weights
 from .lms import INITIAL_HELP

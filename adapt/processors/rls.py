@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import _kernels
+from .. import _kernels
 from .base import Context, Parameter, Processor
 from ._recursive import local_marks, per_snapshot, starting_weights
 from .lms import INITIAL_HELP
