@@ -1,10 +1,24 @@
-"""Chunked execution of Monte Carlo runs: serial, on a Dask cluster, resumable.
+"""Chunked execution of Monte Carlo runs: on threads, on a Dask cluster, resumable.
 
 A run's trials are split into chunks (consecutive trial ranges). Each chunk is one
 :class:`~adapt.streams.TrialBatch` scored by :func:`adapt.evaluate.evaluate_batch`; the
 parts are merged in trial order. One executor, :func:`run_chunks`, serves three cases:
 
-* serial: chunks run one after another in this process;
+* in this process: with ``threads=1`` chunks run one after another; with more
+  (default: every usable core, :func:`usable_cores`) they run on a pool of threads
+  (:func:`run_on_threads`). The heavy work inside a chunk (numpy random fills, batched
+  matrix products and factorisations, the numba kernels compiled ``nogil``) releases
+  the GIL, so the threads use the cores. Processors keep per-batch state on themselves,
+  so every chunk runs on its own fresh copy (``copy.deepcopy`` of the given processors,
+  taken before any chunk starts them: same labels and specs; ``begin()`` resets any
+  state). Side effects stay on the calling thread: storing
+  a chunk and ``on_chunk`` happen there in trial order, as soon as a chunk and all
+  before it are finished (so the stored chunks are always the first ones, as in a
+  serial run); the ``progress`` callback is called per block from the worker threads,
+  one call at a time (a lock). Ctrl-C / SIGTERM in the calling thread stop the run:
+  chunks not yet started are cancelled, running ones end at their next block, chunks
+  already handed back stay stored; the first error raised in a chunk is re-raised
+  unchanged;
 * scale-out: chunks run on a Dask cluster, either ``workers`` local worker processes
   (``dask.distributed.LocalCluster`` on 127.0.0.1, one thread each) or an existing
   scheduler at ``scheduler`` (``tcp://host:8786``). A worker receives plain data only
@@ -20,12 +34,15 @@ Why the results never depend on the partitioning: trial i draws from its own see
 vectorised along the trial axis with no cross-trial sums, and the block boundaries
 (which do change floating-point rounding of running sums) are fixed by
 :func:`block_size` from the element count and stream length alone, never from the chunk.
-So any chunk size, worker count or interruption gives bit-identical arrays.
+So any chunk size, thread or worker count or interruption gives bit-identical arrays.
 
 Chunk size (:func:`chunk_size`, documented in README): about ``CHUNK_WORK`` units of
 ``trials x (snapshots + tail) x N^2 x processors`` (measured at roughly 0.5-2 s of
 one core on the example scenes), at most ``MAX_CHUNK`` trials and bounded memory; on a
-cluster at most a quarter of an even share per worker so the load balances. A drawn
+cluster at most a quarter of an even share per worker so the load balances; on threads
+one part per thread as long as each holds at least ``THREAD_WORK`` (smaller runs stay
+in one chunk: splitting them costs more than the second core gains), the number of
+chunks a multiple of the parts. A drawn
 covariance run (``draw="covariance"``) costs per trial what streaming N snapshots per
 span would, so its stream length counts as at most ``N x (2 x checkpoints + 1)``.
 
@@ -37,13 +54,17 @@ holds exactly the usual outputs. A folder without ``manifest.json`` is incomplet
 """
 from __future__ import annotations
 
+import copy
 import json
 import logging
 import math
+import os
 import re
 import shutil
 import signal
+import threading
 import warnings
+from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
 from contextlib import contextmanager
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -65,19 +86,27 @@ __all__ = ["evaluate", "Plan", "ChunkStore", "Terminated", "run_chunks", "run_ch
            "cluster_client", "start_run_folder", "open_for_resume", "seal", "kept_chunks",
            "remove_if_empty", "interrupted_message",
            "stop_on_signals", "exit_code", "CHUNK_WORK", "MAX_CHUNK", "RESUME_FILE",
-           "MARKER", "PARTIAL", "INSTALL_HINT", "MAX_WORKERS"]
+           "MARKER", "PARTIAL", "INSTALL_HINT", "MAX_WORKERS", "MAX_THREADS", "THREAD_WORK",
+           "usable_cores", "check_threads", "run_on_threads"]
 
 #: work per chunk in trials x (snapshots + tail) x N^2 x processors (about 0.5-2 s on
 #: one core for the example scenes, measured; common practice: seconds-sized tasks)
 CHUNK_WORK = 2.0e8
 #: largest chunk, trials
 MAX_CHUNK = 1000
+#: least work worth a thread of its own, in CHUNK_WORK units (measured on 2 cores with
+#: the example scenes: runs with less work per thread were slower split than serial,
+#: the per-block overhead of small chunks and the GIL held between the numpy calls
+#: outweighing the second core)
+THREAD_WORK = CHUNK_WORK / 4
 #: (snapshots x elements) per trial in one block; fixes the block boundaries
 _BLOCK_VALUES = 1 << 16
 #: complex values of one (trials, block, elements) array
 _CHUNK_VALUES = 1 << 21
 #: most local worker processes
 MAX_WORKERS = 256
+#: most threads in this process
+MAX_THREADS = 256
 INSTALL_HINT = "pip install 'adapt[cluster]'  (installs dask[distributed])"
 
 RESUME_FILE = "resume.json"
@@ -100,16 +129,27 @@ def block_size(elements: int, total: int) -> int:
 
 
 def chunk_size(trials: int, elements: int, total: int, processors: int = 1,
-               block: int | None = None, workers: int = 1) -> int:
-    """Trials per chunk (see the module docstring); the answer never changes results."""
+               block: int | None = None, workers: int = 1, threads: int = 1) -> int:
+    """Trials per chunk (see the module docstring); the answer never changes results.
+
+    workers: Dask workers (at most a quarter of an even share each); threads: threads
+    in this process: the run is split into one part per thread, as far as each part
+    holds at least ``THREAD_WORK``, and the number of chunks is made a multiple of
+    the parts, so the threads finish together."""
     if trials < 1 or elements < 1 or total < 1:
         raise ValueError("trials, elements and total snapshots must be >= 1")
     block = block_size(elements, total) if block is None else int(block)
     work = float(total) * elements ** 2 * max(1, int(processors))
     size = min(trials, MAX_CHUNK, int(CHUNK_WORK // work),
                _CHUNK_VALUES // max(1, block * elements))
+    size = max(1, size)
     if workers > 1:
         size = min(size, math.ceil(trials / (4 * workers)))
+    elif threads > 1:
+        parts = min(int(threads), int(trials * work // THREAD_WORK), trials)
+        if parts >= 2:
+            count = math.ceil(max(math.ceil(trials / size), parts) / parts) * parts
+            size = math.ceil(trials / count)
     return int(max(1, size))
 
 
@@ -303,6 +343,101 @@ class ChunkStore:
             return None
 
 
+# --------------------------------------------------------------------------- threads
+def usable_cores() -> int:
+    """The cores this process may run on (its CPU affinity where the system reports it,
+    else ``os.cpu_count()``), at least 1."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        n = os.cpu_count() or 1
+    return max(1, min(int(n), MAX_THREADS))
+
+
+def check_threads(threads=None, remote: bool = False, path: str = "threads") -> int:
+    """The number of threads to run chunks on: ``None`` means :func:`usable_cores`;
+    InputError (at ``path``) unless a whole number in [1, MAX_THREADS], and when given
+    together with a Dask cluster (``remote``: its workers decide the parallelism)."""
+    if threads is None:
+        return usable_cores()
+    if isinstance(threads, bool) or not isinstance(threads, (int, np.integer)) \
+            or not 1 <= int(threads) <= MAX_THREADS:
+        raise InputError("the number of threads is out of range", path=path, value=threads,
+                         allowed=f"an integer in [1, {MAX_THREADS}]")
+    if remote:
+        raise InputError("threads are for runs in this process; on a Dask cluster "
+                         "(--workers or --scheduler) the workers decide the parallelism",
+                         path=path, value=threads,
+                         allowed="either threads or --workers / --scheduler")
+    return int(threads)
+
+
+class _Stopped(BaseException):
+    """Raised in a worker thread at its next check once the run is stopping (an
+    interruption or another chunk's error); never reaches the caller."""
+
+
+def run_on_threads(keys: Sequence, threads: int, work: Callable, done: Callable) -> None:
+    """Run ``work(key, check)`` for every key on a pool of ``threads`` threads and call
+    ``done(key, result)`` in the calling thread, in the order of ``keys``, as soon as a
+    key and every key before it have finished (a key finishing early waits for the
+    earlier ones, so what ``done`` has seen is always a prefix of ``keys``, as in a
+    serial run). ``work`` should call ``check()`` now and then (e.g. between blocks): it
+    raises a private exception once the run stops.
+
+    The run stops at the first exception, in a worker (re-raised unchanged) or in the
+    calling thread (KeyboardInterrupt, :class:`Terminated`, an error in ``done``): work
+    not yet started is cancelled, running work ends at its next ``check()``, and the
+    threads are joined before the exception propagates; finished work not yet handed to
+    ``done`` is dropped. Do not use ``warnings.catch_warnings`` inside ``work`` (the
+    warnings state is process-wide and not thread-safe); warnings raised there go
+    through the process's filters as usual."""
+    stop = threading.Event()
+
+    def check() -> None:
+        if stop.is_set():
+            raise _Stopped()
+
+    def task(key):
+        check()
+        return work(key, check)
+
+    keys = list(keys)
+    pool = ThreadPoolExecutor(max_workers=max(1, min(int(threads), len(keys))),
+                              thread_name_prefix="adapt-chunk")
+    try:
+        futures = {}
+        for key in keys:
+            futures[pool.submit(task, key)] = key
+        order = {key: i for i, key in enumerate(keys)}
+        pending = set(futures)
+        results: dict = {}
+        handed = 0
+        while pending:
+            # a timed wait, so signal handlers (Ctrl-C, SIGTERM) run promptly here
+            ready, pending = wait(pending, timeout=0.25, return_when=FIRST_COMPLETED)
+            for fut in sorted(ready, key=lambda f: order[futures[f]]):
+                results[order[futures[fut]]] = fut.result()     # the first error wins
+            while handed in results:
+                done(keys[handed], results.pop(handed))
+                handed += 1
+    finally:
+        stop.set()
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _prepare_kernels() -> None:
+    # define the compiled kernels once here, before threads may race to do it (their
+    # compilation itself is serialised by numba); any problem surfaces where they run
+    try:
+        from . import _kernels
+        build = getattr(_kernels, "_build", None)
+        if build is not None and _kernels.compiled():
+            build()
+    except Exception:                      # noqa: BLE001 - reported where the kernels run
+        pass
+
+
 # --------------------------------------------------------------------------- cluster
 def check_cluster_options(workers=None, scheduler=None) -> None:
     """InputError for bad ``workers`` / ``scheduler`` values or a missing dask."""
@@ -377,21 +512,32 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
                workers: int | None = None, scheduler: str | None = None, store=None,
                progress: Callable[[int], None] | None = None,
                on_chunk: Callable[[int, int], None] | None = None,
-               draw: str = "samples") -> Evaluation:
+               draw: str = "samples", threads: int | None = None) -> Evaluation:
     """Score ``processors`` on ``trials`` trials of ``scene``, chunk by chunk.
 
     chunk, block: trials per chunk and snapshots per block (default :func:`chunk_size`,
     :func:`block_size`; a given ``block`` changes rounding, ``chunk`` never does);
-    workers / scheduler: run the chunks on a Dask cluster (see :func:`cluster_client`);
+    threads: run the chunks on this many threads of this process (default: every usable
+    core; 1: one after another in the calling thread; see the module docstring);
+    workers / scheduler: run the chunks on a Dask cluster instead (see
+    :func:`cluster_client`; InputError if ``threads`` is given too);
     store: a folder (or a callable returning one, called once the work is about to
     start) keeping finished chunks for resuming; progress: called with trial-snapshots
-    done (per block when serial, per chunk on a cluster, at once for stored chunks);
-    on_chunk: called with (first trial, count) after each chunk is finished and stored;
-    draw: passed to :func:`adapt.evaluate.evaluate_batch`. Returns the merged :class:`Evaluation` in trial order.
+    done (per block in this process - from the worker threads, one call at a time -
+    per chunk on a cluster, at once for stored chunks); on_chunk: called in the calling
+    thread with (first trial, count) after each chunk is finished and stored (on
+    threads: in trial order);
+    draw: passed to :func:`adapt.evaluate.evaluate_batch`. Returns the merged
+    :class:`Evaluation` in trial order. Each processor's ``seconds`` is summed over the
+    chunks: with threads (or workers) that is the time summed over threads, not the
+    elapsed wall time.
     """
     if not processors:
         raise ValueError("no processors to evaluate")
+    remote = workers is not None or scheduler is not None
+    check_threads(threads, remote=remote)
     check_cluster_options(workers, scheduler)
+    pool_threads = 1 if remote else check_threads(threads)
     cps = normalised_checkpoints(checkpoints, snapshots)
     total = int(snapshots) + int(tail)
     n = scene.elements
@@ -400,11 +546,10 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     # a drawn covariance costs per trial about what streaming N snapshots per span does
     # (spans: at most two cuts per checkpoint), whatever the stream length
     work_length = total if draw != "covariance" else min(total, n * (2 * len(cps) + 1))
-    size = (chunk_size(trials, n, work_length, len(processors), blk, share) if chunk is None
-            else int(chunk))
+    size = (chunk_size(trials, n, work_length, len(processors), blk, share, pool_threads)
+            if chunk is None else int(chunk))
     if size < 1:
         raise InputError("a chunk must hold at least one trial", path="chunk", value=chunk)
-    remote = workers is not None or scheduler is not None
     chunks_store = None
     if store is not None or remote:
         specs = shippable_specs(processors)
@@ -441,7 +586,12 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
         if on_chunk is not None:
             on_chunk(*key)
 
-    if todo and not remote:
+    if todo and not remote and pool_threads > 1 and len(todo) > 1:
+        _run_threaded(todo, pool_threads, scene, processors, cps, snapshots=int(snapshots),
+                      seed=int(seed), tail=int(tail), block=blk, draw=draw,
+                      progress=progress, keep_arrays=chunks_store is not None,
+                      finished=finished)
+    elif todo and not remote:
         for first, count in todo:
             ev = evaluate_batch(TrialBatch(scene, trials=count, seed=seed, first_trial=first),
                                 processors, cps, snapshots, tail=tail, block=blk,
@@ -465,6 +615,34 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
             finally:
                 client.cancel(list(futures))
     return merge([parts[key] for key in plan.chunks()])
+
+
+def _run_threaded(todo, threads: int, scene: Scene, processors: Sequence[Processor], cps, *,
+                  snapshots: int, seed: int, tail: int, block: int, draw: str, progress,
+                  keep_arrays: bool, finished) -> None:
+    """The chunks ``todo`` on a pool of threads (see :func:`run_on_threads`): each on
+    fresh copies of ``processors``; ``finished(key, evaluation, arrays)`` in the calling
+    thread."""
+    templates = list(processors)
+    lock = threading.Lock()
+    _prepare_kernels()
+
+    def work(key, check):
+        first, count = key
+
+        def tick(done: int) -> None:
+            check()                                   # a stopping run ends here
+            if progress is not None:
+                with lock:
+                    progress(done)
+
+        procs = copy.deepcopy(templates)
+        ev = evaluate_batch(TrialBatch(scene, trials=count, seed=seed, first_trial=first),
+                            procs, cps, snapshots, tail=tail, block=block, progress=tick,
+                            **_draw(draw))
+        return ev, (part_arrays(ev) if keep_arrays else None)
+
+    run_on_threads(todo, threads, work, lambda key, result: finished(key, *result))
 
 
 # --------------------------------------------------------------------------- run folders
@@ -595,13 +773,16 @@ def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
              progress: Callable[[int], None] | None = None,
              draw: str = "samples", workers: int | None = None,
              scheduler: str | None = None, store=None,
-             on_chunk: Callable[[int, int], None] | None = None) -> Evaluation:
+             on_chunk: Callable[[int, int], None] | None = None,
+             threads: int | None = None) -> Evaluation:
     """Run and score ``processors`` over ``trials`` Monte Carlo trials of ``scene``.
 
     checkpoints: snapshot counts to score (default :func:`default_checkpoints`);
     chunk: trials per batch (default :func:`chunk_size`; results do not depend on it);
     block: snapshots per block (default :func:`block_size`, fixed by the elements and
     stream length);
+    threads: run the chunks on this many threads (default: every usable core; 1: one
+    after another; results never depend on it; see :func:`run_chunks`);
     workers / scheduler: run the chunks on a Dask cluster; store: a folder keeping
     finished chunks so an interrupted run can be resumed (see this module);
     on_chunk: called with (first trial, count) after each finished chunk;
@@ -609,7 +790,8 @@ def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
     weights' output SINR from samples; progress: called with the number of
     trial-snapshots done after each block; draw: ``samples`` (default) or
     ``covariance``, the drawn-covariance fast path (see
-    :func:`adapt.evaluate.evaluate_batch`).
+    :func:`adapt.evaluate.evaluate_batch`). Processor ``seconds`` are summed over
+    chunks (with threads: time summed over the threads, not wall time).
     """
     t_ = int(scene.trials if trials is None else trials)
     k_ = int(scene.snapshots if snapshots is None else snapshots)
@@ -621,4 +803,5 @@ def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
     cps = default_checkpoints(k_) if checkpoints is None else checkpoints
     return run_chunks(scene, processors, cps, trials=t_, snapshots=k_, seed=s_, tail=tail,
                       chunk=chunk, block=block, workers=workers, scheduler=scheduler,
-                      store=store, progress=progress, on_chunk=on_chunk, draw=draw)
+                      store=store, progress=progress, on_chunk=on_chunk, draw=draw,
+                      threads=threads)
