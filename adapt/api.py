@@ -110,17 +110,21 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
 def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
              snapshots: int | None = None, seed: int | None = None, checkpoints=None,
              tail: int = 256, draw: str = "samples", block: int | None = None,
-             workers: int | None = None, scheduler: str | None = None) -> Evaluation:
+             workers: int | None = None, scheduler: str | None = None,
+             threads: int | None = None) -> Evaluation:
     """Run and score processors (the Monte Carlo engine, :func:`adapt.execute.evaluate`):
     per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
     gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C).
     ``draw="covariance"`` is the drawn-covariance fast path, ``block`` the snapshots per
-    block of a long stream, ``workers``/``scheduler`` a Dask cluster; results never depend
-    on ``block``, ``workers`` or ``scheduler``."""
+    block of a long stream, ``threads`` the threads of this process the trial chunks run
+    on (default: every usable core; 1: one after another), ``workers``/``scheduler`` a
+    Dask cluster instead; results never depend on ``threads``, ``workers`` or
+    ``scheduler`` (``block`` fixes the rounding of running sums). Processor ``seconds``
+    are summed over chunks: with threads, time summed over the threads, not wall time."""
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, sc.snapshots)
     return _evaluate(sc, procs, cps, tail=tail, draw=draw, block=block, workers=workers,
-                     scheduler=scheduler)
+                     scheduler=scheduler, threads=threads)
 
 
 def write_run(comparison: Comparison, out="runs", command_line: str | None = None) -> Path:

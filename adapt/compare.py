@@ -298,7 +298,8 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
             progress: Callable[[int], None] | None = None, *, target_db: float = 3.0,
             fraction: float = 0.9, tail: int = TAIL, chunk: int | None = None,
             workers: int | None = None, scheduler: str | None = None, store=None,
-            on_chunk: Callable[[int, int], None] | None = None) -> Comparison:
+            on_chunk: Callable[[int, int], None] | None = None,
+            threads: int | None = None) -> Comparison:
     """Run and score ``processors`` on ``scene`` (a :class:`Scene` or a scene file).
 
     processors: specs or Processor objects (default: the scene's ``processors`` list;
@@ -306,24 +307,28 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     checkpoints: snapshot counts to score (list or "1,2,4" text; default geometric,
     4 per octave); progress: called with the number of trial-snapshots done after each
     block (the total is ``trials * (snapshots + tail)``); chunk: trials per chunk
-    (default :func:`adapt.execute.chunk_size`); workers: run on that many local Dask
-    worker processes, or scheduler: on an existing Dask cluster; store: a folder that
+    (default :func:`adapt.execute.chunk_size`); threads: run the chunks on this many
+    threads of this process (default: every usable core; 1: one after another); workers:
+    run on that many local Dask worker processes, or scheduler: on an existing Dask
+    cluster (not with threads); store: a folder that
     keeps finished chunks, so an interrupted run resumes where it stopped (a callable
     returning the folder is called once the work starts); on_chunk: called with (first
     trial, count) after each finished chunk. Results are bit-identical whatever the
-    chunking, the number of workers or any interruption and resume.
+    chunking, the number of threads or workers or any interruption and resume.
     """
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, used.snapshots)
     if tail < 0:
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
-    from .execute import check_cluster_options
+    from .execute import check_cluster_options, check_threads
+    check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     if chunk is not None:
         chunk = whole_count(chunk, "chunk", MAX_TRIALS)
     t0 = time.perf_counter()
     ev = evaluate(used, procs, cps, chunk=chunk, tail=tail, progress=progress,
-                  workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk)
+                  workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
+                  threads=threads)
     metrics = summarise(ev, target_db, fraction)
     seconds = time.perf_counter() - t0
     metrics["seconds"] = seconds

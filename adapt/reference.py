@@ -346,9 +346,39 @@ def _record_on_cluster(sc: Scene, proc: Processor, trials: int, snapshots: int, 
             np.concatenate([p["outputs"] for p in parts], axis=0))
 
 
+def _record_on_threads(proc: Processor, samples: np.ndarray, reference: np.ndarray | None,
+                       look, positions, with_ref: bool, look_dir, cps,
+                       threads: int) -> tuple[np.ndarray, np.ndarray]:
+    """The expected weights and outputs with the cases split over ``threads`` threads
+    (:func:`adapt.execute.run_on_threads`), each part on its own copy of ``proc``. Every
+    computation runs along the case axis with no sums across cases, so the arrays equal
+    a one-batch recording bit for bit."""
+    import copy
+
+    from .evaluate import trial_chunks
+    from .execute import run_on_threads
+    parts: dict = {}
+
+    def work(key, check):
+        first, count = key
+        rows = slice(first, first + count)
+        ctx = _candidate_context(look, positions, count, 1.0, with_ref, look_dir)
+        res = _run_on_stream(copy.deepcopy(proc), samples[rows],
+                             None if reference is None else reference[rows], ctx, cps,
+                             outputs=True)
+        return res.weights, res.outputs
+
+    trials = samples.shape[0]
+    run_on_threads(trial_chunks(trials, -(-trials // threads)), threads, work,
+                   parts.__setitem__)
+    keys = sorted(parts)
+    return (np.concatenate([parts[k][0] for k in keys], axis=0),
+            np.concatenate([parts[k][1] for k in keys], axis=0))
+
+
 def record(scene, processor, trials, snapshots, checkpoints, out_dir,
            tolerances=None, *, workers: int | None = None,
-           scheduler: str | None = None) -> Path:
+           scheduler: str | None = None, threads: int | None = None) -> Path:
     """Record a reference set of ``processor`` on ``trials`` cases of ``scene``.
 
     scene: a :class:`Scene` or a scene file path; processor: a Processor or a spec
@@ -357,7 +387,9 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     a new or empty folder (anything else is refused, never overwritten); tolerances:
     overrides of :data:`DEFAULT_TOLERANCES` (mapping or ``NAME=VALUE`` strings);
     workers / scheduler: compute the expected weights on a Dask cluster (local worker
-    processes or an existing scheduler; the arrays are identical to a local recording).
+    processes or an existing scheduler; the arrays are identical to a local recording);
+    threads: compute them on this many threads of this process instead (default: every
+    usable core; 1: one batch; the arrays are identical).
 
     The set is built in a temporary sibling folder and renamed into place when complete.
     The expected weights are produced by the processor fed the stored samples alone
@@ -383,7 +415,8 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
                else normalised_checkpoints(checkpoints, k))
     except ValueError as exc:
         raise InputError(str(exc), path="checkpoints", value=checkpoints) from None
-    from .execute import check_cluster_options
+    from .execute import check_cluster_options, check_threads
+    pool = check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     out = _prepare_out_dir(out_dir)
 
@@ -399,9 +432,13 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     look_dir = (float(sc.look_azimuth), float(sc.look_elevation))
     ctx = _candidate_context(batch.look, sc.array.positions, t_, 1.0, with_ref, look_dir)
     try:
-        if workers is None and scheduler is None:
+        if workers is None and scheduler is None and (pool == 1 or t_ == 1):
             result = _run_on_stream(proc, samples, reference, ctx, cps, outputs=True)
             weights, outputs = result.weights, result.outputs
+        elif workers is None and scheduler is None:
+            weights, outputs = _record_on_threads(proc, samples, reference, batch.look,
+                                                  sc.array.positions, with_ref, look_dir,
+                                                  cps, pool)
         else:
             weights, outputs = _record_on_cluster(sc, proc, t_, k, cps, with_ref, workers,
                                                   scheduler)

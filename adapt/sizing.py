@@ -477,7 +477,8 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
          seed: int | None = None, target_loss_db: float = 3.0, fraction: float = 0.9,
          progress: Callable[[int], None] | None = None, *, chunk: int | None = None,
          workers: int | None = None, scheduler: str | None = None, store=None,
-         on_chunk: Callable[[int, int], None] | None = None, draw: str = "samples") -> Sizing:
+         on_chunk: Callable[[int, int], None] | None = None, draw: str = "samples",
+         threads: int | None = None) -> Sizing:
     """Size the training of ``processors`` on ``scene`` (a Scene or a scene file path).
 
     processors: specs or Processor objects (default: the scene's ``processors`` list, or
@@ -487,8 +488,9 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     unloaded SMI, else from 1, since loaded methods may need fewer than N); trials, seed: override the scene's
     (at least 2 trials); target_loss_db: the loss the answer must meet; fraction: the
     share of trials for the per-trial answer; progress: called with trial-snapshots done;
-    chunk, workers, scheduler, store, on_chunk: chunked execution on a Dask cluster and
-    resumable runs, as in :func:`adapt.compare.compare` (results never depend on them);
+    chunk, threads, workers, scheduler, store, on_chunk: chunked execution on threads
+    of this process or a Dask cluster and resumable runs, as in
+    :func:`adapt.compare.compare` (results never depend on them);
     draw: ``samples`` (default) or ``covariance``: window covariances drawn directly from
     the complex-Wishart law (:mod:`adapt.wishart`; Gaussian stationary scenes, covariance
     processors only), the same distribution at a cost independent of the snapshot count.
@@ -523,7 +525,8 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
     from .runsettings import MAX_TRIALS, whole_count
-    from .execute import check_cluster_options
+    from .execute import check_cluster_options, check_threads
+    check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     if chunk is not None:
         chunk = whole_count(chunk, "chunk", MAX_TRIALS)
@@ -533,7 +536,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
                                 category=RuntimeWarning)
         ev = evaluate(used, procs, points, chunk=chunk, tail=0, progress=progress,
                       workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
-                      draw=draw)
+                      draw=draw, threads=threads)
 
     facts = theory.scene_facts(used)
     opt = np.asarray(ev.optimum_sinr, dtype=float)

@@ -1,9 +1,10 @@
 """Shared command-line plumbing for chunked, resumable runs (``compare``, ``size``).
 
-Options ``--workers N`` / ``--scheduler ADDRESS`` (Dask), ``--chunk TRIALS`` and
-``--resume RUNDIR``; :func:`execute` runs the work with SIGTERM turned into an
-interruption, and on Ctrl-C / SIGTERM prints what was kept and how to resume, returning
-exit code 130 (SIGINT) or 143 (SIGTERM). The logic lives in :mod:`adapt.execute`.
+Options ``--threads N`` (threads of this process), ``--workers N`` / ``--scheduler
+ADDRESS`` (Dask), ``--chunk TRIALS`` and ``--resume RUNDIR``; :func:`execute` runs the
+work with SIGTERM turned into an interruption, and on Ctrl-C / SIGTERM prints what was
+kept and how to resume, returning exit code 130 (SIGINT) or 143 (SIGTERM). The logic
+lives in :mod:`adapt.execute`.
 """
 from __future__ import annotations
 
@@ -20,6 +21,7 @@ DEFAULT_OUT = "runs"
 
 def add_options(p, resumable: bool = True) -> None:
     g = p.add_argument_group("execution (results never depend on these)")
+    add_threads(g)
     g.add_argument("--workers", metavar="N",
                    help="run the trials on N local Dask worker processes (loopback only; "
                         "needs pip install 'adapt[cluster]')")
@@ -31,6 +33,23 @@ def add_options(p, resumable: bool = True) -> None:
     if resumable:
         g.add_argument("--resume", metavar="RUNDIR",
                        help="finish an interrupted run folder (all settings come from it)")
+
+
+def add_threads(group) -> None:
+    """The ``--threads N`` option (on ``group``, a parser or an argument group)."""
+    group.add_argument("--threads", metavar="N",
+                       help="threads on this machine; default: all usable cores; results "
+                            "never depend on it")
+
+
+def threads_option(args, remote: bool = False):
+    """``--threads`` as an int or None (every usable core), checked (InputError naming
+    the option; refused beside ``--workers`` / ``--scheduler``)."""
+    from ..execute import check_threads
+    threads = whole_number(getattr(args, "threads", None), "--threads")
+    if threads is not None:
+        check_threads(threads, remote=remote, path="--threads")
+    return threads
 
 
 def whole_number(text, option: str):
@@ -124,16 +143,18 @@ def print_outcome(result, written, code) -> int:
 
 
 def cluster_options(args) -> dict:
-    """``{"workers": .., "scheduler": .., "chunk": ..}`` checked (InputError)."""
+    """``{"workers": .., "scheduler": .., "chunk": .., "threads": ..}`` checked
+    (InputError)."""
     from ..execute import check_cluster_options
     workers = whole_number(args.workers, "--workers")
     scheduler = args.scheduler
+    threads = threads_option(args, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     chunk = whole_number(args.chunk, "--chunk")
     if chunk is not None and chunk < 1:
         raise InputError("a chunk must hold at least one trial", path="--chunk", value=chunk,
                          allowed="an integer >= 1")
-    return {"workers": workers, "scheduler": scheduler, "chunk": chunk}
+    return {"workers": workers, "scheduler": scheduler, "chunk": chunk, "threads": threads}
 
 
 def require_scene(args) -> None:
@@ -150,8 +171,8 @@ def refuse_with_resume(args, options: dict) -> None:
     if given:
         raise InputError("--resume takes every setting from the run folder; do not give "
                          + ", ".join(given), path="--resume", value=args.resume,
-                         allowed="--resume RUNDIR alone, optionally with --workers, "
-                                 "--scheduler or --no-progress")
+                         allowed="--resume RUNDIR alone, optionally with --threads, "
+                                 "--workers, --scheduler or --no-progress")
 
 
 def resume(args, kind: str, refused: dict, execution: dict, execute_run):

@@ -5,8 +5,9 @@ Thin wrapper over :func:`adapt.compare.compare` and
 the Monte Carlo work (trials x (snapshots + tail) trial-snapshots, on stderr), prints the
 summary table and the run folder path. Exit 0 on success, 2 on bad input, 130 when stopped by Ctrl-C (SIGINT) and 143
 by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
-``adapt compare --resume RUNDIR`` finishes it with identical results. ``--workers N``
-/ ``--scheduler ADDRESS`` run the trials on a Dask cluster (:mod:`adapt.execute`).
+``adapt compare --resume RUNDIR`` finishes it with identical results. ``--threads N``
+runs the trial chunks on N threads (default: every usable core); ``--workers N`` /
+``--scheduler ADDRESS`` run them on a Dask cluster instead (:mod:`adapt.execute`).
 """
 from __future__ import annotations
 
@@ -88,7 +89,8 @@ def _execute(args, folder, used, settings, execution, line) -> int:
         return compare(used, None, checkpoints=settings["checkpoints"], tail=tail,
                        progress=bar.update if bar is not None else None,
                        chunk=execution["chunk"], workers=execution["workers"],
-                       scheduler=execution["scheduler"], store=store)
+                       scheduler=execution["scheduler"], store=store,
+                       threads=execution["threads"])
 
     return _run.complete(folder, work, write_compare_run, line, _OPTIONS,
                          on_exit=bar.close if bar is not None else None)

@@ -9,6 +9,7 @@ from __future__ import annotations
 import re
 
 from ..errors import InputError
+from ._run import add_threads
 
 ORDER = 40
 
@@ -42,6 +43,7 @@ def register(subparsers) -> None:
                         "install 'adapt[cluster]'); the set is identical")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="compute the cases on an existing Dask cluster, e.g. tcp://host:8786")
+    add_threads(p)
     p.set_defaults(func=run)
 
 
@@ -64,12 +66,15 @@ def run(args) -> int:
     import numpy as np
 
     from ..reference import load_reference, record
-    from ._run import library_warnings, whole_number
+    from ..execute import check_cluster_options
+    from ._run import library_warnings, threads_option, whole_number
+    workers = whole_number(args.workers, "--workers")
+    threads = threads_option(args, remote=workers is not None or args.scheduler is not None)
+    check_cluster_options(workers, args.scheduler)
     with library_warnings():
         out = record(args.scene, args.processor, args.trials, args.snapshots,
                      parse_checkpoints(args.checkpoints), args.out, tolerances=args.tolerance,
-                     workers=whole_number(args.workers, "--workers"),
-                     scheduler=args.scheduler)
+                     workers=workers, scheduler=args.scheduler, threads=threads)
     ref = load_reference(out)
     info = ref.info
     last = np.array([c.sinr_db[-1] for c in ref.cases])

@@ -5,8 +5,9 @@ parses the options, shows a progress bar (trials x largest snapshot count
 trial-snapshots, on stderr), prints the table, the recommendations and any disagreement
 with theory, and the run folder path. Exit 0 on success, 2 on bad input, 130 when stopped by Ctrl-C (SIGINT) and 143
 by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
-``adapt size --resume RUNDIR`` finishes it with identical results. ``--workers N``
-/ ``--scheduler ADDRESS`` run the trials on a Dask cluster (:mod:`adapt.execute`).
+``adapt size --resume RUNDIR`` finishes it with identical results. ``--threads N``
+runs the trial chunks on N threads (default: every usable core); ``--workers N`` /
+``--scheduler ADDRESS`` run them on a Dask cluster instead (:mod:`adapt.execute`).
 """
 from __future__ import annotations
 
@@ -117,7 +118,7 @@ def _execute(args, folder, scene, settings, execution, line) -> int:
                     progress=bar.update if bar is not None else None,
                     chunk=execution["chunk"], workers=execution["workers"],
                     scheduler=execution["scheduler"], store=store,
-                    draw=settings.get("draw", "samples"))
+                    draw=settings.get("draw", "samples"), threads=execution["threads"])
 
     def close_bar():
         for bar in bars:
