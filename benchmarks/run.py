@@ -3,6 +3,7 @@
     python benchmarks/run.py            # full sizes (about 10 minutes on 2 cores)
     python benchmarks/run.py --quick    # scaled-down smoke check (well under a minute)
     python benchmarks/run.py --only W1  # selected workloads only (repeatable)
+    python benchmarks/run.py --threads 1  # product and floors on one thread
 
 Workloads (16-element half-wavelength line, six 40 dB noise-like jammers, wanted source
 broadside at 0 dB, training on interference plus noise):
@@ -16,11 +17,18 @@ broadside at 0 dB, training on interference plus noise):
   per-snapshot Python loop, timed on 8 trials and scaled linearly to 2000.
 * W3 long stream: one trial of 10,000,000 snapshots in blocks of 65,536 (``evaluate(...,
   block=65536)``; the executor's default block for one trial is 4096 snapshots, slower
-  per snapshot), sliding-window SMI and NLMS: snapshots per second, and peak memory (tracemalloc peak of traced allocations,
-  numpy's included, during the run; the process's maxrss is reported beside it).
+  per snapshot), sliding-window SMI and NLMS: snapshots per second, and peak memory
+  (tracemalloc peak of traced allocations, numpy's included, during the run; the
+  process's maxrss is reported beside it). One trial is one chunk: one thread.
 * Floors: the unavoidable work with the same libraries in the same run. W1: drawing the
   samples' random numbers, one batched covariance accumulation and the batched solves.
   W2: drawing the samples' random numbers (per-trial generators, as the product).
+
+Threads: the product runs its trial chunks on every usable core by default (its
+executor's default), so the floors run on the same number of threads (trials split
+evenly), and both are also timed on one thread, for the per-core picture. The references
+run on one thread, as the hand-written scripts they stand for would. ``--threads N``
+sets the product's and the floors' thread count.
 
 Targets (PASS/MISS printed): W1 >= 20x its reference; W2 >= 20x its reference and within
 2x of its floor; W3 peak memory < 300 MB and NLMS >= 1,000,000 snapshots/s.
@@ -90,6 +98,33 @@ def _plain_truth():
     return jam, look, p, r_in
 
 
+def usable_cores() -> int:
+    """Cores this process may run on (the product's default thread count)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:                      # not on Linux
+        return os.cpu_count() or 1
+
+
+def _split(trials: int, parts: int) -> list[tuple[int, int]]:
+    """``parts`` contiguous (lo, hi) ranges covering 0..trials-1 (none empty)."""
+    edges = np.linspace(0, trials, max(1, min(parts, trials)) + 1).round().astype(int)
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+
+
+def _on_threads(work, trials: int, threads: int) -> None:
+    """Run ``work(lo, hi)`` over the trials split into ``threads`` ranges, one thread
+    each (numpy's random fills, matrix products and solves release the GIL)."""
+    ranges = _split(trials, threads)
+    if len(ranges) == 1:
+        work(*ranges[0])
+        return
+    from concurrent.futures import ThreadPoolExecutor
+    with ThreadPoolExecutor(len(ranges)) as pool:
+        for f in [pool.submit(work, lo, hi) for lo, hi in ranges]:
+            f.result()
+
+
 def _timed(fn, *args, **kwargs):
     t0 = time.perf_counter()
     out = fn(*args, **kwargs)
@@ -105,8 +140,9 @@ def _best(fn, repeats: int, *args, **kwargs) -> dict:
 
 
 # ----------------------------------------------------------------------------- W1
-def w1_product(trials: int, draw: str = "covariance") -> dict:
-    """Unloaded and 10 dB-loaded SMI through adapt's evaluate; mean rho per checkpoint."""
+def w1_product(trials: int, draw: str = "covariance", threads: int | None = None) -> dict:
+    """Unloaded and 10 dB-loaded SMI through adapt's evaluate; mean rho per checkpoint.
+    ``threads``: the executor's threads (None: its default, every usable core)."""
     import adapt.scores  # noqa: F401  (import order: scores before evaluate)
     from adapt.execute import evaluate
     from adapt.processors import parse_specs
@@ -114,7 +150,8 @@ def w1_product(trials: int, draw: str = "covariance") -> dict:
     procs = parse_specs(["smi", "smi loading_db=10"])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        seconds, ev = _timed(evaluate, sc, procs, list(W1_CHECKPOINTS), tail=0, draw=draw)
+        seconds, ev = _timed(evaluate, sc, procs, list(W1_CHECKPOINTS), tail=0, draw=draw,
+                             threads=threads)
     return {"seconds": seconds,
             "mean_rho": {p.label: p.normalised.mean(axis=0).tolist() for p in ev.processors}}
 
@@ -147,45 +184,51 @@ def w1_reference(trials: int) -> dict:
                                              "smi loading_db=10": rho[:, 1].mean(0).tolist()}}
 
 
-def w1_floor(trials: int, group: int = 128) -> dict:
+def w1_floor(trials: int, group: int = 128, threads: int = 1) -> dict:
     """Unavoidable work of a sample-based W1 run: per-trial generator draws of the
     samples' random numbers, one batched covariance accumulation (window sums at every
-    checkpoint), the batched solves (two loadings x seven checkpoints per trial)."""
+    checkpoint), the batched solves (two loadings x seven checkpoints per trial); on
+    ``threads`` threads, as the product runs."""
     jam, look, p, _ = _plain_truth()
     k_max = W1_CHECKPOINTS[-1]
     cps = np.array(W1_CHECKPOINTS)
+    edges = np.concatenate([[0], cps])
+
+    def work(first: int, last: int) -> None:
+        for lo in range(first, last, group):
+            g_ = min(group, last - lo)
+            z = np.empty((g_, k_max, N + len(jam), 2))
+            for t in range(g_):
+                np.random.Generator(np.random.PCG64([SEED, lo + t])).standard_normal(out=z[t])
+            zc = z.view(np.complex128)[..., 0]
+            x = zc[..., :N] + zc[..., N:] @ (np.sqrt(p) * jam)
+            # contiguous operands so that every product is a BLAS call
+            xh = np.ascontiguousarray(np.swapaxes(x, 1, 2))              # (g, N, K)
+            xc = np.conj(x)
+            parts = np.stack([xh[:, :, a:b] @ xc[:, a:b]
+                              for a, b in zip(edges[:-1], edges[1:])], axis=1)
+            r = np.cumsum(parts, axis=1) / cps[None, :, None, None]
+            r = np.concatenate([r, r + 10 * np.eye(N)], axis=1)
+            np.linalg.solve(r, np.broadcast_to(look, r.shape[:-1])[..., None])
+
     t0 = time.perf_counter()
-    for lo in range(0, trials, group):
-        g_ = min(group, trials - lo)
-        z = np.empty((g_, k_max, N + len(jam), 2))
-        for t in range(g_):
-            np.random.Generator(np.random.PCG64([SEED, lo + t])).standard_normal(out=z[t])
-        zc = z.view(np.complex128)[..., 0]
-        x = zc[..., :N] + zc[..., N:] @ (np.sqrt(p) * jam)
-        edges = np.concatenate([[0], cps])
-        # contiguous operands so that every product is a BLAS call
-        xh = np.ascontiguousarray(np.swapaxes(x, 1, 2))              # (g, N, K)
-        xc = np.conj(x)
-        parts = np.stack([xh[:, :, a:b] @ xc[:, a:b] for a, b in zip(edges[:-1], edges[1:])],
-                         axis=1)
-        r = np.cumsum(parts, axis=1) / cps[None, :, None, None]
-        r = np.concatenate([r, r + 10 * np.eye(N)], axis=1)
-        np.linalg.solve(r, np.broadcast_to(look, r.shape[:-1])[..., None])
-    return {"seconds": time.perf_counter() - t0}
+    _on_threads(work, trials, threads)
+    return {"seconds": time.perf_counter() - t0, "threads": threads}
 
 
 # ----------------------------------------------------------------------------- W2
 W2_SPECS = ("lms", "nlms", "rls")
 
 
-def w2_product(trials: int, snapshots: int, specs=W2_SPECS) -> dict:
-    """The recursive processors through adapt's evaluate (one stream for all given)."""
+def w2_product(trials: int, snapshots: int, specs=W2_SPECS, threads: int | None = None) -> dict:
+    """The recursive processors through adapt's evaluate (one stream for all given);
+    ``threads`` as in :func:`w1_product`."""
     import adapt.scores  # noqa: F401
     from adapt.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, snapshots)
     cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
-    seconds, ev = _timed(evaluate, sc, parse_specs(list(specs)), cps, tail=0)
+    seconds, ev = _timed(evaluate, sc, parse_specs(list(specs)), cps, tail=0, threads=threads)
     return {"seconds": seconds,
             "processor_seconds": {p.label: p.seconds for p in ev.processors},
             "final_mean_rho": {p.label: float(np.nanmean(p.normalised[:, -1]))
@@ -228,18 +271,23 @@ def w2_reference(trials: int, snapshots: int, spec: str) -> dict:
             "median_trial_seconds": float(np.median(per_trial))}
 
 
-def w2_floor(trials: int, snapshots: int) -> dict:
+def w2_floor(trials: int, snapshots: int, threads: int = 1) -> dict:
     """Drawing the samples' random numbers with per-trial generators: noise (K, N) and
-    seven source waveforms (K,) per trial, complex, into reused buffers."""
+    seven source waveforms (K,) per trial, complex, into reused buffers; on ``threads``
+    threads, as the product runs."""
     sources = len(JAMMER_AZIMUTHS) + 1
-    z = np.empty((snapshots, N, 2))
-    s = np.empty((snapshots, 2))
+
+    def work(first: int, last: int) -> None:
+        z = np.empty((snapshots, N, 2))
+        s = np.empty((snapshots, 2))
+        for t in range(first, last):
+            np.random.Generator(np.random.PCG64([SEED, t, 0])).standard_normal(out=z)
+            for j in range(sources):
+                np.random.Generator(np.random.PCG64([SEED, t, j + 1])).standard_normal(out=s)
+
     t0 = time.perf_counter()
-    for t in range(trials):
-        np.random.Generator(np.random.PCG64([SEED, t, 0])).standard_normal(out=z)
-        for j in range(sources):
-            np.random.Generator(np.random.PCG64([SEED, t, j + 1])).standard_normal(out=s)
-    return {"seconds": time.perf_counter() - t0}
+    _on_threads(work, trials, threads)
+    return {"seconds": time.perf_counter() - t0, "threads": threads}
 
 
 def kernel_compile_seconds() -> float | None:
@@ -322,9 +370,10 @@ WORKLOADS = ("W1", "W2", "W3")
 
 
 def run(quick: bool = False, sizes: dict | None = None, say=print,
-        only: tuple = WORKLOADS) -> dict:
-    """Run the workloads in ``only`` (default all); returns the figures (also printed
-    through ``say``)."""
+        only: tuple = WORKLOADS, threads: int | None = None) -> dict:
+    """Run the workloads in ``only`` (default all) with the product and the floors on
+    ``threads`` threads (default: every usable core, the product's default); returns the
+    figures (also printed through ``say``)."""
     from adapt import _kernels
     only = tuple(w.upper() for w in only)
     bad = [w for w in only if w not in WORKLOADS]
@@ -333,9 +382,14 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
     z = dict(QUICK if quick else FULL)
     if sizes:
         z.update(sizes)
+    threads = usable_cores() if threads is None else int(threads)
+    if threads < 1:
+        raise ValueError(f"threads must be >= 1, got {threads}")
+    z["threads"] = threads
     out = {"mode": "quick" if quick else "full", "sizes": z, "machine": machine()}
     say(f"machine: {out['machine']}")
-    say(f"sizes: {z}")
+    say(f"sizes: {z} (product and floors on {threads} thread(s); the references on one, "
+        "as a hand-written script runs)")
 
     # kernels: compile from scratch (subprocess), then load for this process
     out["kernels_compiled"] = _kernels.compiled()
@@ -358,12 +412,15 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
 
 
 def _run_w1(z: dict, out: dict, say) -> None:
-    t1 = z["w1_trials"]
-    w1 = {"product_covariance": _best(w1_product, 3, t1, "covariance"),
-          "product_samples": _best(w1_product, 2, t1, "samples"),
-          "reference": w1_reference(t1), "floor": _best(w1_floor, 2, t1)}
+    t1, th = z["w1_trials"], z["threads"]
+    w1 = {"product_covariance": _best(w1_product, 3, t1, "covariance", th),
+          "product_covariance_1thread": _best(w1_product, 2, t1, "covariance", 1),
+          "product_samples": _best(w1_product, 2, t1, "samples", th),
+          "reference": w1_reference(t1), "floor": _best(w1_floor, 2, t1, 128, th),
+          "floor_1thread": _best(w1_floor, 2, t1, 128, 1)}
     ref1 = w1["reference"]["seconds"]
     w1["speedup"] = ref1 / w1["product_covariance"]["seconds"]
+    w1["speedup_1thread"] = ref1 / w1["product_covariance_1thread"]["seconds"]
     w1["speedup_samples"] = ref1 / w1["product_samples"]["seconds"]
     w1["reference_over_floor"] = ref1 / w1["floor"]["seconds"]
     w1["over_floor"] = w1["product_covariance"]["seconds"] / w1["floor"]["seconds"]
@@ -371,15 +428,18 @@ def _run_w1(z: dict, out: dict, say) -> None:
     w1["target_speedup_met"] = w1["speedup"] >= 20
     out["w1"] = w1
     say(f"\nW1 sizing ({t1} trials, checkpoints {W1_CHECKPOINTS[0]}..{W1_CHECKPOINTS[-1]}, "
-        "smi and smi loading_db=10)")
-    say(f"  product draw=covariance  {w1['product_covariance']['seconds']:9.3f} s")
+        f"smi and smi loading_db=10; product and floor on {th} thread(s))")
+    say(f"  product draw=covariance  {w1['product_covariance']['seconds']:9.3f} s "
+        f"(1 thread {w1['product_covariance_1thread']['seconds']:.3f} s)")
     say(f"  product draw=samples     {w1['product_samples']['seconds']:9.3f} s")
     say(f"  reference (per trial)    {ref1:9.3f} s  (median trial x {t1}: "
         f"{w1['reference']['robust_seconds']:.3f} s)")
-    say(f"  floor (draws+accumulate+solve) {w1['floor']['seconds']:9.3f} s")
-    say(f"  speedup covariance {w1['speedup']:.1f}x, samples {w1['speedup_samples']:.1f}x; "
-        f"product/floor covariance {w1['over_floor']:.2f}, samples {w1['samples_over_floor']:.2f}"
-        f"; reference/floor {w1['reference_over_floor']:.2f}")
+    say(f"  floor (draws+accumulate+solve) {w1['floor']['seconds']:9.3f} s "
+        f"(1 thread {w1['floor_1thread']['seconds']:.3f} s)")
+    say(f"  speedup covariance {w1['speedup']:.1f}x (1 thread {w1['speedup_1thread']:.1f}x), "
+        f"samples {w1['speedup_samples']:.1f}x; product/floor covariance "
+        f"{w1['over_floor']:.2f}, samples {w1['samples_over_floor']:.2f}; reference/floor "
+        f"{w1['reference_over_floor']:.2f}")
     for label in ("smi", "smi loading_db=10"):
         say(f"  mean rho {label:18s} covariance "
             + " ".join(f"{v:.3f}" for v in w1["product_covariance"]["mean_rho"][label])
@@ -389,31 +449,38 @@ def _run_w1(z: dict, out: dict, say) -> None:
 
 
 def _run_w2(z: dict, out: dict, say) -> None:
-    t2, k2, tr = z["w2_trials"], z["w2_snapshots"], z["w2_reference_trials"]
-    w2 = {"floor": _best(w2_floor, 2, t2, k2), "processors": {}}
-    say(f"\nW2 recursive ({t2} trials x {k2} snapshots); reference timed on {tr} trials "
-        f"and scaled x{t2 / tr:g}")
-    say(f"  floor (random draws)     {w2['floor']['seconds']:9.3f} s")
+    t2, k2, tr, th = z["w2_trials"], z["w2_snapshots"], z["w2_reference_trials"], z["threads"]
+    w2 = {"floor": _best(w2_floor, 2, t2, k2, th), "floor_1thread": _best(w2_floor, 2, t2, k2, 1),
+          "processors": {}}
+    floor, floor1 = w2["floor"]["seconds"], w2["floor_1thread"]["seconds"]
+    say(f"\nW2 recursive ({t2} trials x {k2} snapshots; product and floor on {th} "
+        f"thread(s)); reference timed on {tr} trials and scaled x{t2 / tr:g}")
+    say(f"  floor (random draws)     {floor:9.3f} s (1 thread {floor1:.3f} s)")
     for spec in W2_SPECS:
-        prod = _best(w2_product, 2, t2, k2, [spec])
+        prod = _best(w2_product, 2, t2, k2, [spec], th)
+        prod1 = w2_product(t2, k2, [spec], 1)
         ref = w2_reference(tr, k2, spec)
         ref_scaled = ref["seconds"] * t2 / tr
-        rec = {"product": prod, "reference_measured": ref, "reference_scaled_seconds": ref_scaled,
+        rec = {"product": prod, "product_1thread": prod1, "reference_measured": ref,
+               "reference_scaled_seconds": ref_scaled,
                "speedup": ref_scaled / prod["seconds"],
-               "over_floor": prod["seconds"] / w2["floor"]["seconds"],
-               "reference_over_floor": ref_scaled / w2["floor"]["seconds"]}
+               "speedup_1thread": ref_scaled / prod1["seconds"],
+               "over_floor": prod["seconds"] / floor,
+               "over_floor_1thread": prod1["seconds"] / floor1,
+               "reference_over_floor": ref_scaled / floor}
         rec["target_speedup_met"] = rec["speedup"] >= 20
         rec["target_floor_met"] = rec["over_floor"] <= 2
         w2["processors"][spec] = rec
-        say(f"  {spec:5s} product {prod['seconds']:8.3f} s (processor's own "
-            f"{prod['processor_seconds'][spec]:.3f} s) | reference {ref_scaled:9.1f} s "
-            f"(measured {ref['seconds']:.2f} s) | speedup {rec['speedup']:7.1f}x "
-            f"{_verdict(rec['target_speedup_met'])} | product/floor {rec['over_floor']:.2f} "
-            f"{_verdict(rec['target_floor_met'])} | reference/floor "
-            f"{rec['reference_over_floor']:.1f}")
-    both = w2_product(t2, k2, W2_SPECS)
+        say(f"  {spec:5s} product {prod['seconds']:7.3f} s (1 thread {prod1['seconds']:.3f} s; "
+            f"processor's own {prod['processor_seconds'][spec]:.3f} s) | reference "
+            f"{ref_scaled:7.1f} s (measured {ref['seconds']:.2f} s) | speedup "
+            f"{rec['speedup']:5.1f}x {_verdict(rec['target_speedup_met'])} (1 thread "
+            f"{rec['speedup_1thread']:.1f}x) | product/floor {rec['over_floor']:.2f} "
+            f"{_verdict(rec['target_floor_met'])} (1 thread {rec['over_floor_1thread']:.2f}) "
+            f"| reference/floor {rec['reference_over_floor']:.1f}")
+    both = w2_product(t2, k2, W2_SPECS, th)
     w2["all_three"] = both
-    w2["all_three_over_floor"] = both["seconds"] / w2["floor"]["seconds"]
+    w2["all_three_over_floor"] = both["seconds"] / floor
     say(f"  all three on one stream {both['seconds']:8.3f} s, processors' own "
         + ", ".join(f"{k} {v:.2f} s" for k, v in both["processor_seconds"].items())
         + f"; product/floor {w2['all_three_over_floor']:.2f}")
@@ -451,8 +518,11 @@ def main(argv=None) -> int:
     ap.add_argument("--json", default="runs/benchmark.json", help="where to write the figures")
     ap.add_argument("--only", action="append", choices=WORKLOADS, metavar="W",
                     help="run only this workload (W1, W2 or W3; repeatable)")
+    ap.add_argument("--threads", type=int, default=None,
+                    help="threads for the product and the floors (default: every usable core)")
     args = ap.parse_args(argv)
-    figures = run(quick=args.quick, only=tuple(args.only) if args.only else WORKLOADS)
+    figures = run(quick=args.quick, only=tuple(args.only) if args.only else WORKLOADS,
+                  threads=args.threads)
     path = Path(args.json)
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(json.dumps(figures, indent=2, default=float))
