@@ -279,12 +279,13 @@ def _build():
                         out[t, s, j, i] = np.conj(v)
 
     @njit(cache=True, nogil=True)
-    def cholesky_kernel(r, b, x, ok):
-        # r (M, N, N): only the lower triangle and the real diagonal are read (as LAPACK's
-        # zpotrf with uplo L); b (M, N, K); x (M, N, K) <- R^-1 b; ok[m] False where the
-        # factorisation meets a pivot that is not positive (x left unset there).
+    def cholesky_kernel(r, scale, load, b, x, ok):
+        # R_m = r[m] * scale[m] + load[m] I, r (M, N, N): only the lower triangle and the
+        # real diagonal are read (as LAPACK's zpotrf with uplo L); b (M or 1, N, K) (1:
+        # the same right-hand side for every item); x (M, N, K) <- R^-1 b; ok[m] False
+        # where the factorisation meets a pivot that is not positive (x left unset).
         # Complex arithmetic written out on real and imaginary parts (L in lr, li).
-        m_, n, k_ = b.shape
+        m_, n, k_ = x.shape
         lr = np.zeros((n, n))
         li = np.zeros((n, n))
         d = np.zeros(n)
@@ -292,8 +293,10 @@ def _build():
         yi = np.zeros(n)
         for m in range(m_):
             good = True
+            sc = scale[m]
+            mb = 0 if b.shape[0] == 1 else m
             for j in range(n):
-                s = r[m, j, j].real
+                s = r[m, j, j].real * sc + load[m]
                 for k in range(j):
                     s -= lr[j, k] * lr[j, k] + li[j, k] * li[j, k]
                 if not s > 0.0:              # also catches NaN
@@ -304,8 +307,8 @@ def _build():
                 li[j, j] = 0.0
                 d[j] = 1.0 / dj
                 for i in range(j + 1, n):
-                    vr = r[m, i, j].real
-                    vi = r[m, i, j].imag
+                    vr = r[m, i, j].real * sc
+                    vi = r[m, i, j].imag * sc
                     for k in range(j):       # L_ij = (R_ij - sum_k L_ik conj(L_jk)) / L_jj
                         vr -= lr[i, k] * lr[j, k] + li[i, k] * li[j, k]
                         vi -= li[i, k] * lr[j, k] - lr[i, k] * li[j, k]
@@ -316,8 +319,8 @@ def _build():
                 continue
             for c in range(k_):
                 for i in range(n):           # L y = b
-                    vr = b[m, i, c].real
-                    vi = b[m, i, c].imag
+                    vr = b[mb, i, c].real
+                    vi = b[mb, i, c].imag
                     for k in range(i):
                         vr -= lr[i, k] * yr[k] - li[i, k] * yi[k]
                         vi -= lr[i, k] * yi[k] + li[i, k] * yr[k]
@@ -431,28 +434,39 @@ def wishart_spans(chol: np.ndarray, gam: np.ndarray, z: np.ndarray, rows: np.nda
     return out
 
 
-def cholesky_solve(r: np.ndarray, b: np.ndarray) -> np.ndarray:
+def cholesky_solve(r: np.ndarray, b: np.ndarray, scale=None, load=None) -> np.ndarray:
     """``R^-1 b`` by Cholesky factorisation for a stack of Hermitian positive-definite
-    ``r`` (..., N, N) (lower triangle and real diagonal read, as LAPACK's ``zpotrf``)
-    and ``b`` (..., N, K), compiled: factorisation and both triangular solves per item in
-    one loop (no LAPACK call per small matrix). Raises ``np.linalg.LinAlgError`` if any
-    item is not positive definite, like ``np.linalg.cholesky``."""
+    ``R = r * scale + load I``: r (..., N, N) (lower triangle and real diagonal read, as
+    LAPACK's ``zpotrf``), ``scale`` and ``load`` (...) per item (default 1 and 0; folded
+    into the factorisation, so no scaled copy of the stack is made, and rounded exactly
+    as ``r * scale`` then ``+ load`` on the diagonal), b (..., N, K) or (N, K), one
+    right-hand side for every item; compiled: factorisation and both triangular solves
+    per item in one loop (no LAPACK call per small matrix). Raises
+    ``np.linalg.LinAlgError`` if any item is not positive definite, like
+    ``np.linalg.cholesky``."""
     r = np.asarray(r)
     b = np.asarray(b)
-    if r.ndim < 2 or r.shape[-1] != r.shape[-2] or b.ndim != r.ndim \
-            or b.shape[:-1] != r.shape[:-1]:
-        raise ValueError(f"need r (..., N, N) and b (..., N, K) with equal stacks, got "
-                         f"{r.shape} and {b.shape}")
+    shared_b = b.ndim == 2 and r.ndim > 2
+    if r.ndim < 2 or r.shape[-1] != r.shape[-2] or b.shape[-2] != r.shape[-1] \
+            or (not shared_b and (b.ndim != r.ndim or b.shape[:-1] != r.shape[:-1])):
+        raise ValueError(f"need r (..., N, N) and b (..., N, K) with equal stacks, or b "
+                         f"(N, K), got {r.shape} and {b.shape}")
     _build()
     n, k = r.shape[-1], b.shape[-1]
+    stack = r.shape[:-2]
     rf = np.ascontiguousarray(r.reshape((-1, n, n)), dtype=np.complex128)
     bf = np.ascontiguousarray(b.reshape((-1, n, k)), dtype=np.complex128)
-    x = np.empty(bf.shape, dtype=np.complex128)
-    ok = np.empty(len(rf), dtype=np.bool_)
-    _CHOLESKY(rf, bf, x, ok)
+    m = len(rf)
+    sf = np.ones(m) if scale is None else \
+        np.ascontiguousarray(np.broadcast_to(scale, stack), dtype=float).reshape(-1)
+    lf = np.zeros(m) if load is None else \
+        np.ascontiguousarray(np.broadcast_to(load, stack), dtype=float).reshape(-1)
+    x = np.empty((m, n, k), dtype=np.complex128)
+    ok = np.empty(m, dtype=np.bool_)
+    _CHOLESKY(rf, sf, lf, bf, x, ok)
     if not ok.all():
         raise np.linalg.LinAlgError("Matrix is not positive definite")
-    return x.reshape(b.shape)
+    return x.reshape(stack + (n, k))
 
 
 def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray) -> None:
@@ -494,5 +508,6 @@ def warm_up() -> float:
     wishart_spans(p, np.ones((2, 1, 3)), np.zeros((2, 3, 2)), np.array([1, 2, 2]),
                   np.array([0, 0, 1]), np.array([3]))
     cholesky_solve(p, x[:, :3, :1])
+    cholesky_solve(p, x[0, :3, :1], scale=np.ones(2), load=np.zeros(2))
     add_sources(x.copy(), 1.0, x[:, :, :2], x[:, :2, :])
     return time.perf_counter() - t0

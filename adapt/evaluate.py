@@ -136,7 +136,7 @@ class _Measure:
 
 def _stationary_sinr(w: np.ndarray, a: np.ndarray, r: np.ndarray, power: float) -> np.ndarray:
     """:func:`adapt.scores.output_sinr` for weights (T, C, N) against one steering vector
-    (T, N) and covariance (T, N, N) per trial, ``R w`` as one batched matrix product
+    (T, N) and covariance (T or 1, N, N) per trial, ``R w`` as one batched matrix product
     (equal to rounding; used by the drawn-covariance path, whose realisations differ
     from the sample path's anyway)."""
     rw = w @ np.swapaxes(r, -1, -2)                       # (R w) for every checkpoint
@@ -182,11 +182,17 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
                          allowed="samples | covariance")
     # truth at each checkpoint's moment
     moments = cps if not sc.stationary else np.zeros(1, dtype=np.int64)
-    r_in = batch.covariance(moments)                              # (T, M, N, N)
+    drawn = sc.stationary and draw == "covariance"
+    # the drawn path scores against one shared truth when every trial has the same array
+    r_in = batch.covariance(moments, shared=drawn)                # (T or 1, M, N, N)
     d = sc.desired
     a_d = batch.desired_steering(moments)                         # (T, M, N)
     p_d = d.power * d.active(moments).astype(float)               # (M,)
-    opt = scores.optimum_sinr(a_d, r_in, p_d)                     # (T, M)
+    if batch.same_array:       # the same for every trial: solved once (items are exact)
+        opt = np.broadcast_to(scores.optimum_sinr(a_d[:1], r_in[:1], p_d),
+                              (batch.trials, len(moments)))
+    else:
+        opt = scores.optimum_sinr(a_d, r_in, p_d)                 # (T, M)
     look_true = batch.steering_toward(sc.look_azimuth, sc.look_elevation)   # (T, N)
     a_j = [batch.steering(i, moments) for i in sc.interferer_indices]       # (T, M, N) each
     look = batch.look
@@ -195,7 +201,7 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     out = []
     for i, (p, res) in enumerate(zip(processors, results)):
         w = res.weights                                            # (T, C, N)
-        if sc.stationary and draw == "covariance":
+        if drawn:
             sinr = _stationary_sinr(w, a_d[:, 0], r_in[:, 0], p_d[0])
         elif sc.stationary:
             sinr = scores.output_sinr(w, a_d, r_in, p_d[0])

@@ -186,14 +186,21 @@ class TrialBatch:
     def desired_steering(self, k=None) -> np.ndarray:
         return self.steering(self.scene.desired_index, k)
 
-    def covariance(self, k=None, *, training: bool = False) -> np.ndarray:
+    @property
+    def same_array(self) -> bool:
+        """True when every trial of the batch has the same array (no hardware errors),
+        so the true covariances and steering vectors are the same for every trial."""
+        return not self.scene.array.errors.any
+
+    def covariance(self, k=None, *, training: bool = False, shared: bool = False) -> np.ndarray:
         """True interference-plus-noise covariance ``R_in`` (noise power 1 per element).
 
         ``k`` None: at snapshot 0, shape (T, N, N) (the whole run for a stationary scene).
         ``k`` an array of snapshot indices: shape (T, len(k), N, N), the covariance of the
         moment (gates and directions at that snapshot). ``training=True`` adds the wanted
         source when the scene trains with the signal present (the covariance of the
-        training data). Quantisation noise is not included.
+        training data). Quantisation noise is not included. ``shared=True``: when every
+        trial has the same array (:attr:`same_array`), one row (leading axis 1) for all.
         """
         sc = self.scene
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
@@ -211,7 +218,7 @@ class TrialBatch:
             a = self._steering(i, kk, rows)                            # (T or 1, M, N)
             p = src.power * src.active(kk).astype(float)              # (M,)
             r += p[None, :, None, None] * (a[..., :, None] * np.conj(a[..., None, :]))
-        if uniform:
+        if uniform and not shared:
             r = np.repeat(r, self.trials, axis=0)
         return r[:, 0] if k is None else r
 

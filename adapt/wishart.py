@@ -159,19 +159,17 @@ def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
 def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
               lengths: np.ndarray, cumulative: bool = False) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
-    snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite:
-    ``L_R A A^H L_R^H`` (one factorisation when every trial's R is the same) with A from :func:`bartlett_factors`. With the compiled kernels
+    snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite,
+    or (1, N, N) shared by every trial: ``L_R A A^H L_R^H`` with A from :func:`bartlett_factors`. With the compiled kernels
     on (:mod:`adapt._kernels`) the same draws are combined in a compiled loop
     that skips the triangles' zeros (equal to rounding); its sums are exactly Hermitian.
     ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
     growing-window sums; ``np.cumsum`` order)."""
     r = np.asarray(covariance)
-    if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] != len(gens):
+    if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] not in (1, len(gens)):
         raise ValueError(f"covariance must be (T, N, N) with T = {len(gens)} generators, "
-                         f"got {r.shape}")
-    # trials without hardware errors share one covariance: factorise it once
-    same = r.shape[0] > 1 and bool(np.all(r == r[:1]))
-    chol = np.linalg.cholesky(r[:1] if same else r)                # (T or 1, N, N)
+                         f"or (1, N, N) shared by all, got {r.shape}")
+    chol = np.linalg.cholesky(r)                                   # (T or 1, N, N)
     n = r.shape[-1]
     if _kernels.compiled():
         gam, z, (si, ii, jj) = _draws(gens, lengths, n)
@@ -225,7 +223,10 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
     cuts = cut_points(procs, cps)
     if cov and len(cuts) > 1:                # spans [cuts[s], cuts[s+1]); none past the last
         t0 = time.perf_counter()
-        r = batch.covariance(training=True)                         # (T, N, N)
+        r = batch.covariance(training=True, shared=True)            # (T or 1, N, N)
+
+        def rows(lo: int, hi: int) -> np.ndarray:
+            return r if len(r) == 1 else r[lo:hi]
         gens = _trial_generators(batch.seed, batch.trial_indices)
         lengths = np.diff(cuts)
         plans = []
@@ -246,9 +247,9 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
             hi = min(t_, lo + group)
             t0 = time.perf_counter()
             if only_growing:     # running totals straight from the draw: total[s] = spans 0..s
-                total = span_sums(r[lo:hi], gens[lo:hi], lengths, cumulative=True)
+                total = span_sums(rows(lo, hi), gens[lo:hi], lengths, cumulative=True)
             else:
-                spans = span_sums(r[lo:hi], gens[lo:hi], lengths)     # (G, S, N, N)
+                spans = span_sums(rows(lo, hi), gens[lo:hi], lengths)  # (G, S, N, N)
                 if growing:
                     total = np.cumsum(spans, axis=1)
             shared += time.perf_counter() - t0

@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 import adapt.scores  # noqa: F401  (import order: scores before evaluate)
-from adapt import wishart
+from adapt import execute, wishart
 from adapt.errors import InputError
 from adapt.evaluate import evaluate_batch
 from adapt import _kernels
@@ -278,6 +278,44 @@ def test_add_sources_matches_numpy_and_ignores_block_shape(monkeypatch):
         assert np.max(np.abs(got["numba"] - got["numpy"])) < 1e-12 * np.abs(expect).max()
     with pytest.raises(ValueError, match="steer"):
         _kernels.add_sources(x0.copy(), 1.0, env, steer[:, :3])
+
+
+def test_compiled_solve_folds_scale_and_load():
+    # cholesky_solve(r, b, scale, load) solves (r * scale + load I) x = b, the same
+    # numbers as scaling and loading a copy first; one shared right-hand side allowed
+    if not HAVE_NUMBA:
+        return
+    rng = np.random.default_rng(6)
+    m = rng.standard_normal((4, 3, 6, 6)) + 1j * rng.standard_normal((4, 3, 6, 6))
+    r = m @ np.conj(np.swapaxes(m, -1, -2))
+    scale = 1.0 / np.array([5.0, 7.0, 40.0])[None, :]
+    load = rng.uniform(0.0, 3.0, (4, 3))
+    b = rng.standard_normal((6, 1)) + 1j * rng.standard_normal((6, 1))
+    got = _kernels.cholesky_solve(r, b, scale=scale, load=load)
+    loaded = r * scale[..., None, None] + load[..., None, None] * np.eye(6)
+    same = _kernels.cholesky_solve(loaded, np.broadcast_to(b, (4, 3, 6, 1)))
+    assert np.array_equal(got, same)
+    expect = np.linalg.solve(loaded, np.broadcast_to(b, (4, 3, 6, 1)))
+    assert np.max(np.abs(got - expect)) < 1e-10 * np.abs(expect).max()
+    with pytest.raises(np.linalg.LinAlgError):
+        _kernels.cholesky_solve(r, b, scale=scale, load=-1e9 * np.ones((4, 3)))
+
+
+def test_smi_fast_solve_equals_general_path(monkeypatch):
+    # the drawn path's SMI solve with scale and load folded in gives exactly the weights
+    # of the general path (scaled, loaded copy; then the same compiled solve)
+    from adapt.processors._covariance import SampleCovarianceProcessor
+    sc = _scene()
+    specs = ["smi", "smi loading_db=10", "smi loading=auto"]
+    fast = execute.evaluate(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
+                            draw="covariance", threads=1)
+    monkeypatch.setattr(SampleCovarianceProcessor, "weights_from_scaled",
+                        lambda self, table, counts, load: None)
+    slow = execute.evaluate(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
+                            draw="covariance", threads=1)
+    for a, b in zip(fast.processors, slow.processors):
+        assert np.array_equal(a.final_weights, b.final_weights), a.label
+        assert np.array_equal(a.sinr, b.sinr), a.label
 
 
 def test_size_command_draws_covariance(tmp_path, capsys):

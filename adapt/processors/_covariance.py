@@ -298,6 +298,14 @@ class SampleCovarianceProcessor(Processor):
     def weights_from(self, r: np.ndarray, counts: np.ndarray, exact: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
+    def weights_from_scaled(self, table: np.ndarray, counts: np.ndarray,
+                            load: np.ndarray | None) -> np.ndarray | None:
+        """Optional fast path: the weights of :meth:`weights_from` straight from the
+        window sums ``table`` (T, C, N, N), exactly Hermitian, with ``S / count + load I``
+        folded into the solve (no scaled copy of the stack); None when not offered or
+        not possible here (the caller then takes the general path)."""
+        return None
+
     # -- driver ------------------------------------------------------------------
     def begin(self, context: Context) -> None:
         self.context = context
@@ -370,10 +378,17 @@ class SampleCovarianceProcessor(Processor):
         w[:, times == 0] = self._initial[rows][:, None, :]
         if distinct.size:
             counts = self._sums.count(distinct)
+            pos = np.searchsorted(distinct, times[times > 0])
+            mode, db = self.loading_settings()
+            if hermitian and mode != "auto" and (mode is not None or counts.min() >= n):
+                load = loading_level(table, counts, mode, db, self.context.noise_power)
+                wd = self.weights_from_scaled(table, counts, load)
+                if wd is not None:
+                    w[:, times > 0] = wd[:, pos]
+                    return w
             r = table * (1.0 / counts)[None, :, None, None]
             if not hermitian:
                 r = hermitian_part(r)
-            mode, db = self.loading_settings()
             load = loading_level(r, counts, mode, db, self.context.noise_power)
             if load is not None:
                 idx = np.arange(n)
@@ -388,6 +403,5 @@ class SampleCovarianceProcessor(Processor):
                         "(pseudo-inverse) solution on the data subspace until "
                         f"{n} snapshots are seen (add loading_db to avoid this)")
             wd = self.weights_from(r, counts, exact)
-            pos = np.searchsorted(distinct, times[times > 0])
             w[:, times > 0] = wd[:, pos]
         return w

@@ -31,7 +31,13 @@ def compiled_solves():
     finally:
         _COMPILED_SOLVES.reset(token)
 
-__all__ = ["mvdr", "solve_hermitian", "distortionless", "cholesky_solve", "compiled_solves"]
+__all__ = ["mvdr", "solve_hermitian", "distortionless", "cholesky_solve", "compiled_solves",
+           "compiled_solves_active"]
+
+
+def compiled_solves_active() -> bool:
+    """True inside :func:`compiled_solves` with the compiled kernels on."""
+    return _COMPILED_SOLVES.get() and _kernels.compiled()
 
 
 def _forward(l_: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -62,7 +68,7 @@ def _backward_conj(l_: np.ndarray, y: np.ndarray) -> np.ndarray:
 def cholesky_solve(r: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Solve ``R x = b`` by Cholesky for Hermitian positive-definite ``R`` (..., N, N);
     ``b`` (..., N, M). Raises ``np.linalg.LinAlgError`` if any item is not PD."""
-    if _COMPILED_SOLVES.get() and _kernels.compiled():
+    if compiled_solves_active():
         r, b = np.asarray(r), np.asarray(b)
         shape = np.broadcast_shapes(r.shape[:-2], b.shape[:-2])
         return _kernels.cholesky_solve(np.broadcast_to(r, shape + r.shape[-2:]),

@@ -44,7 +44,8 @@ import numpy as np
 from ..errors import SpecError
 from ._covariance import (SampleCovarianceProcessor, check_loading, effective_loading,
                           loading_parameters, solve_sample)
-from ._linalg import distortionless
+from .. import _kernels
+from ._linalg import compiled_solves_active, distortionless
 from .base import Context, Parameter
 
 
@@ -91,3 +92,16 @@ class SampleMatrixInversion(SampleCovarianceProcessor):
     def weights_from(self, r, counts, exact):
         a = np.broadcast_to(self.context.look, r.shape[:-1])
         return distortionless(solve_sample(r, a, counts, exact), a)
+
+    def weights_from_scaled(self, table, counts, load):
+        # the compiled solve with the 1/count scale and the load folded in: the same
+        # numbers as weights_from on S / count + load I, without that copy of the stack
+        if not compiled_solves_active():
+            return None
+        look = self.context.look
+        try:
+            x = _kernels.cholesky_solve(table, look[:, None], scale=(1.0 / counts)[None, :],
+                                        load=load)
+        except np.linalg.LinAlgError:          # the general path handles what is singular
+            return None
+        return distortionless(x[..., 0], np.broadcast_to(look, x.shape[:-1]))
