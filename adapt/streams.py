@@ -165,6 +165,8 @@ class TrialBatch:
         ``k`` None: at snapshot 0, shape (T, N). ``k`` an array of snapshot indices:
         shape (T, len(k), N).
         """
+        if self.same_array and self.trials > 1:        # one row, the same for every trial
+            return np.repeat(self._steering(source, k, slice(0, 1)), self.trials, axis=0)
         return self._steering(source, k, slice(None))
 
     def _steering(self, source: int, k, rows: slice) -> np.ndarray:
@@ -180,8 +182,10 @@ class TrialBatch:
         """True array response (T, N) toward a fixed direction (hardware errors
         included): what a plane wave from there actually produces at the elements."""
         u = geometry.direction_vector(azimuth_deg, elevation_deg)
-        phase = 2 * np.pi * (self.positions * u).sum(-1)
-        return self.element_gains * np.exp(1j * phase)
+        rows = slice(0, 1) if self.same_array else slice(None)
+        phase = 2 * np.pi * (self.positions[rows] * u).sum(-1)
+        a = self.element_gains[rows] * np.exp(1j * phase)
+        return np.repeat(a, self.trials, axis=0) if len(a) < self.trials else a
 
     def desired_steering(self, k=None) -> np.ndarray:
         return self.steering(self.scene.desired_index, k)
