@@ -114,15 +114,21 @@ class _Measure:
         edges = [0] + [int(c - start) for c in inside] + [block.size]
         # which checkpoint's weight is in force on each span (-1: initial weight)
         first = int(np.searchsorted(self.cps, start, side="right")) - 1
-        rest = block.data - block.signal
+        rank_one = block.desired is not None
+        rest = None if rank_one else block.data - block.signal
         for j in range(len(edges) - 1):
             lo, hi = edges[j], edges[j + 1]
             slot = first + j
             if hi <= lo or slot < 0:
                 continue
             w = held if j == 0 else weights[:, j - 1, :]
-            ys = np.einsum("tn,tbn->tb", np.conj(w), block.signal[:, lo:hi])
-            yr = np.einsum("tn,tbn->tb", np.conj(w), rest[:, lo:hi])
+            if rank_one:      # a fixed wanted source: w^H s = reference * (w^H a_d)
+                gain = np.einsum("tn,tn->t", np.conj(w), block.desired)
+                ys = block.reference[:, lo:hi] * gain[:, None]
+                yr = np.einsum("tn,tbn->tb", np.conj(w), block.data[:, lo:hi]) - ys
+            else:
+                ys = np.einsum("tn,tbn->tb", np.conj(w), block.signal[:, lo:hi])
+                yr = np.einsum("tn,tbn->tb", np.conj(w), rest[:, lo:hi])
             self.sig[index, :, slot] += np.sum(np.abs(ys) ** 2, axis=1)
             self.rest[index, :, slot] += np.sum(np.abs(yr) ** 2, axis=1)
             self.n[index, slot] += hi - lo

@@ -74,7 +74,9 @@ class Block:
     training:  (T, B, N) what the adaptive processors train on: ``data`` when the scene
                trains with the wanted signal present, else interference plus noise only;
     reference: (T, B) the wanted source's complex envelope at the array origin,
-               ``sqrt(P) g(k) s[k]``: the reference waveform LMS-type processors train on.
+               ``sqrt(P) g(k) s[k]``: the reference waveform LMS-type processors train on;
+    desired:   (T, N) the wanted source's steering vector when it does not move (then
+               ``signal = reference[..., None] * desired[:, None, :]``), else None.
     """
     start: int
     stop: int
@@ -82,6 +84,7 @@ class Block:
     signal: np.ndarray
     training: np.ndarray
     reference: np.ndarray
+    desired: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -321,7 +324,7 @@ class TrialBatch:
                             if sc.training == "interference" else data)
             else:
                 training = interference if sc.training == "interference" else data
-            yield Block(start, start + size, data, signal, training, reference)
+            yield Block(start, start + size, data, signal, training, reference, desired_a)
 
     def samples(self, snapshots: int | None = None) -> Block:
         """All snapshots as one :class:`Block` (materialised; use :meth:`blocks` for long
