@@ -24,6 +24,7 @@ Sources: the recursions are those of :mod:`adapt.processors._recursive` (Widrow 
 from __future__ import annotations
 
 import os
+import threading
 import time
 
 import numpy as np
@@ -69,13 +70,21 @@ _RLS = None
 _WISHART = None
 _CHOLESKY = None
 _MIX = None
+_BUILDING = threading.Lock()
 
 
 def _build():
-    """Compile (or load from the on-disk cache) the kernels on first use."""
-    global _LMS, _RLS, _WISHART, _CHOLESKY, _MIX
-    if _LMS is not None:
+    """Compile (or load from the on-disk cache) the kernels on first use; safe to call
+    from several threads at once (the first defines them, the others wait)."""
+    if _MIX is not None:
         return
+    with _BUILDING:
+        if _MIX is None:
+            _define()
+
+
+def _define():
+    global _LMS, _RLS, _WISHART, _CHOLESKY, _MIX
     if _numba is None:
         raise RuntimeError("the compiled kernels need numba (pip install 'adapt[fast]')")
     njit = _numba.njit
@@ -354,8 +363,8 @@ def _build():
                         x[t, b, i] = x[t, b, i] + e * steer[ts, j, i]
 
     _LMS, _RLS, _WISHART = lms_kernel, rls_kernel, wishart_kernel
-    _MIX = mix_kernel
     _CHOLESKY = cholesky_kernel
+    _MIX = mix_kernel                   # last: _build() reads it as "all defined"
 
 
 def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,

@@ -14,6 +14,7 @@ multiply-adds for the output; none for the weights.
 """
 from __future__ import annotations
 
+import threading
 import warnings
 
 import numpy as np
@@ -21,6 +22,10 @@ from scipy.signal import windows
 
 from ..errors import SpecError
 from .base import Context, Parameter, Processor
+
+# processors start in the executor's worker threads, and the warnings state is process
+# wide: two overlapping catch_warnings blocks can leave a filter behind, so ours take turns
+_QUIET = threading.Lock()
 
 
 def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: int) -> np.ndarray:
@@ -42,7 +47,7 @@ def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: i
         if not np.allclose(steps, steps[0], rtol=1e-6, atol=1e-9):
             raise ValueError("a taper needs uniformly spaced elements along each axis")
         if taper == "chebyshev":
-            with warnings.catch_warnings():   # scipy warns about spectral-analysis use only
+            with _QUIET, warnings.catch_warnings():   # scipy: spectral-analysis use only
                 warnings.simplefilter("ignore", UserWarning)
                 w = windows.chebwin(m, at=sidelobe_db, sym=True)
         else:
