@@ -346,9 +346,10 @@ def _define():
                     x[m, i, c] = complex(yr[i], yi[i])
 
     @njit(cache=True, nogil=True)
-    def mix_kernel(x, scale, env, steer):
-        # x (T, B, N) <- x * scale + sum_j env[:, :, j] steer[:, j, :], sources added in
-        # order j = 0, 1, ...; steer (T or 1, J, N) (1: shared by every trial)
+    def mix_kernel(x, scale, env, steer, out):
+        # out (T, B, N) <- x * scale + sum_j env[:, :, j] steer[:, j, :], sources added
+        # in order j = 0, 1, ...; steer (T or 1, J, N) (1: shared by every trial); out
+        # may be x itself
         t_, b_, n = x.shape
         j_ = env.shape[2]
         shared = steer.shape[0] == 1
@@ -356,11 +357,11 @@ def _define():
             ts = 0 if shared else t
             for b in range(b_):
                 for i in range(n):
-                    x[t, b, i] = x[t, b, i] * scale
+                    out[t, b, i] = x[t, b, i] * scale
                 for j in range(j_):
                     e = env[t, b, j]
                     for i in range(n):
-                        x[t, b, i] = x[t, b, i] + e * steer[ts, j, i]
+                        out[t, b, i] = out[t, b, i] + e * steer[ts, j, i]
 
     _LMS, _RLS, _WISHART = lms_kernel, rls_kernel, wishart_kernel
     _CHOLESKY = cholesky_kernel
@@ -478,9 +479,11 @@ def cholesky_solve(r: np.ndarray, b: np.ndarray, scale=None, load=None) -> np.nd
     return x.reshape(stack + (n, k))
 
 
-def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray) -> None:
-    """In place, ``x = x * scale + sum_j env[..., j, None] * steer[:, None, j, :]``: x
-    (T, B, N) complex, env (T, B, J) the sources' envelopes, steer (T or 1, J, N) their
+def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray,
+                out: np.ndarray | None = None) -> np.ndarray:
+    """``x * scale + sum_j env[..., j, None] * steer[:, None, j, :]`` into ``out`` (x
+    itself when None, in place; else a (T, B, N) complex array the size of x), returned:
+    x (T, B, N) complex, env (T, B, J) the sources' envelopes, steer (T or 1, J, N) their
     steering vectors. Every element is computed the same way whatever B (a batched
     matrix product is not: BLAS rounds differently for different block shapes), so
     streams do not depend on the block size. Compiled when the kernels are on, else
@@ -490,14 +493,19 @@ def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray)
             or steer.shape[0] not in (1, x.shape[0]):
         raise ValueError(f"need x (T, B, N), env (T, B, J), steer (T or 1, J, N); got "
                          f"{x.shape}, {env.shape}, {steer.shape}")
-    if compiled() and x.dtype == np.complex128 and x.flags.c_contiguous:
+    out = x if out is None else out
+    if out.shape != x.shape or out.dtype != np.complex128:
+        raise ValueError(f"out must be complex (T, B, N) like x, got {out.dtype} {out.shape}")
+    if compiled() and x.dtype == np.complex128 and x.flags.c_contiguous \
+            and out.flags.c_contiguous:
         _build()
         _MIX(x, float(scale), np.ascontiguousarray(env, dtype=np.complex128),
-             np.ascontiguousarray(steer, dtype=np.complex128))
-        return
-    x *= scale
+             np.ascontiguousarray(steer, dtype=np.complex128), out)
+        return out
+    np.multiply(x, scale, out=out)
     for j in range(env.shape[2]):
-        x += env[:, :, j, None] * steer[:, None, j, :]
+        out += env[:, :, j, None] * steer[:, None, j, :]
+    return out
 
 
 def warm_up() -> float:

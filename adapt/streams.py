@@ -81,7 +81,7 @@ class Block:
     start: int
     stop: int
     data: np.ndarray
-    signal: np.ndarray
+    stored_signal: np.ndarray | None     # None: formed from reference and desired on use
     training: np.ndarray
     reference: np.ndarray
     desired: np.ndarray | None = None
@@ -89,6 +89,13 @@ class Block:
     @property
     def size(self) -> int:
         return self.stop - self.start
+
+    @property
+    def signal(self) -> np.ndarray:
+        """(T, B, N) the wanted source's part of ``data`` (before quantisation)."""
+        if self.stored_signal is None:
+            self.stored_signal = self.reference[..., None] * self.desired[:, None, :]
+        return self.stored_signal
 
     @property
     def interference(self) -> np.ndarray:
@@ -315,9 +322,14 @@ class TrialBatch:
             for i in moving:
                 interference += envelope(i, start, size, kk)[..., None] * self.steering(i, kk)
             reference = envelope(d_idx, start, size, kk)
-            a_d = desired_a[:, None, :] if desired_a is not None else self.steering(d_idx, kk)
-            signal = reference[..., None] * a_d
-            data = signal + interference
+            if desired_a is not None:      # data = interference + reference a_d, one pass
+                signal = None
+                data = _kernels.add_sources(interference, 1.0, reference[..., None],
+                                            desired_a[:, None, :],
+                                            out=np.empty_like(interference))
+            else:
+                signal = reference[..., None] * self.steering(d_idx, kk)
+                data = signal + interference
             if rx.bits is not None:
                 data = quantise(data, rx.bits, full_scale)
                 training = (quantise(interference, rx.bits, full_scale)

@@ -273,6 +273,10 @@ def test_add_sources_matches_numpy_and_ignores_block_shape(monkeypatch):
         one = x0.copy()
         _kernels.add_sources(one, 0.7, env, steer[:1])
         assert np.array_equal(one, shared), mode
+        into = np.empty_like(x0)
+        kept = x0.copy()
+        assert _kernels.add_sources(kept, 0.7, env, steer, out=into) is into
+        assert np.array_equal(into, whole) and np.array_equal(kept, x0), mode
         got[mode] = whole
     if HAVE_NUMBA:
         assert np.max(np.abs(got["numba"] - got["numpy"])) < 1e-12 * np.abs(expect).max()
