@@ -160,9 +160,10 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
               lengths: np.ndarray, cumulative: bool = False) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite,
-    or (1, N, N) shared by every trial: ``L_R A A^H L_R^H`` with A from :func:`bartlett_factors`. With the compiled kernels
-    on (:mod:`adapt._kernels`) the same draws are combined in a compiled loop
-    that skips the triangles' zeros (equal to rounding); its sums are exactly Hermitian.
+    or (1, N, N) shared by every trial: ``L_R A A^H L_R^H`` with A from
+    :func:`bartlett_factors`. With the compiled kernels on (:mod:`adapt._kernels`) the
+    same draws are combined in a compiled loop that skips the triangles' zeros (equal to
+    rounding); its sums are exactly Hermitian.
     ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
     growing-window sums; ``np.cumsum`` order)."""
     r = np.asarray(covariance)
