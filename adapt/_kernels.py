@@ -426,17 +426,24 @@ def rls_block(p: np.ndarray, wc: np.ndarray, x: np.ndarray, d: np.ndarray, lam: 
 
 
 def wishart_spans(chol: np.ndarray, gam: np.ndarray, z: np.ndarray, rows: np.ndarray,
-                  cols: np.ndarray, counts: np.ndarray, cumulative: bool = False) -> np.ndarray:
+                  cols: np.ndarray, counts: np.ndarray, cumulative: bool = False,
+                  out: np.ndarray | None = None) -> np.ndarray:
     """Span sums ``(L A)(L A)^H`` (T, S, N, N) of :func:`adapt.wishart.span_sums`,
     compiled: chol (T, N, N) Cholesky factors (or (1, N, N), shared by all trials),
     gam (T, S, N) the diagonal's gamma
     variates, z (T, E, 2) the below-diagonal normals of all spans in order (``counts[s]``
     of them for span s, at ``rows``/``cols``). Both triangular products skip the zeros.
     ``cumulative``: the running totals over the spans instead (entry s holds spans
-    0..s, added in order as ``np.cumsum`` does); exactly Hermitian either way."""
+    0..s, added in order as ``np.cumsum`` does); exactly Hermitian either way. ``out``:
+    where to write (every element is written), else a new array."""
     _build()
     t_, s_, n = gam.shape
-    out = np.empty((t_, s_, n, n), dtype=complex)
+    if out is None:
+        out = np.empty((t_, s_, n, n), dtype=complex)
+    elif out.shape != (t_, s_, n, n) or out.dtype != np.complex128 \
+            or not out.flags.c_contiguous:
+        raise ValueError(f"out must be contiguous complex {(t_, s_, n, n)}, got "
+                         f"{out.dtype} {out.shape}")
     _WISHART(np.ascontiguousarray(chol, dtype=complex), np.ascontiguousarray(gam),
              np.ascontiguousarray(z), np.ascontiguousarray(rows, dtype=np.int64),
              np.ascontiguousarray(cols, dtype=np.int64),

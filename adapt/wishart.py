@@ -116,9 +116,25 @@ def cut_points(processors: Sequence[Processor], checkpoints) -> np.ndarray:
     return np.unique(np.concatenate(cuts))
 
 
-def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int):
+def _buffer(scratch: dict | None, name: str, shape: tuple, dtype=float) -> np.ndarray:
+    """An uninitialised array of ``shape``: new, or (``scratch`` given) a view of the
+    buffer kept there under ``name``, grown when too small. Reusing one buffer per chunk
+    spares the page faults of fresh large arrays, which are slow on virtual machines
+    and serialise threads."""
+    size = int(np.prod(shape))
+    if scratch is None:
+        return np.empty(shape, dtype=dtype)
+    buf = scratch.get(name)
+    if buf is None or buf.size < size or buf.dtype != np.dtype(dtype):
+        buf = scratch[name] = np.empty(size, dtype=dtype)
+    return buf[:size].reshape(shape)
+
+
+def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int,
+           scratch: dict | None = None):
     """Per trial, one call for the gamma variates (S, N) and one for the normals of the
-    below-diagonal entries (E, 2) of every span; returns (gam, z, (si, ii, jj))."""
+    below-diagonal entries (E, 2) of every span; returns (gam, z, (si, ii, jj)) (in
+    ``scratch`` buffers when given, see :func:`_buffer`)."""
     lengths = np.asarray(lengths, dtype=np.int64)
     if lengths.ndim != 1 or lengths.size == 0 or lengths.min() < 1:
         raise ValueError("span lengths must be a non-empty list of counts >= 1")
@@ -129,8 +145,8 @@ def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int):
     # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)
     where = np.nonzero((np.arange(n)[None, None, :] < np.arange(n)[None, :, None])
                        & (np.arange(n)[None, None, :] < lengths[:, None, None]))
-    gam = np.empty((t_, s_, n))
-    z = np.empty((t_, len(where[0]), 2))
+    gam = _buffer(scratch, "gamma", (t_, s_, n))
+    z = _buffer(scratch, "normals", (t_, len(where[0]), 2))
     for t, g in enumerate(gens):          # one call per trial and kind: independent streams
         g.standard_gamma(shape, out=gam[t])
         g.standard_normal(out=z[t])
@@ -157,7 +173,8 @@ def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
 
 
 def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
-              lengths: np.ndarray, cumulative: bool = False) -> np.ndarray:
+              lengths: np.ndarray, cumulative: bool = False,
+              scratch: dict | None = None) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite,
     or (1, N, N) shared by every trial: ``L_R A A^H L_R^H`` with A from
@@ -165,7 +182,9 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
     same draws are combined in a compiled loop that skips the triangles' zeros (equal to
     rounding); its sums are exactly Hermitian.
     ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
-    growing-window sums; ``np.cumsum`` order)."""
+    growing-window sums; ``np.cumsum`` order). ``scratch``: a dict whose buffers the
+    compiled path reuses from call to call (the result is then a view into it, valid
+    until the next call with the same dict)."""
     r = np.asarray(covariance)
     if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] not in (1, len(gens)):
         raise ValueError(f"covariance must be (T, N, N) with T = {len(gens)} generators, "
@@ -173,9 +192,10 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
     chol = np.linalg.cholesky(r)                                   # (T or 1, N, N)
     n = r.shape[-1]
     if _kernels.compiled():
-        gam, z, (si, ii, jj) = _draws(gens, lengths, n)
+        gam, z, (si, ii, jj) = _draws(gens, lengths, n, scratch)
         counts = np.bincount(si, minlength=len(lengths))
-        return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative)
+        out = _buffer(scratch, "sums", (len(gens), len(lengths), n, n), complex)
+        return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative, out=out)
     g = chol[:, None] @ bartlett_factors(gens, lengths, n)
     spans = g @ np.conj(np.swapaxes(g, -1, -2))
     return np.cumsum(spans, axis=1) if cumulative else spans
@@ -228,6 +248,8 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
 
         def rows(lo: int, hi: int) -> np.ndarray:
             return r if len(r) == 1 else r[lo:hi]
+
+        scratch: dict = {}                 # buffers reused by every group of this batch
         gens = _trial_generators(batch.seed, batch.trial_indices)
         lengths = np.diff(cuts)
         plans = []
@@ -248,7 +270,8 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
             hi = min(t_, lo + group)
             t0 = time.perf_counter()
             if only_growing:     # running totals straight from the draw: total[s] = spans 0..s
-                total = span_sums(rows(lo, hi), gens[lo:hi], lengths, cumulative=True)
+                total = span_sums(rows(lo, hi), gens[lo:hi], lengths, cumulative=True,
+                                  scratch=scratch)
             else:
                 spans = span_sums(rows(lo, hi), gens[lo:hi], lengths)  # (G, S, N, N)
                 if growing:
