@@ -170,7 +170,7 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     measure = _Measure(len(processors), batch.trials, cps)
 
     def fed() -> Iterator:
-        for b in batch.blocks(snapshots + tail, block):
+        for b in batch.blocks(snapshots + tail, block, recycle=True):
             yield b
             if progress is not None:
                 progress(b.size * batch.trials)

@@ -265,10 +265,16 @@ class TrialBatch:
         cyc = wf.start * m + 0.5 * (wf.stop - wf.start) * m * m / wf.period
         return np.exp(1j * (2 * np.pi * cyc[None, :] + phi0))
 
-    def blocks(self, snapshots: int | None = None, block: int | None = None) -> Iterator[Block]:
+    def blocks(self, snapshots: int | None = None, block: int | None = None,
+               recycle: bool = False) -> Iterator[Block]:
         """Yield :class:`Block` s covering snapshots 0 .. snapshots-1 of every trial.
 
         Each call starts the streams afresh, so two calls yield identical data.
+        ``recycle``: the largest arrays of a block (the noise-and-interference and the
+        data arrays) are overwritten by the next block, for a consumer that is done with
+        each block before asking for the next (the engine): no fresh large arrays per
+        block, whose page faults cost much on virtual machines and serialise threads.
+        The values are the same either way.
         """
         sc = self.scene
         k_total = int(sc.snapshots if snapshots is None else snapshots)
@@ -304,15 +310,27 @@ class TrialBatch:
                 env *= src.active(kk)
             return env
 
+        kept: dict[str, np.ndarray] = {}
+
+        def take(name: str, shape: tuple, dtype) -> np.ndarray:
+            # a new array, or with recycle a contiguous view of this call's own buffer
+            if not recycle:
+                return np.empty(shape, dtype=dtype)
+            count = int(np.prod(shape))
+            buf = kept.get(name)
+            if buf is None or buf.size < count:
+                buf = kept[name] = np.empty(count, dtype=dtype)
+            return buf[:count].reshape(shape)
+
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
-            z = np.empty((self.trials, size, n, 2))
+            z = take("noise", (self.trials, size, n, 2), float)
             for t in range(self.trials):
                 noise_gens[t].standard_normal(out=z[t])
             interference = z.view(np.complex128)[..., 0]
             if fixed:
-                env = np.empty((self.trials, size, len(fixed)), dtype=complex)
+                env = take("envelopes", (self.trials, size, len(fixed)), complex)
                 for j, i in enumerate(fixed):
                     env[:, :, j] = envelope(i, start, size, kk)
                 # noise * sqrt(1/2) + env @ fixed_a, element by element (block-size free)
@@ -326,7 +344,7 @@ class TrialBatch:
                 signal = None
                 data = _kernels.add_sources(interference, 1.0, reference[..., None],
                                             desired_a[:, None, :],
-                                            out=np.empty_like(interference))
+                                            out=take("data", interference.shape, complex))
             else:
                 signal = reference[..., None] * self.steering(d_idx, kk)
                 data = signal + interference
