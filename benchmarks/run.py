@@ -39,6 +39,11 @@ drawn-covariance product 5 (it lasts a tenth of a second), other products and fl
 2-3, the references 2 (W1, in full) and 3 (W2, on 8 trials per processor, scaled
 linearly; the median trial time is recorded beside them).
 
+The run starts by measuring how many cores' worth of plain Python work the machine
+delivers with one process per core (``core_scaling``: 2.0 on an idle 2-core machine;
+less on a shared virtual machine whose cores are busy elsewhere), context for every
+threaded figure.
+
 Figures are printed and written as JSON (``--json``, default ``runs/benchmark.json``).
 On machines that set OPENBLAS_CORETYPE / OPENBLAS_L2_SIZE (for old OpenBLAS builds), a
 current numpy runs slower; to benchmark, unset both together for this command only:
@@ -331,6 +336,27 @@ W3_SMI = "smi window=sliding length=1024 loading_db=10"
 
 
 # ----------------------------------------------------------------------------- machine
+def core_scaling(count: int = 5_000_000) -> float:
+    """How many cores' worth of plain Python work the machine delivers with one process
+    per usable core, against one process alone (2.0 on an idle 2-core machine; less when
+    a shared virtual machine's cores are busy elsewhere): context for every threaded
+    figure of the run. Each process is a fresh interpreter (start-up included in both)."""
+    cores = usable_cores()
+    code = f"t = 0\nfor i in range({int(count)}):\n    t += i * i\n"
+
+    def timed(k: int) -> float:
+        t0 = time.perf_counter()
+        procs = [subprocess.Popen([sys.executable, "-c", code]) for _ in range(k)]
+        for proc in procs:
+            proc.wait()
+        return time.perf_counter() - t0
+
+    if cores < 2:
+        return 1.0
+    one = timed(1)
+    return cores * one / timed(cores)
+
+
 def machine() -> dict:
     cpu = platform.processor() or "unknown"
     try:
@@ -388,7 +414,10 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
         raise ValueError(f"threads must be >= 1, got {threads}")
     z["threads"] = threads
     out = {"mode": "quick" if quick else "full", "sizes": z, "machine": machine()}
+    out["machine"]["core_scaling"] = core_scaling(500_000 if quick else 5_000_000)
     say(f"machine: {out['machine']}")
+    say(f"cores delivered (plain Python, one process per core, against one alone): "
+        f"{out['machine']['core_scaling']:.2f} of {usable_cores()}")
     say(f"sizes: {z} (product and floors on {threads} thread(s); the references on one, "
         "as a hand-written script runs)")
 
