@@ -37,7 +37,8 @@ from . import _kernels, geometry
 from .scene import Scene
 from .seeding import trial_generators
 
-__all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise"]
+__all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise",
+           "scratch_array"]
 
 _CONSTANTS, _STREAMS = 0, 1
 _NOISE_KEY = 0xFFFFFFFF
@@ -51,6 +52,20 @@ def _component_key(name: str) -> int:
 def default_block_size(trials: int, elements: int, snapshots: int) -> int:
     """Snapshots per block keeping one (trials, block, elements) array near 32 MB."""
     return int(max(1, min(snapshots, _MAX_BLOCK_VALUES // max(1, trials * elements))))
+
+
+def scratch_array(store: dict | None, name: str, shape: tuple, dtype=float) -> np.ndarray:
+    """An uninitialised C-contiguous array of ``shape``: new, or (``store`` given) a view
+    of the buffer kept there under ``name``, grown when too small. Reusing buffers from
+    block to block (or group to group) spares the page faults of fresh large arrays,
+    which are slow on virtual machines and serialise threads."""
+    count = int(np.prod(shape))
+    if store is None:
+        return np.empty(shape, dtype=dtype)
+    buf = store.get(name)
+    if buf is None or buf.size < count or buf.dtype != np.dtype(dtype):
+        buf = store[name] = np.empty(count, dtype=dtype)
+    return buf[:count].reshape(shape)
 
 
 def quantise(x: np.ndarray, bits: int, full_scale: float) -> np.ndarray:
@@ -310,17 +325,10 @@ class TrialBatch:
                 env *= src.active(kk)
             return env
 
-        kept: dict[str, np.ndarray] = {}
+        kept: dict[str, np.ndarray] | None = {} if recycle else None
 
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
-            # a new array, or with recycle a contiguous view of this call's own buffer
-            if not recycle:
-                return np.empty(shape, dtype=dtype)
-            count = int(np.prod(shape))
-            buf = kept.get(name)
-            if buf is None or buf.size < count:
-                buf = kept[name] = np.empty(count, dtype=dtype)
-            return buf[:count].reshape(shape)
+            return scratch_array(kept, name, shape, dtype)
 
         for start in range(0, k_total, b):
             size = min(b, k_total - start)

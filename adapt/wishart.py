@@ -47,6 +47,7 @@ from .processors.base import Context, Processor, ProcessorResult
 from .processors._covariance import SampleCovarianceProcessor
 from .processors._linalg import compiled_solves
 from .scene import Scene
+from .streams import scratch_array
 from .seeding import trial_generators
 
 __all__ = ["DRAWS", "covariance_draw_refusal", "check_covariance_draw", "cut_points",
@@ -116,25 +117,11 @@ def cut_points(processors: Sequence[Processor], checkpoints) -> np.ndarray:
     return np.unique(np.concatenate(cuts))
 
 
-def _buffer(scratch: dict | None, name: str, shape: tuple, dtype=float) -> np.ndarray:
-    """An uninitialised array of ``shape``: new, or (``scratch`` given) a view of the
-    buffer kept there under ``name``, grown when too small. Reusing one buffer per chunk
-    spares the page faults of fresh large arrays, which are slow on virtual machines
-    and serialise threads."""
-    size = int(np.prod(shape))
-    if scratch is None:
-        return np.empty(shape, dtype=dtype)
-    buf = scratch.get(name)
-    if buf is None or buf.size < size or buf.dtype != np.dtype(dtype):
-        buf = scratch[name] = np.empty(size, dtype=dtype)
-    return buf[:size].reshape(shape)
-
-
 def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int,
            scratch: dict | None = None):
     """Per trial, one call for the gamma variates (S, N) and one for the normals of the
     below-diagonal entries (E, 2) of every span; returns (gam, z, (si, ii, jj)) (in
-    ``scratch`` buffers when given, see :func:`_buffer`)."""
+    ``scratch`` buffers when given, see :func:`adapt.streams.scratch_array`)."""
     lengths = np.asarray(lengths, dtype=np.int64)
     if lengths.ndim != 1 or lengths.size == 0 or lengths.min() < 1:
         raise ValueError("span lengths must be a non-empty list of counts >= 1")
@@ -145,8 +132,8 @@ def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int,
     # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)
     where = np.nonzero((np.arange(n)[None, None, :] < np.arange(n)[None, :, None])
                        & (np.arange(n)[None, None, :] < lengths[:, None, None]))
-    gam = _buffer(scratch, "gamma", (t_, s_, n))
-    z = _buffer(scratch, "normals", (t_, len(where[0]), 2))
+    gam = scratch_array(scratch, "gamma", (t_, s_, n))
+    z = scratch_array(scratch, "normals", (t_, len(where[0]), 2))
     for t, g in enumerate(gens):          # one call per trial and kind: independent streams
         g.standard_gamma(shape, out=gam[t])
         g.standard_normal(out=z[t])
@@ -194,7 +181,7 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
     if _kernels.compiled():
         gam, z, (si, ii, jj) = _draws(gens, lengths, n, scratch)
         counts = np.bincount(si, minlength=len(lengths))
-        out = _buffer(scratch, "sums", (len(gens), len(lengths), n, n), complex)
+        out = scratch_array(scratch, "sums", (len(gens), len(lengths), n, n), complex)
         return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative, out=out)
     g = chol[:, None] @ bartlett_factors(gens, lengths, n)
     spans = g @ np.conj(np.swapaxes(g, -1, -2))

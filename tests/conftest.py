@@ -1,6 +1,7 @@
 """Shared test helpers (kept small): writing scene files and calling the CLI in-process."""
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pytest
@@ -37,3 +38,14 @@ def write_file(tmp_path):
         return str(path)
 
     return write
+
+
+def without_timing(metrics: dict) -> dict:
+    """A metrics / record mapping as plain JSON data without its timing fields (the only
+    values that differ between otherwise identical runs)."""
+    from adapt import io
+    m = json.loads(json.dumps(io.to_jsonable(metrics)))
+    m.pop("seconds", None)
+    for p in m.get("processors", []):
+        p.pop("seconds", None)
+    return m

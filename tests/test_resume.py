@@ -25,6 +25,7 @@ from adapt.errors import InputError
 from adapt.execute import MARKER, PARTIAL, RESUME_FILE, part_arrays
 from adapt.scenefile import parse_scene
 from adapt.sizing import size
+from conftest import without_timing
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -61,14 +62,6 @@ def _same(a, b) -> None:
         np.testing.assert_array_equal(a[k], b[k], err_msg=k)       # bit-identical
 
 
-def _no_timing(metrics: dict) -> dict:
-    m = json.loads(json.dumps(io.to_jsonable(metrics)))
-    m.pop("seconds", None)
-    for p in m.get("processors", []):
-        p.pop("seconds", None)
-    return m
-
-
 def _no_temporaries(folder: Path) -> None:
     names = [p.name for p in folder.rglob("*")]
     assert not [n for n in names if n.startswith(".partial-")], names
@@ -103,7 +96,7 @@ def test_interrupted_after_two_chunks_then_resumed_is_identical(tmp_path):
     resumed = compare(scene, chunk=4, store=store, progress=done.append)
     plain = compare(scene)
     _same(plain.evaluation, resumed.evaluation)
-    assert _no_timing(plain.metrics) == _no_timing(resumed.metrics)
+    assert without_timing(plain.metrics) == without_timing(resumed.metrics)
     # progress still adds up to trials x (snapshots + tail): stored chunks counted once
     from adapt.compare import TAIL
     assert sum(done) == 10 * (96 + TAIL)
@@ -131,7 +124,7 @@ def test_sizing_interrupted_and_resumed_is_identical(tmp_path):
     resumed = size(scene, chunk=4, store=tmp_path, **args)
     plain = size(scene, **args)
     _same(plain.evaluation, resumed.evaluation)
-    assert _no_timing(plain.record) == _no_timing(resumed.record)
+    assert without_timing(plain.record) == without_timing(resumed.record)
 
 
 # ------------------------------------------------------------------ command line
@@ -191,7 +184,7 @@ def test_ctrl_c_during_compare_then_resume(tmp_path, run_cli):
 
     plain = compare(parse_scene(SLOW))
     got = json.loads((folder / "metrics.json").read_text())
-    assert _no_timing(got) == _no_timing(plain.metrics)
+    assert without_timing(got) == without_timing(plain.metrics)
     manifest = json.loads((folder / "manifest.json").read_text())
     assert manifest["command_line"].startswith("adapt compare ")
 
@@ -217,7 +210,7 @@ def test_sigterm_during_size_then_resume(tmp_path, run_cli):
     _no_temporaries(folder)
     plain = size(parse_scene(SLOW), ["rls", "smi loading_db=10"], snapshots="12:800:2")
     got = json.loads((folder / "sizing.json").read_text())
-    assert _no_timing(got) == _no_timing(plain.record)
+    assert without_timing(got) == without_timing(plain.record)
 
 
 def test_resume_refusals(tmp_path, run_cli):

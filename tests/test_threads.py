@@ -17,13 +17,14 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt import execute, io
+from adapt import execute
 from adapt.compare import TAIL, compare
 from adapt.errors import InputError
 from adapt.execute import evaluate, part_arrays
 from adapt.processors import parse_specs
 from adapt.processors.smi import SampleMatrixInversion
 from adapt.scenefile import parse_scene
+from conftest import without_timing
 
 SCENE = {
     "name": "threads check",
@@ -162,15 +163,7 @@ def test_interrupt_keeps_the_first_chunks_and_resume_is_identical(scene, tmp_pat
     resumed = compare(scene, specs, chunk=4, store=store, threads=3)
     plain = compare(scene, specs, threads=1)
     _same(plain.evaluation, resumed.evaluation)
-    assert _no_timing(plain.metrics) == _no_timing(resumed.metrics)
-
-
-def _no_timing(metrics: dict) -> dict:
-    m = json.loads(json.dumps(io.to_jsonable(metrics)))
-    m.pop("seconds", None)
-    for p in m.get("processors", []):
-        p.pop("seconds", None)
-    return m
+    assert without_timing(plain.metrics) == without_timing(resumed.metrics)
 
 
 def test_chunks_on_threads_split_only_work_worth_a_thread():
@@ -262,4 +255,4 @@ def test_cli_resume_on_threads_is_identical(scene_file, tmp_path, run_cli, monke
     got = json.loads((folder / "metrics.json").read_text())
     plain = compare(parse_scene(yaml.safe_load(scene_file.read_text())), tail=TAIL,
                     threads=1)
-    assert _no_timing(got) == _no_timing(plain.metrics)
+    assert without_timing(got) == without_timing(plain.metrics)
