@@ -245,8 +245,8 @@ def render_table(metrics: dict, width: int = 100) -> str:
     total = metrics.get("seconds")
     out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
                 f"until the loss is within {metrics.get('target_db', 3):g} dB ('never': not within "
-                f"{k}); time = each processor's own compute time"
-            + (f" (whole comparison {total:.1f} s)" if total is not None else "")]
+                f"{k}); time = each processor's own compute time, summed over threads"
+            + (f" (whole comparison {total:.1f} s of wall time)" if total is not None else "")]
     if any("n/a" in r[1:] for r in rows) or _cell(metrics["optimum_sinr_db"]) == "n/a":
         out += ["n/a = undefined: no finite value in any trial (e.g. the wanted source is off "
                 "at the last checkpoint, so the optimum SINR is 0 and ratios to it are "
