@@ -529,9 +529,9 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     if not processors:
         raise ValueError("no processors to evaluate")
     remote = workers is not None or scheduler is not None
-    check_threads(threads, remote=remote)
+    checked = check_threads(threads, remote=remote)
     check_cluster_options(workers, scheduler)
-    pool_threads = 1 if remote else check_threads(threads)
+    pool_threads = 1 if remote else checked
     cps = normalised_checkpoints(checkpoints, snapshots)
     total = int(snapshots) + int(tail)
     n = scene.elements

@@ -106,10 +106,8 @@ def _plain_truth():
 
 def usable_cores() -> int:
     """Cores this process may run on (the product's default thread count)."""
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:                      # not on Linux
-        return os.cpu_count() or 1
+    from adapt.execute import usable_cores as cores
+    return cores()
 
 
 def _split(trials: int, parts: int) -> list[tuple[int, int]]:
