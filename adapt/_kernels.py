@@ -30,7 +30,7 @@ import time
 import numpy as np
 
 __all__ = ["mode", "compiled", "lms_block", "rls_block", "wishart_spans", "cholesky_solve",
-           "add_sources",
+           "add_sources", "normals_fill",
            "warm_up", "SYMMETRISE_EVERY"]
 
 #: P is re-symmetrised after every this many snapshots (as in the numpy RLS path)
@@ -70,6 +70,7 @@ _RLS = None
 _WISHART = None
 _CHOLESKY = None
 _MIX = None
+_NORMALS = None
 _BUILDING = threading.Lock()
 
 
@@ -84,7 +85,7 @@ def _build():
 
 
 def _define():
-    global _LMS, _RLS, _WISHART, _CHOLESKY, _MIX
+    global _LMS, _RLS, _WISHART, _CHOLESKY, _MIX, _NORMALS
     if _numba is None:
         raise RuntimeError("the compiled kernels need numba (pip install 'adapt[fast]')")
     njit = _numba.njit
@@ -363,8 +364,69 @@ def _define():
                     for i in range(n):
                         out[t, b, i] = out[t, b, i] + e * steer[ts, j, i]
 
+    @njit(cache=True, nogil=True, inline="always")
+    def mix64(z):
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+    @njit(cache=True, nogil=True, inline="always")
+    def unit(u):
+        return float((u >> np.uint64(11)) + np.uint64(1)) * (1.0 / 9007199254740992.0)
+
+    @njit(cache=True, nogil=True)
+    def resolve(u, accept, scale, density, r):
+        # the ziggurat's slow path for a word u rejected by its first test; further
+        # words mix64(u + m golden), m = 1, 2, ... (see adapt.normals)
+        golden = np.uint64(0x9E3779B97F4A7C15)
+        m = np.uint64(1)
+        cur = u
+        first = True
+        while True:
+            idx = np.intp(cur & np.uint64(255))
+            rabs = (cur >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
+            x = float(rabs) * scale[idx]
+            neg = ((cur >> np.uint64(8)) & np.uint64(1)) == np.uint64(1)
+            if neg:
+                x = -x
+            if not first and rabs < accept[idx]:
+                return x
+            first = False
+            if idx == 0:
+                while True:
+                    xx = -np.log(unit(mix64(u + m * golden))) / r
+                    yy = -np.log(unit(mix64(u + (m + np.uint64(1)) * golden)))
+                    m += np.uint64(2)
+                    if yy + yy > xx * xx:
+                        return -(r + xx) if neg else r + xx
+            y = density[idx] + unit(mix64(u + m * golden)) * (density[idx + 1] - density[idx])
+            m += np.uint64(1)
+            if y < np.exp(-0.5 * x * x):
+                return x
+            cur = mix64(u + m * golden)
+            m += np.uint64(1)
+
+    @njit(cache=True, nogil=True)
+    def normals_kernel(keys, start, out, accept, scale, density, r):
+        # out[t, i] <- normal (start + i) of stream t (adapt.normals)
+        t_, m_ = out.shape
+        for t in range(t_):
+            seed = keys[t, 0]
+            gamma = keys[t, 1]
+            s = seed + np.uint64(start + 1) * gamma
+            for i in range(m_):
+                u = mix64(s)
+                s += gamma
+                idx = np.intp(u & np.uint64(255))
+                rabs = (u >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
+                if rabs < accept[idx]:
+                    x = float(rabs) * scale[idx]
+                    out[t, i] = -x if (u >> np.uint64(8)) & np.uint64(1) else x
+                else:
+                    out[t, i] = resolve(u, accept, scale, density, r)
+
     _LMS, _RLS, _WISHART = lms_kernel, rls_kernel, wishart_kernel
-    _CHOLESKY = cholesky_kernel
+    _CHOLESKY, _NORMALS = cholesky_kernel, normals_kernel
     _MIX = mix_kernel                   # last: _build() reads it as "all defined"
 
 
@@ -515,6 +577,15 @@ def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray,
     return out
 
 
+def normals_fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
+    """Normals ``start ..`` of each counter-based stream (:func:`adapt.normals.fill`,
+    which checks the arguments), compiled: keys (T, 2) uint64, out (T, M) float64."""
+    from .normals import ACCEPT, SCALE, DENSITY, TAIL_START
+    _build()
+    _NORMALS(keys, int(start), out, ACCEPT, SCALE, DENSITY, TAIL_START)
+    return out
+
+
 def warm_up() -> float:
     """Compile (or load from cache) the kernels for the block layouts the processors
     use; returns the seconds it took (0 when the kernels are off)."""
@@ -534,4 +605,5 @@ def warm_up() -> float:
     cholesky_solve(p, x[:, :3, :1])
     cholesky_solve(p, x[0, :3, :1], scale=np.ones(2), load=np.zeros(2))
     add_sources(x.copy(), 1.0, x[:, :, :2], x[:, :2, :])
+    normals_fill(np.ones((2, 2), dtype=np.uint64), 0, np.empty((2, 3)))
     return time.perf_counter() - t0

@@ -21,9 +21,9 @@ Reproducibility (tested):
 * blocks concatenated are bit-identical to one-shot generation, whatever the block size,
   and memory is bounded by the block.
 
-The only Python-level loop over trials is one call to each trial's own generator per
-block and stream (independent per-trial streams need it); all arithmetic is batched over
-trials.
+The noise and the random waveforms come from counter-based normal streams
+(:mod:`adapt.normals`): normal j of a stream is a function of the stream's key and j, so
+a block of every trial is computed in one pass, with no Python loop over trials.
 """
 from __future__ import annotations
 
@@ -33,7 +33,7 @@ from typing import Iterator
 
 import numpy as np
 
-from . import _kernels, geometry
+from . import _kernels, geometry, normals
 from .scene import Scene
 from .seeding import trial_generators
 
@@ -252,21 +252,21 @@ class TrialBatch:
         return r[:, 0] if k is None else r
 
     # ------------------------------------------------------------------ streams
-    def _waveform(self, gens, src_index: int, start: int, size: int) -> np.ndarray:
-        """(T, B) unit-power waveform of one source over snapshots [start, start+size)."""
+    def _waveform(self, keys, src_index: int, start: int, size: int,
+                  scratch: dict | None = None) -> np.ndarray:
+        """(T, B) unit-power waveform of one source over snapshots [start, start+size);
+        ``keys``: the source's normal streams (:mod:`adapt.normals`) for the random
+        kinds: gaussian uses normals 2k, 2k+1 (real, imaginary) at snapshot k, bpsk the
+        sign of normal k, qpsk the signs of normals 2k, 2k+1."""
         src = self.scene.sources[src_index]
         wf = src.waveform
         t_ = self.trials
-        if wf.kind == "gaussian":
-            z = np.empty((t_, size, 2))
-            for t in range(t_):
-                gens[t].standard_normal(out=z[t])
-            return z.view(np.complex128)[..., 0] * np.sqrt(0.5)
-        if wf.kind in ("bpsk", "qpsk"):
+        if wf.kind in ("gaussian", "bpsk", "qpsk"):
             rails = 1 if wf.kind == "bpsk" else 2
-            z = np.empty((t_, size, rails))
-            for t in range(t_):
-                gens[t].standard_normal(out=z[t])
+            z = scratch_array(scratch, "waveform", (t_, size, rails))
+            normals.fill(keys, start * rails, z.reshape(t_, size * rails))
+            if wf.kind == "gaussian":
+                return z.view(np.complex128)[..., 0] * np.sqrt(0.5)
             sym = np.where(z >= 0, 1.0, -1.0)
             if rails == 1:
                 return sym[..., 0].astype(complex)
@@ -301,11 +301,11 @@ class TrialBatch:
             raise ValueError(f"block must be >= 1 snapshot, got {b}")
         idx = self.trial_indices
 
-        def gens_for(key: int):       # Generator(PCG64(SeedSequence(seed, (i, 1, key))))
-            return trial_generators(self.seed, idx, _STREAMS, key)
+        def keys_for(key: int):       # normal streams of SeedSequence(seed, (i, 1, key))
+            return normals.stream_keys(self.seed, idx, _STREAMS, key)
 
-        noise_gens = gens_for(_NOISE_KEY)
-        source_gens = {i: gens_for(_component_key(s.name))
+        noise_keys = keys_for(_NOISE_KEY)
+        source_keys = {i: keys_for(_component_key(s.name))
                        for i, s in enumerate(sc.sources)
                        if s.waveform.kind in ("gaussian", "bpsk", "qpsk")}
         d_idx = sc.desired_index
@@ -319,7 +319,7 @@ class TrialBatch:
 
         def envelope(i: int, start: int, size: int, kk: np.ndarray) -> np.ndarray:
             src = sc.sources[i]
-            env = self._waveform(source_gens.get(i), i, start, size)          # (T, B)
+            env = self._waveform(source_keys.get(i), i, start, size, kept)    # (T, B)
             env *= np.sqrt(src.power)
             if src.pulsing is not None:
                 env *= src.active(kk)
@@ -334,8 +334,8 @@ class TrialBatch:
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
             z = take("noise", (self.trials, size, n, 2), float)
-            for t in range(self.trials):
-                noise_gens[t].standard_normal(out=z[t])
+            # normals (k n + e) 2 + (0, 1) of the noise stream: element e at snapshot k
+            normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
             interference = z.view(np.complex128)[..., 0]
             if fixed:
                 env = take("envelopes", (self.trials, size, len(fixed)), complex)

@@ -1,0 +1,241 @@
+"""Counter-based standard normal streams: any stretch of a stream, computed directly.
+
+The sample streams need hundreds of millions of Gaussian numbers per run; numpy's
+``Generator.standard_normal`` draws them one after another through a function pointer
+(about 9 ns each on the 2-core benchmark machine). Here a stream's j-th normal is a
+pure function of the stream's key and of j, so a block of any stream is computed in one
+compiled pass over all trials (about 1.5 ns a number), the numpy fallback computes the
+same numbers vectorised, and a stretch never depends on what was computed before it
+(block size, chunking and thread count cannot change a value).
+
+A stream is keyed by two 64-bit words ``(start, gamma)`` from
+``SeedSequence(seed, spawn_key=(trial, ...)).generate_state(2, np.uint64)``
+(:func:`stream_keys`; gamma made odd and given enough bit transitions as SplitMix's
+``mixGamma`` does). Its j-th normal (j = 0, 1, ...) comes from
+
+* the word ``u_j = mix64(start + (j + 1) gamma)`` (mod 2**64): the j-th output of the
+  SplitMix64 generator of that seed and gamma (Steele, Lea & Flood, "Fast splittable
+  pseudorandom number generators", OOPSLA 2014; ``mix64`` is Stafford's variant 13 of
+  the MurmurHash3 finaliser, as in that paper), turned into a normal by
+* the ziggurat method with 256 layers (Marsaglia & Tsang, "The ziggurat method for
+  generating random variables", J. Stat. Software 5(8), 2000; layer tables derived
+  below for the standard normal, tail beyond r = 3.6541528853610088 by Marsaglia's
+  1964 method): the low 8 bits pick the layer, bit 8 the sign, bits 9-60 the abscissa.
+  About 98.8 % of words are accepted at once. A rejected word ``u`` is continued with
+  the words ``mix64(u + m * 0x9e3779b97f4a7c15)``, m = 1, 2, ... (wedge uniforms, tail
+  uniforms and fresh tries, in that order of need), so every normal uses exactly one
+  word of the stream and the streams stay addressable by index.
+
+Checkable facts (tests/test_normals.py): the values pass a Kolmogorov-Smirnov test
+against ``scipy.stats.norm``; tail fractions beyond 2, 3 and 4 match ``norm.sf``
+within binomial error; lag-1 correlations and cross-stream correlations are zero within
+their standard errors; the compiled and numpy paths agree (identical words; values equal
+except for last-place differences between two libraries' ``log``/``exp`` in the rare
+tail and wedge branches).
+"""
+from __future__ import annotations
+
+import math
+from typing import Sequence
+
+import numpy as np
+
+from .seeding import seed_states
+
+__all__ = ["stream_keys", "fill", "draw", "LAYERS", "TAIL_START"]
+
+#: number of ziggurat layers
+LAYERS = 256
+#: r: where the tail of the ziggurat's base layer starts (the standard-normal value for
+#: 256 layers, Marsaglia & Tsang 2000 give the 128-layer one, 3.442619855899)
+TAIL_START = 3.6541528853610088
+_GOLDEN = 0x9E3779B97F4A7C15
+_M52 = (1 << 52) - 1
+_M64 = (1 << 64) - 1
+
+
+def _tables(n: int = LAYERS, r: float = TAIL_START):
+    """Ziggurat tables for f(x) = exp(-x^2/2): every layer (and the base with its tail)
+    has the area v = r f(r) + int_r^inf f. Returns (k, w, f): uint64 (n,) acceptance
+    bounds ``floor(2^52 x_{i+1} / x_i)``, float (n,) scales ``x_i / 2^52`` and float
+    (n + 1,) ``f(x_i)`` with x_0 = v / f(r) (the base's pseudo-width), x_1 = r, ...,
+    x_n = 0 (so f[n] = 1)."""
+    def f(x):
+        return math.exp(-0.5 * x * x)
+
+    v = r * f(r) + math.sqrt(math.pi / 2.0) * math.erfc(r / math.sqrt(2.0))
+    x = [v / f(r), r]
+    for _ in range(2, n):
+        x.append(math.sqrt(-2.0 * math.log(v / x[-1] + f(x[-1]))))
+    x.append(0.0)
+    scale = float(1 << 52)
+    k = np.array([int(scale * r * f(r) / v)] + [int(scale * x[i + 1] / x[i]) for i in range(1, n)],
+                 dtype=np.uint64)
+    w = np.array([xi / scale for xi in x[:n]])
+    fx = np.array([f(xi) for xi in x])
+    return k, w, fx
+
+
+ACCEPT, SCALE, DENSITY = _tables()
+_ACCEPT_SIGNED = ACCEPT.view(np.int64)          # all below 2**52: same values
+
+
+def _odd_gamma(g: np.ndarray) -> np.ndarray:
+    """SplitMix's ``mixGamma`` fix-up: odd, and at least 24 bit transitions (else xor
+    with 0xAAAA...; Steele, Lea & Flood 2014)."""
+    g = g | np.uint64(1)
+    flips = np.unpackbits((g ^ (g >> np.uint64(1))).view(np.uint8).reshape(len(g), 8),
+                          axis=1).sum(axis=1)
+    return np.where(flips < 24, g ^ np.uint64(0xAAAAAAAAAAAAAAAA), g)
+
+
+def stream_keys(seed: int, trials: Sequence[int], *key: int) -> np.ndarray:
+    """(len(trials), 2) uint64 keys ``(start, gamma)`` of the streams
+    ``SeedSequence(seed, spawn_key=(i, *key))``, i in ``trials``."""
+    words = seed_states(seed, trials, key, 2)
+    out = np.empty((len(words), 2), dtype=np.uint64)
+    out[:, 0] = words[:, 0]
+    out[:, 1] = _odd_gamma(np.ascontiguousarray(words[:, 1]))
+    return out
+
+
+def _check(keys: np.ndarray, start: int, out: np.ndarray) -> None:
+    if keys.ndim != 2 or keys.shape[1] != 2 or keys.dtype != np.uint64:
+        raise ValueError(f"keys must be uint64 (T, 2), got {keys.dtype} {keys.shape}")
+    if out.ndim != 2 or out.shape[0] != keys.shape[0] or out.dtype != np.float64 \
+            or not out.flags.c_contiguous or not out.flags.writeable:
+        raise ValueError(f"out must be a writable contiguous float64 (T, M) array with "
+                         f"T = {keys.shape[0]}, got {out.dtype} {out.shape}")
+    if int(start) < 0:
+        raise ValueError(f"start must be >= 0, got {start}")
+
+
+def fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
+    """Normals ``start .. start + M - 1`` of each stream into ``out`` (T, M) float64
+    (C-contiguous; any array viewable so, e.g. a (T, B, N, 2) block reshaped), returned.
+    Compiled when the kernels are on (:mod:`adapt._kernels`), else numpy."""
+    from . import _kernels
+    keys = np.asarray(keys)
+    _check(keys, start, out)
+    if out.size == 0:
+        return out
+    if _kernels.compiled():
+        _kernels.normals_fill(keys, int(start), out)
+    else:
+        _fill_numpy(keys, int(start), out)
+    return out
+
+
+def draw(keys: np.ndarray, start: int, count: int) -> np.ndarray:
+    """A new (T, count) array of normals ``start .. start + count - 1`` of each stream."""
+    keys = np.asarray(keys)
+    return fill(keys, start, np.empty((len(keys), int(count))))
+
+
+# --------------------------------------------------------------------------- numpy path
+def _mix64(z: np.ndarray) -> np.ndarray:
+    """Stafford's variant 13 finaliser, in place on a uint64 array (wrapping)."""
+    z ^= z >> np.uint64(30)
+    z *= np.uint64(0xBF58476D1CE4E5B9)
+    z ^= z >> np.uint64(27)
+    z *= np.uint64(0x94D049BB133111EB)
+    z ^= z >> np.uint64(31)
+    return z
+
+
+def _unit(u: np.ndarray) -> np.ndarray:
+    """Uniform in (0, 1] from the top 53 bits of a word."""
+    return ((u >> np.uint64(11)) + np.uint64(1)).astype(np.float64) * (1.0 / (1 << 53))
+
+
+def _aux(u: np.ndarray, m: np.ndarray) -> np.ndarray:
+    return _mix64(u + m * np.uint64(_GOLDEN))
+
+
+def _fast(u: np.ndarray):
+    """(x, accepted, layer, negative) of the ziggurat's first test for words u.
+    (uint64 -> int64 by view: numpy's casting of uint64 is slow, the bits are equal.)"""
+    idx = (u & np.uint64(0xFF)).view(np.int64)
+    rabs = ((u >> np.uint64(9)) & np.uint64(_M52)).view(np.int64)
+    x = rabs.astype(np.float64)
+    x *= SCALE.take(idx)
+    sign = (u & np.uint64(0x100)) << np.uint64(55)              # bit 8 -> sign bit
+    x.view(np.uint64)[...] ^= sign                                 # exact negation
+    return x, rabs < _ACCEPT_SIGNED.take(idx), idx, sign != 0
+
+
+def _resolve(u: np.ndarray) -> np.ndarray:
+    """Normals for words rejected by the first test: the sequential rule of the
+    compiled kernel, run for all of them at once (one round = one try each)."""
+    out = np.empty(len(u))
+    cur = u.copy()
+    m = np.ones(len(u), dtype=np.uint64)
+    tail = np.zeros(len(u), dtype=bool)
+    todo = np.arange(len(u))
+    first = True
+    while todo.size:
+        uu, cc, mm, tt = u[todo], cur[todo], m[todo], tail[todo]
+        x, ok, idx, neg = _fast(cc)
+        if first:                     # the first try was the caller's, and failed
+            ok[:] = False
+            first = False
+        ok &= ~tt
+        done = ok.copy()
+        out[todo[ok]] = x[ok]
+        # base layer rejected (or already in the tail): one tail attempt
+        go_tail = ~ok & (tt | (idx == 0))
+        if go_tail.any():
+            a = _unit(_aux(uu[go_tail], mm[go_tail]))
+            b = _unit(_aux(uu[go_tail], mm[go_tail] + np.uint64(1)))
+            mm[go_tail] += np.uint64(2)
+            xx = -np.log(a) / TAIL_START
+            yy = -np.log(b)
+            acc = yy + yy > xx * xx
+            value = np.where(neg[go_tail], -(TAIL_START + xx), TAIL_START + xx)
+            rows = np.flatnonzero(go_tail)
+            out[todo[rows[acc]]] = value[acc]
+            done[rows[acc]] = True
+            tt[go_tail] = True
+        wedge = ~ok & ~go_tail
+        if wedge.any():
+            rows = np.flatnonzero(wedge)
+            i = idx[rows]
+            y = DENSITY[i] + _unit(_aux(uu[rows], mm[rows])) * (DENSITY[i + 1] - DENSITY[i])
+            mm[rows] += np.uint64(1)
+            xr = x[rows]
+            acc = y < np.exp(-0.5 * xr * xr)
+            out[todo[rows[acc]]] = xr[acc]
+            done[rows[acc]] = True
+            again = rows[~acc]
+            cc[again] = _aux(uu[again], mm[again])
+            mm[again] += np.uint64(1)
+        cur[todo], m[todo], tail[todo] = cc, mm, tt
+        todo = todo[~done]
+    return out
+
+
+_CHUNK = 1 << 15          # values per numpy pass (temporaries stay small and in cache)
+
+
+def _fill_numpy(keys: np.ndarray, start: int, out: np.ndarray) -> None:
+    t_, m_ = out.shape
+    seeds = keys[:, 0:1]
+    gammas = keys[:, 1:2]
+    step = max(1, _CHUNK // max(1, t_))
+    rejected_at, rejected = [], []
+    with np.errstate(over="ignore"):
+        for lo in range(0, m_, step):
+            hi = min(m_, lo + step)
+            u = np.arange(start + lo + 1, start + hi + 1, dtype=np.uint64)[None, :] * gammas
+            u += seeds
+            x, ok, _, _ = _fast(_mix64(u))                             # (T, hi - lo)
+            out[:, lo:hi] = x
+            if not ok.all():
+                rows, cols = np.nonzero(~ok)
+                rejected_at.append((rows, cols + lo))
+                rejected.append(u[rows, cols])
+        if rejected:                      # the few slow-path words, all at once
+            values = _resolve(np.concatenate(rejected))
+            rows = np.concatenate([r for r, _ in rejected_at])
+            cols = np.concatenate([c for _, c in rejected_at])
+            out[rows, cols] = values

@@ -1,0 +1,200 @@
+"""Counter-based normal streams (adapt.normals): the generator against its published
+parts, the distribution against scipy.stats, and the two code paths against each other.
+
+Sources: SplitMix64 (Steele, Lea & Flood, OOPSLA 2014; its mix64 is Stafford's variant
+13); the ziggurat method (Marsaglia & Tsang, J. Stat. Software 5(8), 2000) with
+Marsaglia's 1964 tail method; scipy.stats.norm for the distribution. Every Monte Carlo
+check uses fixed keys (deterministic) and a tolerance of at least 5 standard errors.
+"""
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from adapt import _kernels, normals
+
+M64 = (1 << 64) - 1
+GOLDEN = 0x9E3779B97F4A7C15
+
+
+def mix64(z: int) -> int:
+    z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & M64
+    z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & M64
+    return z ^ (z >> 31)
+
+
+def plain_tables(n=256, r=3.6541528853610088):
+    """The ziggurat layers written out again, scalar Python (x_0 the base's width)."""
+    f = lambda x: math.exp(-x * x / 2)                                   # noqa: E731
+    v = r * f(r) + math.sqrt(math.pi / 2) * math.erfc(r / math.sqrt(2))
+    x = [v / f(r), r]
+    while len(x) < n:
+        x.append(math.sqrt(-2 * math.log(v / x[-1] + f(x[-1]))))
+    return x + [0.0], v, f
+
+
+X, V, F = plain_tables()
+
+
+def plain_normal(u: int) -> float:
+    """One normal from a word u, the rule of adapt.normals written as plain Python."""
+    def unit(w):
+        return ((w >> 11) + 1) / 2.0 ** 53
+
+    def aux(m):
+        return mix64((u + m * GOLDEN) & M64)
+
+    m, cur = 1, u
+    while True:
+        i = cur & 255
+        rabs = (cur >> 9) & ((1 << 52) - 1)
+        neg = (cur >> 8) & 1
+        bound = int(2.0 ** 52 * (X[1] * F(X[1]) / V if i == 0 else X[i + 1] / X[i]))
+        x = rabs * (X[i] / 2.0 ** 52)
+        x = -x if neg else x
+        if rabs < bound:
+            return x
+        if i == 0:
+            while True:
+                xx = -math.log(unit(aux(m))) / X[1]
+                yy = -math.log(unit(aux(m + 1)))
+                m += 2
+                if yy + yy > xx * xx:
+                    return -(X[1] + xx) if neg else X[1] + xx
+        y = F(X[i]) + unit(aux(m)) * (F(X[i + 1]) - F(X[i]))
+        m += 1
+        if y < math.exp(-0.5 * x * x):
+            return x
+        cur = aux(m)
+        m += 1
+
+
+def test_splitmix64_published_vector():
+    # SplitMix64 seeded with 1234567 (golden gamma) gives 6457827717110365317,
+    # 3203168211198807973, 9817491932198370423 first (the reference implementation's
+    # test vector, from memory; the plain mix64 above reproduces it)
+    out, s = [], 1234567
+    for _ in range(3):
+        s = (s + GOLDEN) & M64
+        out.append(mix64(s))
+    assert out == [6457827717110365317, 3203168211198807973, 9817491932198370423]
+    z = normals._mix64(np.uint64(1234567) + np.arange(1, 4, dtype=np.uint64) * np.uint64(GOLDEN))
+    assert z.tolist() == out
+
+
+def test_ziggurat_tables_have_equal_areas():
+    # Marsaglia & Tsang 2000: every layer x_i (f(x_{i+1}) - f(x_i)) and the base
+    # (r f(r) + tail) have the same area v; with the right r the top layer closes at 0
+    for i in range(1, 255):
+        assert X[i] * (F(X[i + 1]) - F(X[i])) == pytest.approx(V, rel=1e-9)
+    assert X[255] * (1 - F(X[255])) == pytest.approx(V, rel=1e-6)
+    assert normals.DENSITY[-1] == 1.0 and normals.DENSITY[1] == pytest.approx(F(X[1]))
+    np.testing.assert_allclose(normals.SCALE * 2.0 ** 52, X[:256], rtol=1e-15)
+
+
+def test_keys_come_from_the_seed_sequence():
+    keys = normals.stream_keys(20240, [0, 3, 2 ** 33], 1, 77)
+    for row, i in zip(keys, [0, 3, 2 ** 33]):
+        w = np.random.SeedSequence(20240, spawn_key=(i, 1, 77)).generate_state(2, np.uint64)
+        assert row[0] == w[0]
+        g = int(row[1])
+        assert g & 1 and bin(g ^ (g >> 1)).count("1") >= 24
+        assert g in (int(w[1]) | 1, (int(w[1]) | 1) ^ 0xAAAAAAAAAAAAAAAA)
+
+
+def test_values_equal_a_plain_implementation():
+    # several thousand values, slow-path words included (about 1.2 % of them)
+    keys = normals.stream_keys(5, [0, 1], 1, 9)
+    got = normals.draw(keys, 123, 3000)
+    for t in range(2):
+        seed, gamma = int(keys[t, 0]), int(keys[t, 1])
+        words = [mix64((seed + (j + 1) * gamma) & M64) for j in range(123, 3123)]
+        want = [plain_normal(u) for u in words]
+        np.testing.assert_allclose(got[t], want, rtol=1e-14, atol=0)
+
+
+def test_slow_path_words_match_the_plain_rule():
+    # words rejected by the first test (tail and wedge cases), on both code paths
+    keys = normals.stream_keys(11, [0], 1, 3)
+    seed, gamma = int(keys[0, 0]), int(keys[0, 1])
+    words = normals._mix64(np.uint64(seed)
+                           + np.arange(1, 200_001, dtype=np.uint64) * np.uint64(gamma))
+    _, ok, idx, _ = normals._fast(words)
+    bad = words[~ok]
+    # about 1.2 % rejected, 2.6e-4 of all in the base layer (the tail): both kinds met
+    assert 2000 < bad.size < 3000 and (idx[~ok] == 0).sum() > 25
+    np.testing.assert_allclose(normals._resolve(bad), [plain_normal(int(u)) for u in bad],
+                               rtol=1e-14, atol=0)
+
+
+@pytest.mark.skipif(not _kernels.compiled(), reason="compiled kernels off")
+def test_compiled_and_numpy_paths_agree():
+    keys = normals.stream_keys(99, range(5), 1, 4)
+    a = np.empty((5, 400_000))
+    b = np.empty((5, 400_000))
+    _kernels.normals_fill(keys, 17, a)
+    normals._fill_numpy(keys, 17, b)
+    # identical words; values equal but for last-place log/exp differences between
+    # libraries in the tail and wedge branches
+    np.testing.assert_allclose(a, b, rtol=1e-14, atol=0)
+    assert (a == b).mean() > 0.999
+
+
+def test_any_stretch_equals_the_whole_stream():
+    keys = normals.stream_keys(3, range(4), 1, 2)
+    whole = normals.draw(keys, 0, 10_000)
+    for start, count in [(0, 1), (1, 7), (4095, 3000), (9999, 1)]:
+        np.testing.assert_array_equal(normals.draw(keys, start, count),
+                                      whole[:, start:start + count])
+    # a trial's stream does not depend on the other trials of the batch
+    np.testing.assert_array_equal(normals.draw(keys[2:3], 500, 100), whole[2:3, 500:600])
+
+
+def test_distribution_matches_scipy_norm():
+    keys = normals.stream_keys(2024, range(4), 1, 1)
+    x = normals.draw(keys, 0, 1_000_000).ravel()                       # 4e6 values
+    n = x.size
+    # Kolmogorov-Smirnov against scipy.stats.norm (fixed keys: deterministic)
+    assert stats.kstest(x, "norm").pvalue > 1e-3
+    # moments within 5 standard errors (var of x^2 is 2, of x^3 is 15, of x^4 is 96)
+    assert abs(x.mean()) < 5 / math.sqrt(n)
+    assert abs((x ** 2).mean() - 1) < 5 * math.sqrt(2 / n)
+    assert abs((x ** 3).mean()) < 5 * math.sqrt(15 / n)
+    assert abs((x ** 4).mean() - 3) < 5 * math.sqrt(96 / n)
+    # tails, the ziggurat's base-layer tail (beyond r = 3.654) included: binomial errors
+    for c in (1.0, 2.0, 3.0, normals.TAIL_START, 4.0, 4.5):
+        p = 2 * stats.norm.sf(c)
+        count = (np.abs(x) > c).sum()
+        assert abs(count - n * p) < 5 * math.sqrt(n * p * (1 - p)) + 1, c
+    # a fine histogram (the wedges' shape) against the normal's bin probabilities
+    edges = np.concatenate([[-np.inf], np.linspace(-4, 4, 161), [np.inf]])
+    counts = np.histogram(x, edges)[0]
+    expected = n * np.diff(stats.norm.cdf(edges))
+    assert stats.chisquare(counts, expected).pvalue > 1e-3
+
+
+def test_streams_are_uncorrelated():
+    keys = normals.stream_keys(8, range(6), 1, 0)
+    x = normals.draw(keys, 0, 200_000)
+    bound = 5 / math.sqrt(x.shape[1])
+    for t in range(6):
+        for lag in (1, 2, 16, 32):
+            assert abs(np.corrcoef(x[t, :-lag], x[t, lag:])[0, 1]) < bound
+    c = np.corrcoef(x)
+    assert np.abs(c[np.triu_indices(6, 1)]).max() < bound
+    # the same trial, neighbouring spawn keys (noise and one source, say)
+    y = normals.draw(normals.stream_keys(8, range(6), 1, 1), 0, 200_000)
+    assert max(abs(np.corrcoef(x[t], y[t])[0, 1]) for t in range(6)) < bound
+
+
+def test_guards():
+    keys = normals.stream_keys(1, [0])
+    with pytest.raises(ValueError, match="keys"):
+        normals.fill(keys.astype(np.int64), 0, np.empty((1, 3)))
+    with pytest.raises(ValueError, match="out"):
+        normals.fill(keys, 0, np.empty((2, 3)))
+    with pytest.raises(ValueError, match="out"):
+        normals.fill(keys, 0, np.empty((1, 6))[:, ::2])
+    with pytest.raises(ValueError, match="start"):
+        normals.fill(keys, -1, np.empty((1, 3)))
