@@ -30,7 +30,7 @@ import time
 import numpy as np
 
 __all__ = ["mode", "compiled", "lms_block", "rls_block", "wishart_spans", "cholesky_solve",
-           "add_sources", "normals_fill",
+           "add_sources", "normals_fill", "noisy_sources", "gamma_fill",
            "warm_up", "SYMMETRISE_EVERY"]
 
 #: P is re-symmetrised after every this many snapshots (as in the numpy RLS path)
@@ -71,6 +71,8 @@ _WISHART = None
 _CHOLESKY = None
 _MIX = None
 _NORMALS = None
+_NOISY = None
+_GAMMA = None
 _BUILDING = threading.Lock()
 
 
@@ -85,7 +87,7 @@ def _build():
 
 
 def _define():
-    global _LMS, _RLS, _WISHART, _CHOLESKY, _MIX, _NORMALS
+    global _LMS, _RLS, _WISHART, _CHOLESKY, _MIX, _NORMALS, _NOISY, _GAMMA
     if _numba is None:
         raise RuntimeError("the compiled kernels need numba (pip install 'adapt[fast]')")
     njit = _numba.njit
@@ -425,8 +427,108 @@ def _define():
                 else:
                     out[t, i] = resolve(u, accept, scale, density, r)
 
+    @njit(cache=True, nogil=True)
+    def noisy_sources_kernel(keys, start, scale, env, steer, env_d, steer_d, inter, data,
+                             accept, table, density, r):
+        # inter[t, b] <- scale * (noise normals 2(k n + e), 2(k n + e) + 1 of stream t,
+        # k = start + b) + sum_j env[t, b, j] steer[., j]; data[t, b] <- inter[t, b] +
+        # env_d[t, b] steer_d[.] (when env_d has a column). The arithmetic of
+        # normals_kernel then mix_kernel twice, operation for operation, in planar
+        # registers (vectorisable), one pass over the block.
+        t_, b_, n = inter.shape
+        j_ = env.shape[2]
+        with_d = env_d.shape[1] > 0
+        zs = np.empty(2 * n)
+        ar = np.empty(n)
+        ai = np.empty(n)
+        sr = np.empty((j_, n))
+        si = np.empty((j_, n))
+        dr = np.empty(n)
+        di = np.empty(n)
+        for t in range(t_):
+            ts = 0 if steer.shape[0] == 1 else t
+            for j in range(j_):
+                for i in range(n):
+                    sr[j, i] = steer[ts, j, i].real
+                    si[j, i] = steer[ts, j, i].imag
+            if with_d:
+                td = 0 if steer_d.shape[0] == 1 else t
+                for i in range(n):
+                    dr[i] = steer_d[td, i].real
+                    di[i] = steer_d[td, i].imag
+            gamma = keys[t, 1]
+            s = keys[t, 0] + np.uint64(start * 2 * n + 1) * gamma
+            for b in range(b_):
+                for q in range(2 * n):
+                    u = mix64(s)
+                    s += gamma
+                    idx = np.intp(u & np.uint64(255))
+                    rabs = (u >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
+                    if rabs < accept[idx]:
+                        x = float(rabs) * table[idx]
+                        zs[q] = -x if (u >> np.uint64(8)) & np.uint64(1) else x
+                    else:
+                        zs[q] = resolve(u, accept, table, density, r)
+                for i in range(n):
+                    ar[i] = zs[2 * i] * scale
+                    ai[i] = zs[2 * i + 1] * scale
+                for j in range(j_):
+                    er = env[t, b, j].real
+                    ei = env[t, b, j].imag
+                    for i in range(n):
+                        ar[i] = ar[i] + (er * sr[j, i] - ei * si[j, i])
+                        ai[i] = ai[i] + (er * si[j, i] + ei * sr[j, i])
+                for i in range(n):
+                    inter[t, b, i] = complex(ar[i], ai[i])
+                if with_d:
+                    er = env_d[t, b].real
+                    ei = env_d[t, b].imag
+                    for i in range(n):
+                        data[t, b, i] = complex(ar[i] + (er * dr[i] - ei * di[i]),
+                                                ai[i] + (er * di[i] + ei * dr[i]))
+
+    @njit(cache=True, nogil=True)
+    def gamma_kernel(keys, shapes, out, step, accept, table, density, r):
+        # Marsaglia-Tsang gamma variates from counter-based words (adapt.normals)
+        t_, m_ = out.shape
+        for t in range(t_):
+            seed = keys[t, 0]
+            gamma = keys[t, 1]
+            for m in range(m_):
+                a = shapes[m]
+                if a == 0.0:
+                    out[t, m] = 0.0
+                    continue
+                w = mix64(seed + np.uint64(m + 1) * gamma)
+                d = a - 1.0 / 3.0
+                c = 1.0 / np.sqrt(9.0 * d)
+                attempt = np.uint64(0)
+                while True:
+                    un = mix64(w + (np.uint64(2) * attempt + np.uint64(1)) * step)
+                    uu = mix64(w + (np.uint64(2) * attempt + np.uint64(2)) * step)
+                    attempt += np.uint64(1)
+                    idx = np.intp(un & np.uint64(255))
+                    rabs = (un >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
+                    if rabs < accept[idx]:
+                        x = float(rabs) * table[idx]
+                        if (un >> np.uint64(8)) & np.uint64(1):
+                            x = -x
+                    else:
+                        x = resolve(un, accept, table, density, r)
+                    v = 1.0 + c * x
+                    if v <= 0.0:
+                        continue
+                    v = v * v * v
+                    u = unit(uu)
+                    sq = x * x
+                    if u < 1.0 - 0.0331 * sq * sq or \
+                            np.log(u) < 0.5 * sq + d * (1.0 - v + np.log(v)):
+                        out[t, m] = d * v
+                        break
+
     _LMS, _RLS, _WISHART = lms_kernel, rls_kernel, wishart_kernel
-    _CHOLESKY, _NORMALS = cholesky_kernel, normals_kernel
+    _CHOLESKY, _NORMALS, _NOISY = cholesky_kernel, normals_kernel, noisy_sources_kernel
+    _GAMMA = gamma_kernel
     _MIX = mix_kernel                   # last: _build() reads it as "all defined"
 
 
@@ -586,6 +688,41 @@ def normals_fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
     return out
 
 
+def gamma_fill(keys: np.ndarray, shapes: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Gamma variates of :func:`adapt.normals.gamma_fill` (which checks the arguments),
+    compiled: keys (T, 2) uint64, shapes (M,) float64, out (T, M) float64."""
+    from .normals import ACCEPT, SCALE, DENSITY, TAIL_START, GAMMA_STEP
+    _build()
+    _GAMMA(keys, shapes, out, np.uint64(GAMMA_STEP), ACCEPT, SCALE, DENSITY, TAIL_START)
+    return out
+
+
+def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
+                  steer: np.ndarray, env_d: np.ndarray | None, steer_d: np.ndarray | None,
+                  inter: np.ndarray, data: np.ndarray | None) -> None:
+    """Compiled, one pass: ``inter`` (T, B, N) <- ``scale`` x the noise (normals of the
+    counter-based streams ``keys`` (T, 2) for snapshots ``start ..``, element e of
+    snapshot k from normals 2(k N + e) and 2(k N + e) + 1) plus the fixed sources
+    ``env`` (T, B, J) x ``steer`` (T or 1, J, N); and, when ``env_d`` (T, B) is given,
+    ``data`` <- ``inter + env_d x steer_d`` (T or 1, N). Values equal to
+    :func:`adapt.normals.fill` followed by :func:`add_sources` (twice), to the last bit
+    (the same operations in the same order)."""
+    from .normals import ACCEPT, SCALE, DENSITY, TAIL_START
+    t_, b_, n = inter.shape
+    if env.shape[:2] != (t_, b_) or steer.shape[1:] != (env.shape[2], n) \
+            or keys.shape != (t_, 2) or not inter.flags.c_contiguous:
+        raise ValueError("noisy_sources: shapes do not match")
+    _build()
+    if env_d is None:
+        env_d = np.zeros((t_, 0), dtype=complex)
+        steer_d = np.zeros((1, n), dtype=complex)
+        data = inter
+    _NOISY(keys, int(start), float(scale), np.ascontiguousarray(env, dtype=complex),
+           np.ascontiguousarray(steer, dtype=complex), np.ascontiguousarray(env_d, dtype=complex),
+           np.ascontiguousarray(steer_d, dtype=complex), inter, data, ACCEPT, SCALE, DENSITY,
+           TAIL_START)
+
+
 def warm_up() -> float:
     """Compile (or load from cache) the kernels for the block layouts the processors
     use; returns the seconds it took (0 when the kernels are off)."""
@@ -606,4 +743,7 @@ def warm_up() -> float:
     cholesky_solve(p, x[0, :3, :1], scale=np.ones(2), load=np.zeros(2))
     add_sources(x.copy(), 1.0, x[:, :, :2], x[:, :2, :])
     normals_fill(np.ones((2, 2), dtype=np.uint64), 0, np.empty((2, 3)))
+    gamma_fill(np.ones((2, 2), dtype=np.uint64), np.array([0.0, 1.0, 5.0]), np.empty((2, 3)))
+    noisy_sources(np.ones((2, 2), dtype=np.uint64), 0, 1.0, x[:, :, :2], x[:1, :2, :],
+                  x[:, :, 0], x[:1, 0, :], np.empty_like(x), np.empty_like(x))
     return time.perf_counter() - t0

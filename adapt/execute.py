@@ -174,6 +174,14 @@ class Plan:
     chunk: int
     block: int
     draw: str = "samples"
+    #: how the random numbers are made (:data:`adapt.streams.STREAMS`): chunks made
+    #: under another definition are not resumed into this run
+    streams: str = ""
+
+    def __post_init__(self):
+        if not self.streams:
+            from .streams import STREAMS
+            object.__setattr__(self, "streams", STREAMS)
 
     def chunks(self) -> list[tuple[int, int]]:
         return trial_chunks(self.trials, self.chunk)
@@ -189,7 +197,8 @@ class Plan:
                    checkpoints=tuple(int(c) for c in d["checkpoints"]),
                    snapshots=int(d["snapshots"]), tail=int(d["tail"]), trials=int(d["trials"]),
                    seed=int(d["seed"]), chunk=int(d["chunk"]), block=int(d["block"]),
-                   draw=str(d.get("draw", "samples")))
+                   draw=str(d.get("draw", "samples")),
+                   streams=str(d.get("streams", "numpy-generator")))
 
     def same_work(self, other: "Plan") -> bool:
         """True when both plans compute the same trials (chunking aside)."""
@@ -312,7 +321,8 @@ class ChunkStore:
                 raise InputError(f"the stored plan is unreadable ({exc})", file=str(path)) from None
             if not stored.same_work(plan):
                 raise InputError("the finished chunks here belong to a different run (scene, "
-                                 "processors, checkpoints, trials or seed differ)",
+                                 "processors, checkpoints, trials, seed or the version of "
+                                 "the random streams differ)",
                                  file=str(self.folder))
             return stored
         io.write_json(path, plan.as_dict())

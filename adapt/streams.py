@@ -38,7 +38,11 @@ from .scene import Scene
 from .seeding import trial_generators
 
 __all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise",
-           "scratch_array"]
+           "scratch_array", "STREAMS"]
+
+#: the definition of the random numbers (recorded in resumable run plans): noise and
+#: random waveforms from counter-based normal streams (adapt.normals)
+STREAMS = "counter-normals-1"
 
 _CONSTANTS, _STREAMS = 0, 1
 _NOISE_KEY = 0xFFFFFFFF
@@ -330,32 +334,44 @@ class TrialBatch:
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
             return scratch_array(kept, name, shape, dtype)
 
+        # one compiled pass forms noise, fixed sources and the data (no moving sources)
+        fused = _kernels.compiled() and not moving and desired_a is not None
+
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
-            z = take("noise", (self.trials, size, n, 2), float)
-            # normals (k n + e) 2 + (0, 1) of the noise stream: element e at snapshot k
-            normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
-            interference = z.view(np.complex128)[..., 0]
             if fixed:
                 env = take("envelopes", (self.trials, size, len(fixed)), complex)
                 for j, i in enumerate(fixed):
                     env[:, :, j] = envelope(i, start, size, kk)
-                # noise * sqrt(1/2) + env @ fixed_a, element by element (block-size free)
-                _kernels.add_sources(interference, np.sqrt(0.5), env, fixed_a)
-            else:
-                interference *= np.sqrt(0.5)
-            for i in moving:
-                interference += envelope(i, start, size, kk)[..., None] * self.steering(i, kk)
             reference = envelope(d_idx, start, size, kk)
-            if desired_a is not None:      # data = interference + reference a_d, one pass
-                signal = None
-                data = _kernels.add_sources(interference, 1.0, reference[..., None],
-                                            desired_a[:, None, :],
-                                            out=take("data", interference.shape, complex))
+            signal = None
+            if fused:
+                interference = take("noise", (self.trials, size, n), complex)
+                data = take("data", interference.shape, complex)
+                env_f, steer_f = (env, fixed_a) if fixed else \
+                    (np.empty((self.trials, size, 0), complex), np.empty((1, 0, n), complex))
+                _kernels.noisy_sources(noise_keys, start, np.sqrt(0.5), env_f, steer_f,
+                                       reference, desired_a, interference, data)
             else:
-                signal = reference[..., None] * self.steering(d_idx, kk)
-                data = signal + interference
+                z = take("noise", (self.trials, size, n, 2), float)
+                # normals (k n + e) 2 + (0, 1) of the noise stream: element e, snapshot k
+                normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
+                interference = z.view(np.complex128)[..., 0]
+                if fixed:
+                    # noise sqrt(1/2) + env @ fixed_a, element by element (block-size free)
+                    _kernels.add_sources(interference, np.sqrt(0.5), env, fixed_a)
+                else:
+                    interference *= np.sqrt(0.5)
+                for i in moving:
+                    interference += envelope(i, start, size, kk)[..., None] * self.steering(i, kk)
+                if desired_a is not None:      # data = interference + reference a_d, one pass
+                    data = _kernels.add_sources(interference, 1.0, reference[..., None],
+                                                desired_a[:, None, :],
+                                                out=take("data", interference.shape, complex))
+                else:
+                    signal = reference[..., None] * self.steering(d_idx, kk)
+                    data = signal + interference
             if rx.bits is not None:
                 data = quantise(data, rx.bits, full_scale)
                 training = (quantise(interference, rx.bits, full_scale)

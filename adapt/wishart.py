@@ -24,8 +24,9 @@ Thm 3.2.14, real case) carried to the complex case. Checkable fact (tested): the
 normalised SINR of unloaded SMI from a drawn covariance follows the Reed-Mallett-Brennan
 law Beta(K-N+2, N-1), the same distribution as from samples.
 
-Randomness: trial i draws from ``SeedSequence(seed, spawn_key=(i, 2))`` only (the sample
-streams use keys (i, 0) and (i, 1)), so results do not depend on the chunk size. They
+Randomness: trial i draws from ``SeedSequence(seed, spawn_key=(i, 2, ...))`` only (the
+normals from the counter-based stream of key (i, 2, 1), the gamma variates from that of
+key (i, 2, 2), :mod:`adapt.normals`; the sample streams use keys (i, 0) and (i, 1)), so results do not depend on the chunk size. They
 depend on the set of cut points, i.e. on the checkpoints and the processors' windows.
 A drawn run is a different (equally distributed) realisation from the sample path: the
 two agree in distribution, not trial by trial.
@@ -42,15 +43,14 @@ from typing import Sequence
 import numpy as np
 
 from .errors import InputError
-from . import _kernels
+from . import _kernels, normals
 from .processors.base import Context, Processor, ProcessorResult
 from .processors._covariance import SampleCovarianceProcessor
 from .processors._linalg import compiled_solves
 from .scene import Scene
 from .streams import scratch_array
-from .seeding import trial_generators
 
-__all__ = ["DRAWS", "covariance_draw_refusal", "check_covariance_draw", "cut_points",
+__all__ = ["DRAWS", "DrawStreams", "covariance_draw_refusal", "check_covariance_draw", "cut_points",
            "bartlett_factors", "span_sums", "run_drawn"]
 
 #: ways of producing the training data: ``samples`` (the streams) or ``covariance``
@@ -117,40 +117,63 @@ def cut_points(processors: Sequence[Processor], checkpoints) -> np.ndarray:
     return np.unique(np.concatenate(cuts))
 
 
-def _draws(gens: Sequence[np.random.Generator], lengths: np.ndarray, n: int,
-           scratch: dict | None = None):
-    """Per trial, one call for the gamma variates (S, N) and one for the normals of the
-    below-diagonal entries (E, 2) of every span; returns (gam, z, (si, ii, jj)) (in
-    ``scratch`` buffers when given, see :func:`adapt.streams.scratch_array`)."""
+class DrawStreams:
+    """The random streams of a drawn-covariance run for some trials, counter-based
+    (:mod:`adapt.normals`): trial i's gamma variates from the stream of
+    ``SeedSequence(seed, spawn_key=(i, 2, 2))`` and its below-diagonal normals from
+    that of ``SeedSequence(seed, spawn_key=(i, 2, 1))``. Slicing gives the streams of
+    a subset of the trials (the same streams, not new ones)."""
+
+    def __init__(self, seed: int, trials, _parts=None):
+        if _parts is not None:
+            self.normal_keys, self.gamma_keys = _parts
+            return
+        idx = np.asarray(trials, dtype=np.int64).reshape(-1)
+        self.normal_keys = normals.stream_keys(int(seed), idx, _DRAWN_KEY, 1)
+        self.gamma_keys = normals.stream_keys(int(seed), idx, _DRAWN_KEY, 2)
+
+    def __len__(self) -> int:
+        return len(self.normal_keys)
+
+    def __getitem__(self, rows: slice) -> "DrawStreams":
+        if not isinstance(rows, slice):
+            raise TypeError("DrawStreams are sliced by a slice of trials")
+        return DrawStreams(0, (), _parts=(self.normal_keys[rows], self.gamma_keys[rows]))
+
+
+def _draws(streams: DrawStreams, lengths: np.ndarray, n: int, scratch: dict | None = None):
+    """One compiled (or vectorised) pass each for the gamma variates (S, N) of the
+    diagonals and the normals of the below-diagonal entries (E, 2) of every span of
+    every trial; returns (gam, z, (si, ii, jj)) (in ``scratch`` buffers when given, see
+    :func:`adapt.streams.scratch_array`)."""
     lengths = np.asarray(lengths, dtype=np.int64)
     if lengths.ndim != 1 or lengths.size == 0 or lengths.min() < 1:
         raise ValueError("span lengths must be a non-empty list of counts >= 1")
     if n < 1:
         raise ValueError(f"elements must be >= 1, got {n}")
-    s_, t_ = len(lengths), len(gens)
+    if not isinstance(streams, DrawStreams):
+        raise ValueError("streams must be a wishart.DrawStreams")
+    s_, t_ = len(lengths), len(streams)
     shape = np.maximum(lengths[:, None] - np.arange(n)[None, :], 0).astype(float)   # (S, N)
     # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)
     where = np.nonzero((np.arange(n)[None, None, :] < np.arange(n)[None, :, None])
                        & (np.arange(n)[None, None, :] < lengths[:, None, None]))
     gam = scratch_array(scratch, "gamma", (t_, s_, n))
     z = scratch_array(scratch, "normals", (t_, len(where[0]), 2))
-    for t, g in enumerate(gens):          # one call per trial and kind: independent streams
-        g.standard_gamma(shape, out=gam[t])
-        g.standard_normal(out=z[t])
+    normals.gamma_fill(streams.gamma_keys, shape.reshape(-1), gam.reshape(t_, -1))
+    normals.fill(streams.normal_keys, 0, z.reshape(t_, -1))   # entry e: normals 2e, 2e+1
     return gam, z, where
 
 
-def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
+def bartlett_factors(streams: DrawStreams, lengths: np.ndarray,
                      elements: int) -> np.ndarray:
-    """(T, S, N, N) Bartlett factors A of ``CW_N(n_s, I)`` for each trial's generator and
+    """(T, S, N, N) Bartlett factors A of ``CW_N(n_s, I)`` for each trial's streams and
     each span length n_s (all >= 1): ``A A^H`` is distributed as the sum of n_s outer
     products of independent CN(0, I) vectors (Goodman 1963; Bartlett decomposition).
-
-    Per trial, one call for the gamma variates (S, N) and one for the normals
-    (E, 2); the arithmetic is batched over trials.
+    The arithmetic is batched over trials.
     """
     n = int(elements)
-    gam, z, (si, ii, jj) = _draws(gens, lengths, n)
+    gam, z, (si, ii, jj) = _draws(streams, lengths, n)
     a = np.zeros(gam.shape + (n,), dtype=complex)
     z *= np.sqrt(0.5)
     a[:, si, ii, jj] = z.view(np.complex128)[..., 0]
@@ -159,7 +182,7 @@ def bartlett_factors(gens: Sequence[np.random.Generator], lengths: np.ndarray,
     return a
 
 
-def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
+def span_sums(covariance: np.ndarray, streams: DrawStreams,
               lengths: np.ndarray, cumulative: bool = False,
               scratch: dict | None = None) -> np.ndarray:
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
@@ -173,24 +196,19 @@ def span_sums(covariance: np.ndarray, gens: Sequence[np.random.Generator],
     compiled path reuses from call to call (the result is then a view into it, valid
     until the next call with the same dict)."""
     r = np.asarray(covariance)
-    if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] not in (1, len(gens)):
-        raise ValueError(f"covariance must be (T, N, N) with T = {len(gens)} generators, "
+    if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] not in (1, len(streams)):
+        raise ValueError(f"covariance must be (T, N, N) with T = {len(streams)} trials, "
                          f"or (1, N, N) shared by all, got {r.shape}")
     chol = np.linalg.cholesky(r)                                   # (T or 1, N, N)
     n = r.shape[-1]
     if _kernels.compiled():
-        gam, z, (si, ii, jj) = _draws(gens, lengths, n, scratch)
+        gam, z, (si, ii, jj) = _draws(streams, lengths, n, scratch)
         counts = np.bincount(si, minlength=len(lengths))
-        out = scratch_array(scratch, "sums", (len(gens), len(lengths), n, n), complex)
+        out = scratch_array(scratch, "sums", (len(streams), len(lengths), n, n), complex)
         return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative, out=out)
-    g = chol[:, None] @ bartlett_factors(gens, lengths, n)
+    g = chol[:, None] @ bartlett_factors(streams, lengths, n)
     spans = g @ np.conj(np.swapaxes(g, -1, -2))
     return np.cumsum(spans, axis=1) if cumulative else spans
-
-
-def _trial_generators(seed: int, trials: np.ndarray) -> list[np.random.Generator]:
-    # Generator(PCG64(SeedSequence(seed, spawn_key=(i, 2)))) per trial, hashed together
-    return trial_generators(int(seed), trials, _DRAWN_KEY)
 
 
 class _Span:
@@ -237,7 +255,7 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
             return r if len(r) == 1 else r[lo:hi]
 
         scratch: dict = {}                 # buffers reused by every group of this batch
-        gens = _trial_generators(batch.seed, batch.trial_indices)
+        streams = DrawStreams(batch.seed, batch.trial_indices)
         lengths = np.diff(cuts)
         plans = []
         for i, p in cov:
@@ -257,10 +275,10 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
             hi = min(t_, lo + group)
             t0 = time.perf_counter()
             if only_growing:     # running totals straight from the draw: total[s] = spans 0..s
-                total = span_sums(rows(lo, hi), gens[lo:hi], lengths, cumulative=True,
+                total = span_sums(rows(lo, hi), streams[lo:hi], lengths, cumulative=True,
                                   scratch=scratch)
             else:
-                spans = span_sums(rows(lo, hi), gens[lo:hi], lengths)  # (G, S, N, N)
+                spans = span_sums(rows(lo, hi), streams[lo:hi], lengths)  # (G, S, N, N)
                 if growing:
                     total = np.cumsum(spans, axis=1)
             shared += time.perf_counter() - t0

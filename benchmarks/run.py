@@ -20,9 +20,16 @@ broadside at 0 dB, training on interference plus noise):
   per snapshot), sliding-window SMI and NLMS: snapshots per second, and peak memory
   (tracemalloc peak of traced allocations, numpy's included, during the run; the
   process's maxrss is reported beside it). One trial is one chunk: one thread.
-* Floors: the unavoidable work with the same libraries in the same run. W1: drawing the
-  samples' random numbers, one batched covariance accumulation and the batched solves.
-  W2: drawing the samples' random numbers (per-trial generators, as the product).
+* Floors: the unavoidable work with the same libraries in the same run; the random
+  numbers come from adapt's own counter-based generator (:mod:`adapt.normals`, the
+  fastest these libraries have; numpy's ``Generator.standard_normal`` is about 5x
+  slower). W1: the samples' normals, one batched covariance accumulation and the batched
+  solves. W2, per processor: the samples' normals, then the snapshots formed and the
+  bare recursion (one LMS, NLMS or RLS step per snapshot, nothing recorded or scored),
+  done two ways: a minimal compiled loop written in the benchmark (numba; without it,
+  the draws only, labelled so), and adapt's own compiled kernels called directly,
+  without the engine; the floor is the faster of the two in the run. The draws alone
+  are printed too.
 
 Threads: the product runs its trial chunks on every usable core by default (its
 executor's default), so the floors run on the same number of threads (trials split
@@ -189,10 +196,11 @@ def w1_reference(trials: int) -> dict:
 
 
 def w1_floor(trials: int, group: int = 128, threads: int = 1) -> dict:
-    """Unavoidable work of a sample-based W1 run: per-trial generator draws of the
-    samples' random numbers, one batched covariance accumulation (window sums at every
+    """Unavoidable work of a sample-based W1 run: the samples' normals (adapt's own
+    counter-based generator, :mod:`adapt.normals`), one batched covariance accumulation (window sums at every
     checkpoint), the batched solves (two loadings x seven checkpoints per trial); on
     ``threads`` threads, as the product runs."""
+    from adapt import normals
     jam, look, p, _ = _plain_truth()
     k_max = W1_CHECKPOINTS[-1]
     cps = np.array(W1_CHECKPOINTS)
@@ -202,8 +210,7 @@ def w1_floor(trials: int, group: int = 128, threads: int = 1) -> dict:
         for lo in range(first, last, group):
             g_ = min(group, last - lo)
             z = np.empty((g_, k_max, N + len(jam), 2))
-            for t in range(g_):
-                np.random.Generator(np.random.PCG64([SEED, lo + t])).standard_normal(out=z[t])
+            normals.fill(normals.stream_keys(SEED, range(lo, lo + g_), 1), 0, z.reshape(g_, -1))
             zc = z.view(np.complex128)[..., 0]
             x = zc[..., :N] + zc[..., N:] @ (np.sqrt(p) * jam)
             # contiguous operands so that every product is a BLAS call
@@ -275,19 +282,158 @@ def w2_reference(trials: int, snapshots: int, spec: str) -> dict:
             "median_trial_seconds": float(np.median(per_trial))}
 
 
-def w2_floor(trials: int, snapshots: int, threads: int = 1) -> dict:
-    """Drawing the samples' random numbers with per-trial generators: noise (K, N) and
-    seven source waveforms (K,) per trial, complex, into reused buffers; on ``threads``
-    threads, as the product runs."""
-    sources = len(JAMMER_AZIMUTHS) + 1
+_FLOOR_KERNEL = None
+
+
+def _floor_kernel():
+    """The bare recursions of W2 as one compiled loop per trial (numba; None without
+    it): form each snapshot from its normals (noise and seven sources), then one LMS,
+    NLMS or RLS step, nothing else (no scores, no recorded weights)."""
+    global _FLOOR_KERNEL
+    if _FLOOR_KERNEL is not None:
+        return _FLOOR_KERNEL
+    try:
+        import numba
+    except ImportError:
+        return None
+
+    @numba.njit(nogil=True, cache=False)
+    def recurse(z, s, amp, steer, kind, mu, w, pm):
+        # z (G, K*N*2) noise normals, s (G, J+1, K*2) source normals (wanted last),
+        # amp (J+1,) amplitudes, steer (J+1, N); w (G, N) and pm (G, N, N) states
+        g_, j1, _ = s.shape
+        n = steer.shape[1]
+        k_ = z.shape[1] // (2 * n)
+        x = np.empty(n, dtype=np.complex128)
+        pi = np.empty(n, dtype=np.complex128)
+        for t in range(g_):
+            for k in range(k_):
+                for i in range(n):
+                    x[i] = complex(z[t, 2 * (k * n + i)], z[t, 2 * (k * n + i) + 1]) * 0.7071067811865476
+                d = 0j
+                for j in range(j1):
+                    e = complex(s[t, j, 2 * k], s[t, j, 2 * k + 1]) * amp[j]
+                    for i in range(n):
+                        x[i] += e * steer[j, i]
+                    d = e
+                y = 0j
+                for i in range(n):
+                    y += w[t, i].conjugate() * x[i]
+                err = (d - y).conjugate()
+                if kind == 2:                                   # RLS, lambda 1
+                    den = 1.0
+                    for i in range(n):
+                        acc = 0j
+                        for m in range(n):
+                            acc += pm[t, i, m] * x[m]
+                        pi[i] = acc
+                    for i in range(n):
+                        den += (x[i].conjugate() * pi[i]).real
+                    for i in range(n):
+                        w[t, i] += pi[i] / den * err
+                    for i in range(n):
+                        for m in range(n):
+                            pm[t, i, m] -= pi[i] * pi[m].conjugate() / den
+                else:
+                    step = mu
+                    if kind == 1:                               # NLMS
+                        p = 0.0
+                        for i in range(n):
+                            p += x[i].real ** 2 + x[i].imag ** 2
+                        step = mu / (1e-6 + p)
+                    for i in range(n):
+                        w[t, i] += step * x[i] * err
+
+    _FLOOR_KERNEL = recurse
+    return recurse
+
+
+def w2_floor(trials: int, snapshots: int, spec: str | None = None, threads: int = 1,
+             group: int = 8) -> dict:
+    """The unavoidable work of W2 on ``threads`` threads (trials split evenly): the
+    samples' normals (noise and seven source waveforms per trial, from adapt's own
+    counter-based generator, :mod:`adapt.normals`, the fastest one these libraries
+    have) and, with numba present and ``spec`` given, the bare recursion (the snapshots
+    formed and one LMS, NLMS or RLS step each, in a minimal compiled loop written here);
+    without numba, or ``spec`` None, the draws only."""
+    from adapt import normals
+    jam, look, p, r_in = _plain_truth()
+    steer = np.vstack([jam, look[None, :]])
+    amp = np.array([np.sqrt(p)] * len(jam) + [1.0])
+    mu = 0.1 / np.real(np.trace(r_in + np.outer(look, look.conj())))
+    kernel = _floor_kernel() if spec else None
+    kind = {"lms": 0, "nlms": 1, "rls": 2}.get(spec, 0)
+    step = 0.05 if spec == "nlms" else mu
+    if kernel is not None:          # compile outside the timing
+        kernel(np.zeros((1, 2 * N)), np.zeros((1, len(amp), 2)), amp, steer, kind, step,
+               np.zeros((1, N), complex), np.zeros((1, N, N), complex))
 
     def work(first: int, last: int) -> None:
-        z = np.empty((snapshots, N, 2))
-        s = np.empty((snapshots, 2))
-        for t in range(first, last):
-            np.random.Generator(np.random.PCG64([SEED, t, 0])).standard_normal(out=z)
-            for j in range(sources):
-                np.random.Generator(np.random.PCG64([SEED, t, j + 1])).standard_normal(out=s)
+        z = np.empty((group, snapshots * N * 2))
+        s = np.empty((group, len(amp), snapshots * 2))
+        for lo in range(first, last, group):
+            g_ = min(group, last - lo)
+            trials_ = range(lo, lo + g_)
+            normals.fill(normals.stream_keys(SEED, trials_, 1, 0), 0, z[:g_])
+            for j in range(len(amp)):
+                s_j = np.empty((g_, snapshots * 2))
+                normals.fill(normals.stream_keys(SEED, trials_, 1, j + 1), 0, s_j)
+                s[:g_, j] = s_j
+            if kernel is not None:
+                w = np.tile(look / N, (g_, 1))
+                pm = np.tile(np.eye(N, dtype=complex), (g_, 1, 1))
+                kernel(z[:g_], s[:g_], amp, steer, kind, step, w, pm)
+
+    t0 = time.perf_counter()
+    _on_threads(work, trials, threads)
+    return {"seconds": time.perf_counter() - t0, "threads": threads,
+            "recursion": kernel is not None}
+
+
+def w2_floor_kernels(trials: int, snapshots: int, spec: str, threads: int = 1,
+                     group: int = 32, block: int = 512) -> dict | None:
+    """The same unavoidable work done with adapt's own compiled kernels called directly,
+    without the engine (no scene, scores, recorded weights or checkpoints): per block,
+    the seven waveforms' normals, one pass forming noise, sources and data
+    (``noisy_sources``), one recursion pass (``lms_block`` / ``rls_block``). None
+    without the compiled kernels."""
+    from adapt import _kernels, normals
+    if not _kernels.compiled():
+        return None
+    jam, look, p, r_in = _plain_truth()
+    mu = 0.1 / np.real(np.trace(r_in + np.outer(look, look.conj())))
+    jam_steer = np.ascontiguousarray(jam[None].astype(complex))
+    look_steer = look[None, :].astype(complex)
+
+    def work(first: int, last: int) -> None:
+        for lo in range(first, last, group):
+            g_ = min(group, last - lo)
+            trials_ = range(lo, lo + g_)
+            noise = normals.stream_keys(SEED, trials_, 1, 0)
+            keys = [normals.stream_keys(SEED, trials_, 1, j + 1) for j in range(len(jam) + 1)]
+            wc = np.tile(look / N, (g_, 1)).astype(complex)
+            pm = np.tile(np.eye(N, dtype=complex), (g_, 1, 1))
+            bufs: dict = {}
+            for start in range(0, snapshots, block):
+                b = min(block, snapshots - start)
+                if b not in bufs:          # one set of buffers per block length
+                    bufs[b] = (np.empty((g_, b, N), complex), np.empty((g_, b, N), complex),
+                               np.empty((g_, b, len(jam)), complex), np.empty((g_, b, 2)))
+                inter, x, env, s = bufs[b]
+                for j in range(len(jam)):
+                    normals.fill(keys[j], 2 * start, s.reshape(g_, -1))
+                    env[:, :, j] = s.view(complex)[..., 0] * np.sqrt(p / 2)
+                normals.fill(keys[-1], 2 * start, s.reshape(g_, -1))
+                ref = s.view(complex)[..., 0] * np.sqrt(0.5)
+                _kernels.noisy_sources(noise, start, np.sqrt(0.5), env, jam_steer, ref,
+                                       look_steer, inter, x)
+                marks = np.array([b - 1])
+                if spec == "rls":
+                    _kernels.rls_block(pm, wc, x, ref, 1.0, start, marks)
+                elif spec == "nlms":
+                    _kernels.lms_block(wc, x, marks, gain=None, desired=ref, step=0.05, eps=1e-6)
+                else:
+                    _kernels.lms_block(wc, x, marks, gain=mu, desired=ref)
 
     t0 = time.perf_counter()
     _on_threads(work, trials, threads)
@@ -478,18 +624,26 @@ def _run_w1(z: dict, out: dict, say) -> None:
 
 def _run_w2(z: dict, out: dict, say) -> None:
     t2, k2, tr, th = z["w2_trials"], z["w2_snapshots"], z["w2_reference_trials"], z["threads"]
-    w2 = {"floor": _best(w2_floor, 2, t2, k2, th), "floor_1thread": _best(w2_floor, 2, t2, k2, 1),
-          "processors": {}}
-    floor, floor1 = w2["floor"]["seconds"], w2["floor_1thread"]["seconds"]
+    w2 = {"draws": _best(w2_floor, 2, t2, k2, None, th), "processors": {}}
     say(f"\nW2 recursive ({t2} trials x {k2} snapshots; product and floor on {th} "
         f"thread(s)); reference timed on {tr} trials and scaled x{t2 / tr:g}")
-    say(f"  floor (random draws)     {floor:9.3f} s (1 thread {floor1:.3f} s)")
+    say(f"  random draws alone        {w2['draws']['seconds']:9.3f} s")
     for spec in W2_SPECS:
+        loop = _best(w2_floor, 2, t2, k2, spec, th)
+        loop1 = _best(w2_floor, 2, t2, k2, spec, 1)
+        kern = w2_floor_kernels(t2, k2, spec, th) and _best(w2_floor_kernels, 2, t2, k2, spec, th)
+        kern1 = kern and _best(w2_floor_kernels, 2, t2, k2, spec, 1)
+        # the floor: the faster way of doing the unavoidable work in this run
+        fl = min([loop] + ([kern] if kern else []), key=lambda r: r["seconds"])
+        fl1 = min([loop1] + ([kern1] if kern1 else []), key=lambda r: r["seconds"])
+        floor, floor1 = fl["seconds"], fl1["seconds"]
         prod = _best(w2_product, 2, t2, k2, [spec], th)
         prod1 = w2_product(t2, k2, [spec], 1)
         ref = _best(w2_reference, 3, tr, k2, spec)
         ref_scaled = ref["seconds"] * t2 / tr
-        rec = {"product": prod, "product_1thread": prod1, "reference_measured": ref,
+        rec = {"floor": fl, "floor_1thread": fl1, "floor_loop": loop, "floor_loop_1thread": loop1,
+               "floor_kernels": kern, "floor_kernels_1thread": kern1,
+               "product": prod, "product_1thread": prod1, "reference_measured": ref,
                "reference_scaled_seconds": ref_scaled,
                "speedup": ref_scaled / prod["seconds"],
                "speedup_1thread": ref_scaled / prod1["seconds"],
@@ -503,15 +657,16 @@ def _run_w2(z: dict, out: dict, say) -> None:
             f"processor's own {prod['processor_seconds'][spec]:.3f} s) | reference "
             f"{ref_scaled:7.1f} s (measured {ref['seconds']:.2f} s) | speedup "
             f"{rec['speedup']:5.1f}x {_verdict(rec['target_speedup_met'])} (1 thread "
-            f"{rec['speedup_1thread']:.1f}x) | product/floor {rec['over_floor']:.2f} "
+            f"{rec['speedup_1thread']:.1f}x) | floor {floor:.3f} s (1 thread {floor1:.3f} s; "
+            f"plain loop {loop['seconds']:.3f} s{'' if loop['recursion'] else ' draws only'}, "
+            f"adapt's kernels alone {kern['seconds'] if kern else float('nan'):.3f} s) | "
+            f"product/floor {rec['over_floor']:.2f} "
             f"{_verdict(rec['target_floor_met'])} (1 thread {rec['over_floor_1thread']:.2f}) "
             f"| reference/floor {rec['reference_over_floor']:.1f}")
     both = w2_product(t2, k2, W2_SPECS, th)
     w2["all_three"] = both
-    w2["all_three_over_floor"] = both["seconds"] / floor
     say(f"  all three on one stream {both['seconds']:8.3f} s, processors' own "
-        + ", ".join(f"{k} {v:.2f} s" for k, v in both["processor_seconds"].items())
-        + f"; product/floor {w2['all_three_over_floor']:.2f}")
+        + ", ".join(f"{k} {v:.2f} s" for k, v in both["processor_seconds"].items()))
     out["w2"] = w2
     out["targets"].update(
         {**{f"w2_{s}_speedup_20x": w2["processors"][s]["target_speedup_met"] for s in W2_SPECS},

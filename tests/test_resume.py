@@ -109,6 +109,21 @@ def test_store_of_another_run_is_refused(tmp_path):
         compare(scene, seed=6, chunk=5, store=tmp_path)
 
 
+def test_chunks_of_an_older_stream_definition_are_refused(tmp_path):
+    # a plan written before the random streams were versioned (or under another
+    # version) must not be finished with today's streams: its trials would mix two
+    # realisations
+    scene = parse_scene(QUICK)
+    compare(scene, chunk=5, store=tmp_path)
+    plan_file = tmp_path / "plan.json"
+    plan = json.loads(plan_file.read_text())
+    assert plan["streams"] == "counter-normals-1"
+    del plan["streams"]
+    plan_file.write_text(json.dumps(plan))
+    with pytest.raises(InputError, match="version of the random streams"):
+        compare(scene, chunk=5, store=tmp_path)
+
+
 def test_sizing_interrupted_and_resumed_is_identical(tmp_path):
     scene = parse_scene(QUICK)
     calls = []

@@ -107,9 +107,9 @@ def test_span_sums_mean_is_n_times_covariance():
     m = rng.standard_normal((3, 3)) + 1j * rng.standard_normal((3, 3))
     r = m @ m.conj().T + np.eye(3)
     trials = 4000
-    gens = [np.random.default_rng([9, t]) for t in range(trials)]
+    streams = wishart.DrawStreams(9, range(trials))
     lengths = np.array([2, 7])                      # one span below N = 3, one above
-    s = wishart.span_sums(np.broadcast_to(r, (trials, 3, 3)), gens, lengths)
+    s = wishart.span_sums(np.broadcast_to(r, (trials, 3, 3)), streams, lengths)
     for i, n in enumerate(lengths):
         se = np.sqrt(n * np.outer(np.diag(r).real, np.diag(r).real) / trials)
         assert np.all(np.abs(s[:, i].mean(0) - n * r) < 5 * se), n
@@ -117,7 +117,7 @@ def test_span_sums_mean_is_n_times_covariance():
 
 
 def test_drawn_results_do_not_depend_on_the_batch():
-    # trial i draws only from SeedSequence(seed, spawn_key=(i, 2)): trials 5..9 of a
+    # trial i draws only from SeedSequence(seed, spawn_key=(i, 2, ...)): trials 5..9 of a
     # batch of ten equal a batch holding those five alone
     sc = _scene()
     specs = ["smi", "smi loading_db=10", "smi window=sliding length=6"]
@@ -240,8 +240,7 @@ def test_compiled_wishart_spans_match_numpy(monkeypatch):
     out = {}
     for mode in ("numba", "numpy"):
         monkeypatch.setenv("ADAPT_KERNELS", mode)
-        gens = [np.random.default_rng([2, t]) for t in range(7)]
-        out[mode] = wishart.span_sums(r, gens, lengths)
+        out[mode] = wishart.span_sums(r, wishart.DrawStreams(2, range(7)), lengths)
     scale = np.abs(out["numpy"]).max(axis=(-1, -2), keepdims=True)
     assert np.max(np.abs(out["numba"] - out["numpy"]) / scale) < 1e-12
 
