@@ -408,6 +408,17 @@ def _define():
             cur = mix64(u + m * golden)
             m += np.uint64(1)
 
+    @njit(cache=True, nogil=True, inline="always")
+    def first_try(u, accept, table):
+        # the ziggurat's first test for one word: the normal, or NaN when rejected
+        # (the caller then runs resolve)
+        idx = np.intp(u & np.uint64(255))
+        rabs = (u >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
+        if rabs < accept[idx]:
+            x = float(rabs) * table[idx]
+            return -x if (u >> np.uint64(8)) & np.uint64(1) else x
+        return np.nan
+
     @njit(cache=True, nogil=True)
     def normals_kernel(keys, start, out, accept, scale, density, r):
         # out[t, i] <- normal (start + i) of stream t (adapt.normals)
@@ -419,13 +430,8 @@ def _define():
             for i in range(m_):
                 u = mix64(s)
                 s += gamma
-                idx = np.intp(u & np.uint64(255))
-                rabs = (u >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
-                if rabs < accept[idx]:
-                    x = float(rabs) * scale[idx]
-                    out[t, i] = -x if (u >> np.uint64(8)) & np.uint64(1) else x
-                else:
-                    out[t, i] = resolve(u, accept, scale, density, r)
+                x = first_try(u, accept, scale)
+                out[t, i] = x if x == x else resolve(u, accept, scale, density, r)
 
     @njit(cache=True, nogil=True)
     def noisy_sources_kernel(keys, start, scale, env, steer, env_d, steer_d, inter, data,
@@ -462,13 +468,8 @@ def _define():
                 for q in range(2 * n):
                     u = mix64(s)
                     s += gamma
-                    idx = np.intp(u & np.uint64(255))
-                    rabs = (u >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
-                    if rabs < accept[idx]:
-                        x = float(rabs) * table[idx]
-                        zs[q] = -x if (u >> np.uint64(8)) & np.uint64(1) else x
-                    else:
-                        zs[q] = resolve(u, accept, table, density, r)
+                    x = first_try(u, accept, table)
+                    zs[q] = x if x == x else resolve(u, accept, table, density, r)
                 for i in range(n):
                     ar[i] = zs[2 * i] * scale
                     ai[i] = zs[2 * i + 1] * scale
@@ -507,13 +508,8 @@ def _define():
                     un = mix64(w + (np.uint64(2) * attempt + np.uint64(1)) * step)
                     uu = mix64(w + (np.uint64(2) * attempt + np.uint64(2)) * step)
                     attempt += np.uint64(1)
-                    idx = np.intp(un & np.uint64(255))
-                    rabs = (un >> np.uint64(9)) & np.uint64(0xFFFFFFFFFFFFF)
-                    if rabs < accept[idx]:
-                        x = float(rabs) * table[idx]
-                        if (un >> np.uint64(8)) & np.uint64(1):
-                            x = -x
-                    else:
+                    x = first_try(un, accept, table)
+                    if x != x:
                         x = resolve(un, accept, table, density, r)
                     v = 1.0 + c * x
                     if v <= 0.0:
