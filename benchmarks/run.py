@@ -42,9 +42,12 @@ Targets (PASS/MISS printed): W1 >= 20x its reference; W2 >= 20x its reference an
 
 Timing: wall-clock seconds; every run keeps the fastest of its repeats (the least
 disturbed by other work on a shared machine; every time is in the JSON): the W1
-drawn-covariance product 5 (it lasts a tenth of a second), other products and floors
+drawn-covariance product 9 on every core and 3 on one (it lasts a tenth of a second;
+its repeats are spread before, between and after the two W1 reference runs, so that a
+few seconds of load from elsewhere cannot catch them all), other products and floors
 2-3, the references 2 (W1, in full) and 3 (W2, on 8 trials per processor, scaled
-linearly; the median trial time is recorded beside them).
+linearly, before, between and after the product's two runs; the median trial time is
+recorded beside them).
 
 The run starts by measuring how many cores' worth of plain Python work the machine
 delivers with one process per core (``core_scaling``: 2.0 on an idle 2-core machine;
@@ -142,12 +145,15 @@ def _timed(fn, *args, **kwargs):
     return time.perf_counter() - t0, out
 
 
+def _fastest(runs: list) -> dict:
+    """The fastest of ``runs`` (dicts with ``seconds``: the least disturbed by other work
+    on the machine), with every time listed."""
+    return dict(min(runs, key=lambda r: r["seconds"]), all_seconds=[r["seconds"] for r in runs])
+
+
 def _best(fn, repeats: int, *args, **kwargs) -> dict:
-    """Run ``fn`` (returning a dict with ``seconds``) ``repeats`` times; keep the fastest
-    run (the least disturbed by other work on the machine) and list every time."""
-    runs = [fn(*args, **kwargs) for _ in range(max(1, repeats))]
-    best = min(runs, key=lambda r: r["seconds"])
-    return dict(best, all_seconds=[r["seconds"] for r in runs])
+    """Run ``fn`` (returning a dict with ``seconds``) ``repeats`` times; the fastest run."""
+    return _fastest([fn(*args, **kwargs) for _ in range(max(1, repeats))])
 
 
 # ----------------------------------------------------------------------------- W1
@@ -587,10 +593,19 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
 
 def _run_w1(z: dict, out: dict, say) -> None:
     t1, th = z["w1_trials"], z["threads"]
-    w1 = {"product_covariance": _best(w1_product, 5, t1, "covariance", th),
-          "product_covariance_1thread": _best(w1_product, 2, t1, "covariance", 1),
+    # the drawn-covariance product lasts a tenth of a second: its repeats are spread
+    # over the references' seconds (before, between and after them), so that a few
+    # seconds of other load on the shared machine cannot catch all of them
+    runs = {"cov": [], "cov1": [], "ref": []}
+    for i in range(3):
+        runs["cov"] += [w1_product(t1, "covariance", th) for _ in range(3)]
+        runs["cov1"].append(w1_product(t1, "covariance", 1))
+        if i < 2:
+            runs["ref"].append(w1_reference(t1))
+    w1 = {"product_covariance": _fastest(runs["cov"]),
+          "product_covariance_1thread": _fastest(runs["cov1"]),
           "product_samples": _best(w1_product, 2, t1, "samples", th),
-          "reference": _best(w1_reference, 2, t1), "floor": _best(w1_floor, 2, t1, 128, th),
+          "reference": _fastest(runs["ref"]), "floor": _best(w1_floor, 2, t1, 128, th),
           "floor_1thread": _best(w1_floor, 2, t1, 128, 1)}
     ref1 = w1["reference"]["seconds"]
     w1["speedup"] = ref1 / w1["product_covariance"]["seconds"]
@@ -637,9 +652,13 @@ def _run_w2(z: dict, out: dict, say) -> None:
         fl = min([loop] + ([kern] if kern else []), key=lambda r: r["seconds"])
         fl1 = min([loop1] + ([kern1] if kern1 else []), key=lambda r: r["seconds"])
         floor, floor1 = fl["seconds"], fl1["seconds"]
-        prod = _best(w2_product, 2, t2, k2, [spec], th)
+        # reference repeats (a tenth of a second each) spread around the product's runs
+        refs, prods = [w2_reference(tr, k2, spec)], []
+        for _ in range(2):
+            prods.append(w2_product(t2, k2, [spec], th))
+            refs.append(w2_reference(tr, k2, spec))
+        prod, ref = _fastest(prods), _fastest(refs)
         prod1 = w2_product(t2, k2, [spec], 1)
-        ref = _best(w2_reference, 3, tr, k2, spec)
         ref_scaled = ref["seconds"] * t2 / tr
         rec = {"floor": fl, "floor_1thread": fl1, "floor_loop": loop, "floor_loop_1thread": loop1,
                "floor_kernels": kern, "floor_kernels_1thread": kern1,
