@@ -705,14 +705,25 @@ def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
     (the same operations in the same order)."""
     from .normals import ACCEPT, SCALE, DENSITY, TAIL_START
     t_, b_, n = inter.shape
-    if env.shape[:2] != (t_, b_) or steer.shape[1:] != (env.shape[2], n) \
-            or keys.shape != (t_, 2) or not inter.flags.c_contiguous:
-        raise ValueError("noisy_sources: shapes do not match")
-    _build()
     if env_d is None:
         env_d = np.zeros((t_, 0), dtype=complex)
         steer_d = np.zeros((1, n), dtype=complex)
         data = inter
+    for name, a in (("inter", inter), ("data", data)):
+        if a.shape != (t_, b_, n) or a.dtype != np.complex128 or not a.flags.c_contiguous \
+                or not a.flags.writeable:
+            raise ValueError(f"{name} must be a writable contiguous complex (T, B, N) array "
+                             f"{(t_, b_, n)}, got {a.dtype} {a.shape}")
+    if env.ndim != 3 or env.shape[:2] != (t_, b_) or steer.ndim != 3 \
+            or steer.shape[0] not in (1, t_) or steer.shape[1:] != (env.shape[2], n) \
+            or env_d.ndim != 2 or env_d.shape[0] != t_ or env_d.shape[1] not in (0, b_) \
+            or steer_d.ndim != 2 or steer_d.shape[0] not in (1, t_) or steer_d.shape[1] != n \
+            or keys.shape != (t_, 2) or keys.dtype != np.uint64:
+        raise ValueError(f"noisy_sources: need keys (T, 2) uint64, env (T, B, J), steer "
+                         f"(T or 1, J, N), env_d (T, B), steer_d (T or 1, N) for (T, B, N) = "
+                         f"{(t_, b_, n)}; got {keys.shape}, {env.shape}, {steer.shape}, "
+                         f"{env_d.shape}, {steer_d.shape}")
+    _build()
     _NOISY(keys, int(start), float(scale), np.ascontiguousarray(env, dtype=complex),
            np.ascontiguousarray(steer, dtype=complex), np.ascontiguousarray(env_d, dtype=complex),
            np.ascontiguousarray(steer_d, dtype=complex), inter, data, ACCEPT, SCALE, DENSITY,

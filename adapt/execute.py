@@ -6,7 +6,7 @@ parts are merged in trial order. One executor, :func:`run_chunks`, serves three 
 
 * in this process: with ``threads=1`` chunks run one after another; with more
   (default: every usable core, :func:`usable_cores`) they run on a pool of threads
-  (:func:`run_on_threads`). The heavy work inside a chunk (numpy random fills, batched
+  (:func:`run_on_threads`). The heavy work inside a chunk (the random fills, batched
   matrix products and factorisations, the numba kernels compiled ``nogil``) releases
   the GIL, so the threads use the cores. Processors keep per-batch state on themselves,
   so every chunk runs on its own fresh copy (``copy.deepcopy`` of the given processors,
@@ -124,7 +124,7 @@ _CHUNK_NAME = re.compile(r"^chunk-(\d{9})-(\d{6})\.npz$")
 # --------------------------------------------------------------------------- sizes
 def block_size(elements: int, total: int) -> int:
     """Snapshots per block: about ``BLOCKS_PER_STREAM`` blocks per stream (progress
-    steps; fewer, longer blocks mean fewer per-trial generator calls, each holding the
+    steps; fewer, longer blocks mean less Python work per snapshot, which holds the
     GIL, so threads scale better), at least 64, at most ``2**16 / N`` (memory) and the
     stream length. Depends on nothing else, so the block boundaries - and hence every
     rounding - are the same for any chunking."""
@@ -271,6 +271,11 @@ def run_chunk(plan: dict, first: int, count: int) -> dict[str, np.ndarray]:
     :func:`part_arrays` plus ``"warnings"`` (the library warnings raised, as text)."""
     from .processors import parse_spec
     from .scenefile import parse_scene
+    from .streams import STREAMS
+    made = plan.get("streams", "numpy-generator")
+    if made != STREAMS:           # e.g. a cluster worker of another adapt version
+        raise RuntimeError(f"this plan's random streams are {made!r}; this adapt makes "
+                           f"{STREAMS!r}: run every worker on the same adapt version")
     scene = parse_scene(plan["scene"])
     procs = [parse_spec(s) for s in plan["specs"]]
     with warnings.catch_warnings(record=True) as caught:
@@ -319,10 +324,14 @@ class ChunkStore:
                 stored = Plan.from_dict(json.loads(path.read_text(encoding="utf-8")))
             except (ValueError, KeyError, TypeError) as exc:
                 raise InputError(f"the stored plan is unreadable ({exc})", file=str(path)) from None
+            if stored.streams != plan.streams:
+                raise InputError(f"the finished chunks here were made by an adapt version "
+                                 f"whose random streams are {stored.streams!r}; this one "
+                                 f"makes {plan.streams!r}, so the run cannot be finished "
+                                 f"here: start a new run", file=str(self.folder))
             if not stored.same_work(plan):
                 raise InputError("the finished chunks here belong to a different run (scene, "
-                                 "processors, checkpoints, trials, seed or the version of "
-                                 "the random streams differ)",
+                                 "processors, checkpoints, trials or seed differ)",
                                  file=str(self.folder))
             return stored
         io.write_json(path, plan.as_dict())

@@ -152,7 +152,7 @@ def _draws(streams: DrawStreams, lengths: np.ndarray, n: int, scratch: dict | No
     if n < 1:
         raise ValueError(f"elements must be >= 1, got {n}")
     if not isinstance(streams, DrawStreams):
-        raise ValueError("streams must be a wishart.DrawStreams")
+        raise TypeError(f"streams must be a wishart.DrawStreams, got {type(streams).__name__}")
     s_, t_ = len(lengths), len(streams)
     shape = np.maximum(lengths[:, None] - np.arange(n)[None, :], 0).astype(float)   # (S, N)
     # below-diagonal entries (s, i, j), j < i, in the first n_s columns only (rank n_s)

@@ -120,8 +120,11 @@ def test_chunks_of_an_older_stream_definition_are_refused(tmp_path):
     assert plan["streams"] == "counter-normals-1"
     del plan["streams"]
     plan_file.write_text(json.dumps(plan))
-    with pytest.raises(InputError, match="version of the random streams"):
+    with pytest.raises(InputError, match="random streams are 'numpy-generator'.*start a new run"):
         compare(scene, chunk=5, store=tmp_path)
+    # a worker (a Dask worker of another version, say) refuses such a plan too
+    with pytest.raises(RuntimeError, match="same adapt version"):
+        execute.run_chunk(plan, 0, 2)
 
 
 def test_sizing_interrupted_and_resumed_is_identical(tmp_path):

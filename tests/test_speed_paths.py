@@ -337,3 +337,23 @@ def test_size_command_draws_covariance(tmp_path, capsys):
                  "--no-progress", "--out", str(out)])
     assert code == 2
     assert "--draw" in capsys.readouterr().err
+
+
+def test_noisy_sources_refuses_mismatched_arrays():
+    # the compiled one-pass formation reads without bounds checks: every shape is
+    # checked first (a short wanted-source envelope once read past its end)
+    from adapt import _kernels, normals
+    t_, b_, n = 2, 5, 3
+    keys = normals.stream_keys(1, range(t_))
+    env = np.zeros((t_, b_, 2), complex)
+    steer = np.zeros((1, 2, n), complex)
+    good = dict(env_d=np.zeros((t_, b_), complex), steer_d=np.zeros((1, n), complex),
+                inter=np.empty((t_, b_, n), complex), data=np.empty((t_, b_, n), complex))
+    for name, bad in [("env_d", np.zeros((t_, b_ - 1), complex)),
+                      ("steer_d", np.zeros((1, n + 1), complex)),
+                      ("data", np.empty((t_, b_ + 1, n), complex)),
+                      ("inter", np.empty((t_, b_, n)))]:
+        args = dict(good, **{name: bad})
+        with pytest.raises(ValueError):
+            _kernels.noisy_sources(keys, 0, 1.0, env, steer, args["env_d"], args["steer_d"],
+                                   args["inter"], args["data"])

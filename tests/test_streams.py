@@ -129,23 +129,33 @@ def test_sample_covariance_converges_at_one_over_root_k():
     assert values.max() / values.min() < 1.15
 
 
-def rich_scene(**extra):
+def rich_scene(moving: bool = True, **extra):
+    """Every waveform kind, pulsing and hardware errors; ``moving``: one interferer
+    moves (the step-by-step path), else every source is fixed and the snapshots are
+    formed in one compiled pass when the kernels are on."""
     sources = [
         dict(WANTED, waveform={"kind": "chirp", "start": -0.2, "stop": 0.1, "period": 50}),
         {"name": "g", "role": "interferer", "azimuth": -30, "power_db": 20},
         {"name": "t", "role": "interferer", "azimuth": 50, "power_db": 25,
          "waveform": {"kind": "tone", "frequency": 0.07}, "pulsing": {"period": 20, "on": 7}},
-        {"name": "m", "role": "interferer", "azimuth": 10, "power_db": 15, "waveform": "qpsk",
-         "motion": {"azimuth_rate": 0.01}},
+        {"name": "m", "role": "interferer", "azimuth": 10, "power_db": 15, "waveform": "qpsk"},
+        {"name": "b", "role": "interferer", "azimuth": -55, "power_db": 18, "waveform": "bpsk"},
     ]
+    if moving:
+        sources[3]["motion"] = {"azimuth_rate": 0.01}
     return make_scene(sources, array={"errors": {"gain_db_rms": 0.5, "phase_deg_rms": 4,
                                                  "position_rms": 0.02}}, **extra)
 
 
-def test_recycled_blocks_hold_the_same_values():
+FIXED_WITH_ADC = dict(moving=False, receiver={"bits": 10, "full_scale_db": 35},
+                      training="interference")
+
+
+@pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
+def test_recycled_blocks_hold_the_same_values(kind):
     # recycle=True (the engine's way: buffers overwritten block after block) gives the
     # same numbers as fresh arrays, block by block, including a short last block
-    scene = rich_scene(trials=3, snapshots=301)
+    scene = rich_scene(trials=3, snapshots=301, **kind)
     for size in (7, 100):
         fresh = list(TrialBatch(scene).blocks(block=size))
         for b, r in zip(fresh, TrialBatch(scene).blocks(block=size, recycle=True)):
@@ -174,10 +184,11 @@ def test_same_seed_same_samples_different_seed_different():
                               TrialBatch(scene, seed=scene.seed + 1).element_gains)
 
 
-def test_trials_do_not_depend_on_the_batch():
+@pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
+def test_trials_do_not_depend_on_the_batch(kind):
     # trial i is drawn from its own seed: trials 3..5 drawn alone equal rows 3..5 of a
     # 10-trial batch, bit for bit (hardware errors, phases, noise and waveforms)
-    scene = rich_scene(trials=10, snapshots=200)
+    scene = rich_scene(trials=10, snapshots=200, **kind)
     whole = TrialBatch(scene).samples()
     part_batch = TrialBatch(scene, trials=3, first_trial=3)
     part = part_batch.samples()
@@ -186,8 +197,9 @@ def test_trials_do_not_depend_on_the_batch():
     assert np.array_equal(part_batch.covariance(), TrialBatch(scene).covariance()[3:6])
 
 
-def test_blocks_concatenate_bit_identically():
-    scene = rich_scene(trials=3, snapshots=301)
+@pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
+def test_blocks_concatenate_bit_identically(kind):
+    scene = rich_scene(trials=3, snapshots=301, **kind)
     once = TrialBatch(scene).samples()
     for size in (1, 7, 1000):
         blocks = list(TrialBatch(scene).blocks(block=size))
@@ -195,6 +207,24 @@ def test_blocks_concatenate_bit_identically():
         for name in ("data", "signal", "training", "reference"):
             joined = np.concatenate([getattr(b, name) for b in blocks], axis=1)
             assert np.array_equal(joined, getattr(once, name)), (size, name)
+
+
+@pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
+def test_compiled_and_numpy_streams_agree(kind, monkeypatch):
+    # the one-pass compiled formation (fixed sources) and the step-by-step path (moving)
+    # against the pure numpy path: the same numbers to rounding, and the parts add up
+    pytest.importorskip("numba")
+    scene = rich_scene(trials=3, snapshots=257, **kind)
+    got = {}
+    for mode in ("numba", "numpy"):
+        monkeypatch.setenv("ADAPT_KERNELS", mode)
+        got[mode] = TrialBatch(scene).samples()
+    a, b = got["numba"], got["numpy"]
+    for name in ("data", "signal", "training", "reference"):
+        x, y = getattr(a, name), getattr(b, name)
+        assert np.max(np.abs(x - y)) <= 1e-12 * np.max(np.abs(y)), name
+    if scene.receiver.bits is None:
+        np.testing.assert_allclose(a.signal + a.interference, a.data, rtol=0, atol=1e-12)
 
 
 def test_adding_a_jammer_leaves_noise_and_others_unchanged():
