@@ -1,6 +1,6 @@
 """Speed benchmark of adapt: the product beside plain reference code, in one run.
 
-    python benchmarks/run.py            # full sizes (about 10 minutes on 2 cores)
+    python benchmarks/run.py            # full sizes (about 6 minutes on 2 cores)
     python benchmarks/run.py --quick    # scaled-down smoke check (well under a minute)
     python benchmarks/run.py --only W1  # selected workloads only (repeatable)
     python benchmarks/run.py --threads 1  # product and floors on one thread
