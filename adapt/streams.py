@@ -315,7 +315,7 @@ class TrialBatch:
         d_idx = sc.desired_index
         moving = [i for i in sc.interferer_indices if sc.sources[i].motion is not None]
         fixed = [i for i in sc.interferer_indices if sc.sources[i].motion is None]
-        # (T, J, N): steering rows of the fixed interferers, one batched product per block
+        # (T, J, N): steering rows of the fixed interferers, added element by element
         fixed_a = np.stack([self.steering(i) for i in fixed], axis=1) if fixed else None
         desired_a = None if sc.sources[d_idx].motion is not None else self.steering(d_idx)
         rx = sc.receiver
