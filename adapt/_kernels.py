@@ -202,34 +202,20 @@ def _define():
                         s = v.imag
                         qr = ar[c]
                         qi = ai[c]
-                        if lam != 1.0:
-                            for r in range(n):
-                                hr = pr[c, r] * inv_lam - (ar[r] * qr + ai[r] * qi)
-                                hi = pm[c, r] * inv_lam - (ai[r] * qr - ar[r] * qi)
-                                pr[c, r] = hr
-                                pm[c, r] = hi
-                                br[r] += hr * u - hi * s
-                                bi[r] += hr * s + hi * u
-                        else:
-                            for r in range(n):
-                                hr = pr[c, r] - (ar[r] * qr + ai[r] * qi)
-                                hi = pm[c, r] - (ai[r] * qr - ar[r] * qi)
-                                pr[c, r] = hr
-                                pm[c, r] = hi
-                                br[r] += hr * u - hi * s
-                                bi[r] += hr * s + hi * u
+                        for r in range(n):     # (x 1.0 is exact: lambda 1 loses nothing)
+                            hr = pr[c, r] * inv_lam - (ar[r] * qr + ai[r] * qi)
+                            hi = pm[c, r] * inv_lam - (ai[r] * qr - ar[r] * qi)
+                            pr[c, r] = hr
+                            pm[c, r] = hi
+                            br[r] += hr * u - hi * s
+                            bi[r] += hr * s + hi * u
                 else:
                     for c in range(n):
                         qr = ar[c]
                         qi = ai[c]
-                        if lam != 1.0:
-                            for r in range(n):
-                                pr[c, r] = pr[c, r] * inv_lam - (ar[r] * qr + ai[r] * qi)
-                                pm[c, r] = pm[c, r] * inv_lam - (ai[r] * qr - ar[r] * qi)
-                        else:
-                            for r in range(n):
-                                pr[c, r] -= ar[r] * qr + ai[r] * qi
-                                pm[c, r] -= ai[r] * qr - ar[r] * qi
+                        for r in range(n):
+                            pr[c, r] = pr[c, r] * inv_lam - (ar[r] * qr + ai[r] * qi)
+                            pm[c, r] = pm[c, r] * inv_lam - (ai[r] * qr - ar[r] * qi)
                 if sym:
                     for c in range(n):
                         for r in range(c, n):

@@ -639,6 +639,8 @@ def _run_w1(z: dict, out: dict, say) -> None:
 
 def _run_w2(z: dict, out: dict, say) -> None:
     t2, k2, tr, th = z["w2_trials"], z["w2_snapshots"], z["w2_reference_trials"], z["threads"]
+    from adapt import _kernels
+    compiled = _kernels.compiled()         # else adapt's kernels cannot serve as a floor
     w2 = {"draws": _best(w2_floor, 2, t2, k2, None, th), "processors": {}}
     say(f"\nW2 recursive ({t2} trials x {k2} snapshots; product and floor on {th} "
         f"thread(s)); reference timed on {tr} trials and scaled x{t2 / tr:g}")
@@ -646,8 +648,8 @@ def _run_w2(z: dict, out: dict, say) -> None:
     for spec in W2_SPECS:
         loop = _best(w2_floor, 2, t2, k2, spec, th)
         loop1 = _best(w2_floor, 2, t2, k2, spec, 1)
-        kern = w2_floor_kernels(t2, k2, spec, th) and _best(w2_floor_kernels, 2, t2, k2, spec, th)
-        kern1 = kern and _best(w2_floor_kernels, 2, t2, k2, spec, 1)
+        kern = _best(w2_floor_kernels, 2, t2, k2, spec, th) if compiled else None
+        kern1 = _best(w2_floor_kernels, 2, t2, k2, spec, 1) if compiled else None
         # the floor: the faster way of doing the unavoidable work in this run
         fl = min([loop] + ([kern] if kern else []), key=lambda r: r["seconds"])
         fl1 = min([loop1] + ([kern1] if kern1 else []), key=lambda r: r["seconds"])
