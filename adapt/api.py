@@ -10,13 +10,13 @@
     result.evaluation.by_label("smi loading_db=10").loss_db       # (20, C) numpy array
     folder = write_run(result, "runs")                            # a new run folder
 
-Every function accepts a :class:`~adapt.scene.Scene` or a scene file path, and processor
+Every function accepts a :class:`~adapt.scene.model.Scene` or a scene file path, and processor
 specs as text (``"smi loading_db=10"``), mappings (``{"method": "smi", ...}``) or
 processor objects. Results are plain objects holding numpy arrays:
-:class:`~adapt.streams.TrialBatch` / :class:`~adapt.streams.Block` (samples),
+:class:`~adapt.streams.snapshots.TrialBatch` / :class:`~adapt.streams.snapshots.Block` (samples),
 :class:`~adapt.processors.ProcessorResult` (weights, outputs),
-:class:`~adapt.evaluate.Evaluation` (scores per processor, checkpoint and trial) and
-:class:`~adapt.compare.Comparison` (evaluation + summary metrics + table). Bad input
+:class:`~adapt.engine.evaluate.Evaluation` (scores per processor, checkpoint and trial) and
+:class:`~adapt.studies.compare.Comparison` (evaluation + summary metrics + table). Bad input
 raises :class:`adapt.errors.InputError` (SceneError, SpecError) with the same message
 the command line prints.
 """
@@ -25,19 +25,19 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Sequence
 
-from . import scores
-from .compare import Comparison, compare, write_compare_run
-from .runsettings import checkpoints_for, prepare_scene
-from .errors import InputError, SceneError, SpecError
-from .evaluate import Evaluation, ProcessorScores
-from .execute import evaluate as _evaluate
-from .processors import Processor, ProcessorResult, parse_spec, parse_specs, registry
-from .processors import run_processors as _run_processors
-from .processors import Context
-from .runs import read_run
-from .scene import Scene
-from .scenefile import dump_scene, load_scene, parse_scene
-from .streams import Block, TrialBatch
+from adapt.engine import scores
+from adapt.studies.compare import Comparison, compare, write_compare_run
+from adapt.engine.settings import checkpoints_for, prepare_scene
+from adapt.errors import InputError, SceneError, SpecError
+from adapt.engine.evaluate import Evaluation, ProcessorScores
+from adapt.engine.execute import evaluate as _evaluate
+from adapt.processors import Processor, ProcessorResult, parse_spec, parse_specs, registry
+from adapt.processors import run_processors as _run_processors
+from adapt.processors import Context
+from adapt.report.runfolder import read_run
+from adapt.scene.model import Scene
+from adapt.scene.files import dump_scene, load_scene, parse_scene
+from adapt.streams.snapshots import Block, TrialBatch
 
 __all__ = ["load_scene", "parse_scene", "dump_scene", "generate", "processors", "methods",
            "run", "evaluate", "compare", "write_run", "read_run", "size", "record", "verify",
@@ -112,7 +112,7 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
              tail: int = 256, draw: str = "samples", block: int | None = None,
              workers: int | None = None, scheduler: str | None = None,
              threads: int | None = None) -> Evaluation:
-    """Run and score processors (the Monte Carlo engine, :func:`adapt.execute.evaluate`):
+    """Run and score processors (the Monte Carlo engine, :func:`adapt.engine.execute.evaluate`):
     per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
     gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C).
     ``draw="covariance"`` is the drawn-covariance fast path, ``block`` the snapshots per
@@ -134,18 +134,18 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
 
 
 def size(scene, specs: Sequence | None = None, **options):
-    """Snapshot sizing sweep (as ``adapt size``): see :func:`adapt.sizing.size`. Returns
-    a :class:`adapt.sizing.Sizing` with per-processor points, the required snapshot
+    """Snapshot sizing sweep (as ``adapt size``): see :func:`adapt.studies.sizing.size`. Returns
+    a :class:`adapt.studies.sizing.Sizing` with per-processor points, the required snapshot
     counts with their uncertainty, and the theory beside the simulation."""
-    from .sizing import size as _size
+    from adapt.studies.sizing import size as _size
     return _size(_scene(scene), specs, **options)
 
 
 def record(scene, spec, out_dir, trials: int | None = None, snapshots: int | None = None,
            checkpoints=None, tolerances=None) -> Path:
-    """Write a reference set (as ``adapt record``): see :func:`adapt.reference.record`.
+    """Write a reference set (as ``adapt record``): see :func:`adapt.studies.reference.record`.
     Defaults: 3 cases, the scene's snapshots, checkpoints N, 2N, 4N, ... and K."""
-    from .reference import record as _record
+    from adapt.studies.reference import record as _record
     return _record(_scene(scene), spec, trials, snapshots, checkpoints, out_dir,
                    tolerances=tolerances)
 
@@ -153,6 +153,6 @@ def record(scene, spec, out_dir, trials: int | None = None, snapshots: int | Non
 def verify(reference_dir, implementation, **options):
     """Check an implementation (a callable ``f(case) -> weights`` or a command template
     ``'PROGRAM {case} {out}'``) against a reference set (as ``adapt verify``): see
-    :func:`adapt.reference.verify`."""
-    from .reference import load_reference, verify as _verify
+    :func:`adapt.studies.reference.verify`."""
+    from adapt.studies.reference import load_reference, verify as _verify
     return _verify(load_reference(reference_dir), implementation, **options)

@@ -134,7 +134,7 @@ def sha256_file(path: str | os.PathLike, chunk: int = 1 << 20) -> str:
 def library_versions() -> dict:
     import scipy
 
-    from . import __version__
+    from adapt import __version__
     return {"adapt": __version__, "numpy": np.__version__, "scipy": scipy.__version__,
             "python": sys.version.split()[0]}
 

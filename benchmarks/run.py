@@ -21,7 +21,7 @@ broadside at 0 dB, training on interference plus noise):
   (tracemalloc peak of traced allocations, numpy's included, during the run; the
   process's maxrss is reported beside it). One trial is one chunk: one thread.
 * Floors: the unavoidable work with the same libraries in the same run; the random
-  numbers come from adapt's own counter-based generator (:mod:`adapt.normals`, the
+  numbers come from adapt's own counter-based generator (:mod:`adapt.streams.normals`, the
   fastest these libraries have; numpy's ``Generator.standard_normal`` is about 5x
   slower). W1: the samples' normals, one batched covariance accumulation and the batched
   solves. W2, per processor: the samples' normals, then the snapshots formed and the
@@ -91,7 +91,7 @@ W1_CHECKPOINTS = tuple(2 ** k for k in range(4, 11))          # 16 .. 1024
 # ----------------------------------------------------------------------------- scene
 def scene(trials: int, snapshots: int):
     """The benchmark scene as an adapt Scene."""
-    from adapt.scenefile import parse_scene
+    from adapt.scene.files import parse_scene
     sources = [{"name": "wanted", "role": "desired", "azimuth": 0, "power_db": 0,
                 "waveform": "gaussian"}]
     sources += [{"name": f"jam-{i + 1}", "role": "interferer", "azimuth": az,
@@ -116,7 +116,7 @@ def _plain_truth():
 
 def usable_cores() -> int:
     """Cores this process may run on (the product's default thread count)."""
-    from adapt.execute import usable_cores as cores
+    from adapt.engine.execute import usable_cores as cores
     return cores()
 
 
@@ -160,8 +160,8 @@ def _best(fn, repeats: int, *args, **kwargs) -> dict:
 def w1_product(trials: int, draw: str = "covariance", threads: int | None = None) -> dict:
     """Unloaded and 10 dB-loaded SMI through adapt's evaluate; mean rho per checkpoint.
     ``threads``: the executor's threads (None: its default, every usable core)."""
-    import adapt.scores  # noqa: F401  (import order: scores before evaluate)
-    from adapt.execute import evaluate
+    import adapt.engine.scores  # noqa: F401  (import order: scores before evaluate)
+    from adapt.engine.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, W1_CHECKPOINTS[-1])
     procs = parse_specs(["smi", "smi loading_db=10"])
@@ -203,10 +203,10 @@ def w1_reference(trials: int) -> dict:
 
 def w1_floor(trials: int, group: int = 128, threads: int = 1) -> dict:
     """Unavoidable work of a sample-based W1 run: the samples' normals (adapt's own
-    counter-based generator, :mod:`adapt.normals`), one batched covariance accumulation (window sums at every
+    counter-based generator, :mod:`adapt.streams.normals`), one batched covariance accumulation (window sums at every
     checkpoint), the batched solves (two loadings x seven checkpoints per trial); on
     ``threads`` threads, as the product runs."""
-    from adapt import normals
+    from adapt.streams import normals
     jam, look, p, _ = _plain_truth()
     k_max = W1_CHECKPOINTS[-1]
     cps = np.array(W1_CHECKPOINTS)
@@ -240,8 +240,8 @@ W2_SPECS = ("lms", "nlms", "rls")
 def w2_product(trials: int, snapshots: int, specs=W2_SPECS, threads: int | None = None) -> dict:
     """The recursive processors through adapt's evaluate (one stream for all given);
     ``threads`` as in :func:`w1_product`."""
-    import adapt.scores  # noqa: F401
-    from adapt.execute import evaluate
+    import adapt.engine.scores  # noqa: F401
+    from adapt.engine.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, snapshots)
     cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
@@ -358,11 +358,11 @@ def w2_floor(trials: int, snapshots: int, spec: str | None = None, threads: int 
              group: int = 8) -> dict:
     """The unavoidable work of W2 on ``threads`` threads (trials split evenly): the
     samples' normals (noise and seven source waveforms per trial, from adapt's own
-    counter-based generator, :mod:`adapt.normals`, the fastest one these libraries
+    counter-based generator, :mod:`adapt.streams.normals`, the fastest one these libraries
     have) and, with numba present and ``spec`` given, the bare recursion (the snapshots
     formed and one LMS, NLMS or RLS step each, in a minimal compiled loop written here);
     without numba, or ``spec`` None, the draws only."""
-    from adapt import normals
+    from adapt.streams import normals
     jam, look, p, r_in = _plain_truth()
     steer = np.vstack([jam, look[None, :]])
     amp = np.array([np.sqrt(p)] * len(jam) + [1.0])
@@ -403,7 +403,8 @@ def w2_floor_kernels(trials: int, snapshots: int, spec: str, threads: int = 1,
     the seven waveforms' normals, one pass forming noise, sources and data
     (``noisy_sources``), one recursion pass (``lms_block`` / ``rls_block``). None
     without the compiled kernels."""
-    from adapt import _kernels, normals
+    from adapt.numerics import kernels as _kernels
+    from adapt.streams import normals
     if not _kernels.compiled():
         return None
     jam, look, p, r_in = _plain_truth()
@@ -462,8 +463,8 @@ def kernel_compile_seconds() -> float | None:
 # ----------------------------------------------------------------------------- W3
 def w3_run(snapshots: int, specs, block: int, trace: bool = False) -> dict:
     """One trial of ``snapshots`` snapshots through evaluate in blocks of ``block``."""
-    import adapt.scores  # noqa: F401
-    from adapt.execute import evaluate
+    import adapt.engine.scores  # noqa: F401
+    from adapt.engine.execute import evaluate
     from adapt.processors import parse_specs
     sc = scene(1, snapshots)
     cps = sorted({int(k) for k in np.linspace(0, snapshots, 11)[1:].round()})
@@ -551,7 +552,7 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
     """Run the workloads in ``only`` (default all) with the product and the floors on
     ``threads`` threads (default: every usable core, the product's default); returns the
     figures (also printed through ``say``)."""
-    from adapt import _kernels
+    from adapt.numerics import kernels as _kernels
     only = tuple(w.upper() for w in only)
     bad = [w for w in only if w not in WORKLOADS]
     if bad:
@@ -639,7 +640,7 @@ def _run_w1(z: dict, out: dict, say) -> None:
 
 def _run_w2(z: dict, out: dict, say) -> None:
     t2, k2, tr, th = z["w2_trials"], z["w2_snapshots"], z["w2_reference_trials"], z["threads"]
-    from adapt import _kernels
+    from adapt.numerics import kernels as _kernels
     compiled = _kernels.compiled()         # else adapt's kernels cannot serve as a floor
     w2 = {"draws": _best(w2_floor, 2, t2, k2, None, th), "processors": {}}
     say(f"\nW2 recursive ({t2} trials x {k2} snapshots; product and floor on {th} "

@@ -1,7 +1,7 @@
 """Scale-out on a real Dask cluster (two worker processes on 127.0.0.1).
 
 The fact checked is exact: every trial draws from its own seed and the block boundaries
-never depend on the chunking (adapt.execute), so a run on any number of workers gives
+never depend on the chunking (adapt.engine.execute), so a run on any number of workers gives
 the same arrays bit for bit as the serial run.
 """
 from __future__ import annotations
@@ -14,12 +14,13 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt import execute, io
-from adapt.compare import TAIL, compare
+from adapt.engine import execute
+from adapt import io
+from adapt.studies.compare import TAIL, compare
 from adapt.errors import InputError
-from adapt.execute import part_arrays
-from adapt.scenefile import parse_scene
-from adapt.sizing import size
+from adapt.engine.execute import part_arrays
+from adapt.scene.files import parse_scene
+from adapt.studies.sizing import size
 
 SCENE = {
     "name": "cluster check",
@@ -140,7 +141,7 @@ def test_unreachable_scheduler_is_an_input_error():
 
 
 def test_record_on_a_cluster_writes_the_same_set(scheduler, tmp_path):
-    from adapt.reference import load_reference, record
+    from adapt.studies.reference import load_reference, record
     scene = parse_scene(SCENE)
     for spec in ("smi loading_db=10", "rls"):
         here = record(scene, spec, 5, 64, None, tmp_path / f"here-{spec[:3]}")

@@ -11,12 +11,14 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt import api, geometry, io
+from adapt import api
+from adapt.scene import geometry
+from adapt import io
 from adapt.cli.main import main
-from adapt.compare import compare, write_compare_run
+from adapt.studies.compare import compare, write_compare_run
 from adapt.errors import InputError, SpecError
-from adapt.runs import CURVE_COLUMNS, RUN_FILES, read_run
-from adapt.scenefile import parse_scene
+from adapt.report.runfolder import CURVE_COLUMNS, RUN_FILES, read_run
+from adapt.scene.files import parse_scene
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -117,7 +119,7 @@ def test_processors_default_to_the_scene_and_errors_are_input_errors():
 
 def test_progress_counts_every_trial_snapshot_and_results_do_not_depend_on_it():
     # progress total = trials x (snapshots + tail); blocks change, results do not
-    from adapt.compare import TAIL
+    from adapt.studies.compare import TAIL
     scene = parse_scene(SCENE)
     done = []
     with_bar = compare(scene, ["smi loading_db=10"], trials=3, snapshots=40,

@@ -93,7 +93,7 @@ def test_junit_path_through_a_regular_file(scene, tmp_path, run_cli):
     blocker = tmp_path / "blocker"
     blocker.write_text("x")
     code, out, err = run_cli(["verify", ref, "--python",
-                              "adapt.reference:reference_implementation",
+                              "adapt.studies.reference:reference_implementation",
                               "--junit", blocker / "results.xml"])
     line = _one_line(code, out, err, EXIT_FILE_SYSTEM)
     assert f"{blocker / 'results.xml'}: Not a directory" in line      # the final name
@@ -189,7 +189,7 @@ def test_disk_full_during_compare(target, scene, tmp_path, run_cli, monkeypatch)
     _complete_files(out)
     # the file that could not be written is absent and the run is not marked complete:
     # the folder is kept, marked INCOMPLETE and resumable, while finished chunks remain
-    # (adapt.execute); once they were sealed away (the manifest step) it is removed
+    # (adapt.engine.execute); once they were sealed away (the manifest step) it is removed
     for folder in (out / "runs").iterdir():
         assert not (folder / target).exists()
         assert not (folder / "manifest.json").exists()
@@ -225,8 +225,8 @@ def test_failed_write_keeps_the_previous_file(tmp_path, monkeypatch):
 # --------------------------------------------------------------------------- references
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory):
-    from adapt.reference import record
-    from adapt.scenefile import parse_scene
+    from adapt.studies.reference import record
+    from adapt.scene.files import parse_scene
     root = tmp_path_factory.mktemp("faultref")
     return record(parse_scene(SCENE), "smi loading_db=10", 2, 32, [4, 8, 32], root / "set")
 
@@ -279,7 +279,7 @@ def test_damaged_reference_set(name, reference, tmp_path, run_cli):
     damage, words = DAMAGE[name]
     folder = _damaged(reference, tmp_path, damage)
     code, out, err = run_cli(["verify", folder, "--python",
-                              "adapt.reference:reference_implementation"])
+                              "adapt.studies.reference:reference_implementation"])
     line = _one_line(code, out, err, 2)
     assert words in line, line
     assert str(folder) in line
@@ -287,5 +287,5 @@ def test_damaged_reference_set(name, reference, tmp_path, run_cli):
 
 def test_missing_reference_folder(tmp_path, run_cli):
     line = _one_line(*run_cli(["verify", tmp_path / "nowhere", "--python",
-                               "adapt.reference:reference_implementation"]), 2)
+                               "adapt.studies.reference:reference_implementation"]), 2)
     assert "no such reference-set folder" in line

@@ -18,8 +18,8 @@ from hypothesis import strategies as st
 
 from adapt.errors import InputError, SceneError, SpecError
 from adapt.processors import Processor, parse_spec, registry
-from adapt.scene import Scene
-from adapt.scenefile import parse_scene, scene_to_mapping
+from adapt.scene.model import Scene
+from adapt.scene.files import parse_scene, scene_to_mapping
 
 from conftest import SCENES
 

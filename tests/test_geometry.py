@@ -7,10 +7,10 @@ import math
 import numpy as np
 import pytest
 
-from adapt import geometry
+from adapt.scene import geometry
 from adapt.processors.conventional import taper_weights
-from adapt.scenefile import parse_scene
-from adapt.streams import TrialBatch
+from adapt.scene.files import parse_scene
+from adapt.streams.snapshots import TrialBatch
 
 
 def pattern_in_sine_space(weights, positions, u):

@@ -17,9 +17,9 @@ from pathlib import Path
 
 import pytest
 
-from adapt import scenefile
+from adapt.scene import files as scenefile
 from adapt.errors import InputError, SceneError
-from adapt.scenefile import MAX_FILE_BYTES, MAX_YAML_DEPTH, MAX_YAML_NODES, parse_scene
+from adapt.scene.files import MAX_FILE_BYTES, MAX_YAML_DEPTH, MAX_YAML_NODES, parse_scene
 
 from conftest import SCENES
 

@@ -1,4 +1,4 @@
-"""Counter-based normal streams (adapt.normals): the generator against its published
+"""Counter-based normal streams (adapt.streams.normals): the generator against its published
 parts, the distribution against scipy.stats, and the two code paths against each other.
 
 Sources: SplitMix64 (Steele, Lea & Flood, OOPSLA 2014; its mix64 is Stafford's variant
@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from adapt import _kernels, normals
+from adapt.numerics import kernels as _kernels
+from adapt.streams import normals
 
 M64 = (1 << 64) - 1
 GOLDEN = 0x9E3779B97F4A7C15
@@ -40,7 +41,7 @@ X, V, F = plain_tables()
 
 
 def plain_normal(u: int) -> float:
-    """One normal from a word u, the rule of adapt.normals written as plain Python."""
+    """One normal from a word u, the rule of adapt.streams.normals written as plain Python."""
     def unit(w):
         return ((w >> 11) + 1) / 2.0 ** 53
 

@@ -22,12 +22,12 @@ import warnings
 import numpy as np
 import pytest
 
-from adapt.compare import compare, write_compare_run
+from adapt.studies.compare import compare, write_compare_run
 from adapt.errors import SceneError
 from adapt.io import read_npy, write_manifest, write_npy
 from adapt.processors import parse_spec
-from adapt.scenefile import MAX_DYNAMIC_RANGE_DB, parse_scene
-from adapt.streams import TrialBatch
+from adapt.scene.files import MAX_DYNAMIC_RANGE_DB, parse_scene
+from adapt.streams.snapshots import TrialBatch
 
 ALL = ["conventional", "optimum", "smi", "smi loading_db=10", "lms", "nlms", "rls",
        "frost", "gsc", "lcmv", "power_inversion", "eigenspace"]
@@ -249,7 +249,7 @@ def test_wanted_source_off_at_a_checkpoint(tmp_path, run_cli):
 # --------------------------------------------------------------------------- references
 @pytest.fixture(scope="module")
 def reference_set(tmp_path_factory):
-    from adapt.reference import record
+    from adapt.studies.reference import record
     root = tmp_path_factory.mktemp("ref")
     scene = _scene([WANTED, _jam("j", 31, 30)], snapshots=48, trials=2)
     return record(scene, "smi loading_db=10", 2, 48, [8, 16, 48], root / "set")
@@ -271,7 +271,7 @@ def test_reference_set_holding_non_finite_values(reference_set, tmp_path, run_cl
     manifest = json.loads((folder / "manifest.json").read_text())
     write_manifest(folder, {k: v for k, v in manifest.items() if k != "files"})
     code, out, err = run_cli(["verify", folder, "--python",
-                              "adapt.reference:reference_implementation"])
+                              "adapt.studies.reference:reference_implementation"])
     assert code == 2 and "Traceback" not in err
     line = err.strip()
     assert "\n" not in line and f"case-0001/{name}" in line
@@ -283,7 +283,7 @@ def test_candidate_returning_non_finite_weights(reference_set, tmp_path, run_cli
     module = tmp_path / "candidate_bad.py"
     module.write_text(
         "import numpy as np\n"
-        "from adapt.reference import reference_implementation\n"
+        "from adapt.studies.reference import reference_implementation\n"
         "def run(case):\n"
         "    w = np.array(reference_implementation(case))\n"
         f"    w[1, 2] = float({str(bad)!r})\n"

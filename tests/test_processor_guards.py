@@ -13,8 +13,8 @@ import yaml
 
 from adapt.errors import SpecError
 from adapt.processors import Context, parse_spec, registry, run_processors
-from adapt.scenefile import parse_scene
-from adapt.streams import TrialBatch
+from adapt.scene.files import parse_scene
+from adapt.streams.snapshots import TrialBatch
 
 
 def scene_text(elements: int, processors=()) -> str:

@@ -15,11 +15,11 @@ import pytest
 
 from adapt.errors import SpecError
 from adapt.processors import Context, parse_spec, registry, run_processors
-from adapt.processors._linalg import mvdr
+from adapt.numerics.linalg import mvdr
 from adapt.processors._recursive import look_blocking_matrix
 from adapt.processors.frost import look_constraints
-from adapt.scenefile import parse_scene
-from adapt.streams import TrialBatch
+from adapt.scene.files import parse_scene
+from adapt.streams.snapshots import TrialBatch
 
 METHODS = ("lms", "nlms", "frost", "gsc", "rls")
 
@@ -446,7 +446,7 @@ def test_auto_step_needs_the_true_covariance(strong_scene):
 
 def test_shared_covariance_view_equals_the_per_trial_covariance(rough_scene):
     # without hardware errors every trial has the same covariance: the context computes
-    # it once; it must equal the per-trial truth (adapt.streams.TrialBatch.covariance)
+    # it once; it must equal the per-trial truth (adapt.streams.snapshots.TrialBatch.covariance)
     scene = make_scene(sources=list(rough_scene.resolved["sources"]), training="signal")
     batch = TrialBatch(scene, trials=4, first_trial=2)
     ctx = Context.from_batch(batch)

@@ -1,4 +1,4 @@
-"""Reference vectors: adapt record / adapt verify (adapt/reference.py, adapt/junit.py).
+"""Reference vectors: adapt record / adapt verify (adapt/studies/reference.py, adapt/report/junit.py).
 
 Outside references named beside each check: the loaded-SMI weight (Reed, Mallett &
 Brennan 1974; Carlson 1988), output SINR (Van Trees 2002, ch. 6), uniform quantisation
@@ -20,10 +20,10 @@ import pytest
 
 from adapt.errors import CorruptReferenceError, InputError, SpecError
 from adapt.io import read_npy, write_manifest, write_npy
-from adapt.reference import (DEFAULT_TOLERANCES, format_report, load_reference,
+from adapt.studies.reference import (DEFAULT_TOLERANCES, format_report, load_reference,
                              output_evm_db, record, reference_implementation, verify,
                              weight_error_db, write_report_junit, write_sigmf)
-from adapt.scenefile import parse_scene
+from adapt.scene.files import parse_scene
 
 HERE = Path(__file__).resolve().parent
 CANDIDATE = HERE / "reference_candidate.py"
@@ -288,10 +288,10 @@ def test_cli_record_verify_exit_codes(run_cli, tmp_path, write_file):
                                "--junit", junit])
     assert code == 0, text + err
     assert "2 passed" in text and ET.parse(junit).getroot().find("testsuite").get("tests") == "2"
-    code, text, err = run_cli(["verify", out, "--python", "adapt.reference:reference_implementation",
+    code, text, err = run_cli(["verify", out, "--python", "adapt.studies.reference:reference_implementation",
                                "--tolerance", "weight_error_db=-400"])
     assert code == 1 and "FAIL" in text and "worst: case-0000" in text
-    code, text, err = run_cli(["verify", out, "--python", "adapt.reference:no_such_function"])
+    code, text, err = run_cli(["verify", out, "--python", "adapt.studies.reference:no_such_function"])
     assert code == 2 and "no function" in err
     code, text, err = run_cli(["record", scene, "--processor", SPEC, "--out", out])
     assert code == 2 and "never overwritten" in err
@@ -305,7 +305,7 @@ def test_tampered_file_refused(run_cli, smi_set, tmp_path):
     target.write_bytes(bytes(raw))
     with pytest.raises(CorruptReferenceError, match="case-0001/weights.npy"):
         load_reference(bad)
-    code, text, err = run_cli(["verify", bad, "--python", "adapt.reference:reference_implementation"])
+    code, text, err = run_cli(["verify", bad, "--python", "adapt.studies.reference:reference_implementation"])
     assert code == 2 and "case-0001/weights.npy" in err and "sha256" in err
     (bad / "case-0002" / "samples.npy").unlink()
     code, text, err = run_cli(["verify", bad, "--command", "true {case} {out}"])
@@ -320,7 +320,7 @@ def test_nan_in_reference_reported(run_cli, smi_set, tmp_path):
     write_manifest(bad, {})                          # even with a matching manifest
     with pytest.raises(CorruptReferenceError, match="NaN"):
         load_reference(bad)
-    code, text, err = run_cli(["verify", bad, "--python", "adapt.reference:reference_implementation"])
+    code, text, err = run_cli(["verify", bad, "--python", "adapt.studies.reference:reference_implementation"])
     assert code == 2 and "case-0000/sinr_db.npy" in err and "NaN" in err
     # a pickled (object) array is never loaded (numpy allow_pickle=False)
     write_npy(bad / "case-0000" / "sinr_db.npy", np.zeros(6))

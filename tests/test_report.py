@@ -13,13 +13,13 @@ import pytest
 from scipy.signal import find_peaks
 from scipy.signal.windows import boxcar
 
-from adapt.execute import evaluate
+from adapt.engine.execute import evaluate
 from adapt.processors import parse_spec
-from adapt.processors._linalg import solve_hermitian
+from adapt.numerics.linalg import solve_hermitian
 from adapt.processors.base import Processor
 from adapt.report import figures as F
 from adapt.report import html as H
-from adapt.scenefile import parse_scene
+from adapt.scene.files import parse_scene
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"      # PNG specification (ISO/IEC 15948), section 5.2
 
@@ -212,7 +212,7 @@ def test_pattern_uses_true_array_of_each_trial(ring):
 
 def test_pattern_matches_engine_null_depths(stationary):
     # The engine scores the response toward each interferer with its own code
-    # (adapt.scores.response_db); the pattern at the interferer's azimuth is the trial
+    # (adapt.engine.scores.response_db); the pattern at the interferer's azimuth is the trial
     # mean of the same linear ratio.
     for p in stationary.processors:
         for j, s in enumerate(stationary.scene.interferers):

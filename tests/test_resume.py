@@ -2,7 +2,7 @@
 
 The facts checked are exact: a resumed run must give the same numbers bit for bit as an
 uninterrupted one (same seed), since every trial draws from its own seed and block
-boundaries never depend on the chunking (adapt.execute). Exit codes follow the shell
+boundaries never depend on the chunking (adapt.engine.execute). Exit codes follow the shell
 convention 128 + signal number (POSIX: SIGINT = 2 -> 130, SIGTERM = 15 -> 143).
 """
 from __future__ import annotations
@@ -19,12 +19,13 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt import execute, io
-from adapt.compare import compare
+from adapt.engine import execute
+from adapt import io
+from adapt.studies.compare import compare
 from adapt.errors import InputError
-from adapt.execute import MARKER, PARTIAL, RESUME_FILE, part_arrays
-from adapt.scenefile import parse_scene
-from adapt.sizing import size
+from adapt.engine.execute import MARKER, PARTIAL, RESUME_FILE, part_arrays
+from adapt.scene.files import parse_scene
+from adapt.studies.sizing import size
 from conftest import without_timing
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -98,7 +99,7 @@ def test_interrupted_after_two_chunks_then_resumed_is_identical(tmp_path):
     _same(plain.evaluation, resumed.evaluation)
     assert without_timing(plain.metrics) == without_timing(resumed.metrics)
     # progress still adds up to trials x (snapshots + tail): stored chunks counted once
-    from adapt.compare import TAIL
+    from adapt.studies.compare import TAIL
     assert sum(done) == 10 * (96 + TAIL)
 
 

@@ -12,7 +12,7 @@ import importlib.util
 import numpy as np
 import pytest
 
-from adapt import _kernels
+from adapt.numerics import kernels as _kernels
 
 HAVE_NUMBA = importlib.util.find_spec("numba") is not None
 

@@ -11,10 +11,11 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt import __version__, geometry
+from adapt import __version__
+from adapt.scene import geometry
 from adapt.errors import InputError, SceneError, SpecError
-from adapt.scenefile import dump_scene, load_scene, parse_scene, scene_to_mapping
-from adapt.summary import (angle_between_deg, beamwidth_deg, grating_lobe,
+from adapt.scene.files import dump_scene, load_scene, parse_scene, scene_to_mapping
+from adapt.studies.check import (angle_between_deg, beamwidth_deg, grating_lobe,
                            main_lobe_contains, scene_warnings, summarise_scene)
 
 from conftest import ROOT, SCENES

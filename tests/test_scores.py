@@ -7,9 +7,10 @@ import pytest
 from scipy import optimize, stats
 from scipy.signal import windows
 
-from adapt import geometry, scores
-from adapt.compare import compare
-from adapt.scenefile import parse_scene
+from adapt.scene import geometry
+from adapt.engine import scores
+from adapt.studies.compare import compare
+from adapt.scene.files import parse_scene
 
 
 def _pair():

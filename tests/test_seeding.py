@@ -2,7 +2,7 @@
 import numpy as np
 import pytest
 
-from adapt.seeding import seed_states, trial_generators
+from adapt.streams.seeding import seed_states, trial_generators
 
 
 @pytest.mark.parametrize("seed, key, trials", [

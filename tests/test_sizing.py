@@ -1,4 +1,4 @@
-"""Snapshot sizing (adapt/sizing.py, adapt size): simulation against the closed forms,
+"""Snapshot sizing (adapt/studies/sizing.py, adapt size): simulation against the closed forms,
 the sizing answers and their intervals, the run folder and the command line."""
 from __future__ import annotations
 
@@ -8,10 +8,12 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from adapt import io, sizing, theory
+from adapt import io
+from adapt.studies import sizing
+from adapt.studies import theory
 from adapt.cli.main import main
 from adapt.errors import InputError
-from adapt.scenefile import dump_scene, parse_scene
+from adapt.scene.files import dump_scene, parse_scene
 
 N = 8
 WANTED = {"name": "s", "role": "desired", "azimuth": 0, "power_db": 0}
@@ -84,7 +86,7 @@ def test_loaded_smi_meets_three_db_near_2j():
 
 
 def test_signal_present_matches_its_closed_form():
-    # derived in adapt/theory.py (Boroson 1980): rho = eta / (1 + S (1 - eta)),
+    # derived in adapt/studies/theory.py (Boroson 1980): rho = eta / (1 + S (1 - eta)),
     # eta ~ Beta(K-N+2, N-1); S = SINR_opt = 8 (0 dB wanted signal, 8 elements, jammers
     # nulled almost perfectly)
     sc = _scene(training="signal")

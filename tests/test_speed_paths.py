@@ -12,14 +12,15 @@ import numpy as np
 import pytest
 from scipy import stats
 
-import adapt.scores  # noqa: F401  (import order: scores before evaluate)
-from adapt import execute, wishart
+import adapt.engine.scores  # noqa: F401  (import order: scores before evaluate)
+from adapt.engine import execute
+from adapt.engine import drawn as wishart
 from adapt.errors import InputError
-from adapt.evaluate import evaluate_batch
-from adapt import _kernels
+from adapt.engine.evaluate import evaluate_batch
+from adapt.numerics import kernels as _kernels
 from adapt.processors import Context, parse_specs, run_processors
-from adapt.scenefile import parse_scene
-from adapt.streams import TrialBatch
+from adapt.scene.files import parse_scene
+from adapt.streams.snapshots import TrialBatch
 
 N = 4
 WANTED = {"name": "s", "role": "desired", "azimuth": 0, "power_db": 0, "waveform": "qpsk"}
@@ -324,7 +325,7 @@ def test_smi_fast_solve_equals_general_path(monkeypatch):
 def test_size_command_draws_covariance(tmp_path, capsys):
     # adapt size --draw covariance: recorded in sizing.json; refused (exit 2) for LMS
     from adapt.cli.main import main
-    from adapt.scenefile import dump_scene
+    from adapt.scene.files import dump_scene
     scene_file = tmp_path / "scene.yaml"
     scene_file.write_text(dump_scene(_scene(trials=40, snapshots=32)))
     out = tmp_path / "runs"
@@ -342,7 +343,8 @@ def test_size_command_draws_covariance(tmp_path, capsys):
 def test_noisy_sources_refuses_mismatched_arrays():
     # the compiled one-pass formation reads without bounds checks: every shape is
     # checked first (a short wanted-source envelope once read past its end)
-    from adapt import _kernels, normals
+    from adapt.numerics import kernels as _kernels
+    from adapt.streams import normals
     t_, b_, n = 2, 5, 3
     keys = normals.stream_keys(1, range(t_))
     env = np.zeros((t_, b_, 2), complex)

@@ -8,9 +8,9 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from adapt import geometry
-from adapt.scenefile import parse_scene
-from adapt.streams import TrialBatch, quantise
+from adapt.scene import geometry
+from adapt.scene.files import parse_scene
+from adapt.streams.snapshots import TrialBatch, quantise
 
 
 def make_scene(sources=None, elements=8, **extra):

@@ -1,12 +1,12 @@
-"""Closed-form SMI convergence laws and rules of thumb (adapt/theory.py)."""
+"""Closed-form SMI convergence laws and rules of thumb (adapt/studies/theory.py)."""
 from __future__ import annotations
 
 import numpy as np
 import pytest
 from scipy import stats
 
-from adapt import theory
-from adapt.scenefile import parse_scene
+from adapt.studies import theory
+from adapt.scene.files import parse_scene
 
 
 def _scene(sources, elements=8, **extra):
@@ -52,7 +52,7 @@ def test_rmb_three_db_point_is_2n_minus_3():
 
 
 def test_signal_present_law_reduces_to_rmb():
-    # derived in adapt/theory.py: rho = eta / (1 + S (1 - eta)) -> eta as S -> 0
+    # derived in adapt/studies/theory.py: rho = eta / (1 + S (1 - eta)) -> eta as S -> 0
     k = np.array([8, 9, 13, 20, 64, 500])
     assert np.allclose(theory.signal_present_mean(k, 8, 0.0), theory.rmb_mean(k, 8), rtol=1e-12)
     assert np.allclose(theory.signal_present_mean(k, 8, 1e-9), theory.rmb_mean(k, 8), rtol=1e-7)

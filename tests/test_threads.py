@@ -1,7 +1,7 @@
-"""Trial chunks on a pool of threads (adapt.execute.run_chunks with ``threads``).
+"""Trial chunks on a pool of threads (adapt.engine.execute.run_chunks with ``threads``).
 
 The fact checked is exact: every trial draws from its own seed and the block boundaries
-never depend on the chunking (adapt.execute), and every chunk runs on its own copy of
+never depend on the chunking (adapt.engine.execute), and every chunk runs on its own copy of
 the processors, so any number of threads and any chunk size give the same arrays bit
 for bit as the serial run. Also checked: progress adds up and is never called by two
 threads at once, side effects (stored chunks, on_chunk) happen in the calling thread,
@@ -17,13 +17,13 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt import execute
-from adapt.compare import TAIL, compare
+from adapt.engine import execute
+from adapt.studies.compare import TAIL, compare
 from adapt.errors import InputError
-from adapt.execute import evaluate, part_arrays
+from adapt.engine.execute import evaluate, part_arrays
 from adapt.processors import parse_specs
 from adapt.processors.smi import SampleMatrixInversion
-from adapt.scenefile import parse_scene
+from adapt.scene.files import parse_scene
 from conftest import without_timing
 
 SCENE = {
@@ -167,7 +167,7 @@ def test_interrupt_keeps_the_first_chunks_and_resume_is_identical(scene, tmp_pat
 
 
 def test_chunks_on_threads_split_only_work_worth_a_thread():
-    # work per trial: (snapshots + tail) x N^2 x processors (adapt.execute.chunk_size)
+    # work per trial: (snapshots + tail) x N^2 x processors (adapt.engine.execute.chunk_size)
     assert execute.chunk_size(400, 16, 1280, 1, threads=1) == 400
     assert execute.chunk_size(400, 16, 1280, 1, threads=2) == 200     # one part per thread
     assert 400 * 1280 * 16 ** 2 < 3 * execute.THREAD_WORK              # work for two only
@@ -194,7 +194,7 @@ def test_bad_thread_counts_are_input_errors(scene):
 
 
 def test_record_on_threads_writes_the_same_set(scene, tmp_path):
-    from adapt.reference import load_reference, record
+    from adapt.studies.reference import load_reference, record
     for spec in ("smi loading_db=10", "nlms"):
         one = load_reference(record(scene, spec, 5, 64, None, tmp_path / f"1-{spec[:3]}",
                                     threads=1))

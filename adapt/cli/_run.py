@@ -4,7 +4,7 @@ Options ``--threads N`` (threads of this process), ``--workers N`` / ``--schedul
 ADDRESS`` (Dask), ``--chunk TRIALS`` and ``--resume RUNDIR``; :func:`execute` runs the
 work with SIGTERM turned into an interruption, and on Ctrl-C / SIGTERM prints what was
 kept and how to resume, returning exit code 130 (SIGINT) or 143 (SIGTERM). The logic
-lives in :mod:`adapt.execute`.
+lives in :mod:`adapt.engine.execute`.
 """
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ import sys
 import warnings
 from pathlib import Path
 
-from ..errors import InputError
+from adapt.errors import InputError
 
 DEFAULT_OUT = "runs"
 
@@ -45,7 +45,7 @@ def add_threads(group) -> None:
 def threads_option(args, remote: bool = False):
     """``--threads`` as an int or None (every usable core), checked (InputError naming
     the option; refused beside ``--workers`` / ``--scheduler``)."""
-    from ..execute import check_threads
+    from adapt.engine.execute import check_threads
     threads = whole_number(getattr(args, "threads", None), "--threads")
     if threads is not None:
         check_threads(threads, remote=remote, path="--threads")
@@ -145,7 +145,7 @@ def print_outcome(result, written, code) -> int:
 def cluster_options(args) -> dict:
     """``{"workers": .., "scheduler": .., "chunk": .., "threads": ..}`` checked
     (InputError)."""
-    from ..execute import check_cluster_options
+    from adapt.engine.execute import check_cluster_options
     workers = whole_number(args.workers, "--workers")
     scheduler = args.scheduler
     threads = threads_option(args, remote=workers is not None or scheduler is not None)
@@ -180,8 +180,8 @@ def resume(args, kind: str, refused: dict, execution: dict, execute_run):
     scene, ``--processor``, ``--out``, ``--chunk`` and the command's own run settings
     (``refused``: attribute -> option text), rebuild the scene from the folder and call
     ``execute_run(args, folder, scene, settings, execution, command_line)``."""
-    from ..execute import open_for_resume
-    from ..scenefile import parse_scene
+    from adapt.engine.execute import open_for_resume
+    from adapt.scene.files import parse_scene
     refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor", **refused,
                               "out": "--out", "chunk": "--chunk"})
     record = open_for_resume(args.resume, kind)
@@ -204,7 +204,7 @@ class Folder:
         self.new = existing is None
 
     def __call__(self) -> Path:
-        from ..execute import PARTIAL, start_run_folder
+        from adapt.engine.execute import PARTIAL, start_run_folder
         if self.path is None:
             self.path = start_run_folder(self.out or DEFAULT_OUT, self.name, self.kind,
                                          self.settings, self.command_line)
@@ -235,7 +235,7 @@ def execute(folder: Folder, work, finish):
 
 
 def _execute(folder: Folder, work, finish):
-    from ..execute import exit_code, interrupted_message, remove_if_empty, stop_on_signals
+    from adapt.engine.execute import exit_code, interrupted_message, remove_if_empty, stop_on_signals
     with stop_on_signals():
         try:
             result = work(folder)

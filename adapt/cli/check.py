@@ -1,13 +1,13 @@
 """``adapt check SCENE...``: validate scene files and print a one-screen summary of each.
 
 Exit code 0 when every file is valid, 2 when any is not (each file is still checked and
-reported). The summary and warnings come from :mod:`adapt.summary`.
+reported). The summary and warnings come from :mod:`adapt.studies.check`.
 """
 from __future__ import annotations
 
 import sys
 
-from ..errors import EXIT_USAGE, InputError
+from adapt.errors import EXIT_USAGE, InputError
 
 ORDER = 10
 
@@ -25,8 +25,8 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from ..scenefile import load_scene
-    from ..summary import check_processor_settings, summarise_scene
+    from adapt.scene.files import load_scene
+    from adapt.studies.check import check_processor_settings, summarise_scene
     bad = 0
     for i, path in enumerate(args.scenes):
         if i:

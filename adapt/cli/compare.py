@@ -1,17 +1,17 @@
 """``adapt compare SCENE``: score processors on a scene and write a run folder.
 
-Thin wrapper over :func:`adapt.compare.compare` and
-:func:`adapt.compare.write_compare_run`: parses the options, shows a progress bar over
+Thin wrapper over :func:`adapt.studies.compare.compare` and
+:func:`adapt.studies.compare.write_compare_run`: parses the options, shows a progress bar over
 the Monte Carlo work (trials x (snapshots + tail) trial-snapshots, on stderr), prints the
 summary table and the run folder path. Exit 0 on success, 2 on bad input, 130 when stopped by Ctrl-C (SIGINT) and 143
 by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
 ``adapt compare --resume RUNDIR`` finishes it with identical results. ``--threads N``
 runs the trial chunks on N threads (default: every usable core); ``--workers N`` /
-``--scheduler ADDRESS`` run them on a Dask cluster instead (:mod:`adapt.execute`).
+``--scheduler ADDRESS`` run them on a Dask cluster instead (:mod:`adapt.engine.execute`).
 """
 from __future__ import annotations
 
-from . import _run
+from adapt.cli import _run
 
 ORDER = 20
 
@@ -53,9 +53,9 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from ..compare import TAIL
-    from ..runsettings import checkpoints_for, prepare_scene
-    from ..errors import InputError
+    from adapt.studies.compare import TAIL
+    from adapt.engine.settings import checkpoints_for, prepare_scene
+    from adapt.errors import InputError
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _resume(args, execution)
@@ -81,7 +81,7 @@ def _resume(args, execution) -> int:
 
 
 def _execute(args, folder, used, settings, execution, line) -> int:
-    from ..compare import compare, write_compare_run
+    from adapt.studies.compare import compare, write_compare_run
     tail = int(settings.get("tail", 256))
     bar = _run.progress_bar(args, used.trials * (used.snapshots + tail), "compare")
 

@@ -15,8 +15,8 @@ import importlib
 import pkgutil
 import sys
 
-from .. import __version__
-from ..errors import EXIT_USAGE, InputError
+from adapt import __version__
+from adapt.errors import EXIT_USAGE, InputError
 
 
 class _Parser(argparse.ArgumentParser):
@@ -34,7 +34,7 @@ def build_parser() -> argparse.ArgumentParser:
         "interference is unlawful in most places."))
     parser.add_argument("--version", action="version", version=f"adapt {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    from . import __path__ as here
+    from adapt.cli import __path__ as here
     modules = []
     for info in pkgutil.iter_modules(here):
         if info.name in ("main",) or info.name.startswith("_"):

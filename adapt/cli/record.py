@@ -1,6 +1,6 @@
 """``adapt record SCENE --processor SPEC --out DIR``: write a reference set (test vectors).
 
-Delegates to :func:`adapt.reference.record`; the folder layout is documented there.
+Delegates to :func:`adapt.studies.reference.record`; the folder layout is documented there.
 Exit 0 when written, 2 for bad input (including an existing non-empty DIR: never
 overwritten).
 """
@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import re
 
-from ..errors import InputError
-from ._run import add_threads
+from adapt.errors import InputError
+from adapt.cli._run import add_threads
 
 ORDER = 40
 
@@ -65,9 +65,9 @@ def parse_checkpoints(text: str | None):
 def run(args) -> int:
     import numpy as np
 
-    from ..reference import load_reference, record
-    from ..execute import check_cluster_options
-    from ._run import library_warnings, threads_option, whole_number
+    from adapt.studies.reference import load_reference, record
+    from adapt.engine.execute import check_cluster_options
+    from adapt.cli._run import library_warnings, threads_option, whole_number
     workers = whole_number(args.workers, "--workers")
     threads = threads_option(args, remote=workers is not None or args.scheduler is not None)
     check_cluster_options(workers, args.scheduler)

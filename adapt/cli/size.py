@@ -1,17 +1,17 @@
 """``adapt size SCENE``: how many training snapshots each processor needs.
 
-Thin wrapper over :func:`adapt.sizing.size` and :func:`adapt.sizing.write_sizing_run`:
+Thin wrapper over :func:`adapt.studies.sizing.size` and :func:`adapt.studies.sizing.write_sizing_run`:
 parses the options, shows a progress bar (trials x largest snapshot count
 trial-snapshots, on stderr), prints the table, the recommendations and any disagreement
 with theory, and the run folder path. Exit 0 on success, 2 on bad input, 130 when stopped by Ctrl-C (SIGINT) and 143
 by SIGTERM: finished chunks are kept in the run folder (marked INCOMPLETE) and
 ``adapt size --resume RUNDIR`` finishes it with identical results. ``--threads N``
 runs the trial chunks on N threads (default: every usable core); ``--workers N`` /
-``--scheduler ADDRESS`` run them on a Dask cluster instead (:mod:`adapt.execute`).
+``--scheduler ADDRESS`` run them on a Dask cluster instead (:mod:`adapt.engine.execute`).
 """
 from __future__ import annotations
 
-from . import _run
+from adapt.cli import _run
 
 ORDER = 30
 
@@ -74,7 +74,7 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from ..scenefile import load_scene
+    from adapt.scene.files import load_scene
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _resume(args, execution)
@@ -99,7 +99,7 @@ def _resume(args, execution) -> int:
 
 
 def _execute(args, folder, scene, settings, execution, line) -> int:
-    from ..sizing import size, sweep_points, write_sizing_run
+    from adapt.studies.sizing import size, sweep_points, write_sizing_run
     bars = []
 
     def work(store):

@@ -1,12 +1,12 @@
 """``adapt verify DIR --python MODULE:FUNCTION`` or ``--command 'PROGRAM {case} {out}'``:
 check another implementation against a reference set.
 
-Delegates to :func:`adapt.reference.verify`. Exit codes: 0 every case passes, 1 any case
+Delegates to :func:`adapt.studies.reference.verify`. Exit codes: 0 every case passes, 1 any case
 fails or errors, 2 bad usage or a corrupt reference set (manifest mismatch, NaN).
 """
 from __future__ import annotations
 
-from ..errors import InputError
+from adapt.errors import InputError
 
 ORDER = 50
 
@@ -38,7 +38,7 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from ..reference import (format_report, load_reference, verify, write_report_junit)
+    from adapt.studies.reference import (format_report, load_reference, verify, write_report_junit)
     if args.timeout is not None and not args.timeout > 0:
         raise InputError("timeout must be a positive number of seconds", path="--timeout",
                          value=args.timeout)

@@ -12,8 +12,8 @@ import pkgutil
 import shlex
 from typing import Any
 
-from ..errors import SpecError, did_you_mean
-from .base import (Context, Parameter, Processor, ProcessorResult, held_outputs,
+from adapt.errors import SpecError, did_you_mean
+from adapt.processors.base import (Context, Parameter, Processor, ProcessorResult, held_outputs,
                    run_processor, run_processors)
 
 __all__ = ["registry", "parse_spec", "parse_specs", "Processor", "Parameter", "Context",

@@ -22,9 +22,9 @@ import warnings
 
 import numpy as np
 
-from ..errors import SpecError
-from ._linalg import solve_hermitian
-from .base import Context, Parameter, Processor, _fmt
+from adapt.errors import SpecError
+from adapt.numerics.linalg import solve_hermitian
+from adapt.processors.base import Context, Parameter, Processor, _fmt
 
 __all__ = ["outer_sum", "GrowingSums", "SlidingSums", "hermitian_part", "loading_level",
            "noise_floor_estimate", "solve_sample", "SampleCovarianceProcessor",
@@ -370,7 +370,7 @@ class SampleCovarianceProcessor(Processor):
         table holds (all by default); ``hermitian``: the caller guarantees the sums are
         exactly Hermitian, so the symmetrisation is skipped (it would change nothing).
         Shared by the streaming path and the drawn covariance path
-        (:mod:`adapt.wishart`)."""
+        (:mod:`adapt.engine.drawn`)."""
         stops = np.asarray(stops, dtype=np.int64)
         times = self.update_times(stops)
         t_, n = table.shape[0], self.context.elements

@@ -20,8 +20,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
-from .base import Context, Processor
+from adapt.errors import SpecError
+from adapt.processors.base import Context, Processor
 
 __all__ = ["local_marks", "per_snapshot", "lms_pass", "moments_of", "eigen_extent",
            "extent_over_moments", "step_from_bound", "AutoStep", "look_blocking_matrix",

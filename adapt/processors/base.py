@@ -33,7 +33,7 @@ from typing import Any, Callable, ClassVar, Iterable
 
 import numpy as np
 
-from ..errors import SpecError, did_you_mean
+from adapt.errors import SpecError, did_you_mean
 
 __all__ = ["Parameter", "Processor", "Context", "ProcessorResult", "held_outputs",
            "run_processor", "run_processors", "normalised_checkpoints", "check_processors",
@@ -176,7 +176,7 @@ class Context:
 
     @classmethod
     def from_batch(cls, batch) -> "Context":
-        """Context for a :class:`adapt.streams.TrialBatch`."""
+        """Context for a :class:`adapt.streams.snapshots.TrialBatch`."""
         return cls(look=batch.look, positions=batch.scene.array.positions,
                    trials=batch.trials, noise_power=1.0,
                    covariance=lambda k: batch.covariance(np.asarray(k)),

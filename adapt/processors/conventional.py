@@ -20,8 +20,8 @@ import warnings
 import numpy as np
 from scipy.signal import windows
 
-from ..errors import SpecError
-from .base import Context, Parameter, Processor
+from adapt.errors import SpecError
+from adapt.processors.base import Context, Parameter, Processor
 
 # processors start in the executor's worker threads, and the warnings state is process
 # wide: two overlapping catch_warnings blocks can leave a filter behind, so ours take turns

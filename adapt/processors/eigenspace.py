@@ -36,10 +36,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
-from ._covariance import SampleCovarianceProcessor
-from ._linalg import distortionless
-from .base import Context, Parameter
+from adapt.errors import SpecError
+from adapt.processors._covariance import SampleCovarianceProcessor
+from adapt.numerics.linalg import distortionless
+from adapt.processors.base import Context, Parameter
 
 
 class Eigenspace(SampleCovarianceProcessor):

@@ -37,10 +37,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
-from ..geometry import steering_derivatives
-from .base import Context, Parameter
-from ._recursive import (AutoStep, Projector, bounded_steps, constrained_pass, local_marks,
+from adapt.errors import SpecError
+from adapt.scene.geometry import steering_derivatives
+from adapt.processors.base import Context, Parameter
+from adapt.processors._recursive import (AutoStep, Projector, bounded_steps, constrained_pass, local_marks,
                          per_snapshot)
 
 

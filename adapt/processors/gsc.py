@@ -38,9 +38,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Context, Parameter, Processor
-from ._recursive import Projector, constrained_pass, local_marks, per_snapshot
-from .nlms import normalised_gain
+from adapt.processors.base import Context, Parameter, Processor
+from adapt.processors._recursive import Projector, constrained_pass, local_marks, per_snapshot
+from adapt.processors.nlms import normalised_gain
 
 
 class GeneralisedSidelobeCanceller(Processor):

@@ -34,11 +34,11 @@ import math
 
 import numpy as np
 
-from ..errors import SpecError
-from ..geometry import steering_derivatives, steering_vector
-from ._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
-from ._linalg import solve_hermitian
-from .base import Context, Parameter
+from adapt.errors import SpecError
+from adapt.scene.geometry import steering_derivatives, steering_vector
+from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
+from adapt.numerics.linalg import solve_hermitian
+from adapt.processors.base import Context, Parameter
 
 
 def _angle_list(value) -> str | None:

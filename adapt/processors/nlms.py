@@ -25,10 +25,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from .. import _kernels
-from .base import Context, Parameter, Processor
-from ._recursive import local_marks, lms_pass, per_snapshot, starting_weights
-from .lms import INITIAL_HELP
+from adapt.numerics import kernels as _kernels
+from adapt.processors.base import Context, Parameter, Processor
+from adapt.processors._recursive import local_marks, lms_pass, per_snapshot, starting_weights
+from adapt.processors.lms import INITIAL_HELP
 
 
 def normalised_gain(x: np.ndarray, step: float, eps: float) -> np.ndarray:

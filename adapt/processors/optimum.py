@@ -5,7 +5,7 @@ Source: Van Trees, Optimum Array Processing (2002), ch. 6 (the MVDR beamformer);
 
 Weight at checkpoint c: ``w = R^-1 a / (a^H R^-1 a)`` with R the TRUE interference-plus-
 noise covariance at snapshot index c (0-based), the first snapshot the weight is applied
-to and the moment the scores use (see adapt.evaluate), and ``a`` the ASSUMED
+to and the moment the scores use (see adapt.engine.evaluate), and ``a`` the ASSUMED
 look steering vector (nominal array, no hardware errors). Under pointing or calibration
 mismatch this is the optimum for the assumed steering, not the matched-filter bound.
 
@@ -22,9 +22,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
-from ._linalg import mvdr
-from .base import Context, Processor
+from adapt.errors import SpecError
+from adapt.numerics.linalg import mvdr
+from adapt.processors.base import Context, Processor
 
 
 class Optimum(Processor):

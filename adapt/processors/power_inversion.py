@@ -22,9 +22,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
-from ._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
-from .base import Context, Parameter
+from adapt.errors import SpecError
+from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
+from adapt.processors.base import Context, Parameter
 
 
 class PowerInversion(SampleCovarianceProcessor):

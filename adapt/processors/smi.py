@@ -41,12 +41,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..errors import SpecError
-from ._covariance import (SampleCovarianceProcessor, check_loading, effective_loading,
+from adapt.errors import SpecError
+from adapt.processors._covariance import (SampleCovarianceProcessor, check_loading, effective_loading,
                           loading_parameters, solve_sample)
-from .. import _kernels
-from ._linalg import compiled_solves_active, distortionless
-from .base import Context, Parameter
+from adapt.numerics import kernels as _kernels
+from adapt.numerics.linalg import compiled_solves_active, distortionless
+from adapt.processors.base import Context, Parameter
 
 
 class SampleMatrixInversion(SampleCovarianceProcessor):

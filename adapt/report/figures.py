@@ -16,7 +16,7 @@ Style helpers shared with the other report modules (sizing figures reuse them):
 * :func:`new_figure`, :func:`style_axes`, :func:`add_title`, :func:`legend_outside` and
   :func:`save_png` (PNG bytes at :data:`DPI` dots per inch).
 
-Figures of a run (:class:`adapt.evaluate.Evaluation`):
+Figures of a run (:class:`adapt.engine.evaluate.Evaluation`):
 
 * :func:`convergence_figure` - output SINR against snapshots (log axis), mean over trials
   of the SINR in dB with the 10th-90th percentile band, the optimum (clairvoyant MVDR)
@@ -41,7 +41,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from .. import geometry
+from adapt.scene import geometry
 
 __all__ = [
     "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
@@ -198,7 +198,7 @@ def run_title(evaluation, what: str) -> tuple[str, str]:
 def _check_evaluation(evaluation) -> None:
     for name in ("scene", "processors", "checkpoints", "optimum_sinr", "trials"):
         if not hasattr(evaluation, name):
-            raise ValueError(f"expected an adapt.evaluate.Evaluation, got {type(evaluation).__name__}")
+            raise ValueError(f"expected an adapt.engine.evaluate.Evaluation, got {type(evaluation).__name__}")
     if not evaluation.processors:
         raise ValueError("the evaluation has no processors to draw")
 

@@ -30,7 +30,7 @@ from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .figures import FIGURE_TEXT, is_png
+from adapt.report.figures import FIGURE_TEXT, is_png
 
 __all__ = ["Markup", "escape", "paragraph", "preformatted", "caution", "table", "figure",
            "definition_list", "png_data_uri", "build_page", "compare_report",

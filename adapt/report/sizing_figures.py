@@ -4,7 +4,7 @@
 (``10 log10`` of the mean over trials of ``rho = SINR / SINR_opt``) against snapshots on a
 log axis, the band between the 10th and 90th percentiles of rho over trials, the
 closed-form mean where one applies (dashed; Reed, Mallett and Brennan 1974 or the
-signal-present law of :mod:`adapt.theory`), the target line, and the rules of thumb as
+signal-present law of :mod:`adapt.studies.theory`), the target line, and the rules of thumb as
 vertical marks (about 2N unloaded, about 2J loaded; Carlson 1988). Because it reads only
 the record, a figure can be redrawn from any run folder's sizing.json.
 
@@ -17,9 +17,9 @@ import math
 
 import numpy as np
 
-from .figures import (REFERENCE_COLOUR, add_title, label_axes, legend_outside, new_figure,
+from adapt.report.figures import (REFERENCE_COLOUR, add_title, label_axes, legend_outside, new_figure,
                       save_png, series_styles)
-from .html import caution, figure, paragraph, table
+from adapt.report.html import caution, figure, paragraph, table
 
 __all__ = ["sizing_figure", "sizing_figure_png", "sizing_sections"]
 

@@ -1,8 +1,8 @@
 """The scene: an array, the sources around it, what the processors assume and train on.
 
 This module holds the scene's data model (plain frozen dataclasses). Reading and
-validating scene files lives in :mod:`adapt.scenefile`; generating sample streams from a
-scene lives in :mod:`adapt.streams`.
+validating scene files lives in :mod:`adapt.scene.files`; generating sample streams from a
+scene lives in :mod:`adapt.streams.snapshots`.
 
 Units: positions and spacings in wavelengths, angles in degrees, powers in dB relative
 to the per-element thermal noise power (noise is unit power per element), time in
@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from . import geometry
+from adapt.scene import geometry
 
 LAYOUTS = ("line", "grid", "ring", "custom")
 ROLES = ("desired", "interferer")

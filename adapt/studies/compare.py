@@ -1,6 +1,6 @@
 """Compare processors on one scene: Monte Carlo scores, a summary table, a run folder.
 
-``compare(scene, processors)`` runs :func:`adapt.execute.evaluate` and condenses it into
+``compare(scene, processors)`` runs :func:`adapt.engine.execute.evaluate` and condenses it into
 plain dictionaries (``Comparison.metrics``, the ``metrics.json`` schema below);
 ``Comparison.table()`` renders the terminal summary; :func:`write_compare_run` writes a
 new run folder (``scene.yaml``, ``metrics.json``, ``curves.csv``, figures,
@@ -15,13 +15,13 @@ Conventions of the summary (all "mean" values are over Monte Carlo trials):
   of the per-trial loss in dB, so ``loss_db_mean = optimum_sinr_db - sinr_db_mean``
   whenever every trial's SINR is defined;
 * ``snapshots_to_3db`` is the first checkpoint at which the loss of the MEAN normalised
-  SINR, ``-10 log10(mean rho)`` (:func:`adapt.scores.mean_loss_db`, the quantity of Reed,
+  SINR, ``-10 log10(mean rho)`` (:func:`adapt.engine.scores.mean_loss_db`, the quantity of Reed,
   Mallett and Brennan 1974), is at most 3 dB; ``snapshots_to_3db_fraction`` the first
   checkpoint at which at least 90 % of the trials are within 3 dB; null if never;
 * null depths and white-noise gain are means over trials of dB values at the final
   checkpoint, pointing error and peak sidelobe come from the final weights on each
-  trial's true array (:func:`adapt.scores.pointing_error_deg`,
-  :func:`adapt.scores.peak_sidelobe_db`);
+  trial's true array (:func:`adapt.engine.scores.pointing_error_deg`,
+  :func:`adapt.engine.scores.peak_sidelobe_db`);
 * ``measured_sinr_db_mean`` is the SINR measured from output samples (the held final
   weight over the ``tail`` snapshots after the last checkpoint): a cross-check of the
   covariance-based SINR, unbiased only on average.
@@ -37,11 +37,12 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from . import geometry, scores
-from .evaluate import Evaluation
-from .execute import evaluate
-from .runsettings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
-from .scene import Scene
+from adapt.scene import geometry
+from adapt.engine import scores
+from adapt.engine.evaluate import Evaluation
+from adapt.engine.execute import evaluate
+from adapt.engine.settings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
+from adapt.scene.model import Scene
 
 __all__ = ["Comparison", "compare", "summarise", "write_compare_run", "CAUTION", "TAIL"]
 
@@ -307,7 +308,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     checkpoints: snapshot counts to score (list or "1,2,4" text; default geometric,
     4 per octave); progress: called with the number of trial-snapshots done after each
     block (the total is ``trials * (snapshots + tail)``); chunk: trials per chunk
-    (default :func:`adapt.execute.chunk_size`); threads: run the chunks on this many
+    (default :func:`adapt.engine.execute.chunk_size`); threads: run the chunks on this many
     threads of this process (default: every usable core; 1: one after another); workers:
     run on that many local Dask worker processes, or scheduler: on an existing Dask
     cluster (not with threads); store: a folder that
@@ -320,7 +321,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     cps = checkpoints_for(checkpoints, used.snapshots)
     if tail < 0:
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
-    from .execute import check_cluster_options, check_threads
+    from adapt.engine.execute import check_cluster_options, check_threads
     check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     if chunk is not None:
@@ -346,9 +347,9 @@ def write_compare_run(comparison: Comparison, out_root="runs",
     ``manifest.json`` (versions, seed, command line, sha256 of every file). Every file
     is written atomically; an existing folder is never touched, except ``folder``: the
     run folder this comparison was computed into (resumable, see
-    :func:`adapt.execute.start_run_folder`), which is completed and sealed.
+    :func:`adapt.engine.execute.start_run_folder`), which is completed and sealed.
     """
-    from . import runs
+    from adapt.report import runfolder as runs
     if not isinstance(comparison, Comparison):
         raise ValueError(f"expected a Comparison, got {type(comparison).__name__}")
     return runs.write_run(comparison.scene, comparison.evaluation, comparison.metrics,

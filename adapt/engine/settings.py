@@ -13,11 +13,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError, SceneError, SpecError
-from .evaluate import default_checkpoints
-from .processors import Processor, parse_specs
-from .processors.base import normalised_checkpoints
-from .scene import Scene
+from adapt.errors import InputError, SceneError, SpecError
+from adapt.engine.evaluate import default_checkpoints
+from adapt.processors import Processor, parse_specs
+from adapt.processors.base import normalised_checkpoints
+from adapt.scene.model import Scene
 
 __all__ = ["prepare_scene", "checkpoints_for", "whole_count", "MAX_TRIALS", "MAX_SNAPSHOTS"]
 
@@ -68,7 +68,7 @@ def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None
     processors. ``scene`` may be a :class:`Scene` or a scene file path; ``processors``
     a list of specs (strings, mappings) or :class:`Processor` objects, default the
     scene's own list. InputError (exit code 2 on the command line) for bad values."""
-    from .scenefile import load_scene, parse_scene, scene_to_mapping
+    from adapt.scene.files import load_scene, parse_scene, scene_to_mapping
     if isinstance(scene, (str, Path)):
         scene = load_scene(scene)
     if not isinstance(scene, Scene):

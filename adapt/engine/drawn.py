@@ -26,7 +26,7 @@ law Beta(K-N+2, N-1), the same distribution as from samples.
 
 Randomness: trial i draws from ``SeedSequence(seed, spawn_key=(i, 2, ...))`` only (the
 normals from the counter-based stream of key (i, 2, 1), the gamma variates from that of
-key (i, 2, 2), :mod:`adapt.normals`; the sample streams use keys (i, 0) and (i, 1)), so results do not depend on the chunk size. They
+key (i, 2, 2), :mod:`adapt.streams.normals`; the sample streams use keys (i, 0) and (i, 1)), so results do not depend on the chunk size. They
 depend on the set of cut points, i.e. on the checkpoints and the processors' windows.
 A drawn run is a different (equally distributed) realisation from the sample path: the
 two agree in distribution, not trial by trial.
@@ -42,13 +42,14 @@ from typing import Sequence
 
 import numpy as np
 
-from .errors import InputError
-from . import _kernels, normals
-from .processors.base import Context, Processor, ProcessorResult
-from .processors._covariance import SampleCovarianceProcessor
-from .processors._linalg import compiled_solves
-from .scene import Scene
-from .streams import scratch_array
+from adapt.errors import InputError
+from adapt.numerics import kernels as _kernels
+from adapt.streams import normals
+from adapt.processors.base import Context, Processor, ProcessorResult
+from adapt.processors._covariance import SampleCovarianceProcessor
+from adapt.numerics.linalg import compiled_solves
+from adapt.scene.model import Scene
+from adapt.streams.snapshots import scratch_array
 
 __all__ = ["DRAWS", "DrawStreams", "covariance_draw_refusal", "check_covariance_draw", "cut_points",
            "bartlett_factors", "span_sums", "run_drawn"]
@@ -119,7 +120,7 @@ def cut_points(processors: Sequence[Processor], checkpoints) -> np.ndarray:
 
 class DrawStreams:
     """The random streams of a drawn-covariance run for some trials, counter-based
-    (:mod:`adapt.normals`): trial i's gamma variates from the stream of
+    (:mod:`adapt.streams.normals`): trial i's gamma variates from the stream of
     ``SeedSequence(seed, spawn_key=(i, 2, 2))`` and its below-diagonal normals from
     that of ``SeedSequence(seed, spawn_key=(i, 2, 1))``. Slicing gives the streams of
     a subset of the trials (the same streams, not new ones)."""
@@ -145,7 +146,7 @@ def _draws(streams: DrawStreams, lengths: np.ndarray, n: int, scratch: dict | No
     """One compiled (or vectorised) pass each for the gamma variates (S, N) of the
     diagonals and the normals of the below-diagonal entries (E, 2) of every span of
     every trial; returns (gam, z, (si, ii, jj)) (in ``scratch`` buffers when given, see
-    :func:`adapt.streams.scratch_array`)."""
+    :func:`adapt.streams.snapshots.scratch_array`)."""
     lengths = np.asarray(lengths, dtype=np.int64)
     if lengths.ndim != 1 or lengths.size == 0 or lengths.min() < 1:
         raise ValueError("span lengths must be a non-empty list of counts >= 1")
@@ -188,7 +189,7 @@ def span_sums(covariance: np.ndarray, streams: DrawStreams,
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite,
     or (1, N, N) shared by every trial: ``L_R A A^H L_R^H`` with A from
-    :func:`bartlett_factors`. With the compiled kernels on (:mod:`adapt._kernels`) the
+    :func:`bartlett_factors`. With the compiled kernels on (:mod:`adapt.numerics.kernels`) the
     same draws are combined in a compiled loop that skips the triangles' zeros (equal to
     rounding); its sums are exactly Hermitian.
     ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
@@ -223,7 +224,7 @@ class _Span:
 def run_drawn(processors: Sequence[Processor], batch, context: Context,
               checkpoints: np.ndarray) -> list[ProcessorResult]:
     """Weights (T, C, N) of every processor at ``checkpoints`` (sorted, >= 1) from drawn
-    window sums, for the trials of ``batch`` (a :class:`~adapt.streams.TrialBatch`).
+    window sums, for the trials of ``batch`` (a :class:`~adapt.streams.snapshots.TrialBatch`).
     The counterpart of :func:`adapt.processors.run_processors` for ``draw="covariance"``;
     InputError when the scene or a processor does not allow it. Trials are worked in
     cache-sized groups (results do not depend on the grouping)."""

@@ -1,13 +1,13 @@
 """Snapshot sizing: how many training snapshots a processor needs, with theory beside it.
 
-``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.execute.evaluate`)
+``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.engine.execute.evaluate`)
 whose checkpoints are the sweep's snapshot counts: each trial is one stream of the
 largest count, scored at every count of the growing window, so the points of the sweep
 share their trials (common random numbers; a point agrees with a separate run of that
 count alone, same seed, to rounding). For each processor and point it reports the mean
 normalised SINR ``rho = SINR / SINR_opt`` and its standard error, loss percentiles, the
 fraction of trials within the target loss and the closed-form mean where one applies
-(:mod:`adapt.theory`), then answers the sizing question two ways:
+(:mod:`adapt.studies.theory`), then answers the sizing question two ways:
 
 * in the mean: the smallest sweep point from which the mean normalised SINR stays at or
   above ``10^(-target/10)`` at every larger point (the criterion of Reed, Mallett and
@@ -44,13 +44,13 @@ from typing import Callable, Sequence
 import numpy as np
 from scipy import stats
 
-from . import theory
-from .errors import InputError
-from .evaluate import Evaluation
-from .execute import evaluate
-from .processors import Processor
-from .processors._covariance import effective_loading
-from .scene import Scene
+from adapt.studies import theory
+from adapt.errors import InputError
+from adapt.engine.evaluate import Evaluation
+from adapt.engine.execute import evaluate
+from adapt.processors import Processor
+from adapt.processors._covariance import effective_loading
+from adapt.scene.model import Scene
 
 __all__ = ["Sizing", "size", "sweep_points", "stays_met", "bootstrap_required",
            "clopper_pearson", "analyse_processor", "recommendation", "render_table",
@@ -326,7 +326,7 @@ def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | Non
         k = max(n, int(round((n - 1) * (2.0 + sinr_opt) - 1)))
         return {"snapshots": k, "strong_interferers": None,
                 "text": f"about (N-1)(2+SINR_opt)-1 = {k} with the signal in the training "
-                        "data (derived in adapt.theory; Boroson 1980)"}
+                        "data (derived in adapt.studies.theory; Boroson 1980)"}
     return {"snapshots": theory.unloaded_rule_of_thumb(n), "strong_interferers": None,
             "text": f"about 2N = {2 * n} (3 dB in the mean at exactly 2N-3 = "
                     f"{theory.rmb_three_db_snapshots(n)}; {theory.RMB_SOURCE})"}
@@ -490,14 +490,14 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     share of trials for the per-trial answer; progress: called with trial-snapshots done;
     chunk, threads, workers, scheduler, store, on_chunk: chunked execution on threads
     of this process or a Dask cluster and resumable runs, as in
-    :func:`adapt.compare.compare` (results never depend on them);
+    :func:`adapt.studies.compare.compare` (results never depend on them);
     draw: ``samples`` (default) or ``covariance``: window covariances drawn directly from
-    the complex-Wishart law (:mod:`adapt.wishart`; Gaussian stationary scenes, covariance
+    the complex-Wishart law (:mod:`adapt.engine.drawn`; Gaussian stationary scenes, covariance
     processors only), the same distribution at a cost independent of the snapshot count.
     InputError for bad values (exit code 2 on the command line).
     """
-    from .runsettings import prepare_scene
-    from .scenefile import load_scene
+    from adapt.engine.settings import prepare_scene
+    from adapt.scene.files import load_scene
     t0 = time.perf_counter()
     if isinstance(scene, (str, Path)):
         scene = load_scene(scene)
@@ -524,8 +524,8 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
-    from .runsettings import MAX_TRIALS, whole_count
-    from .execute import check_cluster_options, check_threads
+    from adapt.engine.settings import MAX_TRIALS, whole_count
+    from adapt.engine.execute import check_cluster_options, check_threads
     check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     if chunk is not None:
@@ -609,16 +609,16 @@ def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None =
     """Write a NEW run folder under ``out_root``: ``scene.yaml`` (the scene as run),
     ``sizing.json``, ``sizing.png``, ``report.html`` and ``manifest.json`` (versions,
     seed, command line, sha256 of every file); every file atomically. With ``folder``
-    (a resumable run folder, :func:`adapt.execute.start_run_folder`) the outputs go
+    (a resumable run folder, :func:`adapt.engine.execute.start_run_folder`) the outputs go
     there and its resume state is removed just before the manifest."""
-    from . import io
-    from .report.html import build_page
-    from .report.sizing_figures import sizing_figure_png, sizing_sections
-    from .scenefile import dump_scene
+    from adapt import io
+    from adapt.report.html import build_page
+    from adapt.report.sizing_figures import sizing_figure_png, sizing_sections
+    from adapt.scene.files import dump_scene
     if not isinstance(sizing, Sizing):
         raise ValueError(f"expected a Sizing, got {type(sizing).__name__}")
     rec = sizing.record
-    from .execute import seal
+    from adapt.engine.execute import seal
     if folder is None:
         folder = io.new_run_folder(out_root, f"size-{sizing.scene.name}")
     folder = Path(folder)

@@ -1,7 +1,7 @@
 """Chunked execution of Monte Carlo runs: on threads, on a Dask cluster, resumable.
 
 A run's trials are split into chunks (consecutive trial ranges). Each chunk is one
-:class:`~adapt.streams.TrialBatch` scored by :func:`adapt.evaluate.evaluate_batch`; the
+:class:`~adapt.streams.snapshots.TrialBatch` scored by :func:`adapt.engine.evaluate.evaluate_batch`; the
 parts are merged in trial order. One executor, :func:`run_chunks`, serves three cases:
 
 * in this process: with ``threads=1`` chunks run one after another; with more
@@ -23,14 +23,14 @@ parts are merged in trial order. One executor, :func:`run_chunks`, serves three 
   (``dask.distributed.LocalCluster`` on 127.0.0.1, one thread each) or an existing
   scheduler at ``scheduler`` (``tcp://host:8786``). A worker receives plain data only
   (the resolved scene mapping and processor spec strings, see :class:`Plan`) and
-  rebuilds the scene and processors with :func:`adapt.scenefile.parse_scene` and
+  rebuilds the scene and processors with :func:`adapt.scene.files.parse_scene` and
   :func:`adapt.processors.parse_spec`; it returns numpy arrays;
 * resume: with ``store`` (a folder), every finished chunk is written there at once as
   an ``.npz`` file (atomically, never pickled, :data:`adapt.io` conventions); a later
   call with the same store loads the finished chunks and computes only the rest.
 
 Why the results never depend on the partitioning: trial i draws from its own seed
-(``SeedSequence(seed, spawn_key=(i, ...))``, :mod:`adapt.streams`), every computation is
+(``SeedSequence(seed, spawn_key=(i, ...))``, :mod:`adapt.streams.snapshots`), every computation is
 vectorised along the trial axis with no cross-trial sums, and the block boundaries
 (which do change floating-point rounding of running sums) are fixed by
 :func:`block_size` from the element count and stream length alone, never from the chunk.
@@ -72,14 +72,14 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from . import io
-from .errors import InputError
-from .evaluate import (Evaluation, ProcessorScores, default_checkpoints, evaluate_batch,
+from adapt import io
+from adapt.errors import InputError
+from adapt.engine.evaluate import (Evaluation, ProcessorScores, default_checkpoints, evaluate_batch,
                        merge, trial_chunks)
-from .processors import Processor
-from .processors.base import normalised_checkpoints
-from .scene import Scene
-from .streams import TrialBatch
+from adapt.processors import Processor
+from adapt.processors.base import normalised_checkpoints
+from adapt.scene.model import Scene
+from adapt.streams.snapshots import TrialBatch
 
 __all__ = ["evaluate", "Plan", "ChunkStore", "Terminated", "run_chunks", "run_chunk", "block_size",
            "chunk_size", "part_arrays", "part_evaluation", "check_cluster_options",
@@ -174,13 +174,13 @@ class Plan:
     chunk: int
     block: int
     draw: str = "samples"
-    #: how the random numbers are made (:data:`adapt.streams.STREAMS`): chunks made
+    #: how the random numbers are made (:data:`adapt.streams.snapshots.STREAMS`): chunks made
     #: under another definition are not resumed into this run
     streams: str = ""
 
     def __post_init__(self):
         if not self.streams:
-            from .streams import STREAMS
+            from adapt.streams.snapshots import STREAMS
             object.__setattr__(self, "streams", STREAMS)
 
     def chunks(self) -> list[tuple[int, int]]:
@@ -212,14 +212,14 @@ class Plan:
 def scene_mapping(scene: Scene) -> dict:
     """The scene as plain JSON-able data (its resolved mapping), for workers and run
     folders."""
-    from .scenefile import scene_to_mapping
+    from adapt.scene.files import scene_to_mapping
     m = dict(scene.resolved) if getattr(scene, "resolved", None) else scene_to_mapping(scene)
     return io.to_jsonable(m)
 
 
 def shippable_specs(processors: Sequence[Processor]) -> tuple:
     """Spec strings that rebuild each processor exactly (InputError otherwise)."""
-    from .processors import parse_spec
+    from adapt.processors import parse_spec
     out = []
     for p in processors:
         spec = p.spec()
@@ -269,9 +269,9 @@ def run_chunk(plan: dict, first: int, count: int) -> dict[str, np.ndarray]:
     """Worker entry point: rebuild the scene and processors from ``plan`` (plain data,
     :meth:`Plan.as_dict`) and score trials ``first .. first + count - 1``. Returns
     :func:`part_arrays` plus ``"warnings"`` (the library warnings raised, as text)."""
-    from .processors import parse_spec
-    from .scenefile import parse_scene
-    from .streams import STREAMS
+    from adapt.processors import parse_spec
+    from adapt.scene.files import parse_scene
+    from adapt.streams.snapshots import STREAMS
     made = plan.get("streams", "numpy-generator")
     if made != STREAMS:           # e.g. a cluster worker of another adapt version
         raise RuntimeError(f"this plan's random streams are {made!r}; this adapt makes "
@@ -540,7 +540,7 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     per chunk on a cluster, at once for stored chunks); on_chunk: called in the calling
     thread with (first trial, count) after each chunk is finished and stored (on
     threads: in trial order);
-    draw: passed to :func:`adapt.evaluate.evaluate_batch`. Returns the merged
+    draw: passed to :func:`adapt.engine.evaluate.evaluate_batch`. Returns the merged
     :class:`Evaluation` in trial order. Each processor's ``seconds`` is summed over the
     chunks: with threads (or workers) that is the time summed over threads, not the
     elapsed wall time.
@@ -802,7 +802,7 @@ def evaluate(scene: Scene, processors: Sequence[Processor], checkpoints=None, *,
     weights' output SINR from samples; progress: called with the number of
     trial-snapshots done after each block; draw: ``samples`` (default) or
     ``covariance``, the drawn-covariance fast path (see
-    :func:`adapt.evaluate.evaluate_batch`). Processor ``seconds`` are summed over
+    :func:`adapt.engine.evaluate.evaluate_batch`). Processor ``seconds`` are summed over
     chunks (with threads: time summed over the threads, not wall time).
     """
     t_ = int(scene.trials if trials is None else trials)

@@ -40,7 +40,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .seeding import seed_states
+from adapt.streams.seeding import seed_states
 
 __all__ = ["stream_keys", "fill", "draw", "gamma_fill", "LAYERS", "TAIL_START"]
 
@@ -119,8 +119,8 @@ def _check(keys: np.ndarray, start: int, out: np.ndarray) -> None:
 def fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
     """Normals ``start .. start + M - 1`` of each stream into ``out`` (T, M) float64
     (C-contiguous; any array viewable so, e.g. a (T, B, N, 2) block reshaped), returned.
-    Compiled when the kernels are on (:mod:`adapt._kernels`), else numpy."""
-    from . import _kernels
+    Compiled when the kernels are on (:mod:`adapt.numerics.kernels`), else numpy."""
+    from adapt.numerics import kernels as _kernels
     keys = np.asarray(keys)
     _check(keys, start, out)
     if out.size == 0:
@@ -160,7 +160,7 @@ def gamma_fill(keys: np.ndarray, shapes: np.ndarray, out: np.ndarray) -> np.ndar
     c = 1/sqrt(9d), v = (1 + c x)^3 > 0, accept d v if u < 1 - 0.0331 x^4 or
     log u < x^2/2 + d (1 - v + log v). Checkable fact (tested): the variates pass a
     Kolmogorov-Smirnov test against ``scipy.stats.gamma`` for each shape."""
-    from . import _kernels
+    from adapt.numerics import kernels as _kernels
     keys = np.asarray(keys)
     _check(keys, 0, out)
     shapes = _check_shapes(shapes, out)

@@ -3,8 +3,8 @@
 All functions work on stacks (..., N, N) without a Python loop over the stack: Cholesky
 factorisation is batched by numpy, and the triangular solves loop over the N rows with
 every stack item in each step. Inside :func:`compiled_solves` (used by the drawn-
-covariance path, :mod:`adapt.wishart`) and with the compiled kernels on
-(:mod:`adapt._kernels`), :func:`cholesky_solve` factorises and solves each
+covariance path, :mod:`adapt.engine.drawn`) and with the compiled kernels on
+(:mod:`adapt.numerics.kernels`), :func:`cholesky_solve` factorises and solves each
 item in one compiled loop instead: the same algorithm, equal to rounding, but rounding
 differs by up to about cond(R) x 1e-16 relative, so the sample path keeps the numpy
 solves and stays bit-for-bit reproducible across versions.
@@ -16,7 +16,7 @@ from contextlib import contextmanager
 
 import numpy as np
 
-from .. import _kernels
+from adapt.numerics import kernels as _kernels
 
 _COMPILED_SOLVES = contextvars.ContextVar("adapt_compiled_solves", default=False)
 

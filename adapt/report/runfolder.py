@@ -5,7 +5,7 @@ A run folder (``runs/YYYYmmdd-HHMMSS-scene-name/``, made by
 
 * ``scene.yaml`` - the scene exactly as run (defaults filled in; trials, snapshots, seed
   and processor specs as used), re-loadable with ``adapt compare scene.yaml``;
-* ``metrics.json`` - the summary (schema in README and :mod:`adapt.compare`);
+* ``metrics.json`` - the summary (schema in README and :mod:`adapt.studies.compare`);
 * ``curves.csv`` - one row per processor and checkpoint;
 * ``summary.txt`` - the terminal table;
 * ``convergence.png``, ``beam_pattern.png``, ``null_depth.png`` and ``report.html`` -
@@ -15,7 +15,7 @@ A run folder (``runs/YYYYmmdd-HHMMSS-scene-name/``, made by
   :func:`adapt.io.check_manifest`).
 
 While ``adapt compare`` / ``adapt size`` run, the folder also holds ``INCOMPLETE``,
-``resume.json`` and ``partial/`` (finished chunks, see :mod:`adapt.execute`); they are
+``resume.json`` and ``partial/`` (finished chunks, see :mod:`adapt.engine.execute`); they are
 removed just before the manifest is written, so a folder without a manifest is an
 unfinished run that ``--resume`` can complete.
 """
@@ -32,7 +32,7 @@ from pathlib import Path
 
 import yaml
 
-from . import io
+from adapt import io
 
 __all__ = ["write_run", "write_scene_yaml", "write_curves_csv", "curves_rows",
            "CURVE_COLUMNS", "write_report_files", "summary_rows", "read_run", "RUN_FILES"]
@@ -48,7 +48,7 @@ CURVE_COLUMNS = ("label", "method", "snapshots", "normalized_sinr_mean", "sinr_d
 
 def write_scene_yaml(folder, scene) -> Path:
     """``scene.yaml``: the resolved scene mapping, YAML safe-dumped in key order."""
-    from .scenefile import scene_to_mapping
+    from adapt.scene.files import scene_to_mapping
     mapping = scene.resolved if getattr(scene, "resolved", None) else scene_to_mapping(scene)
     header = ("# The scene exactly as run (defaults filled in). Re-run with:\n"
               "#   adapt compare scene.yaml\n")
@@ -99,16 +99,8 @@ def write_curves_csv(folder, metrics: dict) -> Path:
 
 
 def _module(name: str):
-    """Import ``adapt.report.<name>`` if that module exists (it may still be missing
-    while the report is being built); import errors inside it are not hidden."""
-    full = f"{__package__}.report.{name}"
-    try:
-        if importlib.util.find_spec(f"{__package__}.report") is None \
-                or importlib.util.find_spec(full) is None:
-            return None
-    except ModuleNotFoundError:
-        return None
-    return importlib.import_module(full)
+    """``adapt.report.<name>``, imported when first needed (matplotlib is heavy)."""
+    return importlib.import_module(f"adapt.report.{name}")
 
 
 def summary_rows(metrics: dict) -> list[dict]:
@@ -153,7 +145,7 @@ def write_report_files(folder, evaluation, metrics: dict, scene=None,
     html = _module("html")
     builder = getattr(html, "compare_report", None) if html is not None else None
     if builder is not None:
-        from .summary import summarise_scene
+        from adapt.studies.check import summarise_scene
         sc = scene if scene is not None else evaluation.scene
         notes = [f"Optimum (clairvoyant MVDR) SINR: {_num(metrics['optimum_sinr_db'])[:6]} dB, "
                  "mean over trials. Loss = optimum minus output SINR, mean over trials of dB. "
@@ -176,7 +168,7 @@ def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: s
     A new folder is created under ``out_root`` (timestamp + scene name, suffixed when
     taken); nothing outside it is touched. ``manifest.json`` is written last, so a
     folder with a manifest is complete. With ``folder`` (a resumable run folder made by
-    :func:`adapt.execute.start_run_folder`), the outputs go there and its resume state
+    :func:`adapt.engine.execute.start_run_folder`), the outputs go there and its resume state
     (``partial/``, ``resume.json``, ``INCOMPLETE``) is removed just before the manifest.
     """
     if folder is None:
@@ -198,7 +190,7 @@ def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: s
             "command_line": command_line,
             "created": _dt.datetime.now().astimezone().isoformat(timespec="seconds"),
             "report": "report.html" in extra}
-    from .execute import seal
+    from adapt.engine.execute import seal
     seal(folder)
     io.write_manifest(folder, info)
     return folder

@@ -16,7 +16,7 @@ import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from pathlib import Path
 
-from .io import atomic_write_bytes
+from adapt.io import atomic_write_bytes
 
 __all__ = ["TestOutcome", "junit_xml", "write_junit"]
 

@@ -1,8 +1,8 @@
 """The Monte Carlo engine's core: draw a batch of trials, run processors, score every
 checkpoint.
 
-``evaluate_batch`` scores one :class:`~adapt.streams.TrialBatch`; ``merge`` joins
-consecutive batches; :func:`adapt.execute.evaluate` (what ``compare``, ``size`` and the
+``evaluate_batch`` scores one :class:`~adapt.streams.snapshots.TrialBatch`; ``merge`` joins
+consecutive batches; :func:`adapt.engine.execute.evaluate` (what ``compare``, ``size`` and the
 benchmarks share) runs the batches serially, on a cluster or resumably. For each processor,
 checkpoint and trial it returns the output SINR on the true covariance of the moment,
 the normalised SINR and loss against the optimum, the white-noise gain, the null depth
@@ -15,7 +15,7 @@ jammer it makes the scores dip when the scene changes and recover as the process
 adapts.
 
 Trials are processed in chunks (``chunk`` trials at a time, each chunk its own
-:class:`~adapt.streams.TrialBatch`); every trial's randomness comes from its own seed, so
+:class:`~adapt.streams.snapshots.TrialBatch`); every trial's randomness comes from its own seed, so
 results do not depend on the chunk size, block size or worker count.
 """
 from __future__ import annotations
@@ -25,11 +25,11 @@ from typing import Callable, Iterator, Sequence
 
 import numpy as np
 
-from . import scores
-from .processors import Context, Processor, run_processors
-from .processors.base import normalised_checkpoints
-from .scene import Scene
-from .streams import TrialBatch
+from adapt.engine import scores
+from adapt.processors import Context, Processor, run_processors
+from adapt.processors.base import normalised_checkpoints
+from adapt.scene.model import Scene
+from adapt.streams.snapshots import TrialBatch
 
 __all__ = ["ProcessorScores", "Evaluation", "evaluate_batch", "merge", "trial_chunks",
            "default_checkpoints"]
@@ -141,7 +141,7 @@ class _Measure:
 
 
 def _stationary_sinr(w: np.ndarray, a: np.ndarray, r: np.ndarray, power: float) -> np.ndarray:
-    """:func:`adapt.scores.output_sinr` for weights (T, C, N) against one steering vector
+    """:func:`adapt.engine.scores.output_sinr` for weights (T, C, N) against one steering vector
     (T, N) and covariance (T or 1, N, N) per trial, ``R w`` as one batched matrix product
     (equal to rounding; used by the drawn-covariance path, whose realisations differ
     from the sample path's anyway)."""
@@ -160,7 +160,7 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
 
     The stream runs to ``snapshots + tail``; the tail only serves the measured SINR of
     the last checkpoint's weight. ``draw="covariance"`` draws the window sample
-    covariances directly (:mod:`adapt.wishart`; Gaussian stationary scenes and
+    covariances directly (:mod:`adapt.engine.drawn`; Gaussian stationary scenes and
     covariance-based processors only, InputError otherwise): statistically the same
     scores at a cost independent of ``snapshots``, no samples, measured SINR NaN.
     """
@@ -176,14 +176,14 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
                 progress(b.size * batch.trials)
 
     if draw == "covariance":
-        from .wishart import run_drawn
+        from adapt.engine.drawn import run_drawn
         results = run_drawn(processors, batch, context, cps)
         if progress is not None:
             progress(snapshots * batch.trials)
     elif draw == "samples":
         results = run_processors(processors, fed(), context, cps, on_block=measure)
     else:
-        from .errors import InputError
+        from adapt.errors import InputError
         raise InputError("unknown way to draw the training data", path="draw", value=draw,
                          allowed="samples | covariance")
     # truth at each checkpoint's moment

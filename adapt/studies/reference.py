@@ -92,17 +92,17 @@ from typing import Any, Callable
 
 import numpy as np
 
-from . import __version__
-from .errors import CorruptReferenceError, InputError, SpecError, did_you_mean
-from .io import (atomic_write_bytes, atomic_write_text, check_manifest, library_versions,
+from adapt import __version__
+from adapt.errors import CorruptReferenceError, InputError, SpecError, did_you_mean
+from adapt.io import (atomic_write_bytes, atomic_write_text, check_manifest, library_versions,
                  read_npy, write_json, write_manifest, write_npy)
-from .junit import TestOutcome, write_junit
-from .processors import Context, Processor, parse_spec, run_processors
-from .processors.base import normalised_checkpoints
-from .scene import Scene
-from .scenefile import scene_to_mapping
-from .scores import output_sinr, to_db
-from .streams import Block, TrialBatch
+from adapt.report.junit import TestOutcome, write_junit
+from adapt.processors import Context, Processor, parse_spec, run_processors
+from adapt.processors.base import normalised_checkpoints
+from adapt.scene.model import Scene
+from adapt.scene.files import scene_to_mapping
+from adapt.engine.scores import output_sinr, to_db
+from adapt.streams.snapshots import Block, TrialBatch
 
 __all__ = ["DEFAULT_TOLERANCES", "METRICS", "record", "load_reference", "verify",
            "ReferenceSet", "ReferenceCase", "CaseInputs", "CaseResult", "VerifyReport",
@@ -177,7 +177,7 @@ def _db20(num: np.ndarray, den: np.ndarray) -> np.ndarray:
 def sinr_difference_db(weights: np.ndarray, truth_steering: np.ndarray,
                        truth_covariance: np.ndarray, signal_power: np.ndarray,
                        reference_sinr_db: np.ndarray) -> np.ndarray:
-    """``|SINR_dB(w) - reference|`` per checkpoint; SINR from :func:`adapt.scores.output_sinr`
+    """``|SINR_dB(w) - reference|`` per checkpoint; SINR from :func:`adapt.engine.scores.output_sinr`
     (Van Trees 2002, ch. 6). weights (C, N); steering (N,) or (C, N); covariance (N, N)
     or (C, N, N); signal_power (C,). Zero SINR reads as -300 dB."""
     s = output_sinr(weights, truth_steering, truth_covariance, signal_power)
@@ -253,7 +253,7 @@ def _as_scene(scene) -> Scene:
     if isinstance(scene, Scene):
         return scene
     if isinstance(scene, (str, os.PathLike)):
-        from .scenefile import load_scene
+        from adapt.scene.files import load_scene
         return load_scene(scene)
     raise InputError("expected a Scene or the path of a scene file", value=scene)
 
@@ -261,7 +261,7 @@ def _as_scene(scene) -> Scene:
 def _changed_params(method: str, params) -> dict:
     """The parameters that differ from their declared defaults (what rebuilds the
     processor: passing defaults back can trip cross-checks between parameters)."""
-    from .processors import registry
+    from adapt.processors import registry
     cls = registry().get(method)
     if cls is None:
         return dict(params)
@@ -313,7 +313,7 @@ def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapsh
     outputs of cases ``first .. first + count - 1``, rebuilt from plain data (the
     resolved scene mapping and the processor spec). Each case draws from its own seed,
     so the arrays equal the matching rows of a one-batch recording bit for bit."""
-    from .scenefile import parse_scene
+    from adapt.scene.files import parse_scene
     sc = parse_scene(scene_mapping)
     proc = parse_spec(spec, "processor")
     batch = TrialBatch(sc, trials=int(count), first_trial=int(first))
@@ -329,8 +329,8 @@ def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapsh
 
 def _record_on_cluster(sc: Scene, proc: Processor, trials: int, snapshots: int, cps,
                        with_ref: bool, workers, scheduler) -> tuple[np.ndarray, np.ndarray]:
-    from .execute import cluster_client, scene_mapping, shippable_specs
-    from .evaluate import trial_chunks
+    from adapt.engine.execute import cluster_client, scene_mapping, shippable_specs
+    from adapt.engine.evaluate import trial_chunks
     spec = shippable_specs([proc])[0]
     mapping = scene_mapping(sc)
     share = workers if workers is not None else 4
@@ -350,13 +350,13 @@ def _record_on_threads(proc: Processor, samples: np.ndarray, reference: np.ndarr
                        look, positions, with_ref: bool, look_dir, cps,
                        threads: int) -> tuple[np.ndarray, np.ndarray]:
     """The expected weights and outputs with the cases split over ``threads`` threads
-    (:func:`adapt.execute.run_on_threads`), each part on its own copy of ``proc``. Every
+    (:func:`adapt.engine.execute.run_on_threads`), each part on its own copy of ``proc``. Every
     computation runs along the case axis with no sums across cases, so the arrays equal
     a one-batch recording bit for bit."""
     import copy
 
-    from .evaluate import trial_chunks
-    from .execute import run_on_threads
+    from adapt.engine.evaluate import trial_chunks
+    from adapt.engine.execute import run_on_threads
     parts: dict = {}
 
     def work(key, check):
@@ -415,7 +415,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
                else normalised_checkpoints(checkpoints, k))
     except ValueError as exc:
         raise InputError(str(exc), path="checkpoints", value=checkpoints) from None
-    from .execute import check_cluster_options, check_threads
+    from adapt.engine.execute import check_cluster_options, check_threads
     pool = check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     out = _prepare_out_dir(out_dir)
@@ -794,7 +794,7 @@ def reference_implementation(case: CaseInputs) -> np.ndarray:
     ``case.params`` and run it on ``case.samples`` (and ``case.reference``).
 
     This is also the worked example of the Python interface: ``adapt verify DIR
-    --python adapt.reference:reference_implementation`` passes on any set recorded by
+    --python adapt.studies.reference:reference_implementation`` passes on any set recorded by
     this version (the expected weights were produced exactly this way).
     """
     proc = _rebuild(case.method, case.params)

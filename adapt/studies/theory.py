@@ -50,8 +50,8 @@ from typing import Any, Callable
 import numpy as np
 from scipy import integrate, stats
 
-from . import geometry
-from .scene import Scene
+from adapt.scene import geometry
+from adapt.scene.model import Scene
 
 __all__ = ["rmb_mean", "rmb_quantile", "rmb_three_db_snapshots", "signal_present_map",
            "signal_present_mean", "signal_present_quantile",
@@ -61,7 +61,7 @@ __all__ = ["rmb_mean", "rmb_quantile", "rmb_three_db_snapshots", "signal_present
            "Law", "theory_for", "RMB_SOURCE", "SIGNAL_PRESENT_SOURCE", "CARLSON_SOURCE"]
 
 RMB_SOURCE = "Reed, Mallett and Brennan, IEEE Trans. AES-10, 1974"
-SIGNAL_PRESENT_SOURCE = ("signal-present SMI law (derived in adapt.theory; Boroson, IEEE "
+SIGNAL_PRESENT_SOURCE = ("signal-present SMI law (derived in adapt.studies.theory; Boroson, IEEE "
                          "Trans. AES-16, 1980, details from memory)")
 CARLSON_SOURCE = "Carlson, IEEE Trans. AES-24, 1988"
 
@@ -424,8 +424,8 @@ def theory_for(processor, scene_info) -> Law | None:
     The law's ``violations`` list the assumptions the scene breaks, which explain a
     disagreement with simulation.
     """
-    from .processors import Processor, parse_spec
-    from .processors._covariance import effective_loading
+    from adapt.processors import Processor, parse_spec
+    from adapt.processors._covariance import effective_loading
     proc = processor if isinstance(processor, Processor) else parse_spec(processor)
     facts = scene_facts(scene_info) if isinstance(scene_info, Scene) else dict(scene_info)
     for key in ("elements", "training", "optimum_sinr"):

@@ -8,7 +8,7 @@ Warnings (each a plain sentence):
 
 * grating lobe: the uniform beam steered to the look direction has another lobe within
   1 dB of its peak in visible space (:func:`grating_lobe`: the criterion of
-  :func:`adapt.geometry.has_grating_lobe`, evaluated in closed form for lines and grids;
+  :func:`adapt.scene.geometry.has_grating_lobe`, evaluated in closed form for lines and grids;
   handbook rule for a line: free of grating lobes when ``d (1 + |sin theta0|) < 1``);
 * too many interferers: as many interferers as degrees of freedom (N - 1) or more; a
   linearly constrained processor with one look constraint can null at most N - 1
@@ -30,9 +30,9 @@ import math
 
 import numpy as np
 
-from . import geometry
-from .geometry import angle_between_deg
-from .scene import Scene, Source
+from adapt.scene import geometry
+from adapt.scene.geometry import angle_between_deg
+from adapt.scene.model import Scene, Source
 
 __all__ = ["summarise_scene", "scene_warnings", "check_processor_settings", "main_lobe_contains", "beamwidth_deg",
            "grating_lobe",
@@ -55,7 +55,7 @@ def beamwidth_deg(positions: np.ndarray, azimuth_deg: float, elevation_deg: floa
     beam steered to (az, el), any look azimuth; ``nan`` for very small apertures.
 
     The array is turned about z so the look azimuth becomes 0, then
-    :func:`adapt.geometry.half_power_beamwidth_deg` measures the cut.
+    :func:`adapt.scene.geometry.half_power_beamwidth_deg` measures the cut.
     """
     pos = _rotate_about_z(np.asarray(positions, float), azimuth_deg)
     resolution = 0.005 if len(pos) <= 128 else 0.02
@@ -107,11 +107,11 @@ def grating_lobe(scene: Scene, threshold_db: float = -1.0) -> bool:
     """True when the uniform beam steered to the look direction has another lobe within
     ``threshold_db`` of its peak in visible space (directions more than one
     aperture-null width, 1/aperture in direction-cosine space, from the main beam), as in
-    :func:`adapt.geometry.has_grating_lobe`.
+    :func:`adapt.scene.geometry.has_grating_lobe`.
 
     Uniform lines and grids are evaluated in direction-cosine space with the closed-form
     uniform pattern (separable for a grid), finely and at any size; rings and custom
-    layouts use :func:`adapt.geometry.has_grating_lobe`. Handbook rule for a line:
+    layouts use :func:`adapt.scene.geometry.has_grating_lobe`. Handbook rule for a line:
     lobes at ``u0 + m / d``, free when ``d (1 + |u0|) < 1``.
     """
     arr = scene.array
@@ -228,10 +228,10 @@ def check_processor_settings(scene: Scene) -> None:
     SpecError located in the scene file."""
     if not scene.processors:
         return
-    from .errors import SpecError
-    from .processors import Context, parse_specs
-    from .processors.base import check_processors
-    from .streams import TrialBatch
+    from adapt.errors import SpecError
+    from adapt.processors import Context, parse_specs
+    from adapt.processors.base import check_processors
+    from adapt.streams.snapshots import TrialBatch
     procs = parse_specs(list(scene.processors))
     try:
         check_processors(procs, Context.from_batch(TrialBatch(scene, trials=1)))
@@ -240,7 +240,7 @@ def check_processor_settings(scene: Scene) -> None:
 
 
 def _processor_labels(scene: Scene) -> list[str]:
-    from .processors import parse_specs
+    from adapt.processors import parse_specs
     return [p.label for p in parse_specs(list(scene.processors))]
 
 

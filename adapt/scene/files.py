@@ -15,7 +15,7 @@ style: ``on``, ``off``, ``yes`` and ``no`` stay text).
 
 Conventions: positions and spacings in wavelengths; angles in degrees, azimuth 0 /
 elevation 0 is broadside of a line (+y), azimuth +90 is endfire along +x, elevation +90
-is +z (see :mod:`adapt.geometry`); powers in dB relative to the per-element thermal noise
+is +z (see :mod:`adapt.scene.geometry`); powers in dB relative to the per-element thermal noise
 power (noise is unit power per element, so a source's ``power_db`` is its per-element
 SNR or INR); time in snapshots.
 
@@ -82,9 +82,9 @@ from typing import Any
 import numpy as np
 import yaml
 
-from . import geometry
-from .errors import InputError, SceneError, SpecError, did_you_mean
-from .scene import (LAYOUTS, ROLES, TRAINING, WAVEFORMS, ArrayLayout, HardwareErrors,
+from adapt.scene import geometry
+from adapt.errors import InputError, SceneError, SpecError, did_you_mean
+from adapt.scene.model import (LAYOUTS, ROLES, TRAINING, WAVEFORMS, ArrayLayout, HardwareErrors,
                     Motion, Pulsing, Receiver, Scene, Source, Waveform)
 
 __all__ = ["load_scene", "parse_scene", "scene_to_mapping", "dump_scene", "read_yaml",
@@ -723,7 +723,7 @@ class _Reader:
         if not isinstance(value, list):
             raise self.error("expected a list of processor specs", path, value,
                              "e.g. [conventional, 'smi loading_db=10']")
-        from .processors import parse_specs
+        from adapt.processors import parse_specs
         try:
             parse_specs(value, where=path)
         except SpecError as exc:

@@ -365,7 +365,7 @@ def _define():
     @njit(cache=True, nogil=True)
     def resolve(u, accept, scale, density, r):
         # the ziggurat's slow path for a word u rejected by its first test; further
-        # words mix64(u + m golden), m = 1, 2, ... (see adapt.normals)
+        # words mix64(u + m golden), m = 1, 2, ... (see adapt.streams.normals)
         golden = np.uint64(0x9E3779B97F4A7C15)
         m = np.uint64(1)
         cur = u
@@ -407,7 +407,7 @@ def _define():
 
     @njit(cache=True, nogil=True)
     def normals_kernel(keys, start, out, accept, scale, density, r):
-        # out[t, i] <- normal (start + i) of stream t (adapt.normals)
+        # out[t, i] <- normal (start + i) of stream t (adapt.streams.normals)
         t_, m_ = out.shape
         for t in range(t_):
             seed = keys[t, 0]
@@ -476,7 +476,7 @@ def _define():
 
     @njit(cache=True, nogil=True)
     def gamma_kernel(keys, shapes, out, step, accept, table, density, r):
-        # Marsaglia-Tsang gamma variates from counter-based words (adapt.normals)
+        # Marsaglia-Tsang gamma variates from counter-based words (adapt.streams.normals)
         t_, m_ = out.shape
         for t in range(t_):
             seed = keys[t, 0]
@@ -574,7 +574,7 @@ def rls_block(p: np.ndarray, wc: np.ndarray, x: np.ndarray, d: np.ndarray, lam: 
 def wishart_spans(chol: np.ndarray, gam: np.ndarray, z: np.ndarray, rows: np.ndarray,
                   cols: np.ndarray, counts: np.ndarray, cumulative: bool = False,
                   out: np.ndarray | None = None) -> np.ndarray:
-    """Span sums ``(L A)(L A)^H`` (T, S, N, N) of :func:`adapt.wishart.span_sums`,
+    """Span sums ``(L A)(L A)^H`` (T, S, N, N) of :func:`adapt.engine.drawn.span_sums`,
     compiled: chol (T, N, N) Cholesky factors (or (1, N, N), shared by all trials),
     gam (T, S, N) the diagonal's gamma
     variates, z (T, E, 2) the below-diagonal normals of all spans in order (``counts[s]``
@@ -662,18 +662,18 @@ def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray,
 
 
 def normals_fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
-    """Normals ``start ..`` of each counter-based stream (:func:`adapt.normals.fill`,
+    """Normals ``start ..`` of each counter-based stream (:func:`adapt.streams.normals.fill`,
     which checks the arguments), compiled: keys (T, 2) uint64, out (T, M) float64."""
-    from .normals import ACCEPT, SCALE, DENSITY, TAIL_START
+    from adapt.streams.normals import ACCEPT, SCALE, DENSITY, TAIL_START
     _build()
     _NORMALS(keys, int(start), out, ACCEPT, SCALE, DENSITY, TAIL_START)
     return out
 
 
 def gamma_fill(keys: np.ndarray, shapes: np.ndarray, out: np.ndarray) -> np.ndarray:
-    """Gamma variates of :func:`adapt.normals.gamma_fill` (which checks the arguments),
+    """Gamma variates of :func:`adapt.streams.normals.gamma_fill` (which checks the arguments),
     compiled: keys (T, 2) uint64, shapes (M,) float64, out (T, M) float64."""
-    from .normals import ACCEPT, SCALE, DENSITY, TAIL_START, GAMMA_STEP
+    from adapt.streams.normals import ACCEPT, SCALE, DENSITY, TAIL_START, GAMMA_STEP
     _build()
     _GAMMA(keys, shapes, out, np.uint64(GAMMA_STEP), ACCEPT, SCALE, DENSITY, TAIL_START)
     return out
@@ -687,9 +687,9 @@ def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
     snapshot k from normals 2(k N + e) and 2(k N + e) + 1) plus the fixed sources
     ``env`` (T, B, J) x ``steer`` (T or 1, J, N); and, when ``env_d`` (T, B) is given,
     ``data`` <- ``inter + env_d x steer_d`` (T or 1, N). Values equal to
-    :func:`adapt.normals.fill` followed by :func:`add_sources` (twice), to the last bit
+    :func:`adapt.streams.normals.fill` followed by :func:`add_sources` (twice), to the last bit
     (the same operations in the same order)."""
-    from .normals import ACCEPT, SCALE, DENSITY, TAIL_START
+    from adapt.streams.normals import ACCEPT, SCALE, DENSITY, TAIL_START
     t_, b_, n = inter.shape
     if env_d is None:
         env_d = np.zeros((t_, 0), dtype=complex)

@@ -22,7 +22,7 @@ Reproducibility (tested):
   and memory is bounded by the block.
 
 The noise and the random waveforms come from counter-based normal streams
-(:mod:`adapt.normals`): normal j of a stream is a function of the stream's key and j, so
+(:mod:`adapt.streams.normals`): normal j of a stream is a function of the stream's key and j, so
 a block of every trial is computed in one pass, with no Python loop over trials.
 """
 from __future__ import annotations
@@ -33,15 +33,17 @@ from typing import Iterator
 
 import numpy as np
 
-from . import _kernels, geometry, normals
-from .scene import Scene
-from .seeding import trial_generators
+from adapt.numerics import kernels as _kernels
+from adapt.scene import geometry
+from adapt.streams import normals
+from adapt.scene.model import Scene
+from adapt.streams.seeding import trial_generators
 
 __all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise",
            "scratch_array", "STREAMS"]
 
 #: the definition of the random numbers (recorded in resumable run plans): noise and
-#: random waveforms from counter-based normal streams (adapt.normals)
+#: random waveforms from counter-based normal streams (adapt.streams.normals)
 STREAMS = "counter-normals-1"
 
 _CONSTANTS, _STREAMS = 0, 1
@@ -259,7 +261,7 @@ class TrialBatch:
     def _waveform(self, keys, src_index: int, start: int, size: int,
                   scratch: dict | None = None) -> np.ndarray:
         """(T, B) unit-power waveform of one source over snapshots [start, start+size);
-        ``keys``: the source's normal streams (:mod:`adapt.normals`) for the random
+        ``keys``: the source's normal streams (:mod:`adapt.streams.normals`) for the random
         kinds: gaussian uses normals 2k, 2k+1 (real, imaginary) at snapshot k, bpsk the
         sign of normal k, qpsk the signs of normals 2k, 2k+1."""
         src = self.scene.sources[src_index]

@@ -23,9 +23,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import geometry
+from adapt.scene import geometry
 
-from .processors._linalg import solve_hermitian
+from adapt.numerics.linalg import solve_hermitian
 
 __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
            "white_noise_gain", "white_noise_gain_db", "response_db", "mean_loss_db",
@@ -289,7 +289,7 @@ def main_beam_peak(weights: np.ndarray, positions: np.ndarray, look_azimuth: flo
 
     The azimuth cut at the look elevation is sampled on ``points`` points within +- one
     beamwidth (default: the half-power beamwidth of the uniform beam toward the look
-    direction on the nominal array, :func:`adapt.geometry.half_power_beamwidth_deg`) of
+    direction on the nominal array, :func:`adapt.scene.geometry.half_power_beamwidth_deg`) of
     the look azimuth; the local maximum nearest the look azimuth is refined by
     :func:`parabolic_peak` on the dB values. If the cut rises monotonically to an edge of
     the window, that edge is returned. Shapes: weights (..., N) -> (...).
