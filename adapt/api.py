@@ -26,18 +26,17 @@ from pathlib import Path
 from typing import Sequence
 
 from adapt.engine import scores
-from adapt.studies.compare import Comparison, compare, write_compare_run
-from adapt.engine.settings import checkpoints_for, prepare_scene
-from adapt.errors import InputError, SceneError, SpecError
 from adapt.engine.evaluate import Evaluation, ProcessorScores
 from adapt.engine.execute import evaluate as _evaluate
-from adapt.processors import Processor, ProcessorResult, parse_spec, parse_specs, registry
+from adapt.engine.settings import checkpoints_for, prepare_scene
+from adapt.errors import InputError, SceneError, SpecError
+from adapt.processors import Context, Processor, ProcessorResult, parse_spec, parse_specs, registry
 from adapt.processors import run_processors as _run_processors
-from adapt.processors import Context
 from adapt.report.runfolder import read_run
-from adapt.scene.model import Scene
 from adapt.scene.files import dump_scene, load_scene, parse_scene
+from adapt.scene.model import Scene
 from adapt.streams.snapshots import Block, TrialBatch
+from adapt.studies.compare import Comparison, compare, write_compare_run
 
 __all__ = ["load_scene", "parse_scene", "dump_scene", "generate", "processors", "methods",
            "run", "evaluate", "compare", "write_run", "read_run", "size", "record", "verify",
@@ -154,5 +153,6 @@ def verify(reference_dir, implementation, **options):
     """Check an implementation (a callable ``f(case) -> weights`` or a command template
     ``'PROGRAM {case} {out}'``) against a reference set (as ``adapt verify``): see
     :func:`adapt.studies.reference.verify`."""
-    from adapt.studies.reference import load_reference, verify as _verify
+    from adapt.studies.reference import load_reference
+    from adapt.studies.reference import verify as _verify
     return _verify(load_reference(reference_dir), implementation, **options)

@@ -11,12 +11,12 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from adapt.scene import geometry
 from adapt.errors import SpecError
 from adapt.processors import Context, parse_spec, registry, run_processors
 from adapt.processors._covariance import GrowingSums, SlidingSums, outer_sum
+from adapt.scene import geometry
 from adapt.scene.geometry import steering_derivatives
-from adapt.scene.model import ArrayLayout, HardwareErrors, Pulsing, Source, Scene
+from adapt.scene.model import ArrayLayout, HardwareErrors, Pulsing, Scene, Source
 from adapt.streams.snapshots import TrialBatch
 
 

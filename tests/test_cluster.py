@@ -14,12 +14,12 @@ import numpy as np
 import pytest
 import yaml
 
-from adapt.engine import execute
 from adapt import io
-from adapt.studies.compare import TAIL, compare
-from adapt.errors import InputError
+from adapt.engine import execute
 from adapt.engine.execute import part_arrays
+from adapt.errors import InputError
 from adapt.scene.files import parse_scene
+from adapt.studies.compare import TAIL, compare
 from adapt.studies.sizing import size
 
 SCENE = {

@@ -16,12 +16,10 @@ import yaml
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
-from adapt.errors import InputError, SceneError, SpecError
+from adapt.errors import InputError, SpecError
 from adapt.processors import Processor, parse_spec, registry
-from adapt.scene.model import Scene
 from adapt.scene.files import parse_scene, scene_to_mapping
-
-from conftest import SCENES
+from adapt.scene.model import Scene
 
 FUZZ = settings(max_examples=400, deadline=None, derandomize=True, database=None,
                 phases=[Phase.explicit, Phase.generate, Phase.shrink],

@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from adapt.scene import geometry
 from adapt.processors.conventional import taper_weights
+from adapt.scene import geometry
 from adapt.scene.files import parse_scene
 from adapt.streams.snapshots import TrialBatch
 

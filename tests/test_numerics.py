@@ -22,12 +22,12 @@ import warnings
 import numpy as np
 import pytest
 
-from adapt.studies.compare import compare, write_compare_run
 from adapt.errors import SceneError
 from adapt.io import read_npy, write_manifest, write_npy
 from adapt.processors import parse_spec
 from adapt.scene.files import MAX_DYNAMIC_RANGE_DB, parse_scene
 from adapt.streams.snapshots import TrialBatch
+from adapt.studies.compare import compare, write_compare_run
 
 ALL = ["conventional", "optimum", "smi", "smi loading_db=10", "lms", "nlms", "rls",
        "frost", "gsc", "lcmv", "power_inversion", "eigenspace"]

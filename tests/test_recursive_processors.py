@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 
 from adapt.errors import SpecError
-from adapt.processors import Context, parse_spec, registry, run_processors
 from adapt.numerics.linalg import mvdr
+from adapt.processors import Context, parse_spec, registry, run_processors
 from adapt.processors._recursive import look_blocking_matrix
 from adapt.processors.frost import look_constraints
 from adapt.scene.files import parse_scene

@@ -20,10 +20,19 @@ import pytest
 
 from adapt.errors import CorruptReferenceError, InputError, SpecError
 from adapt.io import read_npy, write_manifest, write_npy
-from adapt.studies.reference import (DEFAULT_TOLERANCES, format_report, load_reference,
-                             output_evm_db, record, reference_implementation, verify,
-                             weight_error_db, write_report_junit, write_sigmf)
 from adapt.scene.files import parse_scene
+from adapt.studies.reference import (
+    DEFAULT_TOLERANCES,
+    format_report,
+    load_reference,
+    output_evm_db,
+    record,
+    reference_implementation,
+    verify,
+    weight_error_db,
+    write_report_junit,
+    write_sigmf,
+)
 
 HERE = Path(__file__).resolve().parent
 CANDIDATE = HERE / "reference_candidate.py"

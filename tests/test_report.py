@@ -14,8 +14,8 @@ from scipy.signal import find_peaks
 from scipy.signal.windows import boxcar
 
 from adapt.engine.execute import evaluate
-from adapt.processors import parse_spec
 from adapt.numerics.linalg import solve_hermitian
+from adapt.processors import parse_spec
 from adapt.processors.base import Processor
 from adapt.report import figures as F
 from adapt.report import html as H

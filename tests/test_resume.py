@@ -18,15 +18,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 import yaml
-
-from adapt.engine import execute
-from adapt import io
-from adapt.studies.compare import compare
-from adapt.errors import InputError
-from adapt.engine.execute import MARKER, PARTIAL, RESUME_FILE, part_arrays
-from adapt.scene.files import parse_scene
-from adapt.studies.sizing import size
 from conftest import without_timing
+
+from adapt import io
+from adapt.engine import execute
+from adapt.engine.execute import MARKER, PARTIAL, RESUME_FILE, part_arrays
+from adapt.errors import InputError
+from adapt.scene.files import parse_scene
+from adapt.studies.compare import compare
+from adapt.studies.sizing import size
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -10,15 +10,20 @@ import sys
 import numpy as np
 import pytest
 import yaml
+from conftest import ROOT, SCENES
 
 from adapt import __version__
-from adapt.scene import geometry
 from adapt.errors import InputError, SceneError, SpecError
+from adapt.scene import geometry
 from adapt.scene.files import dump_scene, load_scene, parse_scene, scene_to_mapping
-from adapt.studies.check import (angle_between_deg, beamwidth_deg, grating_lobe,
-                           main_lobe_contains, scene_warnings, summarise_scene)
-
-from conftest import ROOT, SCENES
+from adapt.studies.check import (
+    angle_between_deg,
+    beamwidth_deg,
+    grating_lobe,
+    main_lobe_contains,
+    scene_warnings,
+    summarise_scene,
+)
 
 BASE = {
     "name": "test scene",

@@ -7,10 +7,10 @@ import pytest
 from scipy import optimize, stats
 from scipy.signal import windows
 
-from adapt.scene import geometry
 from adapt.engine import scores
-from adapt.studies.compare import compare
+from adapt.scene import geometry
 from adapt.scene.files import parse_scene
+from adapt.studies.compare import compare
 
 
 def _pair():

@@ -9,11 +9,10 @@ import pytest
 from scipy import stats
 
 from adapt import io
-from adapt.studies import sizing
-from adapt.studies import theory
 from adapt.cli.main import main
 from adapt.errors import InputError
 from adapt.scene.files import dump_scene, parse_scene
+from adapt.studies import sizing, theory
 
 N = 8
 WANTED = {"name": "s", "role": "desired", "azimuth": 0, "power_db": 0}

@@ -13,10 +13,10 @@ import pytest
 from scipy import stats
 
 import adapt.engine.scores  # noqa: F401  (import order: scores before evaluate)
-from adapt.engine import execute
 from adapt.engine import drawn as wishart
-from adapt.errors import InputError
+from adapt.engine import execute
 from adapt.engine.evaluate import evaluate_batch
+from adapt.errors import InputError
 from adapt.numerics import kernels as _kernels
 from adapt.processors import Context, parse_specs, run_processors
 from adapt.scene.files import parse_scene

@@ -5,8 +5,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from adapt.studies import theory
 from adapt.scene.files import parse_scene
+from adapt.studies import theory
 
 
 def _scene(sources, elements=8, **extra):

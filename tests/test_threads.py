@@ -16,15 +16,15 @@ import time
 import numpy as np
 import pytest
 import yaml
+from conftest import without_timing
 
 from adapt.engine import execute
-from adapt.studies.compare import TAIL, compare
-from adapt.errors import InputError
 from adapt.engine.execute import evaluate, part_arrays
+from adapt.errors import InputError
 from adapt.processors import parse_specs
 from adapt.processors.smi import SampleMatrixInversion
 from adapt.scene.files import parse_scene
-from conftest import without_timing
+from adapt.studies.compare import TAIL, compare
 
 SCENE = {
     "name": "threads check",

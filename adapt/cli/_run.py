@@ -235,7 +235,12 @@ def execute(folder: Folder, work, finish):
 
 
 def _execute(folder: Folder, work, finish):
-    from adapt.engine.execute import exit_code, interrupted_message, remove_if_empty, stop_on_signals
+    from adapt.engine.execute import (
+        exit_code,
+        interrupted_message,
+        remove_if_empty,
+        stop_on_signals,
+    )
     with stop_on_signals():
         try:
             result = work(folder)

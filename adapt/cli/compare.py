@@ -53,9 +53,9 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from adapt.studies.compare import TAIL
     from adapt.engine.settings import checkpoints_for, prepare_scene
     from adapt.errors import InputError
+    from adapt.studies.compare import TAIL
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _resume(args, execution)

@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import re
 
-from adapt.errors import InputError
 from adapt.cli._run import add_threads
+from adapt.errors import InputError
 
 ORDER = 40
 
@@ -65,9 +65,9 @@ def parse_checkpoints(text: str | None):
 def run(args) -> int:
     import numpy as np
 
-    from adapt.studies.reference import load_reference, record
-    from adapt.engine.execute import check_cluster_options
     from adapt.cli._run import library_warnings, threads_option, whole_number
+    from adapt.engine.execute import check_cluster_options
+    from adapt.studies.reference import load_reference, record
     workers = whole_number(args.workers, "--workers")
     threads = threads_option(args, remote=workers is not None or args.scheduler is not None)
     check_cluster_options(workers, args.scheduler)

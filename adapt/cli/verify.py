@@ -38,7 +38,7 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from adapt.studies.reference import (format_report, load_reference, verify, write_report_junit)
+    from adapt.studies.reference import format_report, load_reference, verify, write_report_junit
     if args.timeout is not None and not args.timeout > 0:
         raise InputError("timeout must be a positive number of seconds", path="--timeout",
                          value=args.timeout)

@@ -44,11 +44,11 @@ import numpy as np
 
 from adapt.errors import InputError
 from adapt.numerics import kernels as _kernels
-from adapt.streams import normals
-from adapt.processors.base import Context, Processor, ProcessorResult
-from adapt.processors._covariance import SampleCovarianceProcessor
 from adapt.numerics.linalg import compiled_solves
+from adapt.processors._covariance import SampleCovarianceProcessor
+from adapt.processors.base import Context, Processor, ProcessorResult
 from adapt.scene.model import Scene
+from adapt.streams import normals
 from adapt.streams.snapshots import scratch_array
 
 __all__ = ["DRAWS", "DrawStreams", "covariance_draw_refusal", "check_covariance_draw", "cut_points",

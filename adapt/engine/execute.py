@@ -73,9 +73,15 @@ from typing import Callable, Sequence
 import numpy as np
 
 from adapt import io
+from adapt.engine.evaluate import (
+    Evaluation,
+    ProcessorScores,
+    default_checkpoints,
+    evaluate_batch,
+    merge,
+    trial_chunks,
+)
 from adapt.errors import InputError
-from adapt.engine.evaluate import (Evaluation, ProcessorScores, default_checkpoints, evaluate_batch,
-                       merge, trial_chunks)
 from adapt.processors import Processor
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene

@@ -23,9 +23,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from adapt.scene import geometry
-
 from adapt.numerics.linalg import solve_hermitian
+from adapt.scene import geometry
 
 __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
            "white_noise_gain", "white_noise_gain_db", "response_db", "mean_loss_db",

@@ -13,8 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from adapt.errors import InputError, SceneError, SpecError
 from adapt.engine.evaluate import default_checkpoints
+from adapt.errors import InputError, SceneError, SpecError
 from adapt.processors import Processor, parse_specs
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene

@@ -664,7 +664,7 @@ def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray,
 def normals_fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
     """Normals ``start ..`` of each counter-based stream (:func:`adapt.streams.normals.fill`,
     which checks the arguments), compiled: keys (T, 2) uint64, out (T, M) float64."""
-    from adapt.streams.normals import ACCEPT, SCALE, DENSITY, TAIL_START
+    from adapt.streams.normals import ACCEPT, DENSITY, SCALE, TAIL_START
     _build()
     _NORMALS(keys, int(start), out, ACCEPT, SCALE, DENSITY, TAIL_START)
     return out
@@ -673,7 +673,7 @@ def normals_fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
 def gamma_fill(keys: np.ndarray, shapes: np.ndarray, out: np.ndarray) -> np.ndarray:
     """Gamma variates of :func:`adapt.streams.normals.gamma_fill` (which checks the arguments),
     compiled: keys (T, 2) uint64, shapes (M,) float64, out (T, M) float64."""
-    from adapt.streams.normals import ACCEPT, SCALE, DENSITY, TAIL_START, GAMMA_STEP
+    from adapt.streams.normals import ACCEPT, DENSITY, GAMMA_STEP, SCALE, TAIL_START
     _build()
     _GAMMA(keys, shapes, out, np.uint64(GAMMA_STEP), ACCEPT, SCALE, DENSITY, TAIL_START)
     return out
@@ -689,7 +689,7 @@ def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
     ``data`` <- ``inter + env_d x steer_d`` (T or 1, N). Values equal to
     :func:`adapt.streams.normals.fill` followed by :func:`add_sources` (twice), to the last bit
     (the same operations in the same order)."""
-    from adapt.streams.normals import ACCEPT, SCALE, DENSITY, TAIL_START
+    from adapt.streams.normals import ACCEPT, DENSITY, SCALE, TAIL_START
     t_, b_, n = inter.shape
     if env_d is None:
         env_d = np.zeros((t_, 0), dtype=complex)

@@ -13,8 +13,15 @@ import shlex
 from typing import Any
 
 from adapt.errors import SpecError, did_you_mean
-from adapt.processors.base import (Context, Parameter, Processor, ProcessorResult, held_outputs,
-                   run_processor, run_processors)
+from adapt.processors.base import (
+    Context,
+    Parameter,
+    Processor,
+    ProcessorResult,
+    held_outputs,
+    run_processor,
+    run_processors,
+)
 
 __all__ = ["registry", "parse_spec", "parse_specs", "Processor", "Parameter", "Context",
            "ProcessorResult", "run_processor", "run_processors", "held_outputs"]

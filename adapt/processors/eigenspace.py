@@ -37,8 +37,8 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.processors._covariance import SampleCovarianceProcessor
 from adapt.numerics.linalg import distortionless
+from adapt.processors._covariance import SampleCovarianceProcessor
 from adapt.processors.base import Context, Parameter
 
 

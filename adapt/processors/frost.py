@@ -38,10 +38,16 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.scene.geometry import steering_derivatives
+from adapt.processors._recursive import (
+    AutoStep,
+    Projector,
+    bounded_steps,
+    constrained_pass,
+    local_marks,
+    per_snapshot,
+)
 from adapt.processors.base import Context, Parameter
-from adapt.processors._recursive import (AutoStep, Projector, bounded_steps, constrained_pass, local_marks,
-                         per_snapshot)
+from adapt.scene.geometry import steering_derivatives
 
 
 def look_constraints(look: np.ndarray, positions: np.ndarray,

@@ -38,8 +38,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors._recursive import Projector, constrained_pass, local_marks, per_snapshot
+from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors.nlms import normalised_gain
 
 

@@ -35,10 +35,10 @@ import math
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.scene.geometry import steering_derivatives, steering_vector
-from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
 from adapt.numerics.linalg import solve_hermitian
+from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
 from adapt.processors.base import Context, Parameter
+from adapt.scene.geometry import steering_derivatives, steering_vector
 
 
 def _angle_list(value) -> str | None:

@@ -33,9 +33,15 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
+from adapt.processors._recursive import (
+    AutoStep,
+    bounded_steps,
+    lms_pass,
+    local_marks,
+    per_snapshot,
+    starting_weights,
+)
 from adapt.processors.base import Context, Parameter
-from adapt.processors._recursive import (AutoStep, bounded_steps, local_marks, lms_pass, per_snapshot,
-                         starting_weights)
 
 INITIAL_HELP = "start weight: quiescent (look vector / N, the conventional beam) or zero"
 

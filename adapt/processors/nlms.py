@@ -26,8 +26,8 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
+from adapt.processors._recursive import lms_pass, local_marks, per_snapshot, starting_weights
 from adapt.processors.base import Context, Parameter, Processor
-from adapt.processors._recursive import local_marks, lms_pass, per_snapshot, starting_weights
 from adapt.processors.lms import INITIAL_HELP
 
 

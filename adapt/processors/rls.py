@@ -34,8 +34,8 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
-from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors._recursive import local_marks, per_snapshot, starting_weights
+from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors.lms import INITIAL_HELP
 
 #: P is re-symmetrised after every this many snapshots (counted from the stream start)

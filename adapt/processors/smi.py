@@ -42,10 +42,15 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.processors._covariance import (SampleCovarianceProcessor, check_loading, effective_loading,
-                          loading_parameters, solve_sample)
 from adapt.numerics import kernels as _kernels
 from adapt.numerics.linalg import compiled_solves_active, distortionless
+from adapt.processors._covariance import (
+    SampleCovarianceProcessor,
+    check_loading,
+    effective_loading,
+    loading_parameters,
+    solve_sample,
+)
 from adapt.processors.base import Context, Parameter
 
 

@@ -17,8 +17,15 @@ import math
 
 import numpy as np
 
-from adapt.report.figures import (REFERENCE_COLOUR, add_title, label_axes, legend_outside, new_figure,
-                      save_png, series_styles)
+from adapt.report.figures import (
+    REFERENCE_COLOUR,
+    add_title,
+    label_axes,
+    legend_outside,
+    new_figure,
+    save_png,
+    series_styles,
+)
 from adapt.report.html import caution, figure, paragraph, table
 
 __all__ = ["sizing_figure", "sizing_figure_png", "sizing_sections"]

@@ -82,10 +82,22 @@ from typing import Any
 import numpy as np
 import yaml
 
-from adapt.scene import geometry
 from adapt.errors import InputError, SceneError, SpecError, did_you_mean
-from adapt.scene.model import (LAYOUTS, ROLES, TRAINING, WAVEFORMS, ArrayLayout, HardwareErrors,
-                    Motion, Pulsing, Receiver, Scene, Source, Waveform)
+from adapt.scene import geometry
+from adapt.scene.model import (
+    LAYOUTS,
+    ROLES,
+    TRAINING,
+    WAVEFORMS,
+    ArrayLayout,
+    HardwareErrors,
+    Motion,
+    Pulsing,
+    Receiver,
+    Scene,
+    Source,
+    Waveform,
+)
 
 __all__ = ["load_scene", "parse_scene", "scene_to_mapping", "dump_scene", "read_yaml",
            "SceneLoader", "MAX_FILE_BYTES", "MAX_YAML_NODES", "MAX_YAML_DEPTH"]

@@ -35,8 +35,8 @@ import numpy as np
 
 from adapt.numerics import kernels as _kernels
 from adapt.scene import geometry
-from adapt.streams import normals
 from adapt.scene.model import Scene
+from adapt.streams import normals
 from adapt.streams.seeding import trial_generators
 
 __all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise",

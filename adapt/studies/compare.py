@@ -37,11 +37,11 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from adapt.scene import geometry
 from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation
 from adapt.engine.execute import evaluate
 from adapt.engine.settings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
+from adapt.scene import geometry
 from adapt.scene.model import Scene
 
 __all__ = ["Comparison", "compare", "summarise", "write_compare_run", "CAUTION", "TAIL"]

@@ -93,15 +93,23 @@ from typing import Any, Callable
 import numpy as np
 
 from adapt import __version__
+from adapt.engine.scores import output_sinr, to_db
 from adapt.errors import CorruptReferenceError, InputError, SpecError, did_you_mean
-from adapt.io import (atomic_write_bytes, atomic_write_text, check_manifest, library_versions,
-                 read_npy, write_json, write_manifest, write_npy)
-from adapt.report.junit import TestOutcome, write_junit
+from adapt.io import (
+    atomic_write_bytes,
+    atomic_write_text,
+    check_manifest,
+    library_versions,
+    read_npy,
+    write_json,
+    write_manifest,
+    write_npy,
+)
 from adapt.processors import Context, Processor, parse_spec, run_processors
 from adapt.processors.base import normalised_checkpoints
-from adapt.scene.model import Scene
+from adapt.report.junit import TestOutcome, write_junit
 from adapt.scene.files import scene_to_mapping
-from adapt.engine.scores import output_sinr, to_db
+from adapt.scene.model import Scene
 from adapt.streams.snapshots import Block, TrialBatch
 
 __all__ = ["DEFAULT_TOLERANCES", "METRICS", "record", "load_reference", "verify",
@@ -329,8 +337,8 @@ def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapsh
 
 def _record_on_cluster(sc: Scene, proc: Processor, trials: int, snapshots: int, cps,
                        with_ref: bool, workers, scheduler) -> tuple[np.ndarray, np.ndarray]:
-    from adapt.engine.execute import cluster_client, scene_mapping, shippable_specs
     from adapt.engine.evaluate import trial_chunks
+    from adapt.engine.execute import cluster_client, scene_mapping, shippable_specs
     spec = shippable_specs([proc])[0]
     mapping = scene_mapping(sc)
     share = workers if workers is not None else 4

@@ -44,13 +44,13 @@ from typing import Callable, Sequence
 import numpy as np
 from scipy import stats
 
-from adapt.studies import theory
-from adapt.errors import InputError
 from adapt.engine.evaluate import Evaluation
 from adapt.engine.execute import evaluate
+from adapt.errors import InputError
 from adapt.processors import Processor
 from adapt.processors._covariance import effective_loading
 from adapt.scene.model import Scene
+from adapt.studies import theory
 
 __all__ = ["Sizing", "size", "sweep_points", "stays_met", "bootstrap_required",
            "clopper_pearson", "analyse_processor", "recommendation", "render_table",
@@ -524,8 +524,8 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
-    from adapt.engine.settings import MAX_TRIALS, whole_count
     from adapt.engine.execute import check_cluster_options, check_threads
+    from adapt.engine.settings import MAX_TRIALS, whole_count
     check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     if chunk is not None:
