@@ -16,7 +16,7 @@ import pytest
 from adapt.errors import SpecError
 from adapt.numerics.linalg import mvdr
 from adapt.processors import Context, parse_spec, registry, run_processors
-from adapt.processors._recursive import look_blocking_matrix
+from adapt.processors._recursive import look_blocking_matrix, mean_square_bound, mean_square_sum
 from adapt.processors.frost import look_constraints
 from adapt.scene.files import parse_scene
 from adapt.streams.snapshots import TrialBatch
@@ -136,7 +136,7 @@ def rough_scene():
         "snapshots": 300, "trials": 3, "seed": 5})
 
 
-SPECS = ("lms", "lms step=0.001 initial=zero", "nlms step=0.3", "frost", "frost derivatives=1",
+SPECS = ("lms", "lms step=0.0002 initial=zero", "nlms step=0.3", "frost", "frost derivatives=1",
          "gsc step=0.2", "rls", "rls forgetting=0.97 loading_db=10 initial=zero")
 CPS = [1, 7, 64, 65, 150, 300]
 
@@ -377,7 +377,12 @@ def test_lms_check_refuses_a_step_above_the_bound_and_names_it(strong_scene):
         parse_spec(f"lms step={1.01 * bound}").check(ctx)
     text = str(err.value)
     assert "2/lambda_max" in text and f"{bound:g}" in text and "diverge" in text
-    parse_spec(f"lms step={0.99 * bound}").check(ctx)                 # accepted
+    # just below 2/lambda_max the mean converges but the mean-square sum is ~99: refused
+    # since the mean-square bound is enforced too (Widrow, McCool, Larimore & Johnson 1976)
+    with pytest.raises(SpecError, match="mean-square"):
+        parse_spec(f"lms step={0.99 * bound}").check(ctx)
+    lam = np.linalg.eigvalsh(ctx.data_covariance([0])[0, 0])
+    parse_spec(f"lms step={0.99 * mean_square_bound(lam)}").check(ctx)   # accepted
     parse_spec("lms").check(ctx)                                      # auto is always safe
     # the same through the driver: nothing runs
     with pytest.raises(SpecError):
@@ -390,7 +395,9 @@ def test_frost_check_uses_the_projected_covariance(strong_scene):
     scene = make_scene(sources=[{"name": "beacon", "role": "desired", "azimuth": 0,
                                  "power_db": 40}], training="signal")
     ctx = Context.from_batch(TrialBatch(scene, trials=2))
-    parse_spec("frost step=0.5").check(ctx)              # lambda_max(PRP) = 1: bound 2
+    # P R P on the range of P is the identity (3 unit eigenvalues): 2/lambda_max = 2 and
+    # the mean-square bound solves 3 mu/(2 - mu) = 1, mu = 0.5 (Widrow et al. 1976)
+    parse_spec("frost step=0.45").check(ctx)
     with pytest.raises(SpecError, match="P R P"):
         parse_spec("frost step=2.5").check(ctx)
 
@@ -454,3 +461,77 @@ def test_shared_covariance_view_equals_the_per_trial_covariance(rough_scene):
     full = batch.covariance(k, training=True)
     np.testing.assert_allclose(ctx.training_covariance(k), full, atol=1e-12)
     np.testing.assert_allclose(ctx.data_covariance(k), full, atol=1e-12)
+
+
+# ------------------------------------------------------- the mean-square step bound
+def eight_jammer_scene(trials=4):
+    """16-element half-wavelength line, 0 dB Gaussian wanted signal at 0 degrees, eight
+    30 dB jammers at +-12, +-25, +-41, +-60 degrees (the case where the mean-weight bound
+    alone let a mean-square-divergent step through)."""
+    sources = [{"name": "wanted", "role": "desired", "azimuth": 0, "power_db": 0,
+                "waveform": "gaussian"}]
+    for i, az in enumerate((12, -12, 25, -25, 41, -41, 60, -60)):
+        sources.append({"name": f"j{i}", "role": "interferer", "azimuth": az,
+                        "power_db": 30})
+    return make_scene(elements=16, sources=sources, trials=trials, snapshots=4000)
+
+
+def test_mean_square_sum_and_bound_against_closed_forms():
+    # Widrow, McCool, Larimore & Johnson (1976): equal eigenvalues lambda (N of them) give
+    # N mu lambda/(2 - mu lambda) = 1 at mu* = 2/((N + 1) lambda); one eigenvalue alone
+    # gives mu* = 1/lambda (sum mu lambda/(2 - mu lambda) = 1)
+    lam = np.full(5, 3.0)
+    np.testing.assert_allclose(mean_square_bound(lam), 2 / (6 * 3.0), rtol=1e-12)
+    np.testing.assert_allclose(mean_square_bound(np.array([4.0, 0, 0])), 0.25, rtol=1e-12)
+    np.testing.assert_allclose(mean_square_sum(0.1, np.array([1.0, 2.0])),
+                               0.1 / 1.9 + 0.2 / 1.8, rtol=1e-14)
+    assert mean_square_sum(1.0, np.array([2.0])) == np.inf
+
+
+def test_lms_step_in_the_mean_square_gap_is_refused_and_below_it_accepted():
+    # Widrow, McCool, Larimore & Johnson (1976); Haykin, Adaptive Filter Theory: with eight
+    # 30 dB jammers on 16 elements 2/lambda_max = 1.013e-4, yet mu = 1.5e-5 gives
+    # sum mu lambda_i/(2 - mu lambda_i) = 1.10 (the mean-square error diverges), while
+    # mu = 1.2e-5 gives 0.85
+    ctx = Context.from_batch(TrialBatch(eight_jammer_scene()))
+    lam = np.linalg.eigvalsh(ctx.data_covariance([0])[0, 0])
+    np.testing.assert_allclose(2 / lam[-1], 1.013e-4, rtol=1e-3)
+    np.testing.assert_allclose(mean_square_sum(1.5e-5, lam), 1.10, atol=0.005)
+    np.testing.assert_allclose(mean_square_sum(1.2e-5, lam), 0.85, atol=0.005)
+    with pytest.raises(SpecError) as err:
+        parse_spec("lms step=1.5e-5").check(ctx)
+    text = str(err.value)
+    bound = mean_square_bound(lam)
+    assert f"{bound:.4g}" in text and "1.1 at this step" in text and "step=auto" in text
+    parse_spec("lms step=1.2e-5").check(ctx)
+    parse_spec("lms step=auto").check(ctx)
+
+
+def test_frost_refuses_a_step_beyond_its_projected_mean_square_bound():
+    # the same law on the eigenvalues of P R P (projected covariance; Frost 1972 for the
+    # recursion, Widrow et al. 1976 for the mean-square sum)
+    scene = eight_jammer_scene()
+    ctx = Context.from_batch(TrialBatch(scene))
+    proc = parse_spec("frost")
+    proc.check(ctx)
+    basis = proc._proj.basis()
+    r = ctx.training_covariance([0])[0, 0]
+    lam = np.linalg.eigvalsh(np.conj(basis).T @ r @ basis)
+    bound = mean_square_bound(lam)
+    assert bound < 0.5 * 2 / lam[-1]                       # far inside the mean bound
+    with pytest.raises(SpecError, match="mean-square"):
+        parse_spec(f"frost step={1.01 * bound}").check(ctx)
+    parse_spec(f"frost step={0.99 * bound}").check(ctx)
+
+
+def test_mean_square_bound_is_checked_at_every_moment_of_a_changing_scene(rough_scene):
+    # the pulsed jammer's on-time sets the bound: a step safe at snapshot 0 alone is refused
+    batch = TrialBatch(rough_scene)
+    ctx = Context.from_batch(batch)
+    first = mean_square_bound(np.linalg.eigvalsh(ctx.data_covariance([0])[:, 0])).min()
+    every = mean_square_bound(np.linalg.eigvalsh(ctx.data_covariance(ctx.moments))).min()
+    assert every < first
+    step = 0.5 * (every + first)
+    with pytest.raises(SpecError, match="mean-square"):
+        parse_spec(f"lms step={step}").check(ctx)
+    parse_spec(f"lms step={0.99 * every}").check(ctx)

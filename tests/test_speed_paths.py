@@ -180,7 +180,7 @@ def test_kernels_match_numpy_path(monkeypatch):
     # the compiled recursions are the numpy ones (Widrow & Hoff 1960; Haykin's RLS):
     # identical to 1e-10 relative to the weight norm, at every checkpoint, whatever block
     sc = _scene()
-    specs = ["lms", "lms step=0.001 initial=zero", "nlms", "nlms step=0.5", "rls",
+    specs = ["lms", "lms step=0.0003 initial=zero", "nlms", "nlms step=0.5", "rls",
              "rls forgetting=0.98 loading_db=10"]
     if not HAVE_NUMBA:
         _refuses_numba(monkeypatch)

@@ -24,7 +24,8 @@ from adapt.errors import SpecError
 from adapt.processors.base import Context, Processor
 
 __all__ = ["local_marks", "per_snapshot", "lms_pass", "moments_of", "eigen_extent",
-           "extent_over_moments", "step_from_bound", "AutoStep", "look_blocking_matrix",
+           "extent_over_moments", "mean_square_sum", "mean_square_bound",
+           "spectra_over_moments", "step_from_bound", "AutoStep", "look_blocking_matrix",
            "starting_weights", "Projector", "constrained_pass"]
 
 
@@ -134,18 +135,121 @@ def extent_over_moments(covariance_fn, moments: np.ndarray, trials: int, element
     return lam, tr
 
 
-def step_from_bound(given: float | None, lam_max: np.ndarray, trace: np.ndarray,
-                    method: str, what: str, auto_fraction: float = 0.1) -> np.ndarray:
-    """Per-trial LMS step: ``given`` if below the mean-stability bound ``2/lambda_max``
-    of every trial, else SpecError; ``None`` (auto) gives ``auto_fraction / trace`` per
-    trial, which is below ``2/lambda_max`` always since ``trace >= lambda_max``.
+def mean_square_sum(step, eigenvalues: np.ndarray) -> np.ndarray:
+    """``sum_i mu lambda_i / (2 - mu lambda_i)`` over the last axis of ``eigenvalues``
+    (``inf`` where ``mu lambda_i >= 2``): the LMS mean-square stability sum.
 
-    Source: Widrow & Stearns (1985), ch. 6: the mean weight converges iff
+    Parameters
+    ----------
+    step : float or array broadcasting against ``eigenvalues[..., 0]``
+        The step ``mu`` (``w += mu x e^*`` convention).
+    eigenvalues : (..., N) array
+        Eigenvalues of the covariance the recursion is trained on.
+
+    Returns
+    -------
+    (...) array of sums; the mean-square error stays bounded iff the sum is below 1.
+
+    References
+    ----------
+    Widrow, McCool, Larimore & Johnson, "Stationary and nonstationary learning
+    characteristics of the LMS adaptive filter", Proc. IEEE 64 (1976); Haykin, *Adaptive
+    Filter Theory*, LMS mean-square analysis (independence theory, circular Gaussian data;
+    from memory).
+    """
+    lam = np.maximum(np.asarray(eigenvalues, float), 0.0)
+    x = np.asarray(step, float)[..., None] * lam
+    with np.errstate(divide="ignore", invalid="ignore"):
+        terms = np.where(x < 2.0, x / np.where(x < 2.0, 2.0 - x, 1.0), np.inf)
+    return terms.sum(axis=-1)
+
+
+def mean_square_bound(eigenvalues: np.ndarray) -> np.ndarray:
+    """The step ``mu*`` at which :func:`mean_square_sum` reaches 1, per leading index.
+
+    The sum rises monotonically from 0 at ``mu = 0`` to infinity at ``2/lambda_max``, so
+    ``mu*`` is found by bisection inside ``(0, 2/lambda_max)``; it lies between
+    ``2/(tr R + lambda_max)`` and ``2/lambda_max`` (Widrow et al. 1976; Haykin).
+
+    Parameters
+    ----------
+    eigenvalues : (..., N) array of nonnegative eigenvalues.
+
+    Returns
+    -------
+    (...) array of bounds (``inf`` for an all-zero spectrum).
+    """
+    lam = np.maximum(np.asarray(eigenvalues, float), 0.0)
+    top = lam.max(axis=-1)
+    with np.errstate(divide="ignore"):
+        hi = np.where(top > 0, 2.0 / np.where(top > 0, top, 1.0), np.inf)
+    lo = np.zeros_like(hi)
+    finite = np.isfinite(hi)
+    hi_f = np.where(finite, hi, 1.0)
+    for _ in range(80):                       # 2^-80: far below double resolution
+        mid = 0.5 * (lo + hi_f)
+        above = mean_square_sum(mid, lam) >= 1.0
+        hi_f = np.where(above, mid, hi_f)
+        lo = np.where(above, lo, mid)
+    return np.where(finite, lo, np.inf)
+
+
+def spectra_over_moments(covariance_fn, moments: np.ndarray, trials: int, elements: int,
+                         basis: np.ndarray | None = None, step: float | None = None
+                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Per trial, over all ``moments``: the largest eigenvalue, the largest trace, the
+    smallest mean-square bound (:func:`mean_square_bound`) and the largest
+    :func:`mean_square_sum` at ``step`` (both only when a step is given: inf and NaN
+    otherwise) of
+    ``covariance_fn(k)``, projected on ``basis`` if given. Evaluated in chunks of moments
+    (memory near 64 MB whatever the trial count); a covariance broadcast over trials
+    (stride 0) is decomposed once."""
+    chunk = max(1, (1 << 22) // max(1, trials * elements * elements))
+    lam = np.full(trials, -np.inf)
+    tr = np.full(trials, -np.inf)
+    bound = np.full(trials, np.inf)
+    total = np.full(trials, np.nan if step is None else -np.inf)
+    for i in range(0, len(moments), chunk):
+        r = np.asarray(covariance_fn(moments[i:i + chunk]))
+        shared = trials > 1 and r.strides[0] == 0
+        if shared:
+            r = r[:1]
+        if basis is not None:
+            r = np.conj(basis).T @ r @ basis
+        ev = np.linalg.eigvalsh(r)                                         # (T, M, L)
+        parts = [ev[..., -1].max(axis=1), np.real(np.trace(r, axis1=-2, axis2=-1)).max(axis=1)]
+        if step is not None:
+            parts += [mean_square_bound(ev).min(axis=1), mean_square_sum(step, ev).max(axis=1)]
+        if shared:
+            parts = [np.repeat(p, trials) for p in parts]
+        np.maximum(lam, parts[0], out=lam)
+        np.maximum(tr, parts[1], out=tr)
+        if step is not None:
+            np.minimum(bound, parts[2], out=bound)
+            np.maximum(total, parts[3], out=total)
+    return lam, tr, bound, total
+
+
+def step_from_bound(given: float | None, lam_max: np.ndarray, trace: np.ndarray,
+                    method: str, what: str, auto_fraction: float = 0.1,
+                    ms_bound: np.ndarray | None = None, ms_sum: np.ndarray | None = None
+                    ) -> np.ndarray:
+    """Per-trial LMS step: ``given`` if inside the stability bounds of every trial, else
+    SpecError; ``None`` (auto) gives ``auto_fraction / trace`` per trial.
+
+    Enforced: the mean-weight bound ``mu < 2/lambda_max`` always and, when ``ms_sum``
+    (the mean-square sum at ``given``, per trial) is passed, the mean-square bound
+    ``sum_i mu lambda_i / (2 - mu lambda_i) < 1``; ``ms_bound`` (the step where the sum
+    reaches 1) is quoted in the message. The automatic step ``0.1/tr R`` keeps the sum
+    below ``0.1 / 1.9 = 0.053`` (each ``mu lambda_i <= 0.1``), inside both bounds.
+
+    Sources: Widrow & Stearns (1985), ch. 6: the mean weight converges iff
     ``0 < mu < 2/lambda_max`` in this convention (their ``w += 2 mu e x`` has the bound
-    ``1/lambda_max``). The mean-square error stays bounded for independent circular
-    Gaussian data iff ``sum_i mu lambda_i / (2 - mu lambda_i) < 1`` (Haykin, *Adaptive
-    Filter Theory*, small-step theory; from memory), which for small ``mu lambda_i``
-    reads ``mu < 2 / tr R``: the tighter ceiling quoted alongside.
+    ``1/lambda_max``). Widrow, McCool, Larimore & Johnson, Proc. IEEE 64 (1976), and
+    Haykin, *Adaptive Filter Theory* (LMS mean-square analysis; from memory): for
+    independent circular Gaussian data the mean-square error stays bounded iff
+    ``sum_i mu lambda_i / (2 - mu lambda_i) < 1``, far tighter than ``2/lambda_max``
+    when several strong eigenvalues share the spread.
     """
     lam_max = np.asarray(lam_max, float)
     trace = np.asarray(trace, float)
@@ -161,6 +265,21 @@ def step_from_bound(given: float | None, lam_max: np.ndarray, trace: np.ndarray,
             f"{bound[worst]:g}; below 2/trace = {2.0 / trace.max():g} also keeps the "
             f"mean-square error bounded, or give step=auto",
             path="step", value=given, allowed=f"a number in (0, {bound[worst]:g})")
+    if ms_sum is not None:
+        ms_sum = np.asarray(ms_sum, float)
+        bad = int(np.argmax(ms_sum))
+        if ms_sum[bad] >= 1.0:
+            limit = float(np.min(ms_bound)) if ms_bound is not None else float("nan")
+            raise SpecError(
+                f"{method}: step {given:g} is at or above the mean-square stability bound "
+                f"{limit:.4g} of {what}: sum_i mu lambda_i/(2 - mu lambda_i) = "
+                f"{ms_sum[bad]:.3g} at this step (it must stay below 1; Widrow et al. "
+                f"1976), so the mean-square error and the weights would grow without "
+                f"bound although the mean weights converge (2/lambda_max = "
+                f"{bound[worst]:g}). Choose a step below {limit:.4g} (half of it, "
+                f"{0.5 * limit:.3g}, keeps the misadjustment moderate) or give step=auto "
+                f"(0.1/trace = {0.1 / trace.max():.3g})",
+                path="step", value=given, allowed=f"a number in (0, {limit:.4g})")
     return np.full(lam_max.shape, float(given))
 
 
@@ -190,9 +309,11 @@ def bounded_steps(given: float | None, covariance_fn, context: Context, method: 
                             "give a step as a number", path="step", value="auto",
                             allowed="a number > 0")
         return np.full(context.trials, float(given))
-    lam, tr = extent_over_moments(covariance_fn, moments_of(context), context.trials,
-                                  context.elements, basis)
-    return step_from_bound(given, lam, tr, method, what)
+    lam, tr, limit, total = spectra_over_moments(covariance_fn, moments_of(context),
+                                                 context.trials, context.elements, basis,
+                                                 given)
+    return step_from_bound(given, lam, tr, method, what, ms_bound=limit,
+                           ms_sum=None if given is None else total)
 
 def look_blocking_matrix(look: np.ndarray) -> np.ndarray:
     """(N, N-1) blocking matrix B with orthonormal columns and ``B^H a = 0``.

@@ -24,8 +24,14 @@ Step-size convention: ``step`` is the unnormalised ``mu`` in inverse noise-power
 The mean weight converges iff ``0 < mu < 2 / lambda_max(P R P)`` with R the training
 covariance: the mean weight error obeys ``e(k+1) = (I - mu P R P) e(k)`` on the range of
 P (Frost 1972; the bound as derived in this convention, where the instantaneous gradient
-``x y^*`` carries no factor 2); ``check`` refuses a larger step.
-Default ``step=auto`` (or none): ``0.1 / tr(P R P)`` per trial, always inside the bound.
+``x y^*`` carries no factor 2). The weight error of the projected recursion is the LMS
+weight error of the projected data ``P x``, so the LMS mean-square analysis applies with
+the eigenvalues of ``P R P`` on the range of P: the mean-square error stays bounded iff
+``sum_i mu lambda_i(P R P) / (2 - mu lambda_i(P R P)) < 1`` (Widrow, McCool, Larimore &
+Johnson 1976; Haykin, *Adaptive Filter Theory*; independent circular Gaussian snapshots).
+Enforced: ``check`` refuses a step at which that sum reaches 1 in any trial, at every
+checked moment of a changing scene. Default ``step=auto`` (or none):
+``0.1 / tr(P R P)`` per trial, which keeps the sum below ``0.1 / 1.9``.
 
 Checkable fact: the mean weight converges to the constrained optimum
 ``R^-1 C (C^H R^-1 C)^-1 f``, for the look constraint alone the MVDR weight
@@ -96,8 +102,8 @@ class FrostConstrainedLms(AutoStep):
     summary = "Frost's constrained LMS: minimum output power with unit look response"
     parameters = {
         "step": Parameter("float", None,
-                          "step size mu; auto (or none): 0.1 / tr(P R P) per trial; must be "
-                          "below 2 / lambda_max(P R P)", unit="per noise power",
+                          "step size mu; auto (or none): 0.1 / tr(P R P) per trial; must keep "
+                          "sum mu lambda_i/(2 - mu lambda_i) < 1 over P R P", unit="per noise power",
                           low=0.0, low_open=True, allow_none=True),
         "derivatives": Parameter("int", 0, "azimuth-derivative constraints added to the look "
                                  "constraint (1: zero slope, 2: also zero curvature)",

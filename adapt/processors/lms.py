@@ -18,10 +18,15 @@ Step-size convention: ``step`` is the unnormalised ``mu`` above, in inverse nois
 units (noise is 1 per element). The mean weight converges iff
 ``0 < mu < 2 / lambda_max(R_xx)`` with ``R_xx = R_in + P_d a a^H`` the data covariance
 (Widrow & Stearns 1985; their ``w += 2 mu e x`` halves the bound); the mean-square error
-stays bounded only below roughly ``2 / tr(R_xx)``. ``check`` refuses a step at or above
-``2 / lambda_max`` of any trial (at every checked moment of a changing scene). The default
-``step=auto`` (same as ``none``) is ``0.1 / tr(R_xx)`` per trial: always inside both
-bounds, misadjustment about 5 %, slowest time constant ``1/(mu lambda_min)`` snapshots.
+stays bounded iff ``sum_i mu lambda_i / (2 - mu lambda_i) < 1`` over the eigenvalues of
+``R_xx`` (Widrow, McCool, Larimore & Johnson, Proc. IEEE 64, 1976; Haykin, *Adaptive
+Filter Theory*, for independent circular Gaussian snapshots), a far tighter ceiling when
+several strong jammers share the spread. Enforced: ``check`` refuses a step at which that
+sum reaches 1 (and a fortiori one at or above ``2 / lambda_max``) in any trial, at every
+checked moment of a changing scene, quoting the bound and the sum. The default
+``step=auto`` (same as ``none``) is ``0.1 / tr(R_xx)`` per trial: each ``mu lambda_i <=
+0.1`` so the sum stays below ``0.1 / 1.9``, misadjustment about 5 %, slowest time
+constant ``1/(mu lambda_min)`` snapshots.
 
 Checkable fact: for independent snapshots the mean weight converges to the Wiener
 solution ``w_o = R_xx^-1 r_xd`` with ``r_xd = E[x d^*] = P_d a`` (Widrow & Stearns 1985).
@@ -52,8 +57,8 @@ class LeastMeanSquares(AutoStep):
     uses_reference = True
     parameters = {
         "step": Parameter("float", None,
-                          "step size mu; auto (or none): 0.1 / tr(R_xx) per trial; must be "
-                          "below 2 / lambda_max(R_xx)", unit="per noise power",
+                          "step size mu; auto (or none): 0.1 / tr(R_xx) per trial; must keep "
+                          "sum mu lambda_i/(2 - mu lambda_i) < 1 over R_xx", unit="per noise power",
                           low=0.0, low_open=True, allow_none=True),
         "initial": Parameter("choice", "quiescent", INITIAL_HELP,
                              choices=("quiescent", "zero")),
