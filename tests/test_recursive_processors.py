@@ -15,7 +15,7 @@ import pytest
 
 from adapt.errors import SpecError
 from adapt.numerics.linalg import mvdr
-from adapt.processors import Context, parse_spec, registry, run_processors
+from adapt.processors import Context, Processor, parse_spec, registry, run_processors
 from adapt.processors._recursive import look_blocking_matrix, mean_square_bound, mean_square_sum
 from adapt.processors.frost import look_constraints
 from adapt.scene.files import parse_scene
@@ -535,3 +535,60 @@ def test_mean_square_bound_is_checked_at_every_moment_of_a_changing_scene(rough_
     with pytest.raises(SpecError, match="mean-square"):
         parse_spec(f"lms step={step}").check(ctx)
     parse_spec(f"lms step={0.99 * every}").check(ctx)
+
+
+# ------------------------------------------- weights that grow without bound, finitely
+def test_runaway_weights_are_refused_and_stable_ones_pass():
+    # Widrow, McCool, Larimore & Johnson (1976): mu = 1.5e-5 (mean-square sum 1.10)
+    # diverges in mean square although the mean converges; mu = 1.2e-5 (sum 0.85) stays
+    # bounded. With the check bypassed the weights stay finite over 4000 snapshots but
+    # grow by many orders: the run must be refused, not scored.
+    from adapt.engine.evaluate import RUNAWAY_RATIO, require_bounded
+    scene = eight_jammer_scene(trials=3)
+    batch = TrialBatch(scene)
+    ctx = Context.from_batch(batch)
+    blind = dataclasses.replace(ctx, data_covariance=None)
+    cps = np.array([100, 1000, 2000, 4000])
+    r_in = batch.covariance(np.zeros(1, dtype=np.int64))
+    a_d = batch.desired_steering(np.zeros(1, dtype=np.int64))
+    p_d = np.array([1.0])
+    for step, diverges in ((1.5e-5, True), (1.2e-5, False)):
+        proc = parse_spec(f"lms step={step}")
+        w = proc.run(batch.blocks(4000), blind, cps).weights
+        assert np.all(np.isfinite(w))
+        if diverges:
+            assert np.median(np.linalg.norm(w[:, -1], axis=1)) > 1e6
+            with pytest.raises(SpecError, match="diverged.*grow without bound"):
+                require_bounded(proc, 0, w, r_in, a_d, p_d, cps)
+        else:
+            require_bounded(proc, 0, w, r_in, a_d, p_d, cps)
+            # far from the ceiling: the output power stays below 10^-6 of it
+            power = np.einsum("tcn,tnm,tcm->tc", np.conj(w), r_in[:, 0], w).real
+            assert power.max() < 1e-6 * RUNAWAY_RATIO * np.trace(r_in[0, 0]).real
+
+
+class _Runaway(Processor):
+    """A stand-in whose weights grow geometrically (as a diverging recursion's do)."""
+    method = "runaway_test"
+
+    def begin(self, context):
+        self._n = context.elements
+
+    def update(self, block, stops):
+        t_ = block.data.shape[0]
+        grow = 1.05 ** np.asarray(stops, float)
+        return np.ones((t_, len(stops), self._n), complex) * grow[None, :, None]
+
+
+@pytest.mark.filterwarnings("ignore:.*training snapshots:RuntimeWarning")
+def test_engine_refuses_finite_runaway_weights_as_an_error():
+    # the project's own guard (README, "Reliability"): finite but runaway weights are
+    # refused like non-finite ones; 1.05^1000 = 1.5e21 passes 120 dB above tr R_xx
+    from adapt.engine.evaluate import evaluate_batch
+    scene = make_scene(trials=2)
+    with pytest.raises(SpecError, match="diverged") as err:
+        evaluate_batch(TrialBatch(scene), [_Runaway()], [10, 100, 1000], 1000)
+    assert "processors[0]" in str(err.value)
+    # every real method on an ordinary scene is scored (the rule never trips there)
+    evaluate_batch(TrialBatch(scene), [parse_spec(m) for m in sorted(registry())],
+                   [1, 3, 10, 100, 1000], 1000)

@@ -26,7 +26,9 @@ from typing import Callable, Iterator, Sequence
 import numpy as np
 
 from adapt.engine import scores
+from adapt.errors import SpecError
 from adapt.processors import Context, Processor, run_processors
+from adapt.processors._covariance import SampleCovarianceProcessor
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene
 from adapt.streams.snapshots import TrialBatch
@@ -152,6 +154,57 @@ def _stationary_sinr(w: np.ndarray, a: np.ndarray, r: np.ndarray, power: float) 
         return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
 
 
+#: a weight whose output power on the true covariance exceeds this multiple of the total
+#: received power (tr R_xx) is taken as diverged: 120 dB
+RUNAWAY_RATIO = 1e12
+
+
+def require_bounded(processor: Processor, index: int, w: np.ndarray, r_in: np.ndarray,
+                    a_d: np.ndarray, p_d: np.ndarray, checkpoints: np.ndarray) -> None:
+    """Refuse weights that grow without bound but stay finite (a recursion beyond its
+    mean-square stability bound): SpecError when, in any trial and at any checkpoint,
+    the output power ``w^H R_xx w`` on the true data covariance exceeds
+    :data:`RUNAWAY_RATIO` times the total received power ``tr R_xx``.
+
+    Parameters
+    ----------
+    processor, index : the processor and its place in the list (for the message).
+    w : (T, C, N) weights at the checkpoints.
+    r_in : (T or 1, 1 or C, N, N) interference-plus-noise covariance at each moment.
+    a_d : (T, 1 or C, N) wanted steering vectors; p_d : (1 or C,) wanted powers.
+    checkpoints : (C,) snapshot counts.
+
+    Why a healthy run never trips it: the weights every method here estimates (Wiener,
+    minimum-power distortionless, eigenspace, conventional) have an output power of at
+    most the order of ``tr R_xx`` (the Wiener output power is below P_d; a constrained
+    minimum-power output is below that of its quiescent weight, ``<= lambda_max |F|^2``).
+    A mean-square-stable LMS-type recursion keeps the excess mean-square error at
+    ``J_min s/(1 - s)`` with ``s`` the mean-square sum (Widrow et al. 1976): beyond 10^12
+    times ``tr R_xx`` only for ``1 - s < 10^-12``. A diverging recursion grows
+    geometrically and passes 120 dB long before it overflows (10^308). Processors that
+    solve from a sample covariance are not iterations and are exempt: below N snapshots
+    without loading their minimum-norm weights may be large by design (and are warned).
+    """
+    if isinstance(processor, SampleCovarianceProcessor):
+        return
+    with np.errstate(over="ignore", invalid="ignore"):
+        rw = (r_in @ w[..., None])[..., 0]                                # (T, C, N)
+        power = np.sum(np.conj(w) * rw, axis=-1).real
+        power = power + p_d * np.abs(np.sum(np.conj(w) * a_d, axis=-1)) ** 2
+        total = (np.real(np.trace(r_in, axis1=-2, axis2=-1))
+                 + p_d * np.sum(np.abs(a_d) ** 2, axis=-1))
+        ratio = power / total
+    bad = ~(ratio <= RUNAWAY_RATIO)
+    if bad.any():
+        trial, c = (int(v) for v in np.argwhere(bad)[np.argmin(np.argwhere(bad)[:, 1])])
+        raise SpecError(
+            f"'{processor.label}' diverged: its weights grow without bound (output power "
+            f"{10 * np.log10(ratio[trial, c]):.0f} dB above the total received power after "
+            f"{int(checkpoints[c])} snapshots in trial {trial}); choose settings inside the "
+            "method's stable range (a smaller step, a forgetting factor nearer 1, more "
+            "loading)", path=f"processors[{index}]", value=processor.spec())
+
+
 def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoints,
                    snapshots: int, tail: int = 0, block: int | None = None,
                    progress: Callable[[int], None] | None = None,
@@ -207,6 +260,8 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     out = []
     for i, (p, res) in enumerate(zip(processors, results)):
         w = res.weights                                            # (T, C, N)
+        if not drawn:
+            require_bounded(p, i, w, r_in, a_d, p_d, cps)
         if drawn:
             sinr = _stationary_sinr(w, a_d[:, 0], r_in[:, 0], p_d[0])
         elif sc.stationary:
