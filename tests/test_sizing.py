@@ -211,3 +211,26 @@ def test_command_line(tmp_path, capsys):
     d = json.loads((run / "sizing.json").read_text())
     assert d["snapshots"] == [8, 11, 16, 23, 32] and d["trials"] == 20
     assert [p["label"] for p in d["processors"]] == ["smi", "smi loading_db=10"]
+
+
+def test_carlson_rule_is_not_offered_for_signal_present_training():
+    # Carlson 1988: the 2J rule is derived for training on interference plus noise only.
+    # With the wanted signal in the training data (N = 8, 0 dB signal, jammers at 30 and
+    # 25 dB, 10 dB loading) the simulated 3 dB point lies near 15 snapshots, far from
+    # 2J = 4: no rule of thumb may be printed as if it applied.
+    jam = [dict(JAMMERS[0]), dict(JAMMERS[1], power_db=25)]
+    sc = _scene(sources=[WANTED, *jam], training="signal")
+    res = sizing.size(sc, ["smi loading_db=10"], snapshots="1:64", trials=300, seed=5)
+    proc = res.record["processors"][0]
+    rule = proc["rule_of_thumb"]
+    assert rule["snapshots"] is None and "none applies" in rule["text"]
+    assert "2J" in rule["text"] and "without the wanted signal" in rule["text"]
+    assert res.record["rules_of_thumb"]["loaded_2j"] is None
+    line = sizing.recommendation(proc, 3.0, res.record["fraction"], 64)
+    assert "about 2J" not in line and "none applies" in line
+    req = proc["required_snapshots_mean"]
+    assert req is not None and req > 8              # far from 2J = 4
+    # without the signal in the training data the rule is offered as before
+    clean = sizing.size(_scene(sources=[WANTED, *jam]), ["smi loading_db=10"],
+                        snapshots="1:64", trials=50, seed=5)
+    assert clean.record["processors"][0]["rule_of_thumb"]["snapshots"] == 4

@@ -317,6 +317,16 @@ def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | Non
         return None
     n = scene.elements
     mode, db = effective_loading(proc.params)
+    if mode is not None and scene.training == "signal":
+        # Carlson's 2J rule assumes interference-only training; with the wanted signal in
+        # the training data the loaded weight also partly cancels the signal and no rule
+        # of thumb is known (the unloaded signal-present law is the no-loading limit)
+        k = max(n, int(round((n - 1) * (2.0 + sinr_opt) - 1)))
+        return {"snapshots": None, "strong_interferers": None,
+                "text": "none applies: Carlson's 2J rule holds for training without the "
+                        "wanted signal, and loaded SMI trained with it present has no rule "
+                        "of thumb; without loading the signal-present law would need about "
+                        f"(N-1)(2+SINR_opt)-1 = {k} (Boroson 1980)"}
     if mode is not None:
         j = theory.strong_interferers(scene, db)
         return {"snapshots": theory.loaded_rule_of_thumb(j), "strong_interferers": j,
@@ -591,7 +601,8 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
             "strong_definition": "interference eigenvalues above the load (10 dB over the "
                                  "noise when unloaded); a lone interferer counts when N x "
                                  "its per-element INR exceeds the load",
-            "loaded_2j": facts["loaded_rule"],
+            # Carlson's rule assumes training without the wanted signal
+            "loaded_2j": facts["loaded_rule"] if used.training != "signal" else None,
         },
         "interference_eigenvalues_db": facts["interference_eigenvalues_db"],
         "assumption_violations": violations,
