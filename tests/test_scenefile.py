@@ -382,6 +382,16 @@ def test_warnings():
     assert any(w.startswith("too many interferers: 3 interferers for 3 degrees")
                for w in scene_warnings(parse_scene(crowd)))
     assert not any(w.startswith("too many") for w in scene_warnings(parse_scene(BASE)))
+    # interferers close to N: 7 elements, 5 interferers leave one spare degree of freedom
+    # and two noise eigenvalues for loading=auto (Wax & Kailath 1985 needs some left)
+    close = mutate(array__elements=7)
+    close["sources"] += [{"name": f"j{i}", "role": "interferer", "azimuth": a, "power_db": 50}
+                         for i, a in enumerate((-50, 60, -20, 45))]
+    warns = scene_warnings(parse_scene(close))
+    assert any(w.startswith("interferers close to the array size: 5 interferers on 7")
+               and "loading=auto" in w for w in warns)
+    assert not any(w.startswith("too many") for w in warns)
+    assert not any("close to the array size" in w for w in scene_warnings(parse_scene(BASE)))
     # main lobe: 8-element half-wave line, first null at asin(1/4) = 14.48 degrees
     warns = scene_warnings(parse_scene(mutate(sources__1__azimuth=12)))
     assert any(w.startswith("interferer in the main lobe: 'jam' is 12 degrees") for w in warns)

@@ -27,7 +27,7 @@ from adapt.numerics.linalg import solve_hermitian
 from adapt.processors.base import Context, Parameter, Processor, _fmt
 
 __all__ = ["outer_sum", "GrowingSums", "SlidingSums", "hermitian_part", "loading_level",
-           "noise_floor_estimate", "solve_sample", "SampleCovarianceProcessor",
+           "noise_floor_estimate", "signal_count_mdl", "solve_sample", "SampleCovarianceProcessor",
            "loading_parameters", "check_loading"]
 
 
@@ -158,24 +158,72 @@ class SlidingSums:
         return out
 
 
+def signal_count_mdl(lam_desc: np.ndarray, snapshots: int) -> np.ndarray:
+    """Number of signal (interference) eigenvalues by the minimum description length
+    criterion of Wax & Kailath (1985).
+
+    Parameters
+    ----------
+    lam_desc : (..., p) sample eigenvalues in descending order (the p the data can make
+        non-zero).
+    snapshots : int
+        Snapshots K behind the sample covariance.
+
+    Returns
+    -------
+    (...) int array: the k in ``0 .. p-1`` minimising
+    ``MDL(k) = -K (p - k) log(g_k / a_k) + k (2p - k) log(K) / 2``, with ``g_k`` and
+    ``a_k`` the geometric and arithmetic means of the ``p - k`` smallest eigenvalues.
+
+    References
+    ----------
+    M. Wax and T. Kailath, "Detection of signals by information theoretic criteria",
+    IEEE Trans. ASSP-33 (1985), eq. (16) (complex data).
+    """
+    lam = np.maximum(np.asarray(lam_desc, float), 1e-300)
+    p = lam.shape[-1]
+    k_snap = max(int(snapshots), 1)
+    logs = np.log(lam)
+    # sums over the tail i >= k (descending order), for every k: reversed cumsums
+    tail_log = np.cumsum(logs[..., ::-1], axis=-1)[..., ::-1]
+    tail_sum = np.cumsum(lam[..., ::-1], axis=-1)[..., ::-1]
+    k = np.arange(p)
+    q = p - k
+    log_g = tail_log / q
+    log_a = np.log(tail_sum / q)
+    mdl = -k_snap * q * (log_g - log_a) + 0.5 * k * (2 * p - k) * np.log(k_snap)
+    return np.argmin(mdl, axis=-1)
+
+
 def noise_floor_estimate(r: np.ndarray, counts) -> np.ndarray:
     """Noise power estimated from sample covariances (T, C, N, N) built from ``counts``
-    (C,) snapshots: the mean of the smaller half (rounded up) of the m = min(count, N)
-    eigenvalues the data can make non-zero. Shape (T, C).
+    (C,) snapshots. Shape (T, C).
 
-    Common practice (no single source): with fewer than about m/2 strong interferers the
-    smaller half of the eigenvalues are noise eigenvalues. Biased low for few snapshots
-    (the sample noise eigenvalues spread below and above the true level).
+    Of the ``m = min(K, N)`` eigenvalues the data can make non-zero, the ``k`` largest
+    are taken as interference by the MDL criterion (:func:`signal_count_mdl`, Wax &
+    Kailath 1985, which also works when the interferers nearly fill the array: J up to
+    N - 1); the noise floor is the sum of the other ``m - k`` eigenvalues divided by
+    their expected share of the noise, ``(N - k)(K - k) / K`` noise powers (the residual
+    after fitting k directions keeps ``(N - k)(K - k)`` of the ``N K`` complex degrees of
+    freedom, as a least-squares residual variance divides by its degrees of freedom;
+    for K >= N this is the mean of the noise eigenvalues times ``K / (K - k)``, for
+    K < N their mean times ``K / (N - k)``). Common practice for the correction; the
+    plain mean of the smaller half of the eigenvalues, used before, reads an
+    interference eigenvalue as noise as soon as the interferers exceed N/2.
     """
     counts = np.asarray(counts, dtype=np.int64)
     lam = np.linalg.eigvalsh(r)                       # ascending, (T, C, N)
     n = r.shape[-1]
-    m = np.clip(np.minimum(counts, n), 1, n)          # (C,)
-    half = (m + 1) // 2
-    idx = np.arange(n)
-    lo_i = (n - m)[:, None]
-    sel = (idx[None, :] >= lo_i) & (idx[None, :] < lo_i + half[:, None])   # (C, N)
-    return np.maximum((lam * sel).sum(-1) / half, 0.0)
+    out = np.empty(r.shape[:2])
+    for c, kk in enumerate(counts):                   # a loop over checkpoints, never trials
+        kk = max(int(kk), 1)
+        m = min(kk, n)
+        top = np.maximum(lam[:, c, n - m:][:, ::-1], 0.0)          # (T, m) descending
+        k = signal_count_mdl(top, kk)                              # (T,)
+        keep = np.arange(m)[None, :] >= k[:, None]
+        rest = np.where(keep, top, 0.0).sum(-1)
+        out[:, c] = rest * kk / ((n - k) * (kk - k))
+    return out
 
 
 def loading_level(r: np.ndarray, counts, mode: str | None, loading_db: float | None,

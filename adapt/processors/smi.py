@@ -19,8 +19,12 @@ Parameters (units):
 
 * ``loading``: none | fixed | auto (default none). ``fixed``: delta = noise power x
   10^(loading_db/10); ``auto``: delta = estimated noise floor x 10^(loading_db/10), the
-  noise floor being the mean of the smaller half of the min(k, N) data eigenvalues
-  (common practice), loading_db defaulting to 10 dB. ``loading_db`` alone means fixed.
+  noise floor being the min(k, N) data eigenvalues left after an MDL count of the
+  interference eigenvalues (Wax & Kailath 1985), divided by their expected share of the
+  noise (see ``_covariance.noise_floor_estimate``; holds with J up to N - 1 interferers,
+  from about 2N snapshots; biased low, i.e. lighter loading, near K = N; with no more
+  snapshots than interferers no noise eigenvalue exists and the floor is overestimated),
+  loading_db defaulting to 10 dB. ``loading_db`` alone means fixed.
 * ``loading_db``: dB above the noise floor.
 * ``window``: growing (all snapshots so far) | sliding (the last ``length`` snapshots).
 * ``length``: sliding window length, snapshots.

@@ -13,6 +13,9 @@ Warnings (each a plain sentence):
 * too many interferers: as many interferers as degrees of freedom (N - 1) or more; a
   linearly constrained processor with one look constraint can null at most N - 1
   independent directions (Van Trees, Optimum Array Processing, ch. 6);
+* interferers close to the array size: N - 2 interferers (one spare degree of freedom);
+  nulls are fragile and ``loading=auto`` has only two noise eigenvalues to estimate the
+  noise floor from;
 * interferer in the main lobe: the interferer lies inside the main lobe of the uniform
   (conventional) beam steered to the look direction, *defined here as* before the first
   null: walking along the great-circle arc from the look direction to the interferer,
@@ -195,6 +198,14 @@ def scene_warnings(scene: Scene) -> list[str]:
         out.append(f"too many interferers: {count} interferers for {dof} degrees of "
                    f"freedom ({n} elements - 1); the adaptive processors cannot null "
                    "them all")
+    elif count and count >= dof - 1 and n > 2:
+        # MDL-based noise floor (Wax & Kailath 1985) of loading=auto needs a noise
+        # eigenvalue left over: check and say what is left (common practice)
+        out.append(f"interferers close to the array size: {count} interferers on {n} "
+                   f"elements leave {dof - count} spare degree(s) of freedom; nulls are "
+                   "shallow to small pointing or hardware errors, and loading=auto finds "
+                   f"the noise floor only from the {n - count} noise eigenvalue(s) (it "
+                   f"needs more than {count} training snapshots, about {2 * n} or more)")
     for src in scene.interferers:
         inside = []
         for k in (_instants(scene) if not src.stationary else [0]):
