@@ -234,3 +234,38 @@ def test_carlson_rule_is_not_offered_for_signal_present_training():
     clean = sizing.size(_scene(sources=[WANTED, *jam]), ["smi loading_db=10"],
                         snapshots="1:64", trials=50, seed=5)
     assert clean.record["processors"][0]["rule_of_thumb"]["snapshots"] == 4
+
+
+def test_answers_are_refined_below_their_uncertainty_and_beside_the_beta_law():
+    # Reed, Mallett and Brennan (1974): for N = 32 unloaded SMI the mean reaches a 3 dB
+    # loss at K = ceil((N - 2 + t)/(1 - t)) = 62 (t = 10^-0.3), and rho ~ Beta(K-N+2,
+    # N-1) gives the share of trials within 3 dB (scipy.stats.beta). A coarse sweep
+    # (4 points per octave: ..., 54, 64, ...) used to answer "64 (range 64)"; refined,
+    # the answer's step from the previous point is at most its range width (or 1).
+    n = 32
+    sc = parse_scene({"array": {"layout": "line", "elements": n, "spacing": 0.5},
+                      "sources": [WANTED, *JAMMERS], "snapshots": 256, "trials": 300,
+                      "seed": 3})
+    res = sizing.size(sc, ["smi"], snapshots="32:256:4", trials=300, seed=3)
+    proc = res.record["processors"][0]
+    pts = [p["snapshots"] for p in proc["points"]]
+    t = 10 ** -0.3
+    assert proc["theory"]["required_snapshots"] == int(np.ceil((n - 2 + t) / (1 - t))) == 62
+    for answer, (lo, hi) in ((proc["required_snapshots_mean"],
+                              proc["required_snapshots_mean_range"]),
+                             (proc["required_snapshots_fraction"],
+                              proc["required_snapshots_fraction_range"])):
+        for k in (answer, lo, hi):
+            step = k - pts[pts.index(k) - 1]
+            assert step <= max(1, hi - lo), (k, step, lo, hi)
+    lo, hi = proc["required_snapshots_mean_range"]
+    assert lo - 2 <= 62 <= hi + 2
+    # the Beta law's share beside the simulated one, within 4 binomial standard errors
+    for p in proc["points"]:
+        share = stats.beta.sf(t, p["snapshots"] - n + 2, n - 1)
+        assert p["theory_fraction_meeting_target"] == pytest.approx(share, abs=1e-12)
+        se = np.sqrt(max(share * (1 - share), 1 / 300) / 300)
+        assert abs(p["fraction_meeting_target"] - share) < 4 * se + 1e-9, p["snapshots"]
+    kf = proc["theory"]["required_snapshots_fraction"]
+    assert stats.beta.sf(t, kf - n + 2, n - 1) >= 0.9 > stats.beta.sf(t, kf - 1 - n + 2, n - 1)
+    assert "of trials by" in sizing.recommendation(proc, 3.0, 0.9, 256)

@@ -20,8 +20,15 @@ fraction of trials within the target loss and the closed-form mean where one app
   that fraction at every point (the earliest point where the upper bound reaches the
   fraction, the point from which the lower bound does).
 
-Answers are sweep points (counts actually simulated), never interpolated. A range end of
-None means "beyond the sweep".
+Answers are sweep points (counts actually simulated), never interpolated. The sweep is
+refined automatically: where an answer or an end of its range is more than one snapshot
+above the previous sweep point and that step is wider than the answer's range, counts
+inside the step are added and the same trials scored again (up to ``REFINE_ROUNDS``
+rounds, at most ``MAX_POINTS`` points; the added rounds are not stored for resuming), so
+an answer's resolution ends below its uncertainty. Where a closed form applies, the
+share of trials it predicts within the target (the Beta law's survival function, RMB
+1974) stands beside the simulated share, and the count at which it reaches ``fraction``
+beside the per-trial answer. A range end of None means "beyond the sweep".
 
 Loss percentiles: ``loss_db_p10`` is the loss of the best 10 % of trials (the 10th
 percentile of the loss, i.e. the 90th percentile of rho: 10 % of trials lose less),
@@ -67,6 +74,9 @@ CONFIDENCE = 0.95
 DISAGREE_SEM = 4.0
 MAX_SNAPSHOTS = 1_000_000_000
 MAX_POINTS = 400
+#: rounds of automatic refinement near each answer, and counts added per step refined
+REFINE_ROUNDS = 4
+REFINE_FILL = 8
 _BOOT_KEY = 0xB0075
 #: resample x trial budget per bootstrap step (bounds memory)
 _BOOT_BUDGET = 4_000_000
@@ -147,6 +157,33 @@ def _geometric(start: int, stop: int, per_octave: int) -> np.ndarray:
         raise _bad_sweep(f"at most {MAX_POINTS} sweep points", f"{start}:{stop}:{per_octave}",
                          "snapshots")
     return out
+
+
+def _refinement(ev: Evaluation, points: np.ndarray, target_loss_db: float, fraction: float,
+                seed: int) -> np.ndarray:
+    """Snapshot counts to add so that each answer (and each end of its range) is resolved
+    finer than its uncertainty: where an answer's step from the previous sweep point
+    exceeds both 1 and the width of its range, up to ``REFINE_FILL`` evenly spaced
+    counts strictly inside that step. Empty when every answer is resolved."""
+    add: set[int] = set()
+    for p in ev.processors:
+        rec = analyse_processor(p.normalised, points, target_loss_db, fraction, seed)
+        idx = {int(v): i for i, v in enumerate(points)}
+        pairs = [(rec["required_snapshots_mean"], rec["required_snapshots_mean_range"]),
+                 (rec["required_snapshots_fraction"], rec["required_snapshots_fraction_range"])]
+        for answer, (lo, hi) in pairs:
+            if answer is None:
+                continue
+            width = (hi - lo) if lo is not None and hi is not None else np.inf
+            for k in (answer, lo, hi):
+                if k is None or idx[k] == 0:
+                    continue
+                below = int(points[idx[k] - 1])
+                step = k - below
+                if step > 1 and step > width:
+                    fill = np.unique(np.round(np.linspace(below, k, REFINE_FILL + 2)[1:-1]))
+                    add.update(int(v) for v in fill if below < v < k)
+    return np.array(sorted(add - set(int(v) for v in points)), dtype=np.int64)
 
 
 # --------------------------------------------------------------------------- statistics
@@ -258,6 +295,8 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
     th_mean = law.mean(points) if law is not None else np.full(len(points), np.nan)
     th_q = (law.quantile(np.array([[0.9], [0.1]]), points[None, :]) if law is not None
             else np.full((2, len(points)), np.nan))
+    th_share = (law.share_meeting(target, points) if law is not None
+                else np.full(len(points), np.nan))
 
     i_mean = int(stays_met(np.nan_to_num(mean, nan=-1.0) >= target))
     boot = bootstrap_required(rho, target, seed)
@@ -280,6 +319,8 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
             "loss_db_p90": float(loss_p90[c]),
             "fraction_meeting_target": float(frac[c]),
             "fraction_interval": [float(cp_lo[c]), float(cp_hi[c])],
+            "theory_fraction_meeting_target": (float(th_share[c]) if math.isfinite(th_share[c])
+                                               else None),
             "theory_normalized_sinr_mean": th if math.isfinite(th) else None,
             "theory_loss_db_p10": float(_pct_loss(th_q[0, c:c + 1])[0]) if math.isfinite(th) else None,
             "theory_loss_db_p90": float(_pct_loss(th_q[1, c:c + 1])[0]) if math.isfinite(th) else None,
@@ -302,6 +343,9 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
         "met_at_first_point": bool((i_mean == 0 or i_frac == 0) and points[0] > 1),
         "theory_required_snapshots": (law.required_snapshots(target, limit)
                                       if law is not None else None),
+        "theory_required_snapshots_fraction": (law.required_snapshots_share(target, fraction,
+                                                                            limit)
+                                               if law is not None else None),
         "disagreements": disagreements,
     }
 
@@ -381,6 +425,10 @@ def recommendation(proc: dict, target_loss_db: float, fraction: float, limit: in
         k = th.get("required_snapshots")
         out += (f"; {th['title']} says {k}" if k is not None
                 else f"; {th['title']} says more than {limit}")
+        if "required_snapshots_fraction" in th:
+            kf = th["required_snapshots_fraction"]
+            out += (f" ({pct} of trials by {kf}, Beta law)" if kf is not None
+                    else f" ({pct} of trials beyond {limit}, Beta law)")
     rule = proc.get("rule_of_thumb")
     if rule and not th:
         out += f"; rule of thumb {rule['text']}"
@@ -548,6 +596,18 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
                       workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
                       draw=draw, threads=threads)
 
+    for _ in range(REFINE_ROUNDS):
+        extra = _refinement(ev, points, target_loss_db, fraction, used.seed)
+        if extra.size == 0 or len(points) + extra.size > MAX_POINTS:
+            break
+        points = np.union1d(points, extra)
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*sample covariance is singular",
+                                    category=RuntimeWarning)
+            ev = evaluate(used, procs, points, chunk=chunk, tail=0, progress=None,
+                          workers=workers, scheduler=scheduler, store=None, draw=draw,
+                          threads=threads)
+
     facts = theory.scene_facts(used)
     opt = np.asarray(ev.optimum_sinr, dtype=float)
     opt_mean = float(np.nanmean(opt)) if np.isfinite(opt).any() else float("nan")
@@ -567,11 +627,14 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
             title = "RMB theory" if law.name == "rmb" else "signal-present theory"
             rec["theory"] = {"name": law.name, "title": title, "source": law.source,
                              "required_snapshots": rec.pop("theory_required_snapshots"),
+                             "required_snapshots_fraction":
+                                 rec.pop("theory_required_snapshots_fraction"),
                              "half_power_snapshots": law.three_db_snapshots(),
                              "optimum_sinr": law.sinr_opt if law.name != "rmb" else None,
                              "violations": list(law.violations)}
         else:
             rec.pop("theory_required_snapshots")
+            rec.pop("theory_required_snapshots_fraction")
             rec["theory"] = None
         rec["rule_of_thumb"] = _rule_of_thumb(proc, used, facts["optimum_sinr"])
         rec["recommendation"] = recommendation(rec, target_loss_db, fraction, limit)

@@ -379,6 +379,41 @@ class Law:
                 out[ok] = signal_present_quantile(q[ok], kk[ok], self.elements, self.sinr_opt)
         return out
 
+    def share_meeting(self, target: float, k) -> np.ndarray:
+        """Share of trials whose normalised SINR is at least ``target`` after checkpoint(s)
+        k: ``P(rho >= t)`` under the law, from the Beta law's survival function
+        (``scipy.stats.beta``; RMB 1974: ``rho ~ Beta(K-N+2, N-1)``; signal present:
+        ``rho = eta / (1 + S (1 - eta))`` increasing in eta ~ the same Beta law, so
+        ``P(rho >= t) = P(eta >= t (1 + S) / (1 + S t))``). NaN where K < N."""
+        kk, ok = self._kk(k)
+        t = float(target)
+        if self.name != "rmb":
+            s = self.sinr_opt
+            t = t * (1.0 + s) / (1.0 + s * t)
+        out = np.full(kk.shape, np.nan)
+        if np.any(ok):
+            out[ok] = stats.beta.sf(t, kk[ok] - self.elements + 2.0, self.elements - 1.0)
+        return out
+
+    def required_snapshots_share(self, target: float, fraction: float, limit: int
+                                 ) -> int | None:
+        """Smallest checkpoint k in [1, limit] at which at least ``fraction`` of trials
+        meet ``target`` under the law (the Beta law's ``1 - fraction`` quantile reaches
+        the target), or None; bisection, the share never decreasing with k."""
+        limit = int(limit)
+
+        def ok(k: int) -> bool:
+            v = float(self.share_meeting(target, np.array([k]))[0])
+            return bool(np.isfinite(v) and v >= fraction)
+
+        if limit < 1 or not ok(limit):
+            return None
+        lo, hi = 0, limit
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            lo, hi = (lo, mid) if ok(mid) else (mid, hi)
+        return hi
+
     def three_db_snapshots(self) -> int:
         """Training snapshots for a 3 dB (half-power) average loss under this law."""
         if self.name == "rmb":
