@@ -396,6 +396,15 @@ def test_warnings():
     warns = scene_warnings(parse_scene(mutate(sources__1__azimuth=12)))
     assert any(w.startswith("interferer in the main lobe: 'jam' is 12 degrees") for w in warns)
     assert not any("main lobe" in w for w in scene_warnings(parse_scene(mutate(sources__1__azimuth=16))))
+    # the warning quotes the first null on that side, asin(1/(N d)) = 14.48 degrees
+    # (antenna handbook), the uniform response |sin(N x)/(N sin x)|^2, x = pi d sin(12),
+    # and the cost of nulling, -10 log10(1 - B) (Van Trees 2002, one-interferer gain)
+    x = math.pi * 0.5 * math.sin(math.radians(12))
+    b = (math.sin(8 * x) / (8 * math.sin(x))) ** 2
+    (line,) = [w for w in warns if "main lobe" in w]
+    assert "(at 14.5 degrees on that side)" in line
+    assert f"response there is {10 * math.log10(b):.1f} dB" in line
+    assert f"about {-10 * math.log10(1 - b):.2g} dB" in line
     # a moving jammer that drifts into the main lobe during the run
     drift = mutate(sources__1__motion={"azimuth_rate": -0.1})          # 30 -> 4.5 degrees
     assert any("main lobe" in w and "at snapshot" in w for w in scene_warnings(parse_scene(drift)))
