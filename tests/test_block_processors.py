@@ -512,3 +512,20 @@ def test_auto_loading_on_a_seven_element_ring_with_five_jammers():
     auto = normalised_sinr(batch, w_auto, w_opt, 10 ** -2.5)
     gap = 10 * np.log10(fix.mean(axis=0) / auto.mean(axis=0))
     assert np.all(np.abs(gap) < 0.2), gap
+
+
+def test_auto_loading_warns_when_the_interferers_nearly_fill_the_array():
+    # Wax & Kailath (1985) count: 5 jammers on 7 elements leave 2 noise eigenvalues
+    # (warned); 1 jammer leaves 6 (silent)
+    def scene(jams):
+        return make_scene(n=7, jammers=jams, trials=4, seed=2)
+    crowded = scene(tuple((az, 45.0) for az in (-60, -35, 20, 40, 65)))
+    batch = TrialBatch(crowded)
+    with pytest.warns(RuntimeWarning, match="loading=auto finds 5 interference"):
+        run_processors([parse_spec("smi loading=auto")], batch.blocks(100),
+                       Context.from_batch(batch), [50, 100])
+    quiet = TrialBatch(scene(((-35.0, 45.0),)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RuntimeWarning)
+        run_processors([parse_spec("smi loading=auto")], quiet.blocks(100),
+                       Context.from_batch(quiet), [50, 100])

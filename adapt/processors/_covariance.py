@@ -370,6 +370,22 @@ class SampleCovarianceProcessor(Processor):
             self._warned = True
             warnings.warn(f"{self.label}: {message}", RuntimeWarning, stacklevel=4)
 
+    def _warn_crowded_floor(self, r: np.ndarray, count: int) -> None:
+        """Warn once when ``loading=auto`` finds at most two noise eigenvalues left after
+        the MDL count (Wax & Kailath 1985) in the median trial: the interferers nearly
+        fill the array and the estimated floor rests on very few numbers."""
+        n = r.shape[-1]
+        m = max(1, min(count, n))
+        top = np.linalg.eigvalsh(r)[:, n - m:][:, ::-1]
+        k = int(np.median(signal_count_mdl(top, count)))
+        if m - k <= 2 and n > 2:
+            self._warned_auto = True
+            warnings.warn(f"{self.label}: loading=auto finds {k} interference eigenvalue(s) "
+                          f"on {n} elements after {count} snapshots, so the noise floor "
+                          f"rests on {m - k} eigenvalue(s); give loading_db alone (fixed "
+                          "loading above the known noise) if the noise power is known",
+                          RuntimeWarning, stacklevel=4)
+
     def update_times(self, stops) -> np.ndarray:
         """Update time ``u = floor(c/interval) * interval`` behind each checkpoint c."""
         every = self._interval
@@ -438,6 +454,8 @@ class SampleCovarianceProcessor(Processor):
             if not hermitian:
                 r = hermitian_part(r)
             load = loading_level(r, counts, mode, db, self.context.noise_power)
+            if mode == "auto" and not getattr(self, "_warned_auto", False):
+                self._warn_crowded_floor(r[:, -1], int(counts[-1]))
             if load is not None:
                 idx = np.arange(n)
                 r[..., idx, idx] += load[..., None]           # r is a fresh array
