@@ -65,3 +65,24 @@ def test_element_minimum_through_the_cli(run_cli, write_file, tmp_path):
     code, out, err = run_cli(["compare", path, "-p", "gsc", "--no-progress",
                               "--out", tmp_path / "runs"])
     assert code == 2 and "needs at least 2 elements" in err and "Traceback" not in err
+
+
+def test_mean_square_divergent_lms_step_is_refused_by_check(run_cli, write_file):
+    # Widrow, McCool, Larimore & Johnson (1976): 16-element half-wave line, 0 dB Gaussian
+    # wanted signal, eight 30 dB jammers; step 1.5e-5 has mean-square sum 1.10 (refused
+    # although 15 % of 2/lambda_max), step 1.2e-5 has 0.85 (accepted)
+    sources = [{"name": "s", "role": "desired", "azimuth": 0, "power_db": 0,
+                "waveform": "gaussian"}]
+    sources += [{"name": f"j{i}", "role": "interferer", "azimuth": az, "power_db": 30}
+                for i, az in enumerate((12, -12, 25, -25, 41, -41, 60, -60))]
+
+    def text(step):
+        return yaml.safe_dump({"array": {"layout": "line", "elements": 16},
+                               "sources": sources, "trials": 2, "snapshots": 4000,
+                               "seed": 5, "processors": [f"lms step={step}"]})
+    code, out, err = run_cli(["check", write_file("bad.yaml", text(1.5e-5))])
+    assert code == 2 and "Traceback" not in err
+    assert "processors[0].step" in err and "mean-square stability bound" in err
+    assert "1.1 at this step" in err and "step=auto" in err
+    code, out, err = run_cli(["check", write_file("ok.yaml", text(1.2e-5))])
+    assert code == 0, err
