@@ -209,6 +209,8 @@ def _data_covariance(batch, k) -> np.ndarray:
     """(T, len(k), N, N) covariance of ``block.data``: interference plus noise plus the
     wanted source (gated) at snapshot indices k (quantisation not included)."""
     kk = np.atleast_1d(np.asarray(k))
+    if batch.scene.coherent:             # coherent copies: the cross terms with the signal
+        return batch.covariance(kk, data=True)
     r = batch.covariance(kk)
     src = batch.scene.desired
     a = batch.desired_steering(kk)                                    # (T, M, N)

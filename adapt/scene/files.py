@@ -47,6 +47,14 @@ Scene file keys (``*`` = required)::
                   or {kind: chirp, start: f0, stop: f1, period: P}
                                          f0, f1 in [-0.5, 0.5]; P >= 2 snapshots
                                          (defaults -0.25, 0.25, 1024)
+                  or {kind: copy, of: NAME, phase_deg: P}
+                                         a coherent copy of source NAME's waveform,
+                                         scaled to this source's power_db, gated by its
+                                         own pulsing, rotated by P degrees ([-360, 360],
+                                         default 0); NAME must be another source that is
+                                         not itself a copy; only interferers may be
+                                         copies (multipath of the wanted signal, a
+                                         repeater); scored by README's convention
         pulsing: {start: k0, stop: k1, period: P, on: M}   all optional integers:
                  on at snapshot k when k0 <= k < k1 and (k - k0) mod P < M;
                  k0 >= 0 (default 0), k1 > k0 (default never off), P >= 1 and
@@ -85,6 +93,7 @@ import yaml
 from adapt.errors import InputError, SceneError, SpecError, did_you_mean
 from adapt.scene import geometry
 from adapt.scene.model import (
+    COPY,
     LAYOUTS,
     ROLES,
     TRAINING,
@@ -386,6 +395,7 @@ _SOURCE_KEYS = ("name", "role", "azimuth", "elevation", "power_db", "waveform", 
 _WAVEFORM_KEYS = {
     "gaussian": ("kind",), "bpsk": ("kind",), "qpsk": ("kind",),
     "tone": ("kind", "frequency"), "chirp": ("kind", "start", "stop", "period"),
+    COPY: ("kind", "of", "phase_deg"),
 }
 _PULSING_KEYS = ("start", "stop", "period", "on")
 _MOTION_KEYS = ("azimuth_rate", "elevation_rate")
@@ -605,6 +615,7 @@ class _Reader:
             where = _join(_join(path, desired[1]), "role") if len(desired) > 1 else path
             raise self.error(f"exactly one source must have role desired, found {len(desired)}",
                              where, allowed="one 'role: desired' source plus any interferers")
+        self.copies(out, path)
         return tuple(out)
 
     def source(self, value, path) -> Source:
@@ -632,7 +643,7 @@ class _Reader:
         if "kind" not in value:
             raise self.error("required key 'kind' is missing", path,
                              allowed=" | ".join(WAVEFORMS))
-        kind = self.choice(value["kind"], _join(path, "kind"), WAVEFORMS)
+        kind = self.choice(value["kind"], _join(path, "kind"), WAVEFORMS + (COPY,))
         keys = _WAVEFORM_KEYS[kind]
         for key in value:
             if not isinstance(key, str) or key not in keys:
@@ -652,7 +663,40 @@ class _Reader:
                              unit="cycles per snapshot")
             period = self.count(value.get("period", d.period), p("period"), 1_000_000_000, low=2)
             return Waveform(kind=kind, start=f0, stop=f1, period=period)
+        if kind == COPY:
+            if "of" not in value:
+                raise self.error("required key 'of' is missing", path,
+                                 allowed="of: the name of the source copied")
+            of = self.text(value["of"], p("of"), "the name of another source")
+            phase = self.number(value.get("phase_deg", 0.0), p("phase_deg"), -360, 360,
+                                unit="degrees")
+            return Waveform(kind=kind, of=of, phase_deg=phase)
         return Waveform(kind=kind)
+
+    def copies(self, sources, path) -> None:
+        """Refuse copies of unknown sources, of themselves, of other copies (chains and
+        cycles), and a wanted source that is a copy."""
+        names = {s.name: i for i, s in enumerate(sources)}
+        for i, src in enumerate(sources):
+            if src.waveform.kind != COPY:
+                continue
+            where = _join(_join(_join(path, i), "waveform"), "of")
+            of = src.waveform.of
+            if src.role == "desired":
+                raise self.error("the wanted source cannot be a copy; make the other "
+                                 "arrival the copy", _join(_join(path, i), "waveform"),
+                                 allowed="role interferer for a copy")
+            if of == src.name:
+                raise self.error(f"source '{src.name}' cannot copy itself", where, of,
+                                 "the name of another source")
+            if of not in names:
+                raise self.error(f"no source is named '{of}'" + did_you_mean(of, names),
+                                 where, of, ", ".join(n for n in names if n != src.name))
+            if sources[names[of]].waveform.kind == COPY:
+                raise self.error(f"source '{of}' is itself a copy (of "
+                                 f"'{sources[names[of]].waveform.of}'); copies of copies "
+                                 "(chains and cycles) are refused", where, of,
+                                 "a source that is not a copy")
 
     def pulsing(self, value, path) -> Pulsing:
         self.mapping(value, path, _PULSING_KEYS)
@@ -786,6 +830,8 @@ def scene_to_mapping(scene: Scene) -> dict:
         elif s.waveform.kind == "chirp":
             wf.update(start=float(s.waveform.start), stop=float(s.waveform.stop),
                       period=int(s.waveform.period))
+        elif s.waveform.kind == COPY:
+            wf.update(of=s.waveform.of, phase_deg=float(s.waveform.phase_deg))
         item = {"name": s.name, "role": s.role, "azimuth": float(s.azimuth),
                 "elevation": float(s.elevation), "power_db": float(s.power_db),
                 "waveform": wf}

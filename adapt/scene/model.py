@@ -20,6 +20,8 @@ from adapt.scene import geometry
 LAYOUTS = ("line", "grid", "ring", "custom")
 ROLES = ("desired", "interferer")
 WAVEFORMS = ("gaussian", "bpsk", "qpsk", "tone", "chirp")
+#: a waveform kind given only as a mapping: a coherent copy of another source's waveform
+COPY = "copy"
 TRAINING = ("interference", "signal")
 
 
@@ -75,13 +77,20 @@ class Waveform:
     kind: ``gaussian`` (circular complex Gaussian), ``bpsk`` (+-1), ``qpsk``
     ((+-1 +-j)/sqrt 2), ``tone`` (``exp(j(2 pi f k + phi))``, ``frequency`` in cycles per
     snapshot, phi random per trial) or ``chirp`` (linear sweep from ``start`` to ``stop``
-    cycles per snapshot over ``period`` snapshots, repeating; random start phase).
+    cycles per snapshot over ``period`` snapshots, repeating; random start phase), or
+    ``copy``: the waveform of the source named ``of``, rotated by ``phase_deg`` degrees
+    (a coherent arrival: multipath of that source, or a repeater), scaled to this
+    source's own power and gated by its own pulsing.
     """
     kind: str = "gaussian"
     frequency: float = 0.0
     start: float = -0.25
     stop: float = 0.25
     period: int = 1024
+    #: copy: the name of the source whose waveform this one repeats
+    of: str | None = None
+    #: copy: rotation of the repeated waveform, degrees
+    phase_deg: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -198,6 +207,25 @@ class Scene:
     def stationary(self) -> bool:
         """True when no source pulses or moves: one covariance describes the scene."""
         return all(s.stationary for s in self.sources)
+
+    def source_index(self, name: str) -> int:
+        """Index of the source called ``name`` (KeyError if none)."""
+        for i, s in enumerate(self.sources):
+            if s.name == name:
+                return i
+        raise KeyError(name)
+
+    @property
+    def coherent(self) -> bool:
+        """True when some source is a coherent copy of another (``waveform: {kind:
+        copy}``)."""
+        return any(s.waveform.kind == COPY for s in self.sources)
+
+    def origin_index(self, i: int) -> int:
+        """The source whose waveform source ``i`` carries: itself, or the source it
+        copies (copies of copies are refused when the scene is read)."""
+        wf = self.sources[i].waveform
+        return self.source_index(wf.of) if wf.kind == COPY else i
 
     def look_steering(self) -> np.ndarray:
         """The assumed steering vector (N,) toward ``look``: nominal positions, no

@@ -227,7 +227,8 @@ class TrialBatch:
         so the true covariances and steering vectors are the same for every trial."""
         return not self.scene.array.errors.any
 
-    def covariance(self, k=None, *, training: bool = False, shared: bool = False) -> np.ndarray:
+    def covariance(self, k=None, *, training: bool = False, shared: bool = False,
+                   data: bool = False) -> np.ndarray:
         """True interference-plus-noise covariance ``R_in`` (noise power 1 per element).
 
         ``k`` None: at snapshot 0, shape (T, N, N) (the whole run for a stationary scene).
@@ -236,6 +237,14 @@ class TrialBatch:
         source when the scene trains with the signal present (the covariance of the
         training data). Quantisation noise is not included. ``shared=True``: when every
         trial has the same array (:attr:`same_array`), one row (leading axis 1) for all.
+        ``data=True``: the covariance of ``block.data`` (the wanted source always in).
+
+        Coherent copies (README, conventions): sources sharing one waveform add as one
+        term ``v v^H``, ``v = sum_m sqrt(P_m) g_m(k) e^{j phi_m} a_m``, over the copied
+        source and its copies; in the interference-plus-noise covariance the copies of
+        the wanted source form their own group without it (their term is interference,
+        its own term is the signal), so ``w^H R_in w`` is the power of everything in the
+        output but the wanted source's own term.
         """
         sc = self.scene
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
@@ -245,8 +254,14 @@ class TrialBatch:
         rows = slice(0, 1) if uniform else slice(None)
         r = np.zeros((1 if uniform else self.trials, len(kk), n, n), dtype=complex)
         r += np.eye(n)
+        signal = data or (training and sc.training == "signal")
+        if sc.coherent:
+            self._coherent_terms(r, kk, rows, signal)
+            if uniform and not shared:
+                r = np.repeat(r, self.trials, axis=0)
+            return r[:, 0] if k is None else r
         members = list(sc.interferer_indices)
-        if training and sc.training == "signal":
+        if signal:
             members.append(sc.desired_index)
         for i in members:
             src = sc.sources[i]
@@ -256,6 +271,34 @@ class TrialBatch:
         if uniform and not shared:
             r = np.repeat(r, self.trials, axis=0)
         return r[:, 0] if k is None else r
+
+    def coherent_groups(self, signal: bool) -> list[list[int]]:
+        """Sources whose terms add coherently, as lists of indices: each source that is
+        not a copy with its copies. ``signal`` False: the wanted source is left out of
+        its group (its copies stay together as interference)."""
+        sc = self.scene
+        groups: dict[int, list[int]] = {}
+        for i in range(len(sc.sources)):
+            if i == sc.desired_index and not signal:
+                continue
+            groups.setdefault(sc.origin_index(i), []).append(i)
+        return [g for g in groups.values() if g]
+
+    def _coherent_terms(self, r: np.ndarray, kk: np.ndarray, rows: slice,
+                        signal: bool) -> None:
+        """Add ``v v^H`` of every coherent group (:meth:`coherent_groups`) to ``r``
+        (T or 1, M, N, N) in place."""
+        sc = self.scene
+        for group in self.coherent_groups(signal):
+            v = 0
+            for i in group:
+                src = sc.sources[i]
+                a = self._steering(i, kk, rows)                        # (T or 1, M, N)
+                amp = np.sqrt(src.power) * src.active(kk).astype(float)
+                if src.waveform.kind == "copy":
+                    amp = amp * np.exp(1j * np.deg2rad(src.waveform.phase_deg))
+                v = v + amp[None, :, None] * a
+            r += v[..., :, None] * np.conj(v[..., None, :])
 
     # ------------------------------------------------------------------ streams
     def _waveform(self, keys, src_index: int, start: int, size: int,
@@ -267,6 +310,10 @@ class TrialBatch:
         src = self.scene.sources[src_index]
         wf = src.waveform
         t_ = self.trials
+        if wf.kind == "copy":       # the copied source's waveform (its streams), rotated
+            origin = self.scene.origin_index(src_index)
+            out = self._waveform(keys, origin, start, size, scratch)
+            return out * np.exp(1j * np.deg2rad(wf.phase_deg))
         if wf.kind in ("gaussian", "bpsk", "qpsk"):
             rails = 1 if wf.kind == "bpsk" else 2
             z = scratch_array(scratch, "waveform", (t_, size, rails))
@@ -314,6 +361,9 @@ class TrialBatch:
         source_keys = {i: keys_for(_component_key(s.name))
                        for i, s in enumerate(sc.sources)
                        if s.waveform.kind in ("gaussian", "bpsk", "qpsk")}
+        for i, s in enumerate(sc.sources):
+            if s.waveform.kind == "copy":       # a copy draws the copied source's streams
+                source_keys[i] = source_keys.get(sc.origin_index(i))
         d_idx = sc.desired_index
         moving = [i for i in sc.interferer_indices if sc.sources[i].motion is not None]
         fixed = [i for i in sc.interferer_indices if sc.sources[i].motion is None]
