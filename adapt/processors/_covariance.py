@@ -28,7 +28,8 @@ from adapt.processors.base import Context, Parameter, Processor, _fmt
 
 __all__ = ["outer_sum", "GrowingSums", "SlidingSums", "hermitian_part", "loading_level",
            "noise_floor_estimate", "signal_count_mdl", "solve_sample", "SampleCovarianceProcessor",
-           "loading_parameters", "check_loading"]
+           "loading_parameters", "check_loading", "smoothed_covariance",
+           "smoothing_parameters", "check_smoothing", "shift_invariant_reason"]
 
 
 def outer_sum(x: np.ndarray) -> np.ndarray:
@@ -273,6 +274,68 @@ def solve_sample(r: np.ndarray, b: np.ndarray, counts, exact: np.ndarray) -> np.
     return x[..., 0] if vec else x
 
 
+def smoothed_covariance(r: np.ndarray, subarray: int, backward: bool = False) -> np.ndarray:
+    """Spatially smoothed covariance (..., M, M) of a uniform line's covariance
+    (..., N, N): the mean of the ``L = N - M + 1`` diagonal M x M blocks
+    ``R_l = R[l:l+M, l:l+M]`` (forward smoothing, Shan, Wax and Kailath, "On spatial
+    smoothing for direction-of-arrival estimation of coherent signals", IEEE Trans.
+    ASSP-33, 1985); ``backward``: averaged with its exchange-conjugate
+    ``J conj(R_f) J`` (forward-backward smoothing, Pillai and Kwon, "Forward/backward
+    spatial smoothing techniques for coherent signal identification", IEEE Trans.
+    ASSP-37, 1989). Decorrelates up to L (forward) or 2L (forward-backward) coherent
+    arrivals, at the cost of an M-element aperture."""
+    n = r.shape[-1]
+    m = int(subarray)
+    if not 1 <= m <= n:
+        raise ValueError(f"subarray must be in [1, {n}], got {m}")
+    count = n - m + 1
+    out = r[..., 0:m, 0:m].copy()
+    for lag in range(1, count):
+        out += r[..., lag:lag + m, lag:lag + m]
+    out *= 1.0 / count
+    if backward:
+        out = 0.5 * (out + np.conj(out[..., ::-1, ::-1]))
+    return out
+
+
+def shift_invariant_reason(positions: np.ndarray) -> str | None:
+    """None when the elements form a uniform line in their stored order (equal steps
+    between neighbours: every subarray of consecutive elements is a shifted copy of the
+    first), else why not."""
+    p = np.asarray(positions, float)
+    if len(p) < 2:
+        return "one element has no subarrays"
+    step = np.diff(p, axis=0)
+    if np.abs(step - step[0]).max() > 1e-9 * max(1.0, np.abs(p).max()):
+        return ("the elements are not equally spaced along one line, so the subarrays "
+                "are not shifted copies of one another (a grid, ring or irregular layout)")
+    return None
+
+
+def smoothing_parameters() -> dict[str, Parameter]:
+    """The declared spatial-smoothing parameters (``subarray``, ``smoothing``)."""
+    return {
+        "subarray": Parameter("int", None, "spatial smoothing over subarrays of this many "
+                              "consecutive elements (uniform lines only); the weight is the "
+                              "subarray's, applied to the first subarray", unit="elements",
+                              low=1, high=1024, allow_none=True),
+        "smoothing": Parameter("choice", "forward", "with subarray: forward, or "
+                               "forward-backward (also the exchange-conjugate)",
+                               choices=("forward", "forward-backward")),
+    }
+
+
+def check_smoothing(params: dict, given: dict, where: str) -> None:
+    """``smoothing`` needs ``subarray``; unsmoothed processors keep no smoothing keys in
+    their parameters (so their specs and metrics read as before)."""
+    if params.get("subarray") is None:
+        if "smoothing" in given and params.get("smoothing") != "forward":
+            raise SpecError("smoothing applies with subarray only", path=f"{where}smoothing",
+                            value=given["smoothing"], allowed="add subarray=M, or drop it")
+        params.pop("subarray", None)
+        params.pop("smoothing", None)
+
+
 def loading_parameters(auto: bool) -> dict[str, Parameter]:
     """The declared loading parameters (``loading`` only when ``auto`` is offered)."""
     out = {}
@@ -342,6 +405,34 @@ class SampleCovarianceProcessor(Processor):
 
     def loading_settings(self) -> tuple[str | None, float | None]:
         return effective_loading(self.params)
+
+    def smoothing_settings(self) -> tuple[int | None, bool]:
+        """(subarray size M or None, forward-backward?)."""
+        return (self.params.get("subarray"),
+                self.params.get("smoothing") == "forward-backward")
+
+    @property
+    def look(self) -> np.ndarray:
+        """The assumed look steering the weights are formed for: the whole array's, or
+        with spatial smoothing the first subarray's (its first M entries)."""
+        m, _ = self.smoothing_settings()
+        return self.context.look if m is None else self.context.look[..., :m]
+
+    def check_subarray(self, context: Context) -> None:
+        """Refuse smoothing on layouts that are not shift-invariant, and subarrays
+        larger than the array."""
+        m, _ = self.smoothing_settings()
+        if m is None:
+            return
+        if m > context.elements:
+            raise SpecError(f"a subarray of {m} elements is larger than the "
+                            f"{context.elements}-element array", path="subarray", value=m,
+                            allowed=f"1 .. {context.elements}")
+        reason = shift_invariant_reason(context.positions)
+        if reason is not None:
+            raise SpecError(f"spatial smoothing needs a uniform line: {reason}",
+                            path="subarray", value=m,
+                            allowed="a line array, or drop subarray")
 
     def weights_from(self, r: np.ndarray, counts: np.ndarray, exact: np.ndarray) -> np.ndarray:
         raise NotImplementedError
@@ -440,7 +531,10 @@ class SampleCovarianceProcessor(Processor):
         t_, n = table.shape[0], self.context.elements
         w = np.empty((t_, len(stops), n), dtype=complex)
         w[:, times == 0] = self._initial[rows][:, None, :]
-        if distinct.size:
+        if distinct.size and self.smoothing_settings()[0] is not None:
+            w[:, times > 0] = self._smoothed_weights(table, distinct, hermitian)[
+                :, np.searchsorted(distinct, times[times > 0])]
+        elif distinct.size:
             counts = self._sums.count(distinct)
             pos = np.searchsorted(distinct, times[times > 0])
             mode, db = self.loading_settings()
@@ -471,3 +565,34 @@ class SampleCovarianceProcessor(Processor):
             wd = self.weights_from(r, counts, exact)
             w[:, times > 0] = wd[:, pos]
         return w
+
+    def _smoothed_weights(self, table: np.ndarray, distinct: np.ndarray,
+                          hermitian: bool) -> np.ndarray:
+        """Weights (T, len(distinct), N) with spatial smoothing: the M-element weight
+        from the smoothed covariance (loaded as the unsmoothed one would be), applied to
+        the first subarray and zero on the other N - M elements. The smoothed estimate
+        of k snapshots has rank at most min(M, k L) (2 k L forward-backward)."""
+        m, backward = self.smoothing_settings()
+        n = table.shape[-1]
+        counts = self._sums.count(distinct)
+        r = table * (1.0 / counts)[None, :, None, None]
+        if not hermitian:
+            r = hermitian_part(r)
+        r = smoothed_covariance(r, m, backward)
+        looks = counts * (n - m + 1) * (2 if backward else 1)     # subarray snapshots
+        reach = np.minimum(looks, m)
+        mode, db = self.loading_settings()
+        load = loading_level(r, looks, mode, db, self.context.noise_power)
+        if load is not None:
+            idx = np.arange(m)
+            r[..., idx, idx] += load[..., None]
+            exact = np.ones(len(distinct), dtype=bool)
+        else:
+            exact = looks >= m
+            if not exact.all() and self.warns_singular:
+                self.warn_once(f"{int(counts.min())} training snapshots are too few for a "
+                               f"full-rank smoothed covariance of {m} elements; using the "
+                               "minimum-norm solution (add loading_db to avoid this)")
+        out = np.zeros(r.shape[:2] + (n,), dtype=complex)
+        out[..., :m] = self.weights_from(r, reach, exact)
+        return out
