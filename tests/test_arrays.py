@@ -235,3 +235,112 @@ def test_smoothed_covariance_blocks():
     j = np.eye(4)[::-1]
     np.testing.assert_allclose(fb, 0.5 * (f + j @ np.conj(f) @ j))
     np.testing.assert_array_equal(smoothed_covariance(r, 6), r)
+
+
+# --------------------------------------------------------------------------- noise fields
+def _noise_scene(noise, n=6, spacing=0.3, layout="line", **extra):
+    array = {"layout": layout, "elements": n}
+    array["radius" if layout == "ring" else "spacing"] = spacing
+    data = {"array": array,
+            "sources": [{"name": "s", "role": "desired", "azimuth": 0, "power_db": -100}],
+            "noise": noise, "trials": 2, "seed": 5}
+    data.update(extra)
+    return parse_scene(data)
+
+
+@pytest.mark.parametrize("field, layout", [("isotropic", "line"), ("cylindrical", "line"),
+                                           ("isotropic", "ring"), ("cylindrical", "ring")])
+def test_diffuse_noise_coherence_matches_the_closed_forms(field, layout):
+    """Cox, "Spatial correlation in arbitrary noise fields with application to ambient
+    sea noise", JASA 54, 1973: the coherence of spherically isotropic noise between two
+    points d wavelengths apart is sin(kd)/(kd), of cylindrically isotropic (horizontal)
+    noise J0(kd), k = 2 pi (scipy.special.j0). The sample covariance of the generated
+    noise (thermal floor 1 plus the field at 10 dB) is compared entry by entry with
+    I + 10 * coherence, within 5 standard errors (var of an entry R_ii R_jj / K)."""
+    from scipy.special import j0
+    sc = _noise_scene({"field": field, "level_db": 10}, layout=layout, spacing=0.4)
+    batch = TrialBatch(sc)
+    k = 20000
+    x = batch.samples(k).data
+    p = sc.array.positions
+    d = np.linalg.norm(p[:, None, :] - p[None, :, :], axis=-1)
+    kd = 2 * np.pi * d
+    with np.errstate(invalid="ignore", divide="ignore"):
+        coh = np.where(d > 0, np.sin(kd) / kd, 1.0) if field == "isotropic" else j0(kd)
+    truth = np.eye(len(p)) + 10.0 * coh
+    np.testing.assert_allclose(batch.covariance(data=True)[0], truth, atol=1e-9)
+    s = np.einsum("tkn,tkm->tnm", x, np.conj(x)) / k
+    se = np.sqrt(np.outer(np.diag(truth), np.diag(truth)) / k)
+    assert np.all(np.abs(s - truth) < 5 * se)
+    # the sample coherence between two neighbours, against the closed form
+    rho = s[:, 0, 1].real / np.sqrt(s[:, 0, 0].real * s[:, 1, 1].real)
+    expect = 10 * coh[0, 1] / 11
+    assert np.all(np.abs(rho - expect) < 5 * (1 - expect ** 2) / np.sqrt(k) + 1e-12)
+
+
+def test_channel_noise_spread_is_drawn_per_trial():
+    sc = _noise_scene({"element_noise_db_rms": 2.0}, n=8, trials=400)
+    batch = TrialBatch(sc, trials=400)
+    g = 10 * np.log10(batch.channel_noise)                   # (T, N) Gaussian in dB
+    assert abs(g.mean()) < 5 * 2.0 / np.sqrt(g.size)
+    assert abs(g.std() / 2.0 - 1) < 5 / np.sqrt(2 * g.size)
+    # trial i's draw does not depend on the batch it sits in; the truth holds it
+    part = TrialBatch(sc, trials=3, first_trial=10)
+    np.testing.assert_array_equal(part.channel_noise, batch.channel_noise[10:13])
+    np.testing.assert_allclose(np.diagonal(part.covariance(), axis1=-2, axis2=-1).real,
+                               part.channel_noise)
+    x = part.samples(20000).data
+    power = np.mean(np.abs(x) ** 2, axis=1)
+    assert np.all(np.abs(power / part.channel_noise - 1) < 5 / np.sqrt(20000))
+    assert not part.same_array
+
+
+def test_noise_field_keeps_the_thermal_stream_and_refuses_bad_input():
+    plain = _noise_scene(None)
+    assert "noise" not in plain.resolved
+    field = _noise_scene({"field": "isotropic", "level_db": 0})
+    again = parse_scene(dump_scene(field))
+    assert again.noise == field.noise and again.resolved == field.resolved
+    a = TrialBatch(plain).samples(32).data
+    b = TrialBatch(field).samples(32).data
+    d = b - a
+    # the difference is the diffuse field alone: its sample covariance is no white noise
+    assert np.abs(d).max() > 0.1
+    for noise, words in (({"field": "isotropic"}, "needs level_db"),
+                         ({"field": "sphere", "level_db": 1}, "unknown choice"),
+                         ({"level_db": 200}, "out of range"),
+                         ({"element_noise_db_rms": -1}, "out of range"),
+                         ({"colour": "pink"}, "unknown key")):
+        with pytest.raises(SceneError, match=words):
+            _noise_scene(noise)
+
+
+def test_superdirective_gain_in_isotropic_noise():
+    """Uzkov (1946) / Cox, Zeskind and Owen, "Robust adaptive beamforming", IEEE Trans.
+    ASSP-35, 1987 (from memory): a closely spaced line steered to endfire in spherically
+    isotropic noise has a directivity (array gain against the isotropic field) that can
+    exceed 10 log10 N and tends to N^2 as the spacing shrinks, while the white-noise
+    gain of that weight collapses. The optimum, formed from the true noise covariance
+    (thermal floor plus a strong isotropic field), shows both."""
+    n = 5
+    gains = {}
+    for spacing in (0.5, 0.1):
+        sc = parse_scene({"array": {"layout": "line", "elements": n, "spacing": spacing},
+                          "sources": [{"name": "s", "role": "desired", "azimuth": 90,
+                                       "power_db": 0}],
+                          "noise": {"field": "isotropic", "level_db": 50}})
+        res = compare(sc, ["optimum"], trials=1, snapshots=4)
+        w = res.evaluation.by_label("optimum").final_weights[0]
+        x = _line(n, spacing)
+        a = np.exp(2j * np.pi * x)
+        coh = np.sinc(2 * np.abs(x[:, None] - x[None, :]))        # sin(kd)/(kd)
+        directivity = abs(np.vdot(w, a)) ** 2 / np.vdot(w, coh @ w).real
+        wng = res.evaluation.by_label("optimum").white_noise_gain[0, -1]
+        bound = np.vdot(a, np.linalg.solve(coh, a)).real          # max directivity
+        gains[spacing] = (directivity, wng, bound)
+    d_half, wng_half, _ = gains[0.5]
+    d_close, wng_close, bound = gains[0.1]
+    assert abs(d_half - n) < 1e-6 and abs(wng_half - n) < 1e-6   # half-wave: white, D = N
+    assert d_close > 3 * n and bound > 0.95 * n ** 2 and bound < n ** 2
+    assert d_close > 0.7 * bound            # the thermal floor (50 dB down) limits it
+    assert wng_close < 0.01                                       # -20 dB: superdirective

@@ -197,7 +197,7 @@ def _shared_covariance(batch, k, kind: str) -> np.ndarray:
         return (b.covariance(kk, training=True) if kind == "training"
                 else _data_covariance(b, kk))
 
-    if batch.trials > 1 and not batch.scene.array.errors.any:
+    if batch.trials > 1 and batch.same_array:
         single = type(batch)(batch.scene, trials=1, seed=batch.seed,
                              first_trial=batch.first_trial)
         r = one(single)

@@ -66,6 +66,17 @@ Scene file keys (``*`` = required)::
     training: interference | signal     what the adaptive processors train on: the
                                         interference plus noise alone (default) or the
                                         data with the wanted signal present (MPDR case)
+    noise:                              optional; without it: unit white thermal noise
+      field: white | isotropic | cylindrical   default white; diffuse noise with
+                                        coherence sin(kd)/(kd) (isotropic) or J0(kd)
+                                        (cylindrical: the x-y plane), k = 2 pi per
+                                        wavelength, added to the thermal floor
+      level_db: dB                      diffuse power per element over the thermal
+                                        floor, [-100, 100]; required for isotropic
+                                        and cylindrical; with white: extra white noise
+      element_noise_db_rms: dB rms      each channel's thermal noise power drawn per
+                                        trial (Gaussian in dB, median 1), [0, 10],
+                                        default 0
     receiver: {bits: b, full_scale_db: dB}  optional ADC per I and Q rail: b in 1 .. 24
                                         (null: none), clip level dB over the noise rms
                                         per element, [-20, 160], default 40
@@ -95,12 +106,14 @@ from adapt.scene import geometry
 from adapt.scene.model import (
     COPY,
     LAYOUTS,
+    NOISE_FIELDS,
     ROLES,
     TRAINING,
     WAVEFORMS,
     ArrayLayout,
     HardwareErrors,
     Motion,
+    NoiseField,
     Pulsing,
     Receiver,
     Scene,
@@ -381,7 +394,8 @@ def parse_scene(mapping_or_text, file: str | None = None, *, _stem: str | None =
 
 # --------------------------------------------------------------------------- validation
 _TOP_KEYS = ("name", "array", "sources", "look", "training", "receiver", "snapshots",
-             "trials", "seed", "processors")
+             "trials", "seed", "processors", "noise")
+_NOISE_KEYS = ("field", "level_db", "element_noise_db_rms")
 _ARRAY_KEYS = {
     "line": ("layout", "elements", "spacing", "errors"),
     "grid": ("layout", "rows", "columns", "spacing", "row_spacing", "errors"),
@@ -497,9 +511,10 @@ class _Reader:
             look_az, look_el = float(desired.azimuth), float(desired.elevation)
         training = self.choice(data.get("training", "interference"), "training", TRAINING)
         receiver = self.receiver(data.get("receiver"), "receiver")
+        noise = self.noise(data.get("noise"), "noise", array)
         processors = self.processors(data.get("processors", []), "processors")
         return Scene(name=name, array=array, sources=sources, look_azimuth=look_az,
-                     look_elevation=look_el, training=training, receiver=receiver,
+                     look_elevation=look_el, training=training, receiver=receiver, noise=noise,
                      snapshots=snapshots, trials=trials, seed=seed, processors=processors,
                      source_file=self.file)
 
@@ -773,6 +788,29 @@ class _Reader:
                          unit="dB over the per-element noise rms")
         return Receiver(bits=bits, full_scale_db=fs)
 
+    def noise(self, value, path, array) -> NoiseField:
+        if value is None:
+            return NoiseField()
+        self.mapping(value, path, _NOISE_KEYS)
+        field = self.choice(value.get("field", "white"), _join(path, "field"), NOISE_FIELDS)
+        level = value.get("level_db")
+        if level is not None:
+            level = self.number(level, _join(path, "level_db"), -100, 100,
+                                unit="dB over the thermal noise per element")
+            total = 10.0 * math.log10(1.0 + len(array.positions) * 10.0 ** (level / 10.0))
+            if total > MAX_DYNAMIC_RANGE_DB:
+                raise self.error(f"the noise reaches {total:.1f} dB over the thermal floor "
+                                 f"at the array; double-precision covariances hold at most "
+                                 f"{MAX_DYNAMIC_RANGE_DB:g} dB", _join(path, "level_db"),
+                                 level, "a lower level")
+        elif field != "white":
+            raise self.error(f"a {field} noise field needs level_db", path,
+                             allowed="level_db: its power per element over the thermal "
+                                     "floor, dB")
+        spread = self.number(value.get("element_noise_db_rms", 0.0),
+                             _join(path, "element_noise_db_rms"), 0, 10, unit="dB rms")
+        return NoiseField(field=field, level_db=level, element_noise_db_rms=spread)
+
     def processors(self, value, path) -> tuple:
         if value is None:
             return ()
@@ -857,7 +895,18 @@ def scene_to_mapping(scene: Scene) -> dict:
         "trials": int(scene.trials),
         "seed": int(scene.seed),
         "processors": [_plain(p) for p in scene.processors],
+        **_noise_mapping(scene),
     }
+
+
+def _noise_mapping(scene: Scene) -> dict:
+    """The ``noise`` key, only when the scene has one (scenes without stay as before)."""
+    nf = scene.noise
+    if nf == NoiseField():
+        return {}
+    return {"noise": {"field": nf.field,
+                      "level_db": None if nf.level_db is None else float(nf.level_db),
+                      "element_noise_db_rms": float(nf.element_noise_db_rms)}}
 
 
 def dump_scene(scene: Scene) -> str:

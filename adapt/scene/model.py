@@ -156,6 +156,41 @@ class Source:
         return self.pulsing.active(k)
 
 
+NOISE_FIELDS = ("white", "isotropic", "cylindrical")
+
+
+@dataclass(frozen=True)
+class NoiseField:
+    """The noise besides the unit thermal floor.
+
+    field: ``white`` (nothing but the thermal floor, plus ``level_db`` of white noise if
+    set), ``isotropic`` (spherically isotropic diffuse noise: coherence
+    ``sin(k d) / (k d)`` between elements d wavelengths apart, ``k = 2 pi``) or
+    ``cylindrical`` (diffuse in the x-y plane: coherence ``J0(k d)`` with d the
+    separation projected on that plane; Cox 1973). level_db: the diffuse noise's power
+    per element over the thermal floor (dB). element_noise_db_rms: spread of each
+    channel's thermal noise power, drawn per trial and element (Gaussian in dB, median
+    the unit floor).
+    """
+    field: str = "white"
+    level_db: float | None = None
+    element_noise_db_rms: float = 0.0
+
+    @property
+    def diffuse(self) -> bool:
+        """True when noise beyond the thermal floor is added."""
+        return self.level_db is not None
+
+    @property
+    def spread(self) -> bool:
+        return self.element_noise_db_rms > 0
+
+    @property
+    def plain(self) -> bool:
+        """True for unit white thermal noise alone (the scene without a noise key)."""
+        return not self.diffuse and not self.spread
+
+
 @dataclass(frozen=True)
 class Receiver:
     """Optional ADC model: ``bits`` per I and Q rail (None: no quantisation), full scale
@@ -173,6 +208,7 @@ class Scene:
     look_elevation: float
     training: str = "interference"
     receiver: Receiver = field(default_factory=Receiver)
+    noise: NoiseField = field(default_factory=NoiseField)
     snapshots: int = 1024
     trials: int = 100
     seed: int = 0

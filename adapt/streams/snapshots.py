@@ -40,7 +40,7 @@ from adapt.streams import normals
 from adapt.streams.seeding import trial_generators
 
 __all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise",
-           "scratch_array", "STREAMS"]
+           "scratch_array", "STREAMS", "diffuse_coherence"]
 
 #: the definition of the random numbers (recorded in resumable run plans): noise and
 #: random waveforms from counter-based normal streams (adapt.streams.normals)
@@ -48,6 +48,10 @@ STREAMS = "counter-normals-1"
 
 _CONSTANTS, _STREAMS = 0, 1
 _NOISE_KEY = 0xFFFFFFFF
+#: the diffuse noise field's normal stream, and the per-channel noise power spread's
+#: (their own keys: scenes without a noise field draw exactly what they drew before)
+_DIFFUSE_KEY = 0xFFFFFFFE
+_SPREAD_KEY = 0xFFFFFFFD
 _MAX_BLOCK_VALUES = 1 << 21      # complex values per (trials x block x elements) array
 
 
@@ -72,6 +76,25 @@ def scratch_array(store: dict | None, name: str, shape: tuple, dtype=float) -> n
     if buf is None or buf.size < count or buf.dtype != np.dtype(dtype):
         buf = store[name] = np.empty(count, dtype=dtype)
     return buf[:count].reshape(shape)
+
+
+def diffuse_coherence(positions: np.ndarray, field: str) -> np.ndarray:
+    """Coherence (..., N, N) of diffuse noise between elements at ``positions``
+    (..., N, 3) in wavelengths: ``sin(k d) / (k d)`` for a spherically isotropic field,
+    ``J0(k d_xy)`` for a cylindrically isotropic one (arrivals spread evenly over
+    azimuth in the x-y plane; d_xy the separation projected on that plane), the
+    identity for ``white``; ``k = 2 pi``. Cox, "Spatial correlation in arbitrary noise
+    fields with application to ambient sea noise", JASA 54, 1973."""
+    p = np.asarray(positions, float)
+    diff = p[..., :, None, :] - p[..., None, :, :]
+    if field == "isotropic":
+        return np.sinc(2.0 * np.linalg.norm(diff, axis=-1))      # sin(2 pi d) / (2 pi d)
+    if field == "cylindrical":
+        from scipy.special import j0
+        return j0(2.0 * np.pi * np.linalg.norm(diff[..., :2], axis=-1))
+    if field == "white":
+        return np.broadcast_to(np.eye(p.shape[-2]), diff.shape[:-1]).copy()
+    raise ValueError(f"unknown noise field {field!r}")
 
 
 def quantise(x: np.ndarray, bits: int, full_scale: float) -> np.ndarray:
@@ -148,6 +171,7 @@ class TrialBatch:
         if self.seed < 0:
             raise ValueError(f"seed must be >= 0, got {self.seed}")
         self._draw_constants()
+        self._draw_noise()
 
     # ------------------------------------------------------------------ constants
     @property
@@ -183,6 +207,43 @@ class TrialBatch:
         self.positions = sc.array.positions[None, :, :] + dpos
         #: (T, S) start phase of each source's tone or chirp, radians
         self.start_phases = 2 * np.pi * draws[:, 5 * n:]
+
+    def _draw_noise(self) -> None:
+        """Per-trial noise settings (scene key ``noise``): ``channel_noise`` (T, N), each
+        channel's thermal noise power (1 without a spread; 10^(g/10), g Gaussian with the
+        scene's dB rms, from the stream SeedSequence(seed, (i, 0, _SPREAD_KEY))), and
+        ``diffuse_factor`` (T or 1, N, N) C with ``C C^H`` the diffuse noise covariance
+        (None without one)."""
+        nf = self.scene.noise
+        n = self.scene.elements
+        self.channel_noise = np.ones((self.trials, n))
+        self.diffuse_factor = None
+        if nf.spread:
+            g = np.empty((self.trials, n))
+            normals.fill(normals.stream_keys(self.seed, self.trial_indices, _CONSTANTS,
+                                             _SPREAD_KEY), 0, g)
+            self.channel_noise = 10.0 ** (nf.element_noise_db_rms * g / 10.0)
+        if nf.diffuse:
+            pos = self.positions[:1] if not self.scene.array.errors.any else self.positions
+            gains = self.element_gains[:len(pos)]
+            coherence = diffuse_coherence(pos, nf.field)                    # (T or 1, N, N)
+            q = (10.0 ** (nf.level_db / 10.0)) * (
+                gains[:, :, None] * coherence * np.conj(gains[:, None, :]))
+            lam, e = np.linalg.eigh(q)
+            self.diffuse_factor = e * np.sqrt(np.maximum(lam, 0.0))[:, None, :]
+
+    def noise_covariance(self, rows: slice = slice(None)) -> np.ndarray:
+        """True noise covariance (T or 1, N, N) of the trials in ``rows``: the thermal
+        floor (each channel's power on the diagonal) plus the diffuse field ``C C^H``."""
+        pw = self.channel_noise[rows]
+        q = np.zeros(pw.shape + (pw.shape[-1],), dtype=complex)
+        idx = np.arange(pw.shape[-1])
+        q[:, idx, idx] = pw
+        if self.diffuse_factor is not None:
+            c = self.diffuse_factor
+            c = c if len(c) == 1 else c[rows]
+            q = q + c @ np.conj(np.swapaxes(c, -1, -2))
+        return q
 
     # ------------------------------------------------------------------ geometry
     @property
@@ -225,7 +286,7 @@ class TrialBatch:
     def same_array(self) -> bool:
         """True when every trial of the batch has the same array (no hardware errors),
         so the true covariances and steering vectors are the same for every trial."""
-        return not self.scene.array.errors.any
+        return not self.scene.array.errors.any and not self.scene.noise.spread
 
     def covariance(self, k=None, *, training: bool = False, shared: bool = False,
                    data: bool = False) -> np.ndarray:
@@ -253,7 +314,10 @@ class TrialBatch:
         uniform = self.trials > 1 and self.same_array
         rows = slice(0, 1) if uniform else slice(None)
         r = np.zeros((1 if uniform else self.trials, len(kk), n, n), dtype=complex)
-        r += np.eye(n)
+        if sc.noise.plain:
+            r += np.eye(n)
+        else:
+            r += self.noise_covariance(rows)[:, None]
         signal = data or (training and sc.training == "signal")
         if sc.coherent:
             self._coherent_terms(r, kk, rows, signal)
@@ -387,7 +451,9 @@ class TrialBatch:
             return scratch_array(kept, name, shape, dtype)
 
         # one compiled pass forms noise, fixed sources and the data (no moving sources)
-        fused = _kernels.compiled() and not moving and desired_a is not None
+        fused = _kernels.compiled() and not moving and desired_a is not None and sc.noise.plain
+        noise_scale = np.sqrt(0.5) if sc.noise.plain else 1.0
+        diffuse_keys = keys_for(_DIFFUSE_KEY) if sc.noise.diffuse else None
 
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
@@ -410,10 +476,12 @@ class TrialBatch:
                 # normals (k n + e) 2 + (0, 1) of the noise stream: element e, snapshot k
                 normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
                 interference = z.view(np.complex128)[..., 0]
+                if not sc.noise.plain:
+                    self._noise_field(interference, diffuse_keys, start, take)
                 if fixed:
                     # noise sqrt(1/2) + env @ fixed_a, element by element (block-size free)
-                    _kernels.add_sources(interference, np.sqrt(0.5), env, fixed_a)
-                else:
+                    _kernels.add_sources(interference, noise_scale, env, fixed_a)
+                elif sc.noise.plain:
                     interference *= np.sqrt(0.5)
                 for i in moving:
                     interference += envelope(i, start, size, kk)[..., None] * self.steering(i, kk)
@@ -431,6 +499,23 @@ class TrialBatch:
             else:
                 training = interference if sc.training == "interference" else data
             yield Block(start, start + size, data, signal, training, reference, desired_a)
+
+    def _noise_field(self, noise: np.ndarray, keys, start: int, take) -> None:
+        """Turn unit-variance complex normals ``noise`` (T, B, N) (before the sqrt(1/2)
+        scale) into the scene's noise, in place: each channel's thermal power, plus the
+        diffuse field ``C z'`` from its own stream (normals (k N + e) 2 + (0, 1) of
+        SeedSequence(seed, (i, 1, _DIFFUSE_KEY)), element e, snapshot k), added element
+        by element (block-size free)."""
+        t_, b, n = noise.shape
+        if self.scene.noise.spread:
+            noise *= np.sqrt(self.channel_noise)[:, None, :]
+        if self.diffuse_factor is None:
+            noise *= np.sqrt(0.5)
+            return
+        z = take("diffuse", (t_, b, n, 2), float)
+        normals.fill(keys, start * n * 2, z.reshape(t_, b * n * 2))
+        mix = np.sqrt(0.5) * np.swapaxes(self.diffuse_factor, -1, -2)      # (T or 1, N, N)
+        _kernels.add_sources(noise, np.sqrt(0.5), z.view(np.complex128)[..., 0], mix)
 
     def samples(self, snapshots: int | None = None) -> Block:
         """All snapshots as one :class:`Block` (materialised; use :meth:`blocks` for long
