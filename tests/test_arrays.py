@@ -344,3 +344,119 @@ def test_superdirective_gain_in_isotropic_noise():
     assert d_close > 3 * n and bound > 0.95 * n ** 2 and bound < n ** 2
     assert d_close > 0.7 * bound            # the thermal floor (50 dB down) limits it
     assert wng_close < 0.01                                       # -20 dB: superdirective
+
+
+# --------------------------------------------------------------------------- elements
+def _patterned(element=None, coupling=None, layout="line", n=8, **extra):
+    array = {"layout": layout, "elements": n}
+    if element is not None:
+        array["element"] = element
+    if coupling is not None:
+        array["coupling"] = coupling
+    data = {"array": array,
+            "sources": [{"name": "s", "role": "desired", "azimuth": 30, "power_db": 0},
+                        {"name": "j", "role": "interferer", "azimuth": 150, "power_db": 30}],
+            "trials": 2}
+    data.update(extra)
+    return parse_scene(data)
+
+
+def test_cosine_pattern_tells_front_from_back():
+    """A line along x cannot tell azimuth 30 from its mirror 150 (same x direction
+    cosine); elements facing +y with a cos^q power pattern (common practice) see the
+    front at cos(30 deg)^q and the back at the back-lobe level."""
+    flat = TrialBatch(_patterned())
+    np.testing.assert_allclose(flat.steering(0), flat.steering(1), atol=1e-12)
+    sc = _patterned({"pattern": "cosine", "exponent": 1.5, "back_db": -20})
+    again = parse_scene(dump_scene(sc))
+    assert again.resolved == sc.resolved and again.array.element == sc.array.element
+    batch = TrialBatch(sc)
+    front = np.sqrt(np.cos(np.deg2rad(30)) ** 1.5)
+    np.testing.assert_allclose(batch.steering(0), front * flat.steering(0), atol=1e-12)
+    np.testing.assert_allclose(batch.steering(1), 0.1 * flat.steering(1), atol=1e-12)
+    # the assumed look steering carries the pattern too; scores see the jammer 20 dB down
+    np.testing.assert_allclose(sc.look_steering(), front * _patterned().look_steering())
+    assert np.isclose(batch.covariance()[0, 0, 0].real, 1 + 1000 * 0.01)
+
+
+def test_table_pattern_interpolates_in_db():
+    from adapt.scene.elements import pattern_gain
+    sc = _patterned({"pattern": "table", "angles_deg": [0, 90, 180],
+                     "gains_db": [0, -6, -26], "normal": [0, 2, 0]})
+    el = sc.array.element
+    assert el.normal == (0.0, 1.0, 0.0)
+    u = np.array([[0, 1, 0], [1, 0, 0], [0, -1, 0], [np.sin(np.pi / 4), np.cos(np.pi / 4), 0]])
+    np.testing.assert_allclose(20 * np.log10(pattern_gain(el, u)), [0, -6, -26, -3])
+    with pytest.raises(SceneError, match="increase from 0 to 180"):
+        _patterned({"pattern": "table", "angles_deg": [0, 90], "gains_db": [0, -6]})
+    with pytest.raises(SceneError, match="does not apply|unknown key"):
+        _patterned({"pattern": "cosine", "angles_deg": [0, 180]})
+
+
+def test_coupling_on_the_true_steering_and_its_cost():
+    """Banded symmetric Toeplitz coupling (Friedlander and Weiss 1991, from memory):
+    the true steering is C a, the assumed one a unless calibrated. MVDR on the assumed
+    steering then loses what the closed forms (computed here) say: little when trained
+    on interference alone (the clairvoyant weight, exact), much when trained with the
+    signal present (SMI, Monte Carlo); nothing when the array is calibrated."""
+    coeff = [[0.3, 0.1], -0.1]
+    n = 8
+    c = np.eye(n, dtype=complex)
+    for i in range(n - 1):
+        c[i, i + 1] = c[i + 1, i] = 0.3 + 0.1j
+    for i in range(n - 2):
+        c[i, i + 2] = c[i + 2, i] = -0.1
+    sources = [{"name": "s", "role": "desired", "azimuth": 10, "power_db": 0},
+               {"name": "j", "role": "interferer", "azimuth": 35, "power_db": 30}]
+    a0, b0 = _steer(n, 10), _steer(n, 35)
+    a, b = c @ a0, c @ b0
+    r = np.eye(n) + 1000 * np.outer(b, b.conj())
+    bound = np.vdot(a, np.linalg.solve(r, a)).real
+
+    def sinr(w):
+        return abs(np.vdot(w, a)) ** 2 / np.vdot(w, r @ w).real
+
+    mvdr = sinr(np.linalg.solve(r, a0))
+    mpdr = sinr(np.linalg.solve(r + np.outer(a, a.conj()), a0))
+    for calibrated in (False, True):
+        sc = _patterned(coupling={"coefficients": coeff, "calibrated": calibrated},
+                        sources=sources, training="signal")
+        assert parse_scene(dump_scene(sc)).resolved == sc.resolved
+        batch = TrialBatch(sc)
+        np.testing.assert_allclose(batch.steering(0)[0], a, atol=1e-12)
+        np.testing.assert_allclose(sc.look_steering(), a if calibrated else a0, atol=1e-12)
+        ev = _quiet(compare, sc, ["optimum", "smi"], trials=100, snapshots=4000,
+                    checkpoints=[4000]).evaluation
+        np.testing.assert_allclose(ev.optimum_sinr[:, -1], bound, rtol=1e-9)
+        opt = ev.by_label("optimum").sinr[:, -1]
+        smi = ev.by_label("smi").sinr[:, -1]
+        se = smi.std() / np.sqrt(len(smi))
+        if calibrated:
+            np.testing.assert_allclose(opt, bound, rtol=1e-9)
+            # the signal-present law (Boroson 1980): rho = eta / (1 + SINR_opt (1 - eta)),
+            # E[1 - eta] = (N - 1) / (K + 1); to first order in 1 - eta
+            expect = bound * (1 - 7 / 4001 * (1 + bound))
+            assert abs(smi.mean() - expect) < 5 * se + 0.002 * bound
+        else:
+            np.testing.assert_allclose(opt, mvdr, rtol=1e-9)
+            assert abs(smi.mean() - mpdr) < 5 * se
+            assert 10 * np.log10(bound / mpdr) > 4 and 10 * np.log10(bound / mvdr) > 0.01
+
+
+def test_coupling_input_checked():
+    ring = _patterned(coupling=[0.2], layout="ring", n=6)
+    from adapt.scene.elements import coupling_matrix
+    cm = coupling_matrix(ring.array.coupling, 6)
+    assert cm[0, 5] == 0.2 and cm[0, 1] == 0.2 and cm[0, 3] == 0     # circulant
+    for coupling, words in (([1.0], "magnitude"), ([0.1] * 8, "1 to 7 coefficients"),
+                            ({"matrix": [[1, 0], [0, 1]]}, "8 x 8 matrix"),
+                            ({"coefficients": [0.1], "matrix": [[1]]}, "either"),
+                            ({"coefficients": [0.1], "calibrated": "yes"}, "true or false")):
+        with pytest.raises(SceneError, match=words):
+            _patterned(coupling=coupling)
+    grid = {"array": {"layout": "grid", "rows": 2, "columns": 2, "coupling": [0.1]},
+            "sources": [{"name": "s", "role": "desired", "azimuth": 0, "power_db": 0}]}
+    with pytest.raises(SceneError, match="neighbours in a line or ring"):
+        parse_scene(grid)
+    grid["array"]["coupling"] = {"matrix": np.eye(4).tolist()}
+    assert parse_scene(grid).array.coupling.matrix is not None

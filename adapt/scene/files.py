@@ -34,6 +34,27 @@ Scene file keys (``*`` = required)::
         gain_db_rms: dB                [0, 6]      default 0
         phase_deg_rms: degrees         [0, 45]     default 0
         position_rms: wavelengths      [0, 0.25]   default 0 (in the array's own plane)
+      element: isotropic | cosine       the element pattern (default isotropic), the same
+               or {pattern: cosine, exponent: q, back_db: B, normal: [x, y, z]}
+               or {pattern: table, angles_deg: [...], gains_db: [...], normal: [...]}
+                                        cosine: power gain cos(theta)^q, q in [0, 20]
+                                        (default 1), floored at the back-lobe level B dB
+                                        in [-100, 0] (default -30), theta the angle from
+                                        the normal; table: power gain in dB ([-100, 30])
+                                        on 2 .. 361 increasing angles from 0 to 180
+                                        degrees, interpolated in dB; normal: the way the
+                                        elements face (default +z for a ring, else +y),
+                                        any non-zero vector. Applied to every source and
+                                        to the assumed look steering
+      coupling: [c1, c2, ...]           mutual coupling on the true steering (C a): unit
+               or {coefficients: [c1, ...], calibrated: false}
+               or {matrix: [[...], ...], calibrated: false}
+                                        c_m couples elements m apart (line: banded
+                                        symmetric Toeplitz; ring: circulant), at most
+                                        N - 1 values, |c| < 1; matrix: N x N, |entry|
+                                        <= 10 (any layout); each value a number or
+                                        [re, im]; calibrated (default false): the assumed
+                                        look steering includes C too
     sources: *                         a list; exactly one has role desired
       - name: text *                   unique, non-empty
         role: desired | interferer *
@@ -102,7 +123,7 @@ import numpy as np
 import yaml
 
 from adapt.errors import InputError, SceneError, SpecError, did_you_mean
-from adapt.scene import geometry
+from adapt.scene import elements, geometry
 from adapt.scene.model import (
     COPY,
     LAYOUTS,
@@ -402,7 +423,12 @@ _ARRAY_KEYS = {
     "ring": ("layout", "elements", "radius", "errors"),
     "custom": ("layout", "positions", "errors"),
 }
+_ARRAY_KEYS = {layout: keys + ("element", "coupling") for layout, keys in _ARRAY_KEYS.items()}
 _ALL_ARRAY_KEYS = tuple(dict.fromkeys(k for keys in _ARRAY_KEYS.values() for k in keys))
+_ELEMENT_KEYS = {"isotropic": ("pattern",),
+                 "cosine": ("pattern", "exponent", "back_db", "normal"),
+                 "table": ("pattern", "angles_deg", "gains_db", "normal")}
+_COUPLING_KEYS = ("coefficients", "matrix", "calibrated")
 _ERROR_KEYS = ("gain_db_rms", "phase_deg_rms", "position_rms")
 _SOURCE_KEYS = ("name", "role", "azimuth", "elevation", "power_db", "waveform", "pulsing",
                 "motion")
@@ -570,8 +596,115 @@ class _Reader:
             positions = self.positions(value["positions"], p("positions"))
             settings = {"positions": positions.tolist()}
         errors = self.hardware(value.get("errors"), p("errors"))
+        element = self.element(value.get("element"), p("element"), layout)
+        coupling = self.coupling(value.get("coupling"), p("coupling"), layout, len(positions))
         return ArrayLayout(layout=layout, positions=positions, errors=errors,
-                           settings=settings)
+                           settings=settings, element=element, coupling=coupling)
+
+    def element(self, value, path, layout) -> elements.ElementPattern | None:
+        if value is None:
+            return None
+        if isinstance(value, str):
+            value = {"pattern": value}
+        if not isinstance(value, dict):
+            raise self.error("expected a pattern name or a mapping with 'pattern'", path,
+                             value, " | ".join(elements.PATTERNS))
+        kind = self.choice(value.get("pattern", "isotropic"), _join(path, "pattern"),
+                           elements.PATTERNS)
+        self.mapping(value, path, _ELEMENT_KEYS[kind])
+        p = lambda key: _join(path, key)  # noqa: E731
+        if kind == "isotropic":
+            return None
+        normal = elements.default_normal(layout)
+        if "normal" in value:
+            v = value["normal"]
+            if not isinstance(v, list) or len(v) != 3:
+                raise self.error("expected [x, y, z]", p("normal"), v, "a non-zero vector")
+            vec = np.array([self.number(c, _join(p("normal"), j), -1000, 1000)
+                            for j, c in enumerate(v)])
+            if not np.linalg.norm(vec) > 0:
+                raise self.error("the normal must not be zero", p("normal"), v,
+                                 "a non-zero vector")
+            normal = tuple(float(c) for c in vec / np.linalg.norm(vec))
+        if kind == "cosine":
+            return elements.ElementPattern(
+                pattern=kind, normal=normal,
+                exponent=self.number(value.get("exponent", 1.0), p("exponent"), 0, 20),
+                back_db=self.number(value.get("back_db", -30.0), p("back_db"), -100, 0,
+                                    unit="dB"))
+        for key in ("angles_deg", "gains_db"):
+            if key not in value:
+                raise self.error(f"required key '{key}' is missing", path,
+                                 allowed=", ".join(_ELEMENT_KEYS[kind]))
+        ang, gain = value["angles_deg"], value["gains_db"]
+        if not isinstance(ang, list) or not 2 <= len(ang) <= 361:
+            raise self.error("expected a list of 2 to 361 angles", p("angles_deg"), ang,
+                             "increasing angles from 0 to 180 degrees")
+        if not isinstance(gain, list) or len(gain) != len(ang):
+            raise self.error(f"expected a list of {len(ang)} gains (one per angle)",
+                             p("gains_db"), gain, "numbers in [-100, 30] dB")
+        a = [self.number(x, _join(p("angles_deg"), j), 0, 180, unit="degrees")
+             for j, x in enumerate(ang)]
+        g = [self.number(x, _join(p("gains_db"), j), -100, 30, unit="dB")
+             for j, x in enumerate(gain)]
+        if a[0] != 0 or a[-1] != 180 or any(b <= c for c, b in zip(a, a[1:])):
+            raise self.error("angles must increase from 0 to 180 degrees", p("angles_deg"),
+                             ang, "increasing angles, the first 0 and the last 180")
+        return elements.ElementPattern(pattern=kind, normal=normal, angles_deg=tuple(a),
+                                       gains_db=tuple(g))
+
+    def complex_value(self, value, path, bound, strict=False) -> float | tuple:
+        allowed = f"a number or [re, im], magnitude {'<' if strict else '<='} {bound:g}"
+        if isinstance(value, list):
+            if len(value) != 2:
+                raise self.error("expected [re, im]", path, value, allowed)
+            out = tuple(self.number(x, _join(path, j), -bound, bound)
+                        for j, x in enumerate(value))
+            size = math.hypot(*out)
+        else:
+            out = self.number(value, path, -bound, bound)
+            size = abs(out)
+        if size > bound or (strict and size >= bound):
+            raise self.error("magnitude out of range", path, value, allowed)
+        return out
+
+    def coupling(self, value, path, layout, n) -> elements.Coupling | None:
+        if value is None:
+            return None
+        if isinstance(value, list):
+            value = {"coefficients": value}
+        self.mapping(value, path, _COUPLING_KEYS, what="a list of coefficients or a mapping")
+        calibrated = value.get("calibrated", False)
+        if not isinstance(calibrated, bool):
+            raise self.error("expected true or false", _join(path, "calibrated"), calibrated,
+                             "true | false")
+        has_c, has_m = "coefficients" in value, "matrix" in value
+        if has_c == has_m:
+            raise self.error("give either coefficients or matrix", path,
+                             allowed="coefficients: [c1, c2, ...] or matrix: N x N")
+        if has_m:
+            rows = value["matrix"]
+            where = _join(path, "matrix")
+            if not isinstance(rows, list) or len(rows) != n or any(
+                    not isinstance(r, list) or len(r) != n for r in rows):
+                raise self.error(f"expected a {n} x {n} matrix (a list of {n} rows)", where,
+                                 allowed=f"{n} rows of {n} numbers or [re, im] pairs")
+            matrix = tuple(tuple(self.complex_value(x, _join(_join(where, i), j), 10)
+                                 for j, x in enumerate(r)) for i, r in enumerate(rows))
+            return elements.Coupling(matrix=matrix, calibrated=calibrated)
+        where = _join(path, "coefficients")
+        coeff = value["coefficients"]
+        if layout not in ("line", "ring"):
+            raise self.error(f"coupling coefficients need neighbours in a line or ring; a "
+                             f"{layout} array has none by index", where,
+                             allowed="matrix: the N x N coupling matrix")
+        if not isinstance(coeff, list) or not 1 <= len(coeff) <= max(n - 1, 1):
+            raise self.error(f"expected a list of 1 to {max(n - 1, 1)} coefficients", where,
+                             coeff, "c1 (neighbours), c2 (two apart), ...")
+        values = tuple(self.complex_value(x, _join(where, j), 1, strict=True)
+                       for j, x in enumerate(coeff))
+        return elements.Coupling(coefficients=values, calibrated=calibrated,
+                                 circular=layout == "ring")
 
     def positions(self, value, path) -> np.ndarray:
         allowed = "a list of [x, y, z] points in wavelengths"
@@ -860,6 +993,7 @@ def scene_to_mapping(scene: Scene) -> dict:
     array["errors"] = {"gain_db_rms": float(e.gain_db_rms),
                        "phase_deg_rms": float(e.phase_deg_rms),
                        "position_rms": float(e.position_rms)}
+    array.update(_element_mapping(arr))
     sources = []
     for s in scene.sources:
         wf: dict = {"kind": s.waveform.kind}
@@ -897,6 +1031,32 @@ def scene_to_mapping(scene: Scene) -> dict:
         "processors": [_plain(p) for p in scene.processors],
         **_noise_mapping(scene),
     }
+
+
+def _element_mapping(arr) -> dict:
+    """``element`` and ``coupling`` keys, only when the array has them."""
+    out: dict = {}
+    el = arr.element
+    if el is not None:
+        item: dict = {"pattern": el.pattern}
+        if el.pattern == "cosine":
+            item.update(exponent=float(el.exponent), back_db=float(el.back_db))
+        else:
+            item.update(angles_deg=[float(a) for a in el.angles_deg],
+                        gains_db=[float(g) for g in el.gains_db])
+        item["normal"] = [float(c) for c in el.normal]
+        out["element"] = item
+    cp = arr.coupling
+    if cp is not None:
+        def plain(v):
+            return [float(v[0]), float(v[1])] if isinstance(v, tuple) else float(v)
+        if cp.matrix is not None:
+            out["coupling"] = {"matrix": [[plain(v) for v in row] for row in cp.matrix],
+                               "calibrated": bool(cp.calibrated)}
+        else:
+            out["coupling"] = {"coefficients": [plain(v) for v in cp.coefficients],
+                               "calibrated": bool(cp.calibrated)}
+    return out
 
 
 def _noise_mapping(scene: Scene) -> dict:

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from adapt.scene import geometry
+from adapt.scene import elements, geometry
 
 LAYOUTS = ("line", "grid", "ring", "custom")
 ROLES = ("desired", "interferer")
@@ -50,6 +50,15 @@ class ArrayLayout:
     errors: HardwareErrors = field(default_factory=HardwareErrors)
     #: the layout's own settings as given or defaulted (count, spacing, rows, ...)
     settings: dict = field(default_factory=dict)
+    #: element pattern (None: isotropic) and mutual coupling (None: none)
+    element: elements.ElementPattern | None = None
+    coupling: elements.Coupling | None = None
+
+    @property
+    def patterned(self) -> bool:
+        """True when elements have a pattern or are coupled (steering beyond the plane
+        wave and the hardware errors)."""
+        return self.element is not None or self.coupling is not None
 
     @property
     def elements(self) -> int:
@@ -265,9 +274,18 @@ class Scene:
 
     def look_steering(self) -> np.ndarray:
         """The assumed steering vector (N,) toward ``look``: nominal positions, no
-        hardware errors."""
-        return geometry.steering_vector(self.array.positions, self.look_azimuth,
-                                        self.look_elevation)
+        hardware errors; the element pattern, and the coupling when the array is
+        calibrated (:mod:`adapt.scene.elements`)."""
+        a = geometry.steering_vector(self.array.positions, self.look_azimuth,
+                                     self.look_elevation)
+        arr = self.array
+        if not arr.patterned:
+            return a
+        u = geometry.direction_vector(self.look_azimuth, self.look_elevation)
+        a = a * elements.pattern_gain(arr.element, u)
+        if arr.coupling is not None and arr.coupling.calibrated:
+            a = elements.apply_coupling(elements.coupling_matrix(arr.coupling, len(a)), a)
+        return a
 
     def with_overrides(self, **changes: Any) -> "Scene":
         """A copy with fields replaced (trials, snapshots, seed, processors, ...)."""

@@ -34,7 +34,7 @@ from typing import Iterator
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
-from adapt.scene import geometry
+from adapt.scene import elements, geometry
 from adapt.scene.model import Scene
 from adapt.streams import normals
 from adapt.streams.seeding import trial_generators
@@ -268,7 +268,18 @@ class TrialBatch:
         # elementwise products (not matmul) so results do not depend on batch shape
         phase = 2 * np.pi * (self.positions[rows, None, :, :] * u[None, :, None, :]).sum(-1)
         a = self.element_gains[rows, None, :] * np.exp(1j * phase)
+        if self.scene.array.patterned:
+            a = self._element_effects(a, u)
         return a[:, 0, :] if k is None else a
+
+    def _element_effects(self, a: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Element pattern and mutual coupling on plane-wave responses a (..., M, N)
+        toward unit vectors u (M, 3) (:mod:`adapt.scene.elements`)."""
+        arr = self.scene.array
+        a = a * elements.pattern_gain(arr.element, u)[:, None]
+        if arr.coupling is not None:
+            a = elements.apply_coupling(elements.coupling_matrix(arr.coupling, a.shape[-1]), a)
+        return a
 
     def steering_toward(self, azimuth_deg: float, elevation_deg: float = 0.0) -> np.ndarray:
         """True array response (T, N) toward a fixed direction (hardware errors
@@ -277,6 +288,8 @@ class TrialBatch:
         rows = slice(0, 1) if self.same_array else slice(None)
         phase = 2 * np.pi * (self.positions[rows] * u).sum(-1)
         a = self.element_gains[rows] * np.exp(1j * phase)
+        if self.scene.array.patterned:
+            a = self._element_effects(a[:, None, :], u[None, :])[:, 0, :]
         return np.repeat(a, self.trials, axis=0) if len(a) < self.trials else a
 
     def desired_steering(self, k=None) -> np.ndarray:
