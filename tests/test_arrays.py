@@ -460,3 +460,43 @@ def test_coupling_input_checked():
         parse_scene(grid)
     grid["array"]["coupling"] = {"matrix": np.eye(4).tolist()}
     assert parse_scene(grid).array.coupling.matrix is not None
+
+
+# --------------------------------------------------------------------------- the tool
+def test_check_warns_about_each_new_effect():
+    from pathlib import Path
+
+    from adapt.scene.files import load_scene
+    from adapt.studies.check import scene_warnings, summarise_scene
+    sc = load_scene(Path(__file__).parent.parent / "scenes" / "navigation_ring.yaml")
+    text = "\n".join(scene_warnings(sc))
+    assert "coherent copy with signal-present training" in text and "'repeater'" in text
+    assert "uncalibrated coupling" in text
+    summary = summarise_scene(sc)
+    assert "copy of satellite" in summary and "not calibrated" in summary
+    # each warning goes away with its cause
+    quiet = _multipath_scene("interference")
+    assert not any("coherent" in w for w in scene_warnings(quiet))
+    calibrated = _patterned(coupling={"coefficients": [0.1], "calibrated": True})
+    assert not any("coupling" in w for w in scene_warnings(calibrated))
+    close = _noise_scene({"field": "isotropic", "level_db": 10}, spacing=0.2)
+    assert any("superdirective spacing" in w for w in scene_warnings(close))
+    half = _noise_scene({"field": "isotropic", "level_db": 10}, spacing=0.5)
+    assert not any("superdirective" in w for w in scene_warnings(half))
+    white = _noise_scene({"element_noise_db_rms": 1}, spacing=0.2)
+    assert not any("superdirective" in w for w in scene_warnings(white))
+
+
+def test_beam_figure_marks_coherent_copies():
+    from adapt.report.figures import COPY_COLOUR, beam_pattern_figure
+    res = _quiet(compare, _multipath_scene("interference"), ["smi"], trials=2, snapshots=32)
+    fig = beam_pattern_figure(res.evaluation)
+    ax = fig.axes[0]
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert "coherent copy" in labels
+    assert any("copy of s" in t.get_text() for t in ax.texts)
+    assert any(line.get_color() == COPY_COLOUR for line in ax.lines)
+    plain = compare(_patterned(), ["smi loading_db=10"], trials=2, snapshots=32)
+    labels = [t.get_text() for t in beam_pattern_figure(plain.evaluation).axes[0]
+              .get_legend().get_texts()]
+    assert "coherent copy" not in labels

@@ -70,6 +70,9 @@ HATCHES = ("", "////", "....", "xxxx")
 REFERENCE_COLOUR = "#404040"
 DESIRED_COLOUR = "#000000"
 INTERFERER_COLOUR = "#8C8C8C"
+#: coherent copies (multipath, repeaters) are marked apart from independent interferers
+COPY_COLOUR = "#B8561B"
+COPY_STYLE = (0, (1, 2))
 DPI = 150
 FIGURE_SIZE = (8.0, 4.8)          # inches
 FONT_SIZE = 9.0                   # points, axis labels and legends
@@ -435,7 +438,8 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     elevation, dB relative to the look-direction response, trial-averaged with each
     trial's true array (:func:`mean_beam_pattern_db`); sources marked by vertical lines
     at their direction at the final checkpoint (wanted source solid green, interferers
-    dashed grey, each labelled with its name), the look direction by a triangle.
+    dashed grey, coherent copies dotted orange and labelled "copy of ...", each labelled
+    with its name), the look direction by a triangle.
     Values below ``floor_db`` are drawn at the floor."""
     _check_evaluation(evaluation)
     if not floor_db < 0:
@@ -462,12 +466,14 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
         a_s, e_s = s.direction(k_final)
         x = _on_cut(float(a_s), full)
         desired = s.role == "desired"
-        ax.axvline(x, color=DESIRED_COLOUR if desired else INTERFERER_COLOUR,
-                   linestyle="-" if desired else (0, (4, 3)),
-                   linewidth=1.1 if desired else 0.9, alpha=0.75 if desired else 1.0,
-                   zorder=1)
+        copy = s.waveform.kind == "copy"
+        ax.axvline(x, color=DESIRED_COLOUR if desired else (COPY_COLOUR if copy
+                                                            else INTERFERER_COLOUR),
+                   linestyle="-" if desired else (COPY_STYLE if copy else (0, (4, 3))),
+                   linewidth=1.1 if desired else (1.3 if copy else 0.9),
+                   alpha=0.75 if desired else 1.0, zorder=1)
         name = s.name if len(s.name) <= 18 else s.name[:17] + "..."
-        extra = []
+        extra = [f"copy of {s.waveform.of}"] if copy else []
         if abs(float(e_s) - sc.look_elevation) > 1e-9:
             extra.append(f"el {float(e_s):g}")
         if not s.stationary:
@@ -488,6 +494,9 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     handles += [Line2D([], [], color=DESIRED_COLOUR, linewidth=1.1, alpha=0.75),
                 Line2D([], [], color=INTERFERER_COLOUR, linestyle=(0, (4, 3)))]
     labels += ["wanted source", "interferer"]
+    if sc.coherent:
+        handles.append(Line2D([], [], color=COPY_COLOUR, linestyle=COPY_STYLE, linewidth=1.3))
+        labels.append("coherent copy")
     legend_outside(ax, handles, labels, title="processor")
     title, sub = run_title(evaluation, "Beam patterns at the final checkpoint")
     if sc.array.errors.any:
@@ -551,7 +560,8 @@ def null_depth_figure(evaluation) -> Figure:
         if s is None:
             ticks.append(short)
             continue
-        ticks.append(f"{short}\naz {s.azimuth:g} deg\nJNR {s.power_db:g} dB")
+        copy = f"\ncopy of {s.waveform.of}" if s.waveform.kind == "copy" else ""
+        ticks.append(f"{short}\naz {s.azimuth:g} deg\nJNR {s.power_db:g} dB{copy}")
     ax.set_xticks(x0)
     ax.set_xticklabels(ticks, fontsize=TICK_SIZE)
     ax.set_xlim(-0.6, len(names) - 0.4)

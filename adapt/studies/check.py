@@ -27,7 +27,17 @@ Warnings (each a plain sentence):
   a steep null skirt of a small array). Moving sources are checked at 17 instants;
 * pointing mismatch: the look direction differs from the desired source's direction
   (the angle between them is given; a moving desired source is checked at the start
-  and end of the run).
+  and end of the run);
+* coherent copy with signal-present training: an interferer copies the wanted source's
+  waveform while the processors train with the wanted signal present; MVDR then
+  cancels the wanted signal (Widrow, Duvall, Gooch and Newman 1982); spatial smoothing
+  (``subarray=M``) or interference-only training avoid it;
+* uncalibrated coupling: the array has mutual coupling the processors' assumed
+  steering ignores (``calibrated: false``);
+* superdirective spacing: a diffuse noise field and neighbours closer than half a
+  wavelength: the optimum against that field is superdirective (its gain toward
+  endfire can approach N^2, Uzkov 1946), with a low white-noise gain and so sensitive
+  to errors (Cox, Zeskind and Owen 1987).
 """
 from __future__ import annotations
 
@@ -198,6 +208,8 @@ def describe_waveform(src: Source) -> str:
         return f"tone {wf.frequency:g} cyc/snap"
     if wf.kind == "chirp":
         return f"chirp {wf.start:g}..{wf.stop:g} / {wf.period}"
+    if wf.kind == "copy":
+        return f"copy of {wf.of}" + (f" at {wf.phase_deg:g} deg" if wf.phase_deg else "")
     return wf.kind
 
 
@@ -284,6 +296,40 @@ def scene_warnings(scene: Scene) -> list[str]:
         out.append(f"pointing mismatch: the look direction (az {look[0]:g}, el {look[1]:g}) "
                    f"is {worst:.3g} degrees from the desired source '{d.name}'"
                    + (" (largest over the run)" if len(ks) > 1 else ""))
+    out.extend(_array_warnings(scene))
+    return out
+
+
+def _nearest_spacing(positions: np.ndarray) -> float:
+    p = np.asarray(positions, float)
+    if len(p) < 2:
+        return float("inf")
+    d = np.linalg.norm(p[:, None, :] - p[None, :, :], axis=-1)
+    return float(d[~np.eye(len(p), dtype=bool)].min())
+
+
+def _array_warnings(scene: Scene) -> list[str]:
+    """Warnings about coherent copies, coupling and noise fields (module docstring)."""
+    out: list[str] = []
+    d = scene.desired
+    copies = [s.name for s in scene.interferers
+              if s.waveform.kind == "copy" and s.waveform.of == d.name]
+    if copies and scene.training == "signal":
+        out.append("coherent copy with signal-present training: " + ", ".join(
+            f"'{c}'" for c in copies) + f" repeat(s) the wanted signal '{d.name}' while the "
+            "processors train with it present; MVDR-type processors will cancel the wanted "
+            "signal (use subarray=M smoothing on a line, or interference-only training)")
+    cp = scene.array.coupling
+    if cp is not None and not cp.calibrated:
+        out.append("uncalibrated coupling: the array's mutual coupling is in the true "
+                   "steering but not in the steering the processors assume "
+                   "(array.coupling.calibrated: false)")
+    nf = scene.noise
+    gap = _nearest_spacing(scene.array.positions)
+    if nf.diffuse and nf.field != "white" and gap < 0.5:
+        out.append(f"superdirective spacing: elements {gap:.3g} wavelengths apart in a "
+                   f"{nf.field} noise field; the optimum becomes superdirective, with a "
+                   "low white-noise gain that makes it fragile to errors")
     return out
 
 
@@ -303,6 +349,30 @@ def check_processor_settings(scene: Scene) -> None:
         check_processors(procs, Context.from_batch(TrialBatch(scene, trials=1)))
     except SpecError as exc:
         raise exc.at(file=scene.source_file) from None
+
+
+def _array_lines(scene: Scene) -> list[str]:
+    """Summary lines for the element pattern, coupling and noise field (when set)."""
+    arr = scene.array
+    out = []
+    el = arr.element
+    if el is not None:
+        text = (f"cosine^{el.exponent:g}, back lobe {el.back_db:g} dB" if el.pattern == "cosine"
+                else f"table of {len(el.angles_deg)} angles")
+        out.append(f"elements:    {text}, facing ({', '.join(f'{c:.3g}' for c in el.normal)})")
+    cp = arr.coupling
+    if cp is not None:
+        kind = "matrix" if cp.matrix is not None else f"{len(cp.coefficients)} coefficient(s)"
+        out.append(f"coupling:    {kind}, {'calibrated' if cp.calibrated else 'not calibrated'}")
+    nf = scene.noise
+    if not nf.plain:
+        parts = []
+        if nf.diffuse:
+            parts.append(f"{nf.field} field {nf.level_db:g} dB over the thermal floor")
+        if nf.spread:
+            parts.append(f"channel noise spread {nf.element_noise_db_rms:g} dB rms")
+        out.append("noise:       " + "; ".join(parts))
+    return out
 
 
 def _processor_labels(scene: Scene) -> list[str]:
@@ -353,6 +423,7 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
         f"errors:      {errors}",
         f"receiver:    {receiver}",
         f"training:    {training}",
+        *_array_lines(scene),
         f"run:         {scene.snapshots} snapshots x {scene.trials} trials, seed {scene.seed}",
         "processors:  " + (", ".join(labels) if labels else "(none listed)"),
         "sources:",

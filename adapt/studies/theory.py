@@ -281,8 +281,10 @@ def assumption_violations(scene: Scene) -> list[str]:
     and pointing mismatch (the weight is steered with a vector other than the true one).
     """
     out = []
-    odd = [f"{s.name} ({s.waveform.kind})" for s in scene.interferers
-           if s.waveform.kind != "gaussian"]
+    kinds = [scene.sources[scene.origin_index(i)].waveform.kind     # a copy: its origin's
+             for i in range(len(scene.sources))]
+    odd = [f"{s.name} ({s.waveform.kind})" for i, s in enumerate(scene.sources)
+           if s.role == "interferer" and kinds[i] != "gaussian"]
     if odd:
         out.append("non-Gaussian interferer waveforms: " + ", ".join(odd)
                    + " (the laws assume noise-like Gaussian training data)")
@@ -299,6 +301,12 @@ def assumption_violations(scene: Scene) -> list[str]:
     if scene.array.errors.any:
         out.append("hardware errors (gain, phase or position): the look steering vector "
                    "differs from the true response")
+    if scene.coherent:
+        out.append("coherent copies: sources share a waveform (the laws assume independent "
+                   "sources)")
+    if scene.array.coupling is not None and not scene.array.coupling.calibrated:
+        out.append("uncalibrated mutual coupling: the look steering vector differs from "
+                   "the true response")
     miss = geometry.angle_between_deg(scene.look_azimuth, scene.look_elevation, d.azimuth, d.elevation)
     if miss > 1e-6:
         out.append(f"pointing mismatch of {miss:.3g} degrees between the look direction and "
