@@ -531,3 +531,17 @@ def test_new_effects_keep_the_stream_rules(monkeypatch):
         np.testing.assert_array_equal(pieces, whole.data[3:])
         runs[kernels] = whole.data
     np.testing.assert_allclose(runs["numpy"], runs["auto"], rtol=0, atol=1e-10)
+
+
+def test_theory_sees_the_new_effects():
+    from adapt.studies import theory
+    sc = _multipath_scene("signal")
+    ps, pc = 10.0, 10 ** 0.7
+    a, b = _steer(8, 0), _steer(8, 25)
+    best = ps * np.vdot(a, np.linalg.solve(np.eye(8) + pc * np.outer(b, b.conj()), a)).real
+    assert theory.nominal_optimum_sinr(sc) == pytest.approx(best, rel=1e-10)
+    assert any("coherent copies" in v for v in theory.assumption_violations(sc))
+    assert theory.theory_for("smi subarray=5", sc) is None
+    assert theory.theory_for("smi", sc) is not None
+    field = _noise_scene({"field": "isotropic", "level_db": 10})
+    assert theory.interference_eigenvalues(field)[0] > 10      # the field must be learned

@@ -45,7 +45,9 @@ Scene file keys (``*`` = required)::
                                         degrees, interpolated in dB; normal: the way the
                                         elements face (default +z for a ring, else +y),
                                         any non-zero vector. Applied to every source and
-                                        to the assumed look steering
+                                        to the assumed look steering (a source's
+                                        power_db is what an isotropic element would
+                                        receive; the pattern scales it)
       coupling: [c1, c2, ...]           mutual coupling on the true steering (C a): unit
                or {coefficients: [c1, ...], calibrated: false}
                or {matrix: [[...], ...], calibrated: false}

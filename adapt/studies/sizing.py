@@ -356,8 +356,9 @@ def _unloaded_smi(proc: Processor) -> bool:
 
 # --------------------------------------------------------------------------- rules of thumb
 def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | None:
-    """The rule of thumb for one processor, or None (methods other than smi)."""
-    if proc.method != "smi":
+    """The rule of thumb for one processor, or None (methods other than smi, and
+    spatially smoothed smi)."""
+    if proc.method != "smi" or proc.params.get("subarray") is not None:
         return None
     n = scene.elements
     mode, db = effective_loading(proc.params)

@@ -209,9 +209,35 @@ def signal_present_three_db_snapshots(n, sinr_opt) -> int:
 
 
 # --------------------------------------------------------------------------- scene facts
+def _extended(scene: Scene) -> bool:
+    """True when the scene uses coherent copies, element patterns, coupling or a noise
+    field: its nominal truth then comes from the streams' own true covariance."""
+    return scene.coherent or scene.array.patterned or not scene.noise.plain
+
+
+def _nominal_truth(scene: Scene) -> tuple[np.ndarray, np.ndarray]:
+    """(R_in (N, N), a_d (N,)) of the nominal scene at snapshot 0 from
+    :meth:`adapt.streams.snapshots.TrialBatch.covariance` (coherent groups, patterns,
+    coupling and the diffuse noise field included), with the hardware errors and the
+    channel noise spread left out."""
+    import dataclasses
+
+    from adapt.scene.model import HardwareErrors
+    from adapt.streams.snapshots import TrialBatch
+    nominal = scene.with_overrides(
+        array=dataclasses.replace(scene.array, errors=HardwareErrors()),
+        noise=dataclasses.replace(scene.noise, element_noise_db_rms=0.0))
+    batch = TrialBatch(nominal, trials=1, seed=0)
+    return batch.covariance()[0], batch.desired_steering()[0]
+
+
 def _interferer_covariance(scene: Scene) -> np.ndarray:
     """Nominal interference covariance without noise, every interferer on, at its
-    starting direction (nominal element positions, no hardware errors)."""
+    starting direction (nominal element positions, no hardware errors). With the
+    scene's real-array effects (:func:`_extended`): the nominal R_in less the thermal
+    floor (a diffuse noise field counts as interference), at snapshot 0."""
+    if _extended(scene):
+        return _nominal_truth(scene)[0] - np.eye(scene.elements)
     pos = scene.array.positions
     n = scene.elements
     r = np.zeros((n, n), dtype=complex)
@@ -258,6 +284,11 @@ def loaded_rule_of_thumb(strong: int) -> int:
 def nominal_optimum_sinr(scene: Scene) -> float:
     """Optimum SINR ``P_s a^H R_in^-1 a`` (linear) of the nominal scene at snapshot 0
     (nominal array, pulsing sources at their snapshot-0 state)."""
+    if _extended(scene):
+        r, a = _nominal_truth(scene)
+        d = scene.desired
+        p = d.power if d.active(0) else 0.0
+        return float(p * np.real(np.conj(a) @ np.linalg.solve(r, a)))
     pos = scene.array.positions
     n = scene.elements
     r = np.eye(n, dtype=complex)
@@ -462,7 +493,7 @@ def theory_for(processor, scene_info) -> Law | None:
       on interference only -> RMB (1974);
     * unloaded ``smi`` trained with the signal present -> the signal-present law;
     * loaded ``smi`` -> None: no exact law, only Carlson's 2J rule of thumb;
-    * any other method -> None.
+    * spatially smoothed ``smi`` (``subarray``) and any other method -> None.
 
     The law's ``violations`` list the assumptions the scene breaks, which explain a
     disagreement with simulation.
@@ -474,8 +505,8 @@ def theory_for(processor, scene_info) -> Law | None:
     for key in ("elements", "training", "optimum_sinr"):
         if key not in facts:
             raise ValueError(f"scene information lacks '{key}'")
-    if proc.method != "smi":
-        return None
+    if proc.method != "smi" or proc.params.get("subarray") is not None:
+        return None                      # (the laws are for the whole, unsmoothed array)
     mode, _ = effective_loading(proc.params)
     if mode is not None:
         return None
