@@ -322,6 +322,7 @@ def test_superdirective_gain_in_isotropic_noise():
     exceed 10 log10 N and tends to N^2 as the spacing shrinks, while the white-noise
     gain of that weight collapses. The optimum, formed from the true noise covariance
     (thermal floor plus a strong isotropic field), shows both."""
+    from adapt.engine import scores
     n = 5
     gains = {}
     for spacing in (0.5, 0.1):
@@ -335,6 +336,9 @@ def test_superdirective_gain_in_isotropic_noise():
         a = np.exp(2j * np.pi * x)
         coh = np.sinc(2 * np.abs(x[:, None] - x[None, :]))        # sin(kd)/(kd)
         directivity = abs(np.vdot(w, a)) ** 2 / np.vdot(w, coh @ w).real
+        assert scores.array_gain(w, a, coh) == pytest.approx(directivity, rel=1e-12)
+        assert scores.array_gain(w, a, np.eye(n)) == pytest.approx(
+            scores.white_noise_gain(w, a), rel=1e-12)
         wng = res.evaluation.by_label("optimum").white_noise_gain[0, -1]
         bound = np.vdot(a, np.linalg.solve(coh, a)).real          # max directivity
         gains[spacing] = (directivity, wng, bound)

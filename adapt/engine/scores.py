@@ -27,7 +27,7 @@ from adapt.numerics.linalg import solve_hermitian
 from adapt.scene import geometry
 
 __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
-           "white_noise_gain", "white_noise_gain_db", "response_db", "mean_loss_db",
+           "white_noise_gain", "white_noise_gain_db", "array_gain", "response_db", "mean_loss_db",
            "fraction_meeting", "first_checkpoint", "snapshots_to_target", "trial_summary",
            "azimuth_cut", "main_beam_peak", "pointing_error_deg", "peak_sidelobe_db",
            "parabolic_peak"]
@@ -100,6 +100,39 @@ def white_noise_gain(weights: np.ndarray, steering: np.ndarray) -> np.ndarray:
     _check_shapes(w, a)
     num = np.abs(np.einsum("...n,...n->...", np.conj(w), a)) ** 2
     den = np.real(np.einsum("...n,...n->...", np.conj(w), w))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+
+
+def array_gain(weights: np.ndarray, steering: np.ndarray, noise: np.ndarray) -> np.ndarray:
+    """Array gain against a noise field, ``|w^H a|^2 / (w^H Q w)`` (linear), with Q the
+    noise covariance normalised to unit power per element (a coherence matrix): N for
+    the phase-steered sum in white noise; against spherically isotropic noise it is the
+    directivity, which a closely spaced line can push toward N^2 at endfire (Uzkov
+    1946; Cox, Zeskind and Owen 1987), at the price of the white-noise gain
+    (:func:`white_noise_gain`, the case Q = I).
+
+    Parameters
+    ----------
+    weights : (..., N); steering : (..., N) the true steering toward the look
+        direction; noise : (..., N, N) the noise covariance or coherence.
+
+    Returns
+    -------
+    (...) the gain, 0 for an all-zero weight.
+
+    References
+    ----------
+    H. Cox, R. Zeskind and T. Kooij, "Practical supergain", IEEE Trans. ASSP-34, 1986
+    (from memory);
+    Van Trees, Optimum Array Processing (2002), sec. 2.6 and 6.2.
+    """
+    w = np.asarray(weights)
+    a = np.asarray(steering)
+    q = np.asarray(noise)
+    _check_shapes(w, a, q)
+    num = np.abs(np.einsum("...n,...n->...", np.conj(w), a)) ** 2
+    den = np.real(np.einsum("...n,...nm,...m->...", np.conj(w), q, w))
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
 
