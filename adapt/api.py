@@ -27,7 +27,7 @@ from typing import Sequence
 
 from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation, ProcessorScores
-from adapt.engine.execute import evaluate as _evaluate
+from adapt.engine.execute import run_trials
 from adapt.engine.settings import checkpoints_for, prepare_scene
 from adapt.errors import InputError, SceneError, SpecError
 from adapt.processors import Context, Processor, ProcessorResult, parse_spec, parse_specs, registry
@@ -111,7 +111,7 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
              tail: int = 256, draw: str = "samples", block: int | None = None,
              workers: int | None = None, scheduler: str | None = None,
              threads: int | None = None) -> Evaluation:
-    """Run and score processors (the Monte Carlo engine, :func:`adapt.engine.execute.evaluate`):
+    """Run and score processors (the Monte Carlo engine, :func:`adapt.engine.execute.run_trials`):
     per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
     gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C).
     ``draw="covariance"`` is the drawn-covariance fast path, ``block`` the snapshots per
@@ -122,8 +122,8 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
     are summed over chunks: with threads, time summed over the threads, not wall time."""
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, sc.snapshots)
-    return _evaluate(sc, procs, cps, tail=tail, draw=draw, block=block, workers=workers,
-                     scheduler=scheduler, threads=threads)
+    return run_trials(sc, procs, cps, tail=tail, draw=draw, block=block, workers=workers,
+                      scheduler=scheduler, threads=threads)
 
 
 def write_run(comparison: Comparison, out="runs", command_line: str | None = None) -> Path:

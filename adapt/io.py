@@ -25,6 +25,8 @@ __all__ = ["atomic_write_bytes", "atomic_write_text", "write_json", "write_npy",
            "library_versions", "slug", "to_jsonable"]
 
 _TMP_PREFIX = ".partial-"
+#: name prefix of a file being written (see :func:`atomic_write_bytes`)
+TMP_PREFIX = _TMP_PREFIX
 
 
 def atomic_write_bytes(path: str | os.PathLike, data: bytes) -> Path:
@@ -145,12 +147,17 @@ def _listed_files(folder: Path, skip: Iterable[str]) -> list[Path]:
                   and not p.name.startswith(_TMP_PREFIX))
 
 
-def write_manifest(folder: str | os.PathLike, info: dict, name: str = "manifest.json") -> Path:
+def write_manifest(folder: str | os.PathLike, info: dict, name: str = "manifest.json",
+                   exclude: Iterable[str] = ()) -> Path:
     """Write ``manifest.json``: ``info`` plus library versions and the sha256 and size
-    of every other file in the folder (paths relative to the folder, '/' separated)."""
+    of every other file in the folder (paths relative to the folder, '/' separated),
+    except those under the top-level names in ``exclude`` (files or folders about to be
+    removed, e.g. a run's resume state)."""
     folder = Path(folder)
+    excluded = set(exclude)
     files = {p.relative_to(folder).as_posix(): {"sha256": sha256_file(p), "bytes": p.stat().st_size}
-             for p in _listed_files(folder, [name])}
+             for p in _listed_files(folder, [name])
+             if p.relative_to(folder).parts[0] not in excluded}
     manifest = dict(info)
     manifest.setdefault("versions", library_versions())
     manifest["files"] = files

@@ -161,7 +161,7 @@ def w1_product(trials: int, draw: str = "covariance", threads: int | None = None
     """Unloaded and 10 dB-loaded SMI through adapt's evaluate; mean rho per checkpoint.
     ``threads``: the executor's threads (None: its default, every usable core)."""
     import adapt.engine.scores  # noqa: F401  (import order: scores before evaluate)
-    from adapt.engine.execute import evaluate
+    from adapt.engine.execute import run_trials as evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, W1_CHECKPOINTS[-1])
     procs = parse_specs(["smi", "smi loading_db=10"])
@@ -241,7 +241,7 @@ def w2_product(trials: int, snapshots: int, specs=W2_SPECS, threads: int | None 
     """The recursive processors through adapt's evaluate (one stream for all given);
     ``threads`` as in :func:`w1_product`."""
     import adapt.engine.scores  # noqa: F401
-    from adapt.engine.execute import evaluate
+    from adapt.engine.execute import run_trials as evaluate
     from adapt.processors import parse_specs
     sc = scene(trials, snapshots)
     cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
@@ -464,7 +464,7 @@ def kernel_compile_seconds() -> float | None:
 def w3_run(snapshots: int, specs, block: int, trace: bool = False) -> dict:
     """One trial of ``snapshots`` snapshots through evaluate in blocks of ``block``."""
     import adapt.engine.scores  # noqa: F401
-    from adapt.engine.execute import evaluate
+    from adapt.engine.execute import run_trials as evaluate
     from adapt.processors import parse_specs
     sc = scene(1, snapshots)
     cps = sorted({int(k) for k in np.linspace(0, snapshots, 11)[1:].round()})

@@ -13,7 +13,7 @@ import pytest
 from scipy.signal import find_peaks
 from scipy.signal.windows import boxcar
 
-from adapt.engine.execute import evaluate
+from adapt.engine.execute import run_trials as evaluate
 from adapt.numerics.linalg import solve_hermitian
 from adapt.processors import parse_spec
 from adapt.processors.base import Processor

@@ -22,8 +22,9 @@ from conftest import without_timing
 
 from adapt import io
 from adapt.engine import execute
-from adapt.engine.execute import MARKER, PARTIAL, RESUME_FILE, part_arrays
+from adapt.engine.execute import part_arrays
 from adapt.errors import InputError
+from adapt.report.runfolder import MARKER, PARTIAL, RESUME_FILE
 from adapt.scene.files import parse_scene
 from adapt.studies.compare import compare
 from adapt.studies.sizing import size
@@ -117,7 +118,7 @@ def test_chunks_of_an_older_stream_definition_are_refused(tmp_path):
     scene = parse_scene(QUICK)
     compare(scene, chunk=5, store=tmp_path)
     plan_file = tmp_path / "plan.json"
-    plan = json.loads(plan_file.read_text())
+    plan = json.loads(plan_file.read_text())["plan"]       # stored with its digest
     assert plan["streams"] == "counter-normals-1"
     del plan["streams"]
     plan_file.write_text(json.dumps(plan))

@@ -311,11 +311,11 @@ def test_smi_fast_solve_equals_general_path(monkeypatch):
     from adapt.processors._covariance import SampleCovarianceProcessor
     sc = _scene()
     specs = ["smi", "smi loading_db=10", "smi loading=auto"]
-    fast = execute.evaluate(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
+    fast = execute.run_trials(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
                             draw="covariance", threads=1)
     monkeypatch.setattr(SampleCovarianceProcessor, "weights_from_scaled",
                         lambda self, table, counts, load: None)
-    slow = execute.evaluate(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
+    slow = execute.run_trials(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
                             draw="covariance", threads=1)
     for a, b in zip(fast.processors, slow.processors):
         assert np.array_equal(a.final_weights, b.final_weights), a.label

@@ -19,10 +19,12 @@ import yaml
 from conftest import without_timing
 
 from adapt.engine import execute
-from adapt.engine.execute import evaluate, part_arrays
+from adapt.engine.execute import part_arrays
+from adapt.engine.execute import run_trials as evaluate
 from adapt.errors import InputError
 from adapt.processors import parse_specs
 from adapt.processors.smi import SampleMatrixInversion
+from adapt.report import runfolder
 from adapt.scene.files import parse_scene
 from adapt.studies.compare import TAIL, compare
 
@@ -248,7 +250,7 @@ def test_cli_resume_on_threads_is_identical(scene_file, tmp_path, run_cli, monke
                             "--out", out, "--no-progress"])
     assert code == 130, err
     (folder,) = out.iterdir()
-    assert (folder / execute.MARKER).exists() and len(list(folder.glob("partial/chunk-*"))) == 1
+    assert (folder / runfolder.MARKER).exists() and len(list(folder.glob("partial/chunk-*.npz"))) == 1
     monkeypatch.setattr(execute.ChunkStore, "save", save)
     code, _, err = run_cli(["compare", "--resume", folder, "--threads", "3", "--no-progress"])
     assert code == 0, err

@@ -3,8 +3,9 @@
 Options ``--threads N`` (threads of this process), ``--workers N`` / ``--scheduler
 ADDRESS`` (Dask), ``--chunk TRIALS`` and ``--resume RUNDIR``; :func:`execute` runs the
 work with SIGTERM turned into an interruption, and on Ctrl-C / SIGTERM prints what was
-kept and how to resume, returning exit code 130 (SIGINT) or 143 (SIGTERM). The logic
-lives in :mod:`adapt.engine.execute`.
+kept and how to resume, returning exit code 130 (SIGINT) or 143 (SIGTERM)
+(:mod:`adapt.cli._signals`). The engine is :mod:`adapt.engine.execute`, the run-folder
+life cycle :mod:`adapt.report.runfolder`.
 """
 from __future__ import annotations
 
@@ -45,7 +46,7 @@ def add_threads(group) -> None:
 def threads_option(args, remote: bool = False):
     """``--threads`` as an int or None (every usable core), checked (InputError naming
     the option; refused beside ``--workers`` / ``--scheduler``)."""
-    from adapt.engine.execute import check_threads
+    from adapt.engine.executors import check_threads
     threads = whole_number(getattr(args, "threads", None), "--threads")
     if threads is not None:
         check_threads(threads, remote=remote, path="--threads")
@@ -145,7 +146,7 @@ def print_outcome(result, written, code) -> int:
 def cluster_options(args) -> dict:
     """``{"workers": .., "scheduler": .., "chunk": .., "threads": ..}`` checked
     (InputError)."""
-    from adapt.engine.execute import check_cluster_options
+    from adapt.engine.executors import check_cluster_options
     workers = whole_number(args.workers, "--workers")
     scheduler = args.scheduler
     threads = threads_option(args, remote=workers is not None or scheduler is not None)
@@ -175,19 +176,35 @@ def refuse_with_resume(args, options: dict) -> None:
                                  "--workers, --scheduler or --no-progress")
 
 
-def resume(args, kind: str, refused: dict, execution: dict, execute_run):
+def resume(args, kind: str, refused: dict, execution: dict, execute_run, needs=()):
     """Finish the interrupted run folder ``args.resume`` of command ``kind``: refuse the
     scene, ``--processor``, ``--out``, ``--chunk`` and the command's own run settings
     (``refused``: attribute -> option text), rebuild the scene from the folder and call
-    ``execute_run(args, folder, scene, settings, execution, command_line)``."""
-    from adapt.engine.execute import open_for_resume
+    ``execute_run(args, folder, scene, settings, execution, command_line)``; ``needs``:
+    the settings the command reads (InputError naming ``resume.json`` when one is
+    missing)."""
+    from adapt.report.runfolder import open_for_resume
     from adapt.scene.files import parse_scene
     refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor", **refused,
                               "out": "--out", "chunk": "--chunk"})
     record = open_for_resume(args.resume, kind)
+    if record is None:
+        print(f"adapt: {args.resume} had finished (it was stopped while sealing); its "
+              "leftover resume state is now removed and the folder is complete")
+        return 0
     settings = record["settings"]
+    where = str(Path(args.resume) / "resume.json")
+    for key in needs:
+        if key not in settings:
+            raise InputError("the resume record lacks a setting this command needs",
+                             file=where, path=f"settings.{key}")
+    chunk = settings.get("chunk")
+    if chunk is not None and (isinstance(chunk, bool) or not isinstance(chunk, int)
+                              or chunk < 1):
+        raise InputError("not a chunk size", file=where, path="settings.chunk", value=chunk,
+                         allowed="null or an integer >= 1")
     scene = parse_scene(settings["scene"])
-    execution = dict(execution, chunk=settings.get("chunk"))
+    execution = dict(execution, chunk=chunk)
     return execute_run(args, Folder(kind, existing=args.resume), scene, settings, execution,
                        record.get("command_line"))
 
@@ -204,7 +221,7 @@ class Folder:
         self.new = existing is None
 
     def __call__(self) -> Path:
-        from adapt.engine.execute import PARTIAL, start_run_folder
+        from adapt.report.runfolder import PARTIAL, start_run_folder
         if self.path is None:
             self.path = start_run_folder(self.out or DEFAULT_OUT, self.name, self.kind,
                                          self.settings, self.command_line)
@@ -235,12 +252,9 @@ def execute(folder: Folder, work, finish):
 
 
 def _execute(folder: Folder, work, finish):
-    from adapt.engine.execute import (
-        exit_code,
-        interrupted_message,
-        remove_if_empty,
-        stop_on_signals,
-    )
+    from adapt.cli._signals import exit_code, interrupted_message, stop_on_signals
+    from adapt.engine.chunks import has_finished_chunks
+    from adapt.report.runfolder import remove_if_empty
     with stop_on_signals():
         try:
             result = work(folder)
@@ -254,5 +268,5 @@ def _execute(folder: Folder, work, finish):
             return None, None, exit_code(exc)
         except BaseException:
             if folder.path is not None and folder.new:
-                remove_if_empty(folder.path)
+                remove_if_empty(folder.path, has_finished_chunks)
             raise

@@ -77,12 +77,16 @@ def run(args) -> int:
 
 def _resume(args, execution) -> int:
     return _run.resume(args, "compare", {name: f"--{name}" for name in _OPTIONS}, execution,
-                       _execute)
+                       _execute, needs=("checkpoints",))
 
 
 def _execute(args, folder, used, settings, execution, line) -> int:
     from adapt.studies.compare import compare, write_compare_run
-    tail = int(settings.get("tail", 256))
+    tail = settings.get("tail", 256)
+    if isinstance(tail, bool) or not isinstance(tail, int) or tail < 0:
+        from adapt.errors import InputError
+        raise InputError("not a tail length", file=str(folder.path or "") + "/resume.json",
+                         path="settings.tail", value=tail, allowed="an integer >= 0")
     bar = _run.progress_bar(args, used.trials * (used.snapshots + tail), "compare")
 
     def work(store):

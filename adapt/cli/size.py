@@ -95,7 +95,9 @@ def _resume(args, execution) -> int:
     return _run.resume(args, "size", {"snapshots": "--snapshots", "trials": "--trials",
                                       "seed": "--seed", "target_loss": "--target-loss",
                                       "fraction": "--fraction", "draw": "--draw"},
-                       execution, _execute)
+                       execution, _execute,
+                       needs=("processors", "snapshots", "trials", "seed", "target_loss_db",
+                              "fraction"))
 
 
 def _execute(args, folder, scene, settings, execution, line) -> int:

@@ -2,7 +2,7 @@
 checkpoint.
 
 ``evaluate_batch`` scores one :class:`~adapt.streams.snapshots.TrialBatch`; ``merge`` joins
-consecutive batches; :func:`adapt.engine.execute.evaluate` (what ``compare``, ``size`` and the
+consecutive batches; :func:`adapt.engine.execute.run_trials` (what ``compare``, ``size`` and the
 benchmarks share) runs the batches serially, on a cluster or resumably. For each processor,
 checkpoint and trial it returns the output SINR on the true covariance of the moment,
 the normalised SINR and loss against the optimum, the white-noise gain, the null depth

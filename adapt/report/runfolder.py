@@ -14,10 +14,20 @@ A run folder (``runs/YYYYmmdd-HHMMSS-scene-name/``, made by
   every other file (:func:`adapt.io.write_manifest`; check with
   :func:`adapt.io.check_manifest`).
 
-While ``adapt compare`` / ``adapt size`` run, the folder also holds ``INCOMPLETE``,
-``resume.json`` and ``partial/`` (finished chunks, see :mod:`adapt.engine.execute`); they are
-removed just before the manifest is written, so a folder without a manifest is an
-unfinished run that ``--resume`` can complete.
+Every study writes its folder through one writer, :class:`RunWriter` (atomic files, the
+manifest last), and one life cycle:
+
+* :func:`start_run_folder` makes a new folder holding ``resume.json`` (the command's
+  settings) and then ``INCOMPLETE`` (how to resume); if either cannot be written (a full
+  disk) the folder is removed again, so nothing misleading is left;
+* while ``adapt compare`` / ``adapt size`` run, finished chunks go to ``partial/``
+  (:mod:`adapt.engine.chunks`);
+* :meth:`RunWriter.seal` first removes stray ``.partial-`` files (left by a kill during
+  an atomic write), then writes ``manifest.json`` (which never lists the resume state),
+  and only then removes ``partial/``, ``resume.json`` and ``INCOMPLETE``. So a folder
+  is always either complete (it has a manifest) or resumable (it has its resume state);
+  a kill between the two steps leaves a complete folder with leftovers that
+  :func:`open_for_resume` clears (:func:`finish_seal`).
 """
 from __future__ import annotations
 
@@ -28,14 +38,191 @@ import importlib.util
 import io as _io
 import json
 import math
+import shutil
 from pathlib import Path
+from typing import Callable
 
 import yaml
 
 from adapt import io
+from adapt.errors import InputError
 
-__all__ = ["write_run", "write_scene_yaml", "write_curves_csv", "curves_rows",
+__all__ = ["RunWriter", "start_run_folder", "open_for_resume", "finish_seal",
+           "remove_if_empty", "RESUME_FILE", "MARKER", "PARTIAL", "RESUME_STATE", "write_run",
+           "write_scene_yaml", "write_curves_csv", "curves_rows",
            "CURVE_COLUMNS", "write_report_files", "summary_rows", "read_run", "RUN_FILES"]
+
+#: the resume state of an unfinished run folder
+RESUME_FILE = "resume.json"
+MARKER = "INCOMPLETE"
+PARTIAL = "partial"
+RESUME_STATE = (PARTIAL, RESUME_FILE, MARKER)
+_MANIFEST = "manifest.json"
+
+
+# --------------------------------------------------------------------------- life cycle
+def start_run_folder(out_root, name: str, kind: str, settings: dict,
+                     command_line: str | None = None) -> Path:
+    """A new run folder marked incomplete: ``resume.json`` (kind, settings - the
+    resolved scene and the command's parameters - and command line), then ``INCOMPLETE``
+    (how to resume). If either cannot be written the folder is removed and the error
+    raised: a folder is never left claiming to be resumable when it is not.
+
+    Parameters
+    ----------
+    out_root : path
+        Folder receiving the run folder (created if needed).
+    name : str
+        Scene name (part of the folder name).
+    kind : str
+        The command (``compare``, ``size``): named in ``INCOMPLETE`` and checked on
+        resume.
+    settings : dict
+        JSON-able settings the command needs to finish the run.
+    command_line : str, optional
+        The command line, recorded.
+
+    Returns
+    -------
+    Path
+        The new folder.
+    """
+    folder = io.new_run_folder(out_root, name)
+    try:
+        io.write_json(folder / RESUME_FILE, {"kind": kind, "status": "incomplete",
+                                             "settings": settings,
+                                             "command_line": command_line})
+        io.atomic_write_text(folder / MARKER, _marker_text(folder, kind))
+    except BaseException:
+        shutil.rmtree(folder, ignore_errors=True)
+        raise
+    return folder
+
+
+def _marker_text(folder: Path, kind: str) -> str:
+    return (f"This run has not finished (it was interrupted, or is still running).\n"
+            f"Finished chunks are kept in {PARTIAL}/. Finish it with:\n"
+            f"  adapt {kind} --resume {folder}\n")
+
+
+def _resume_state_left(folder: Path) -> bool:
+    return any((folder / name).exists() for name in RESUME_STATE)
+
+
+def finish_seal(folder) -> None:
+    """Remove what a sealed folder must not hold: stray ``.partial-`` files, then
+    ``partial/``, ``resume.json`` and ``INCOMPLETE`` (the marker last)."""
+    folder = Path(folder)
+    _remove_strays(folder)
+    shutil.rmtree(folder / PARTIAL, ignore_errors=True)
+    for name in (RESUME_FILE, MARKER):
+        (folder / name).unlink(missing_ok=True)
+
+
+def _remove_strays(folder: Path) -> None:
+    """Delete ``.partial-`` files (an atomic write cut short by a kill) outside
+    ``partial/``."""
+    for stray in list(folder.rglob(f"{io.TMP_PREFIX}*")):
+        if stray.is_file() and stray.relative_to(folder).parts[0] != PARTIAL:
+            stray.unlink(missing_ok=True)
+
+
+def open_for_resume(folder, kind: str) -> dict | None:
+    """The ``resume.json`` record of an incomplete run folder of ``kind``.
+
+    Returns None when the folder already has its manifest but still holds resume state
+    (the run was stopped while sealing): the sealing is finished here and there is
+    nothing left to compute. InputError if the folder is complete, not a run folder, of
+    another command, or its ``resume.json`` is unreadable or lacks what a resume needs.
+    """
+    path = Path(folder)
+    if not path.is_dir():
+        raise InputError("no such run folder", path="--resume", value=str(folder))
+    if (path / _MANIFEST).is_file():
+        if _resume_state_left(path) and not io.check_manifest(path):
+            finish_seal(path)
+            return None
+        raise InputError("this run folder is already complete (it has a manifest); there "
+                         "is nothing to resume", path="--resume", value=str(folder),
+                         allowed="the folder of an interrupted run (marked INCOMPLETE)")
+    file = str(path / RESUME_FILE)
+    try:
+        record = json.loads((path / RESUME_FILE).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError(f"not a resumable run folder (no {RESUME_FILE})", path="--resume",
+                         value=str(folder),
+                         allowed="the folder of an interrupted run (marked INCOMPLETE)") from None
+    except (ValueError, UnicodeDecodeError):
+        raise InputError(f"{RESUME_FILE} is unreadable", file=file) from None
+    if not isinstance(record, dict) or not isinstance(record.get("settings"), dict):
+        raise InputError(f"{RESUME_FILE} holds no settings", file=file, path="settings")
+    if record.get("kind") != kind:
+        raise InputError(f"this folder is an interrupted 'adapt {_plain(record.get('kind'))}' "
+                         "run", path="--resume", value=str(folder),
+                         allowed=f"adapt {_plain(record.get('kind'))} --resume {folder}")
+    settings = record["settings"]
+    if not isinstance(settings.get("scene"), dict):
+        raise InputError(f"{RESUME_FILE} holds no scene", file=file, path="settings.scene")
+    return record
+
+
+def _plain(text) -> str:
+    """Text from a file, safe to print: control characters escaped."""
+    return "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in str(text))
+
+
+def remove_if_empty(folder, has_work: Callable[[Path], bool]) -> bool:
+    """Delete a run folder that was started but holds no finished work
+    (``has_work(folder / PARTIAL)`` is false and there is no manifest): the run failed
+    before anything was kept. True if removed."""
+    folder = Path(folder)
+    if folder.is_dir() and not (folder / _MANIFEST).exists() \
+            and not has_work(folder / PARTIAL):
+        shutil.rmtree(folder, ignore_errors=True)
+        return True
+    return False
+
+
+class RunWriter:
+    """The one writer of run folders (``adapt compare``, ``adapt size``): every file
+    atomically (:mod:`adapt.io`), then :meth:`seal` (manifest, then the resume state
+    removed; see the module docstring).
+
+    Parameters
+    ----------
+    folder : path, optional
+        A run folder made by :func:`start_run_folder` (resumable), to complete.
+    out_root, name : optional
+        Without ``folder``: a NEW folder ``out_root/<timestamp>-<name>`` is made.
+    """
+
+    def __init__(self, folder=None, out_root="runs", name: str = "run"):
+        self.folder = Path(folder) if folder is not None else io.new_run_folder(out_root, name)
+        self.written: list[str] = []
+
+    def text(self, name: str, text: str) -> Path:
+        """Write a text file (UTF-8) atomically."""
+        self.written.append(name)
+        return io.atomic_write_text(self.folder / name, text)
+
+    def bytes(self, name: str, data: bytes) -> Path:
+        """Write a binary file atomically."""
+        self.written.append(name)
+        return io.atomic_write_bytes(self.folder / name, data)
+
+    def json(self, name: str, obj) -> Path:
+        """Write a JSON file atomically (numpy values converted, NaN as null)."""
+        self.written.append(name)
+        return io.write_json(self.folder / name, obj)
+
+    def seal(self, info: dict) -> Path:
+        """Write ``manifest.json`` (``info`` plus versions and every file's sha256,
+        never the resume state), then remove the resume state; returns the folder."""
+        _remove_strays(self.folder)
+        io.write_manifest(self.folder, info, exclude=RESUME_STATE)
+        finish_seal(self.folder)
+        return self.folder
+
 
 #: files every run folder has (figures and report.html in addition when available)
 RUN_FILES = ("scene.yaml", "metrics.json", "curves.csv", "summary.txt", "manifest.json")
@@ -129,71 +316,66 @@ def summary_rows(metrics: dict) -> list[dict]:
     return rows
 
 
-def write_report_files(folder, evaluation, metrics: dict, scene=None,
-                       command_line: str | None = None) -> list[str]:
+def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "",
+                       command_line: str | None = None, writer: "RunWriter | None" = None
+                       ) -> list[str]:
     """Write the figures (``<name>.png``) and ``report.html`` with :mod:`adapt.report`;
-    returns the file names written (none when the report modules are absent)."""
-    folder = Path(folder)
+    returns the file names written (none when the report modules are absent).
+    ``scene_summary``: the text of the scene block (what ``adapt check`` prints)."""
+    writer = writer if writer is not None else RunWriter(folder)
     written = []
     figs = _module("figures")
     pngs: dict[str, bytes] = {}
     if figs is not None:
         pngs = figs.standard_figures(evaluation)
         for name, data in pngs.items():
-            io.atomic_write_bytes(folder / f"{name}.png", data)
+            writer.bytes(f"{name}.png", data)
             written.append(f"{name}.png")
     html = _module("html")
     builder = getattr(html, "compare_report", None) if html is not None else None
     if builder is not None:
-        from adapt.studies.check import summarise_scene
-        sc = scene if scene is not None else evaluation.scene
         notes = [f"Optimum (clairvoyant MVDR) SINR: {_num(metrics['optimum_sinr_db'])[:6]} dB, "
                  "mean over trials. Loss = optimum minus output SINR, mean over trials of dB. "
                  f"'Snapshots to 3 dB' = first checkpoint where the loss of the mean "
                  f"normalised SINR is within {metrics.get('target_db', 3):g} dB."]
         if command_line:
             notes.append(f"Command: {command_line}")
-        page = builder(evaluation, summary_rows(metrics), summarise_scene(sc), pngs,
-                       notes=notes)
-        io.atomic_write_text(folder / "report.html", page)
+        page = builder(evaluation, summary_rows(metrics), scene_summary, pngs, notes=notes)
+        writer.text("report.html", page)
         written.append("report.html")
     return written
 
 
 def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: str | None = None,
               kind: str = "compare", figures: bool = True, table: str | None = None,
-              folder=None) -> Path:
+              folder=None, scene_summary: str = "") -> Path:
     """Write a complete run folder (see the module docstring) and return its path.
 
     A new folder is created under ``out_root`` (timestamp + scene name, suffixed when
     taken); nothing outside it is touched. ``manifest.json`` is written last, so a
     folder with a manifest is complete. With ``folder`` (a resumable run folder made by
-    :func:`adapt.engine.execute.start_run_folder`), the outputs go there and its resume state
-    (``partial/``, ``resume.json``, ``INCOMPLETE``) is removed just before the manifest.
+    :func:`start_run_folder`), the outputs go there and it is sealed
+    (:meth:`RunWriter.seal`). ``scene_summary``: the scene block of ``report.html``.
     """
-    if folder is None:
-        folder = io.new_run_folder(out_root, scene.name)
-    folder = Path(folder)
-    write_scene_yaml(folder, scene)
-    io.write_json(folder / "metrics.json", metrics)
-    write_curves_csv(folder, metrics)
+    writer = RunWriter(folder, out_root, scene.name)
+    write_scene_yaml(writer.folder, scene)
+    writer.json("metrics.json", metrics)
+    write_curves_csv(writer.folder, metrics)
     if table is not None:
-        io.atomic_write_text(folder / "summary.txt", table + "\n")
+        writer.text("summary.txt", table + "\n")
     else:
-        io.atomic_write_text(folder / "summary.txt", json.dumps(io.to_jsonable(metrics)) + "\n")
+        writer.text("summary.txt", json.dumps(io.to_jsonable(metrics)) + "\n")
     extra = []
     if figures:
-        extra = write_report_files(folder, evaluation, metrics, scene, command_line)
+        extra = write_report_files(writer.folder, evaluation, metrics, scene_summary,
+                                   command_line, writer=writer)
     info = {"kind": kind, "scene": scene.name, "seed": int(metrics.get("seed", scene.seed)),
             "trials": int(metrics.get("trials", scene.trials)),
             "snapshots": int(metrics.get("snapshots", scene.snapshots)),
             "command_line": command_line,
             "created": _dt.datetime.now().astimezone().isoformat(timespec="seconds"),
             "report": "report.html" in extra}
-    from adapt.engine.execute import seal
-    seal(folder)
-    io.write_manifest(folder, info)
-    return folder
+    return writer.seal(info)
 
 
 def read_run(folder) -> dict:

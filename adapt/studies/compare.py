@@ -1,6 +1,6 @@
 """Compare processors on one scene: Monte Carlo scores, a summary table, a run folder.
 
-``compare(scene, processors)`` runs :func:`adapt.engine.execute.evaluate` and condenses it into
+``compare(scene, processors)`` runs :func:`adapt.engine.execute.run_trials` and condenses it into
 plain dictionaries (``Comparison.metrics``, the ``metrics.json`` schema below);
 ``Comparison.table()`` renders the terminal summary; :func:`write_compare_run` writes a
 new run folder (``scene.yaml``, ``metrics.json``, ``curves.csv``, figures,
@@ -39,7 +39,7 @@ import numpy as np
 
 from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation
-from adapt.engine.execute import evaluate
+from adapt.engine.execute import run_trials
 from adapt.engine.settings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
 from adapt.scene import geometry
 from adapt.scene.model import Scene
@@ -308,7 +308,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     checkpoints: snapshot counts to score (list or "1,2,4" text; default geometric,
     4 per octave); progress: called with the number of trial-snapshots done after each
     block (the total is ``trials * (snapshots + tail)``); chunk: trials per chunk
-    (default :func:`adapt.engine.execute.chunk_size`); threads: run the chunks on this many
+    (default :func:`adapt.engine.plan.chunk_size`); threads: run the chunks on this many
     threads of this process (default: every usable core; 1: one after another); workers:
     run on that many local Dask worker processes, or scheduler: on an existing Dask
     cluster (not with threads); store: a folder that
@@ -321,13 +321,13 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     cps = checkpoints_for(checkpoints, used.snapshots)
     if tail < 0:
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
-    from adapt.engine.execute import check_cluster_options, check_threads
+    from adapt.engine.executors import check_cluster_options, check_threads
     check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     if chunk is not None:
         chunk = whole_count(chunk, "chunk", MAX_TRIALS)
     t0 = time.perf_counter()
-    ev = evaluate(used, procs, cps, chunk=chunk, tail=tail, progress=progress,
+    ev = run_trials(used, procs, cps, chunk=chunk, tail=tail, progress=progress,
                   workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
                   threads=threads)
     metrics = summarise(ev, target_db, fraction)
@@ -347,11 +347,13 @@ def write_compare_run(comparison: Comparison, out_root="runs",
     ``manifest.json`` (versions, seed, command line, sha256 of every file). Every file
     is written atomically; an existing folder is never touched, except ``folder``: the
     run folder this comparison was computed into (resumable, see
-    :func:`adapt.engine.execute.start_run_folder`), which is completed and sealed.
+    :func:`adapt.report.runfolder.start_run_folder`), which is completed and sealed.
     """
     from adapt.report import runfolder as runs
+    from adapt.studies.check import summarise_scene
     if not isinstance(comparison, Comparison):
         raise ValueError(f"expected a Comparison, got {type(comparison).__name__}")
     return runs.write_run(comparison.scene, comparison.evaluation, comparison.metrics,
                           out_root=out_root, command_line=command_line, kind="compare",
-                          figures=figures, table=comparison.table(), folder=folder)
+                          figures=figures, table=comparison.table(), folder=folder,
+                          scene_summary=summarise_scene(comparison.scene) if figures else "")

@@ -1,6 +1,6 @@
 """Snapshot sizing: how many training snapshots a processor needs, with theory beside it.
 
-``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.engine.execute.evaluate`)
+``size(scene, processors)`` runs ONE Monte Carlo evaluation (:func:`adapt.engine.execute.run_trials`)
 whose checkpoints are the sweep's snapshot counts: each trial is one stream of the
 largest count, scored at every count of the growing window, so the points of the sweep
 share their trials (common random numbers; a point agrees with a separate run of that
@@ -52,7 +52,7 @@ import numpy as np
 from scipy import stats
 
 from adapt.engine.evaluate import Evaluation
-from adapt.engine.execute import evaluate
+from adapt.engine.execute import run_trials
 from adapt.errors import InputError
 from adapt.processors import Processor
 from adapt.processors._covariance import effective_loading
@@ -583,7 +583,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
-    from adapt.engine.execute import check_cluster_options, check_threads
+    from adapt.engine.executors import check_cluster_options, check_threads
     from adapt.engine.settings import MAX_TRIALS, whole_count
     check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
@@ -593,7 +593,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         # below N snapshots unloaded SMI uses the minimum-norm weight; the sweep shows it
         warnings.filterwarnings("ignore", message=".*sample covariance is singular",
                                 category=RuntimeWarning)
-        ev = evaluate(used, procs, points, chunk=chunk, tail=0, progress=progress,
+        ev = run_trials(used, procs, points, chunk=chunk, tail=0, progress=progress,
                       workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
                       draw=draw, threads=threads)
 
@@ -684,31 +684,26 @@ def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None =
     """Write a NEW run folder under ``out_root``: ``scene.yaml`` (the scene as run),
     ``sizing.json``, ``sizing.png``, ``report.html`` and ``manifest.json`` (versions,
     seed, command line, sha256 of every file); every file atomically. With ``folder``
-    (a resumable run folder, :func:`adapt.engine.execute.start_run_folder`) the outputs go
-    there and its resume state is removed just before the manifest."""
-    from adapt import io
+    (a resumable run folder, :func:`adapt.report.runfolder.start_run_folder`) the outputs
+    go there and it is sealed (:meth:`adapt.report.runfolder.RunWriter.seal`)."""
     from adapt.report.html import build_page
+    from adapt.report.runfolder import RunWriter
     from adapt.report.sizing_figures import sizing_figure_png, sizing_sections
     from adapt.scene.files import dump_scene
     if not isinstance(sizing, Sizing):
         raise ValueError(f"expected a Sizing, got {type(sizing).__name__}")
     rec = sizing.record
-    from adapt.engine.execute import seal
-    if folder is None:
-        folder = io.new_run_folder(out_root, f"size-{sizing.scene.name}")
-    folder = Path(folder)
-    io.atomic_write_text(folder / "scene.yaml",
-                         "# The scene exactly as sized (defaults filled in; trials, seed and "
-                         "the largest\n# snapshot count as run). Re-run with: adapt size "
-                         "scene.yaml\n" + dump_scene(sizing.scene))
-    io.write_json(folder / "sizing.json", rec)
+    writer = RunWriter(folder, out_root, f"size-{sizing.scene.name}")
+    writer.text("scene.yaml",
+                "# The scene exactly as sized (defaults filled in; trials, seed and "
+                "the largest\n# snapshot count as run). Re-run with: adapt size "
+                "scene.yaml\n" + dump_scene(sizing.scene))
+    writer.json("sizing.json", rec)
     png = sizing_figure_png(rec)
-    io.atomic_write_bytes(folder / "sizing.png", png)
+    writer.bytes("sizing.png", png)
     page = build_page(f"Snapshot sizing: {rec['scene']}", sizing_sections(rec, png),
                       footer=f"adapt size, seed {rec['seed']}, {rec['trials']} trials")
-    io.atomic_write_text(folder / "report.html", page)
-    seal(folder)
-    io.write_manifest(folder, {"kind": "size", "scene": rec["scene"], "seed": rec["seed"],
-                               "trials": rec["trials"], "command_line": command_line,
-                               "seconds": sizing.seconds})
-    return folder
+    writer.text("report.html", page)
+    return writer.seal({"kind": "size", "scene": rec["scene"], "seed": rec["seed"],
+                        "trials": rec["trials"], "command_line": command_line,
+                        "seconds": sizing.seconds})
