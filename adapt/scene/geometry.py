@@ -15,11 +15,14 @@ Conventions (also in README):
 """
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 __all__ = [
     "line_positions", "grid_positions", "ring_positions", "direction_vector",
     "steering_vector", "array_response", "beam_pattern_db", "half_power_beamwidth_deg",
+    "rotate_about_z",
     "grating_lobe_free_spacing", "has_grating_lobe", "aperture", "angle_between_deg",
     "steering_derivatives",
 ]
@@ -144,22 +147,57 @@ def aperture(positions: np.ndarray) -> float:
     return float(d.max())
 
 
+def rotate_about_z(positions: np.ndarray, azimuth_deg: float) -> np.ndarray:
+    """Positions turned about z by ``-azimuth_deg``: ``p' . u(az - alpha, el) == p .
+    u(az, el)`` (alpha = ``azimuth_deg``), so a beam looking at alpha looks at 0 on the
+    turned array. Exact for alpha = 0 (the positions are returned unchanged)."""
+    p = np.asarray(positions, float)
+    if azimuth_deg == 0:
+        return p
+    a = math.radians(azimuth_deg)
+    c, s = math.cos(a), math.sin(a)
+    out = p.copy()
+    out[:, 0] = p[:, 0] * c - p[:, 1] * s
+    out[:, 1] = p[:, 0] * s + p[:, 1] * c
+    return out
+
+
 def half_power_beamwidth_deg(positions: np.ndarray, azimuth_deg: float = 0.0,
                              elevation_deg: float = 0.0, weights=None,
                              resolution_deg: float = 0.005) -> float:
     """Half-power (-3 dB) beamwidth in azimuth of the beam steered to (az, el), degrees.
 
-    Measured numerically on the azimuth cut through the beam peak. ``weights`` default to
-    the uniform phase-steered sum. Returns ``nan`` if the beam never falls 3 dB within
-    +-90 degrees of azimuth (very small apertures).
+    The array is first turned about z so the look azimuth becomes 0
+    (:func:`rotate_about_z`), so any look azimuth is answered, also past +-90 degrees
+    (a ring looking at 120 degrees); the beamwidth is then measured numerically on the
+    azimuth cut through the beam peak, within +-90 degrees of it. ``weights`` default
+    to the uniform phase-steered sum (weights belong to elements, so turning the array
+    leaves them valid).
+
+    Parameters
+    ----------
+    positions : (N, 3) array
+        Element positions, wavelengths.
+    azimuth_deg, elevation_deg : float
+        Look direction, degrees.
+    weights : (N,) complex array, optional
+        Weights applied as ``w^H x``.
+    resolution_deg : float
+        Azimuth sampling of the cut, degrees.
+
+    Returns
+    -------
+    float
+        The beamwidth in degrees; ``nan`` if the beam never falls 3 dB within +-90
+        degrees of its peak (very small apertures).
     """
-    pos = np.asarray(positions, float)
+    pos = rotate_about_z(positions, azimuth_deg)
     if weights is None:
-        weights = steering_vector(pos, azimuth_deg, elevation_deg) / len(pos)
+        weights = steering_vector(pos, 0.0, elevation_deg) / len(pos)
     az = np.arange(-90.0, 90.0 + resolution_deg / 2, resolution_deg)
     p = beam_pattern_db(weights, pos, az, elevation_deg, normalise=False)
-    peak = p[np.argmin(np.abs(az - azimuth_deg))]
-    i0 = int(np.argmin(np.abs(az - azimuth_deg)))
+    i0 = int(np.argmin(np.abs(az)))
+    peak = p[i0]
     below = p < peak - 10 * np.log10(2)
     right = np.nonzero(below[i0:])[0]
     left = np.nonzero(below[: i0 + 1][::-1])[0]

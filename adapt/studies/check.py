@@ -55,27 +55,15 @@ __all__ = ["summarise_scene", "scene_warnings", "check_processor_settings", "mai
            "angle_between_deg", "describe_waveform", "describe_behaviour"]
 
 
-def _rotate_about_z(positions: np.ndarray, azimuth_deg: float) -> np.ndarray:
-    """Positions p' with p' . u(az - alpha, el) == p . u(az, el) (alpha = azimuth_deg)."""
-    a = math.radians(azimuth_deg)
-    c, s = math.cos(a), math.sin(a)
-    p = np.asarray(positions, float)
-    out = p.copy()
-    out[:, 0] = p[:, 0] * c - p[:, 1] * s
-    out[:, 1] = p[:, 0] * s + p[:, 1] * c
-    return out
-
-
 def beamwidth_deg(positions: np.ndarray, azimuth_deg: float, elevation_deg: float) -> float:
     """Half-power beamwidth (degrees, azimuth cut at the look elevation) of the uniform
     beam steered to (az, el), any look azimuth; ``nan`` for very small apertures.
 
-    The array is turned about z so the look azimuth becomes 0, then
-    :func:`adapt.scene.geometry.half_power_beamwidth_deg` measures the cut.
+    :func:`adapt.scene.geometry.half_power_beamwidth_deg` (which turns the array about z
+    so the look azimuth becomes 0) measures the cut, more coarsely for large arrays.
     """
-    pos = _rotate_about_z(np.asarray(positions, float), azimuth_deg)
-    resolution = 0.005 if len(pos) <= 128 else 0.02
-    return geometry.half_power_beamwidth_deg(pos, 0.0, elevation_deg,
+    resolution = 0.005 if len(positions) <= 128 else 0.02
+    return geometry.half_power_beamwidth_deg(positions, azimuth_deg, elevation_deg,
                                              resolution_deg=resolution)
 
 
