@@ -268,15 +268,11 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
             sinr = scores.output_sinr(w, a_d, r_in, p_d[0])
         else:
             sinr = scores.output_sinr(w, a_d, r_in, p_d)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            norm = np.where(opt > 0, sinr / np.where(opt > 0, opt, 1), np.nan)
-            loss = -10 * np.log10(norm)
+        norm = scores.normalised_sinr(sinr, opt)
+        loss = scores.loss_db_of(norm)
         wng = scores.white_noise_gain(w, look)
-        if a_j:       # scores.response_db, the look-direction response computed once
-            ref = scores.to_db(np.abs(np.einsum("...n,...n->...", np.conj(w),
-                                                look_true[:, None, :])) ** 2)
-            nd = np.stack([scores.to_db(np.abs(np.einsum("...n,...n->...", np.conj(w), aj)) ** 2)
-                           - ref for aj in a_j], -1)
+        if a_j:
+            nd = scores.responses_db(w, a_j, look_true[:, None, :])
         else:
             nd = np.zeros(w.shape[:2] + (0,))
         out.append(ProcessorScores(

@@ -27,7 +27,8 @@ from adapt.numerics.linalg import solve_hermitian
 from adapt.scene import geometry
 
 __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
-           "white_noise_gain", "white_noise_gain_db", "array_gain", "response_db", "mean_loss_db",
+           "white_noise_gain", "white_noise_gain_db", "array_gain", "response_db",
+           "responses_db", "loss_db_of", "mean_loss_db",
            "fraction_meeting", "first_checkpoint", "snapshots_to_target", "trial_summary",
            "azimuth_cut", "main_beam_peak", "pointing_error_deg", "peak_sidelobe_db",
            "parabolic_peak"]
@@ -82,13 +83,25 @@ def optimum_sinr(steering: np.ndarray, covariance: np.ndarray,
 def normalised_sinr(sinr: np.ndarray, optimum: np.ndarray) -> np.ndarray:
     """SINR over the optimum SINR, in [0, 1] for the true covariance (Reed, Mallett and
     Brennan 1974 call this the normalised SINR; its mean is what their theory
-    predicts)."""
-    return np.asarray(sinr) / np.asarray(optimum)
+    predicts). NaN where the optimum is not positive (the wanted source is off: the
+    ratio is undefined). The code spells it "normalised"; output keys that users
+    already read keep "normalized" (``normalized_sinr_mean``)."""
+    sinr, optimum = np.asarray(sinr), np.asarray(optimum)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(optimum > 0, sinr / np.where(optimum > 0, optimum, 1), np.nan)
 
 
 def loss_db(sinr: np.ndarray, optimum: np.ndarray) -> np.ndarray:
-    """Loss against the optimum in dB (>= 0): ``-10 log10(SINR / SINR_opt)``."""
-    return -to_db(normalised_sinr(sinr, optimum))
+    """Loss against the optimum in dB (>= 0): ``-10 log10(SINR / SINR_opt)``; +inf for
+    an output without signal, NaN where the optimum is not positive."""
+    return loss_db_of(normalised_sinr(sinr, optimum))
+
+
+def loss_db_of(normalised: np.ndarray) -> np.ndarray:
+    """Loss in dB of normalised SINR values: ``-10 log10(rho)`` (+inf for 0, NaN for
+    NaN)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return -10 * np.log10(normalised)
 
 
 def white_noise_gain(weights: np.ndarray, steering: np.ndarray) -> np.ndarray:
@@ -142,10 +155,16 @@ def response_db(weights: np.ndarray, toward: np.ndarray, reference: np.ndarray) 
     ``reference``, in dB: ``10 log10(|w^H b|^2 / |w^H a|^2)``. With ``toward`` an
     interferer's true steering and ``reference`` the look direction this is the null
     depth (negative: a null)."""
+    return responses_db(weights, [toward], reference)[..., 0]
+
+
+def responses_db(weights: np.ndarray, towards, reference: np.ndarray) -> np.ndarray:
+    """:func:`response_db` toward each steering vector of ``towards`` (a sequence),
+    stacked on a last axis; the response toward ``reference`` is computed once."""
     w = np.asarray(weights)
-    num = np.abs(np.einsum("...n,...n->...", np.conj(w), toward)) ** 2
-    den = np.abs(np.einsum("...n,...n->...", np.conj(w), reference)) ** 2
-    return to_db(num) - to_db(den)
+    ref = to_db(np.abs(np.einsum("...n,...n->...", np.conj(w), reference)) ** 2)
+    return np.stack([to_db(np.abs(np.einsum("...n,...n->...", np.conj(w), b)) ** 2) - ref
+                     for b in towards], -1)
 
 
 def white_noise_gain_db(weights: np.ndarray, steering: np.ndarray) -> np.ndarray:

@@ -38,8 +38,9 @@ from adapt.processors._recursive import local_marks, per_snapshot, starting_weig
 from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors.lms import INITIAL_HELP
 
-#: P is re-symmetrised after every this many snapshots (counted from the stream start)
-SYMMETRISE_EVERY = 256
+#: P is re-symmetrised after every this many snapshots (counted from the stream start);
+#: defined once, beside the compiled recursion that must agree with this path
+SYMMETRISE_EVERY = _kernels.SYMMETRISE_EVERY
 #: trials are processed in groups of about this many P-matrix entries (cache-sized)
 TRIAL_GROUP_VALUES = 1 << 16
 

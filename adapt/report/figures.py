@@ -41,6 +41,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from adapt.numerics.units import power_db as _db
 from adapt.scene import geometry
 
 __all__ = [
@@ -204,16 +205,6 @@ def _check_evaluation(evaluation) -> None:
             raise ValueError(f"expected an adapt.engine.evaluate.Evaluation, got {type(evaluation).__name__}")
     if not evaluation.processors:
         raise ValueError("the evaluation has no processors to draw")
-
-
-def _db(x) -> np.ndarray:
-    """10 log10 of positive values; zero, negative or NaN become NaN (not -inf), so an
-    off wanted source or an undefined ratio leaves a gap instead of a spike."""
-    x = np.asarray(x, dtype=float)
-    out = np.full(x.shape, np.nan)
-    ok = np.isfinite(x) & (x > 0)
-    out[ok] = 10.0 * np.log10(x[ok])
-    return out
 
 
 def _nan_stats(x: np.ndarray, axis: int = 0):

@@ -17,6 +17,7 @@ import math
 
 import numpy as np
 
+from adapt.numerics.units import power_db as _db
 from adapt.report.figures import (
     REFERENCE_COLOUR,
     add_title,
@@ -36,12 +37,6 @@ def _check(record) -> None:
         raise ValueError("expected a sizing record (the sizing.json mapping)")
     if not record["processors"]:
         raise ValueError("the sizing record has no processors to draw")
-
-
-def _db(values) -> np.ndarray:
-    x = np.array([np.nan if v is None else float(v) for v in values])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(x > 0, 10 * np.log10(np.where(x > 0, x, 1.0)), np.nan)
 
 
 def _neg(values) -> np.ndarray:

@@ -41,6 +41,7 @@ from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation
 from adapt.engine.execute import run_trials
 from adapt.engine.settings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
+from adapt.numerics.units import power_db as _db
 from adapt.scene import geometry
 from adapt.scene.model import Scene
 
@@ -56,15 +57,6 @@ _PATTERN_BUDGET = 50_000_000
 
 
 # --------------------------------------------------------------------------- summary
-def _db(x) -> np.ndarray:
-    """dB of positive values; zero, negative or NaN -> NaN (undefined, not -inf)."""
-    x = np.asarray(x, dtype=float)
-    out = np.full(x.shape, np.nan)
-    ok = np.isfinite(x) & (x > 0)
-    out[ok] = 10.0 * np.log10(x[ok])
-    return out
-
-
 def _nanmean(x, axis=0):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
