@@ -91,16 +91,16 @@ def expected_arrays(processors: int, checkpoints: int, elements: int,
 def part_evaluation(arrays: dict, scene: Scene, processors: Sequence[Processor],
                     checkpoints, snapshots: int, seed: int) -> Evaluation:
     """Rebuild an :class:`Evaluation` of one chunk from :func:`part_arrays` output."""
-    cps = np.asarray(checkpoints, dtype=np.int64)
+    checkpoints = np.asarray(checkpoints, dtype=np.int64)
     procs = []
     for i, p in enumerate(processors):
         procs.append(ProcessorScores(label=p.label, method=p.method, params=dict(p.params),
-                                     spec=p.spec(), checkpoints=cps,
+                                     spec=p.spec(), checkpoints=checkpoints,
                                      seconds=float(arrays[f"p{i}.seconds"]),
                                      **{n: np.asarray(arrays[f"p{i}.{n}"]) for n in _FIELDS}))
     opt = np.asarray(arrays["optimum_sinr"])
     return Evaluation(scene=scene, trials=int(opt.shape[0]), seed=int(seed),
-                      snapshots=int(snapshots), checkpoints=cps, optimum_sinr=opt,
+                      snapshots=int(snapshots), checkpoints=checkpoints, optimum_sinr=opt,
                       processors=procs, interferers=tuple(s.name for s in scene.interferers),
                       positions=np.asarray(arrays["positions"]),
                       element_gains=np.asarray(arrays["element_gains"]))

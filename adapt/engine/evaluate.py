@@ -106,16 +106,16 @@ class _Measure:
     """Accumulates output-sample powers of the signal and the rest, per checkpoint span."""
 
     def __init__(self, count: int, trials: int, checkpoints: np.ndarray):
-        self.cps = checkpoints
+        self.checkpoints = checkpoints
         self.sig = np.zeros((count, trials, len(checkpoints)))
         self.rest = np.zeros((count, trials, len(checkpoints)))
         self.n = np.zeros((count, len(checkpoints)))
 
-    def __call__(self, index, block, inside, weights, held) -> None:
+    def __call__(self, index, block, block_checkpoints, weights, held) -> None:
         start = block.start
-        edges = [0] + [int(c - start) for c in inside] + [block.size]
+        edges = [0] + [int(c - start) for c in block_checkpoints] + [block.size]
         # which checkpoint's weight is in force on each span (-1: initial weight)
-        first = int(np.searchsorted(self.cps, start, side="right")) - 1
+        first = int(np.searchsorted(self.checkpoints, start, side="right")) - 1
         rank_one = block.desired is not None
         rest = None if rank_one else block.data - block.signal
         for j in range(len(edges) - 1):
@@ -218,9 +218,9 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     scores at a cost independent of ``snapshots``, no samples, measured SINR NaN.
     """
     sc = batch.scene
-    cps = normalised_checkpoints(checkpoints, snapshots)
+    checkpoints = normalised_checkpoints(checkpoints, snapshots)
     context = Context.from_batch(batch)
-    measure = _Measure(len(processors), batch.trials, cps)
+    measure = _Measure(len(processors), batch.trials, checkpoints)
 
     def fed() -> Iterator:
         for b in batch.blocks(snapshots + tail, block, recycle=True):
@@ -230,17 +230,17 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
 
     if draw == "covariance":
         from adapt.engine.drawn import run_drawn
-        results = run_drawn(processors, batch, context, cps)
+        results = run_drawn(processors, batch, context, checkpoints)
         if progress is not None:
             progress(snapshots * batch.trials)
     elif draw == "samples":
-        results = run_processors(processors, fed(), context, cps, on_block=measure)
+        results = run_processors(processors, fed(), context, checkpoints, on_block=measure)
     else:
         from adapt.errors import InputError
         raise InputError("unknown way to draw the training data", path="draw", value=draw,
                          allowed="samples | covariance")
     # truth at each checkpoint's moment
-    moments = cps if not sc.stationary else np.zeros(1, dtype=np.int64)
+    moments = checkpoints if not sc.stationary else np.zeros(1, dtype=np.int64)
     drawn = sc.stationary and draw == "covariance"
     # the drawn path scores against one shared truth when every trial has the same array
     r_in = batch.covariance(moments, shared=drawn)                # (T or 1, M, N, N)
@@ -256,7 +256,7 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     a_j = [batch.steering(i, moments) for i in sc.interferer_indices]       # (T, M, N) each
     look = batch.look
     if sc.stationary:
-        opt = np.broadcast_to(opt, (batch.trials, len(cps)))
+        opt = np.broadcast_to(opt, (batch.trials, len(checkpoints)))
     out = []
     for i, (p, res) in enumerate(zip(processors, results)):
         w = res.weights                                            # (T, C, N)
@@ -277,11 +277,11 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
             nd = np.zeros(w.shape[:2] + (0,))
         out.append(ProcessorScores(
             label=p.label, method=p.method, params=dict(p.params), spec=p.spec(),
-            checkpoints=cps, sinr=sinr, normalised=norm, loss_db=loss,
+            checkpoints=checkpoints, sinr=sinr, normalised=norm, loss_db=loss,
             white_noise_gain=wng, null_depth_db=nd, measured_sinr=measure.sinr(i),
             final_weights=w[:, -1, :], seconds=res.seconds))
     return Evaluation(scene=sc, trials=batch.trials, seed=batch.seed, snapshots=snapshots,
-                      checkpoints=cps, optimum_sinr=np.array(opt), processors=out,
+                      checkpoints=checkpoints, optimum_sinr=np.array(opt), processors=out,
                       interferers=tuple(s.name for s in sc.interferers),
                       positions=batch.positions, element_gains=batch.element_gains)
 

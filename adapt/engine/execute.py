@@ -88,14 +88,14 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     checked = check_threads(threads, remote=remote)
     check_cluster_options(workers, scheduler)
     pool_threads = 1 if remote else checked
-    cps = normalised_checkpoints(checkpoints, snapshots)
+    checkpoints = normalised_checkpoints(checkpoints, snapshots)
     total = int(snapshots) + int(tail)
     n = scene.elements
     blk = block_size(n, total) if block is None else int(block)
     share = workers if workers is not None else (4 if scheduler is not None else 1)
     # a drawn covariance costs per trial about what streaming N snapshots per span does
     # (spans: at most two cuts per checkpoint), whatever the stream length
-    work_length = total if draw != "covariance" else min(total, n * (2 * len(cps) + 1))
+    work_length = total if draw != "covariance" else min(total, n * (2 * len(checkpoints) + 1))
     size = (chunk_size(trials, n, work_length, len(processors), blk, share, pool_threads)
             if chunk is None else int(chunk))
     if size < 1:
@@ -106,7 +106,7 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
     else:
         specs = tuple(p.spec() for p in processors)
     plan = Plan(scene=scene_mapping(scene), specs=specs,
-                checkpoints=tuple(int(c) for c in cps), snapshots=int(snapshots),
+                checkpoints=tuple(int(c) for c in checkpoints), snapshots=int(snapshots),
                 tail=int(tail), trials=int(trials), seed=int(seed), chunk=size, block=blk,
                 draw=str(draw))
     if store is not None:
@@ -117,12 +117,12 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
 
     def expected(count: int) -> dict:
         if count not in shapes:
-            shapes[count] = expected_arrays(len(processors), len(cps), n,
+            shapes[count] = expected_arrays(len(processors), len(checkpoints), n,
                                             len(scene.interferers), count)
         return shapes[count]
 
     def build(arrays):
-        return part_evaluation(arrays, scene, processors, cps, snapshots, seed)
+        return part_evaluation(arrays, scene, processors, checkpoints, snapshots, seed)
 
     parts: dict[tuple[int, int], Evaluation] = {}
     if chunks_store is not None:
@@ -144,14 +144,14 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
             on_chunk(*key)
 
     if todo and not remote and pool_threads > 1 and len(todo) > 1:
-        run_threaded(todo, pool_threads, scene, processors, cps, snapshots=int(snapshots),
+        run_threaded(todo, pool_threads, scene, processors, checkpoints, snapshots=int(snapshots),
                       seed=int(seed), tail=int(tail), block=blk, draw=draw,
                       progress=progress, keep_arrays=chunks_store is not None,
                       finished=finished)
     elif todo and not remote:
         for first, count in todo:
             ev = evaluate_batch(TrialBatch(scene, trials=count, seed=seed, first_trial=first),
-                                processors, cps, snapshots, tail=tail, block=blk,
+                                processors, checkpoints, snapshots, tail=tail, block=blk,
                                 progress=progress, **draw_option(draw))
             finished((first, count), ev, part_arrays(ev) if chunks_store is not None else None)
     elif todo:
@@ -208,8 +208,8 @@ def run_trials(scene: Scene, processors: Sequence[Processor], checkpoints=None, 
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
     if not processors:
         raise ValueError("no processors to evaluate")
-    cps = default_checkpoints(k_) if checkpoints is None else checkpoints
-    return run_chunks(scene, processors, cps, trials=t_, snapshots=k_, seed=s_, tail=tail,
+    checkpoints = default_checkpoints(k_) if checkpoints is None else checkpoints
+    return run_chunks(scene, processors, checkpoints, trials=t_, snapshots=k_, seed=s_, tail=tail,
                       chunk=chunk, block=block, workers=workers, scheduler=scheduler,
                       store=store, progress=progress, on_chunk=on_chunk, draw=draw,
                       threads=threads)

@@ -201,7 +201,7 @@ def cluster_client(workers: int | None = None, scheduler: str | None = None,
             cluster.close()
 
 
-def run_threaded(todo, threads: int, scene: Scene, processors: Sequence[Processor], cps, *,
+def run_threaded(todo, threads: int, scene: Scene, processors: Sequence[Processor], checkpoints, *,
                   snapshots: int, seed: int, tail: int, block: int, draw: str, progress,
                   keep_arrays: bool, finished) -> None:
     """The chunks ``todo`` on a pool of threads (see :func:`run_on_threads`): each on
@@ -221,7 +221,7 @@ def run_threaded(todo, threads: int, scene: Scene, processors: Sequence[Processo
 
         procs = copy.deepcopy(templates)
         ev = evaluate_batch(TrialBatch(scene, trials=count, seed=seed, first_trial=first),
-                            procs, cps, snapshots, tail=tail, block=block, progress=tick,
+                            procs, checkpoints, snapshots, tail=tail, block=block, progress=tick,
                             **draw_option(draw))
         return ev, (part_arrays(ev) if keep_arrays else None)
 

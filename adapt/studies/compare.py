@@ -106,7 +106,7 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
     if not 0 < fraction <= 1:
         raise ValueError(f"fraction must be in (0, 1], got {fraction}")
     sc = evaluation.scene
-    cps = np.asarray(evaluation.checkpoints)
+    checkpoints = np.asarray(evaluation.checkpoints)
     opt_db = _db(evaluation.optimum_sinr)                               # (T, C)
     out = {
         "scene": sc.name,
@@ -119,8 +119,8 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         "interferers": list(evaluation.interferers),
         "target_db": float(target_db),
         "fraction": float(fraction),
-        "checkpoints": [int(c) for c in cps],
-        "optimum_curve": {"snapshots": [int(c) for c in cps],
+        "checkpoints": [int(c) for c in checkpoints],
+        "optimum_curve": {"snapshots": [int(c) for c in checkpoints],
                           "sinr_db_mean": _nanmean(opt_db, axis=0).tolist()},
         "processors": [],
     }
@@ -138,7 +138,7 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
             rho_ok = np.where(np.isfinite(rho), rho, np.nan)
             loss_of_mean = -10 * np.log10(_nanmean(rho_ok, axis=0))
         frac = scores.fraction_meeting(loss, target_db)
-        to_mean, to_frac = scores.snapshots_to_target(cps, np.nan_to_num(rho, nan=0.0),
+        to_mean, to_frac = scores.snapshots_to_target(checkpoints, np.nan_to_num(rho, nan=0.0),
                                                       target_db, fraction)
         measured_db = _db(p.measured_sinr)
         wng_db = _db(p.white_noise_gain)
@@ -171,7 +171,7 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
             "snapshots_to_3db_fraction": to_frac,
             "seconds": float(p.seconds),
             "curve": {
-                "snapshots": [int(c) for c in cps],
+                "snapshots": [int(c) for c in checkpoints],
                 "normalized_sinr_mean": rho_stats["mean"].tolist(),
                 "sinr_db_mean": sinr_stats["mean"].tolist(),
                 "loss_db_mean": loss_stats["mean"].tolist(),
@@ -310,7 +310,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     chunking, the number of threads or workers or any interruption and resume.
     """
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
-    cps = checkpoints_for(checkpoints, used.snapshots)
+    checkpoints = checkpoints_for(checkpoints, used.snapshots)
     if tail < 0:
         raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
     from adapt.engine.executors import check_cluster_options, check_threads
@@ -319,7 +319,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     if chunk is not None:
         chunk = whole_count(chunk, "chunk", MAX_TRIALS)
     t0 = time.perf_counter()
-    ev = run_trials(used, procs, cps, chunk=chunk, tail=tail, progress=progress,
+    ev = run_trials(used, procs, checkpoints, chunk=chunk, tail=tail, progress=progress,
                   workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
                   threads=threads)
     metrics = summarise(ev, target_db, fraction)
