@@ -25,12 +25,12 @@ from __future__ import annotations
 
 import base64
 import html
-import math
 from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
 from adapt.report.figures import FIGURE_TEXT, is_png
+from adapt.report.numbers import format_number
 
 __all__ = ["Markup", "escape", "paragraph", "preformatted", "caution", "table", "figure",
            "definition_list", "png_data_uri", "build_page", "compare_report",
@@ -66,9 +66,11 @@ def paragraph(text: str, css_class: str | None = None) -> Markup:
     return Markup(f"<p{cls}>{escape(text)}</p>")
 
 
-def preformatted(text: str) -> Markup:
-    """``<pre>`` block with escaped text (fixed-width summaries)."""
-    return Markup(f"<pre>{escape(text)}</pre>")
+def preformatted(text: str, wrap: bool = False) -> Markup:
+    """``<pre>`` block with escaped text (fixed-width summaries); ``wrap``: long lines
+    wrap inside the page instead of scrolling sideways (nothing is hidden)."""
+    cls = ' class="wrap"' if wrap else ""
+    return Markup(f"<pre{cls}>{escape(text)}</pre>")
 
 
 def caution(text: str = CAUTION_TEXT) -> Markup:
@@ -85,14 +87,7 @@ def _cell_text(value: Any, digits: int) -> tuple[str, bool]:
     if isinstance(value, (int, np.integer)):
         return f"{int(value)}", True
     if isinstance(value, (float, np.floating)):
-        v = float(value)
-        if math.isnan(v):
-            return "n/a", True
-        if math.isinf(v):
-            return ("inf" if v > 0 else "-inf"), True
-        if v != 0 and (abs(v) >= 1e6 or abs(v) < 10 ** -digits):
-            return f"{v:.{max(digits, 1) + 1}g}", True
-        return f"{v:.{digits}f}", True
+        return format_number(value, digits), True
     return str(value), False
 
 
@@ -178,6 +173,7 @@ p { margin: 0.5rem 0; }
 pre { background: #f6f7f8; border: 1px solid #dfe2e5; padding: 0.7rem 0.9rem;
       overflow-x: auto; font-size: 0.86rem; line-height: 1.35;
       font-family: ui-monospace, "DejaVu Sans Mono", Menlo, Consolas, monospace; }
+pre.wrap { white-space: pre-wrap; overflow-wrap: anywhere; overflow-x: visible; }
 .table-wrap { overflow-x: auto; }
 table { border-collapse: collapse; font-size: 0.9rem; margin: 0.6rem 0; }
 caption { caption-side: top; text-align: left; color: #555555; padding-bottom: 0.3rem; }
@@ -276,7 +272,7 @@ def compare_report(evaluation, summary_rows: Sequence, scene_summary_text: str,
              f"seed {evaluation.seed}, {sc.elements} elements ({sc.array.layout}), "
              f"{len(evaluation.checkpoints)} checkpoints; processors: {labels}.")
     intro = [paragraph(facts, "meta"), caution()]
-    sections: list = [("Scene", [preformatted(scene_summary_text)])]
+    sections: list = [("Scene", [preformatted(scene_summary_text, wrap=True)])]
     score_parts: list = [table(summary_rows, header=table_header)]
     score_parts += [paragraph(n) for n in notes]
     sections.append(("Scores", score_parts))

@@ -40,12 +40,13 @@ import json
 import math
 import shutil
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Sequence
 
 import yaml
 
 from adapt import io
 from adapt.errors import InputError
+from adapt.report.numbers import format_number, format_range
 
 __all__ = ["RunWriter", "start_run_folder", "open_for_resume", "finish_seal",
            "remove_if_empty", "RESUME_FILE", "MARKER", "PARTIAL", "RESUME_STATE", "write_run",
@@ -245,10 +246,10 @@ def write_scene_yaml(folder, scene) -> Path:
 
 
 def _num(v) -> str:
-    if v is None:
+    """A CSV number: 10 significant digits, empty where undefined or infinite."""
+    if v is None or not math.isfinite(float(v)):
         return ""
-    f = float(v)
-    return "" if not math.isfinite(f) else format(f, ".10g")
+    return format_number(v, significant=10)
 
 
 def curves_rows(metrics: dict) -> list[dict]:
@@ -300,7 +301,7 @@ def summary_rows(metrics: dict) -> list[dict]:
             "processor": p["label"],
             "SINR dB (final)": f["sinr_db_mean"],
             "loss dB vs optimum": f["loss_db_mean"],
-            "loss dB p10-p90": (f"{_num(f['loss_db_p10'])[:6]} to {_num(f['loss_db_p90'])[:6]}"
+            "loss dB p10-p90": (format_range(f["loss_db_p10"], f["loss_db_p90"])
                                 if f["loss_db_p10"] is not None else None),
             "snapshots to 3 dB (mean)": p["snapshots_to_3db"] if p["snapshots_to_3db"] is not None
             else "never",
@@ -317,11 +318,12 @@ def summary_rows(metrics: dict) -> list[dict]:
 
 
 def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "",
-                       command_line: str | None = None, writer: "RunWriter | None" = None
-                       ) -> list[str]:
+                       command_line: str | None = None, writer: "RunWriter | None" = None,
+                       verdict: Sequence[str] = ()) -> list[str]:
     """Write the figures (``<name>.png``) and ``report.html`` with :mod:`adapt.report`;
     returns the file names written (none when the report modules are absent).
-    ``scene_summary``: the text of the scene block (what ``adapt check`` prints)."""
+    ``scene_summary``: the text of the scene block (what ``adapt check`` prints);
+    ``verdict``: sentences shown under the score table."""
     writer = writer if writer is not None else RunWriter(folder)
     written = []
     figs = _module("figures")
@@ -334,10 +336,11 @@ def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "
     html = _module("html")
     builder = getattr(html, "compare_report", None) if html is not None else None
     if builder is not None:
-        notes = [f"Optimum (clairvoyant MVDR) SINR: {_num(metrics['optimum_sinr_db'])[:6]} dB, "
+        notes = [f"Optimum (clairvoyant MVDR) SINR: {format_number(metrics['optimum_sinr_db'])} dB, "
                  "mean over trials. Loss = optimum minus output SINR, mean over trials of dB. "
                  f"'Snapshots to 3 dB' = first checkpoint where the loss of the mean "
                  f"normalised SINR is within {metrics.get('target_db', 3):g} dB."]
+        notes += [f"Verdict: {line}." for line in verdict]
         if command_line:
             notes.append(f"Command: {command_line}")
         page = builder(evaluation, summary_rows(metrics), scene_summary, pngs, notes=notes)
@@ -348,14 +351,15 @@ def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "
 
 def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: str | None = None,
               kind: str = "compare", figures: bool = True, table: str | None = None,
-              folder=None, scene_summary: str = "") -> Path:
+              folder=None, scene_summary: str = "", verdict: Sequence[str] = ()) -> Path:
     """Write a complete run folder (see the module docstring) and return its path.
 
     A new folder is created under ``out_root`` (timestamp + scene name, suffixed when
     taken); nothing outside it is touched. ``manifest.json`` is written last, so a
     folder with a manifest is complete. With ``folder`` (a resumable run folder made by
     :func:`start_run_folder`), the outputs go there and it is sealed
-    (:meth:`RunWriter.seal`). ``scene_summary``: the scene block of ``report.html``.
+    (:meth:`RunWriter.seal`). ``scene_summary``, ``verdict``: the scene block and the
+    verdict sentences of ``report.html``.
     """
     writer = RunWriter(folder, out_root, scene.name)
     write_scene_yaml(writer.folder, scene)
@@ -368,7 +372,7 @@ def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: s
     extra = []
     if figures:
         extra = write_report_files(writer.folder, evaluation, metrics, scene_summary,
-                                   command_line, writer=writer)
+                                   command_line, writer=writer, verdict=verdict)
     info = {"kind": kind, "scene": scene.name, "seed": int(metrics.get("seed", scene.seed)),
             "trials": int(metrics.get("trials", scene.trials)),
             "snapshots": int(metrics.get("snapshots", scene.snapshots)),

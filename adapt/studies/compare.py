@@ -42,10 +42,12 @@ from adapt.engine.evaluate import Evaluation
 from adapt.engine.execute import run_trials
 from adapt.engine.settings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
 from adapt.numerics.units import power_db as _db
+from adapt.report.numbers import format_number
 from adapt.scene import geometry
 from adapt.scene.model import Scene
 
-__all__ = ["Comparison", "compare", "summarise", "write_compare_run", "CAUTION", "TAIL"]
+__all__ = ["Comparison", "compare", "summarise", "write_compare_run", "verdict", "verdict_lines",
+           "CAUTION", "TAIL"]
 
 #: printed under every summary table
 CAUTION = ("Simulation only: scores come from a modelled scene; validate against measured "
@@ -126,6 +128,11 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
     }
     if seconds is not None:
         out["seconds"] = float(seconds)
+    free_db = _interference_free_db(evaluation)                          # (T,) or None
+    if free_db is not None:
+        out["interference_free_sinr_db"] = _nanmean(free_db)
+        out["interference_cost_db"] = _nanmean(free_db - opt_db[:, -1])
+    per_trial = []
     for p in evaluation.processors:
         sinr_db = _db(p.sinr)
         with np.errstate(all="ignore"):
@@ -159,6 +166,10 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
                               for j, name in enumerate(evaluation.interferers)},
             "measured_sinr_db_mean": _first(_nanmean(measured_db[:, -1])),
         }
+        final["sinr_db_sem"] = _first(sinr_stats["sem"][-1])
+        if free_db is not None:
+            final["loss_db_vs_interference_free"] = _first(_nanmean(free_db - sinr_db[:, -1]))
+        per_trial.append((sinr_db[:, -1], rho_stats))
         if patterns:
             final.update(_pattern_scores(evaluation, np.asarray(p.final_weights)))
         out["processors"].append({
@@ -183,27 +194,198 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
                 "measured_sinr_db_mean": _nanmean(measured_db, axis=0).tolist(),
             },
         })
+    out["verdict"] = verdict(out, per_trial, target_db, int(evaluation.seed))
     return out
 
 
+def _interference_free_db(evaluation: Evaluation):
+    """Per-trial optimum SINR (dB) of the same array with no interferer at the last
+    checkpoint: ``sigma_s^2 a^H a`` with unit noise per element (Van Trees 2002 ch. 6:
+    the optimum against white noise alone is the matched filter); ``a`` carries each
+    trial's element gains, so ``a^H a = sum |g_n|^2``. None when the wanted source is
+    off at the last checkpoint."""
+    sc = evaluation.scene
+    d = sc.desired
+    last = np.asarray(evaluation.checkpoints)[-1:]
+    power = float(d.power) * float(d.active(last).astype(float)[0])
+    if not power > 0:
+        return None
+    gains = evaluation.element_gains
+    energy = (np.sum(np.abs(np.asarray(gains)) ** 2, axis=-1) if gains is not None
+              else np.full(evaluation.trials, float(sc.elements)))
+    return _db(power * energy)
+
+
+#: methods that are bounds (clairvoyant), left out of the verdict's ranking
+BOUNDS = ("optimum",)
+#: bootstrap resamples of the robustness margin's uncertainty
+VERDICT_RESAMPLES = 200
+
+
+def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict:
+    """The ranked verdict under the compare table: best final SINR, fastest to the
+    target loss, most robust across trials; each with its margin over the next and
+    whether the margin is larger than its Monte Carlo uncertainty.
+
+    Parameters
+    ----------
+    metrics : dict
+        The summary built so far (``processors`` entries with ``final`` and
+        ``snapshots_to_3db``).
+    per_trial : list of (ndarray, dict)
+        Per processor: final SINR in dB per trial, and the across-trial statistics of
+        the normalised SINR per checkpoint (:func:`adapt.engine.scores.trial_summary`).
+    target_db : float
+        The loss target of "to 3 dB".
+    seed : int
+        Seeds the bootstrap of the robustness margin (results are reproducible).
+
+    Returns
+    -------
+    dict
+        ``final_sinr``, ``to_target`` and ``robust``: each ``{"ranking": [labels],
+        "best", "next", "margin", "uncertainty", "clear"}`` (``clear``: the margin is
+        larger than the uncertainty; None when it cannot be told).
+
+    Notes
+    -----
+    Every processor sees the same trials (common random numbers), so margins are
+    paired: the uncertainty of the final-SINR margin is twice the standard error of the
+    mean per-trial difference; of the robustness margin (difference of the 10th
+    percentiles of the final SINR) twice its bootstrap standard error (Efron and
+    Tibshirani 1993, ch. 6); "to target" is clear when the best processor reaches the
+    target, even at its mean normalised SINR minus two standard errors, at an earlier
+    checkpoint than the next reaches it at plus two standard errors.
+    """
+    labels = [p["label"] for p in metrics["processors"]]
+    # the clairvoyant bound is what the others are measured against, not a contender
+    contenders = [i for i, p in enumerate(metrics["processors"]) if p["method"] not in BOUNDS]
+    checkpoints = np.asarray(metrics["checkpoints"])
+    finals = [np.asarray(x, float) for x, _ in per_trial]
+
+    def entry(order, margin, uncertainty, clear, unit):
+        ranking = [labels[i] for i in order]
+        return {"ranking": ranking, "best": ranking[0] if ranking else None,
+                "next": ranking[1] if len(ranking) > 1 else None,
+                "margin": margin, "uncertainty": uncertainty, "clear": clear, "unit": unit}
+
+    def paired(i, j, stat):
+        ok = np.isfinite(finals[i]) & np.isfinite(finals[j])
+        return finals[i][ok], finals[j][ok]
+
+    # best final SINR: mean over trials of dB
+    means = [metrics["processors"][i]["final"]["sinr_db_mean"] for i in range(len(labels))]
+    order = sorted((i for i in contenders if _finite(means[i])), key=lambda i: -means[i])
+    margin = unc = clear = None
+    if len(order) > 1:
+        a, b = paired(order[0], order[1], None)
+        if len(a) > 1:
+            diff = a - b
+            margin = float(np.mean(diff))
+            unc = float(2 * np.std(diff, ddof=1) / math.sqrt(len(diff)))
+            clear = bool(margin > unc)
+    out = {"final_sinr": entry(order, margin, unc, clear, "dB")}
+
+    # fastest to the target: first checkpoint where the mean normalised SINR is within
+    # target_db of the optimum; its range from the mean +- 2 standard errors
+    target = 10.0 ** (-float(target_db) / 10.0)
+
+    def first(curve):
+        hit = np.nonzero(np.nan_to_num(curve, nan=-1.0) >= target)[0]
+        return int(checkpoints[hit[0]]) if len(hit) else None
+
+    reach = []
+    for i, (_, stats) in enumerate(per_trial):
+        mean, sem = np.asarray(stats["mean"], float), np.nan_to_num(stats["sem"], nan=0.0)
+        reach.append((metrics["processors"][i]["snapshots_to_3db"],
+                      first(mean + 2 * sem), first(mean - 2 * sem)))
+    order = sorted((i for i in contenders if reach[i][0] is not None), key=lambda i: reach[i][0])
+    order += [i for i in contenders if reach[i][0] is None]
+    margin = unc = clear = None
+    if len(order) > 1 and reach[order[0]][0] is not None:
+        best, nxt = reach[order[0]], reach[order[1]]
+        margin = None if nxt[0] is None else float(nxt[0] - best[0])
+        clear = bool(best[2] is not None and (nxt[1] is None or best[2] < nxt[1]))
+    out["to_target"] = entry(order, margin, unc, clear, "snapshots")
+
+    # most robust: the highest 10th percentile of the final SINR over trials
+    p10 = [metrics["processors"][i]["final"]["sinr_db_p10"] for i in range(len(labels))]
+    order = sorted((i for i in contenders if _finite(p10[i])), key=lambda i: -p10[i])
+    margin = unc = clear = None
+    if len(order) > 1:
+        a, b = paired(order[0], order[1], None)
+        if len(a) > 1:
+            margin = float(p10[order[0]] - p10[order[1]])
+            rng = np.random.default_rng(seed)
+            pick = rng.integers(0, len(a), size=(VERDICT_RESAMPLES, len(a)))
+            diffs = np.percentile(a[pick], 10, axis=1) - np.percentile(b[pick], 10, axis=1)
+            unc = float(2 * np.std(diffs, ddof=1))
+            clear = bool(margin > unc)
+    out["robust"] = entry(order, margin, unc, clear, "dB")
+    return out
+
+
+def _finite(v) -> bool:
+    return v is not None and math.isfinite(float(v))
+
+
+def verdict_lines(metrics: dict) -> list[str]:
+    """The verdict of :func:`verdict` and the interference cost as short sentences (for
+    the table and report.html); empty for a summary without them."""
+    v = metrics.get("verdict")
+    if not v:
+        return []
+    lines = []
+
+    def said(e, what, unit_word):
+        if e["best"] is None:
+            return None
+        if e["next"] is None:
+            return f"{what}: {e['best']}"
+        if e["margin"] is None:
+            return f"{what}: {e['best']} ({e['next']} never gets there)" \
+                if e["unit"] == "snapshots" else f"{what}: {e['best']}"
+        digits = 0 if e["unit"] == "snapshots" else 2
+        if e["margin"] == 0:
+            return f"{what}: {e['best']} and {e['next']} tie"
+        text = f"{what}: {e['best']}, {format_number(e['margin'], digits)} {unit_word} " \
+               f"ahead of {e['next']}"
+        if e["clear"] is None:
+            return text
+        if e["uncertainty"] is not None:
+            text += f" (Monte Carlo uncertainty {format_number(e['uncertainty'], digits)} " \
+                    f"{unit_word}: {'clear' if e['clear'] else 'not clear'})"
+        else:
+            text += " (" + ("clear beyond" if e["clear"] else "within") + \
+                    " the Monte Carlo uncertainty)"
+        return text
+
+    for key, what, unit_word in (("final_sinr", "best final SINR", "dB"),
+                                 ("to_target", f"fastest to {metrics.get('target_db', 3):g} dB",
+                                  "snapshots"),
+                                 ("robust", "most robust (highest SINR of the worst 10 % of "
+                                  "trials)", "dB")):
+        text = said(v[key], what, unit_word)
+        if text:
+            lines.append(text)
+    cost = metrics.get("interference_cost_db")
+    if _finite(cost):
+        lines.append(f"interference cost even at the optimum: {format_number(cost)} dB "
+                     f"(interference-free array "
+                     f"{format_number(metrics['interference_free_sinr_db'])} dB SINR, optimum "
+                     f"{format_number(metrics['optimum_sinr_db'])} dB)")
+    return lines
+
+
 # --------------------------------------------------------------------------- table
-def _cell(v, fmt: str = "{:.2f}", none: str = "n/a") -> str:
-    if v is None:
-        return none
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return str(v)
-    if not math.isfinite(f):
-        return none
-    text = fmt.format(f)
-    # no "-0.00": a loss of -1e-12 dB is zero at the shown precision
-    return text[1:] if text.startswith("-") and not any(ch in "123456789" for ch in text) else text
+def _cell(v, decimals: int = 2, none: str = "n/a") -> str:
+    return format_number(v, decimals, none=none)
 
 
 def render_table(metrics: dict, width: int = 100) -> str:
     """Plain-text summary of a ``metrics`` dictionary, aligned, at most ``width``
-    columns wide (labels are shortened to fit)."""
+    columns wide (a label too long for its column is written whole on a line of its
+    own, its numbers on the next)."""
     heads = [("SINR dB", "final"), ("loss dB", "vs opt"), ("to 3 dB", "mean"),
              ("to 3 dB", f"{metrics.get('fraction', 0.9) * 100:.0f}% trials"),
              ("worst null", "dB"), ("WNG", "dB"), ("time", "s")]
@@ -213,17 +395,20 @@ def render_table(metrics: dict, width: int = 100) -> str:
         nulls = [v for v in f["null_depth_db"].values() if v is not None]
         rows.append([p["label"],
                      _cell(f["sinr_db_mean"]), _cell(f["loss_db_mean"]),
-                     _cell(p["snapshots_to_3db"], "{:.0f}", "never"),
-                     _cell(p["snapshots_to_3db_fraction"], "{:.0f}", "never"),
-                     _cell(max(nulls) if nulls else None, "{:.1f}"),
-                     _cell(f["white_noise_gain_db"]), _cell(p["seconds"], "{:.2f}")])
+                     _cell(p["snapshots_to_3db"], 0, "never"),
+                     _cell(p["snapshots_to_3db_fraction"], 0, "never"),
+                     _cell(max(nulls) if nulls else None, 1),
+                     _cell(f["white_noise_gain_db"]), _cell(p["seconds"], 2)])
     numw = [max(len(h[0]), len(h[1]), *(len(r[i + 1]) for r in rows)) for i, h in enumerate(heads)]
     fixed = sum(numw) + 2 * len(numw)
     labw = max(9, min(max([len(r[0]) for r in rows] + [9]), max(9, width - fixed)))
 
     def line(cells):
-        first = cells[0] if len(cells[0]) <= labw else cells[0][:labw - 3] + "..."
-        return (first.ljust(labw) + "".join("  " + c.rjust(w) for c, w in zip(cells[1:], numw))).rstrip()
+        # a label longer than its column is never cut: it gets a line of its own and
+        # its numbers follow on the next line
+        first = cells[0] if len(cells[0]) <= labw else ""
+        text = (first.ljust(labw) + "".join("  " + c.rjust(w) for c, w in zip(cells[1:], numw))).rstrip()
+        return text if len(cells[0]) <= labw else cells[0] + "\n" + text
 
     k = metrics["snapshots"]
     what = (f"{metrics['scene']}: {metrics['elements']} elements, {metrics['trials']} trials, "
@@ -235,6 +420,12 @@ def render_table(metrics: dict, width: int = 100) -> str:
            line([""] + [h[1] for h in heads]),
            "-" * min(width, labw + fixed)]
     out += [line(r) for r in rows]
+    said = verdict_lines(metrics)
+    if said:
+        import textwrap
+        out += ["", "verdict (margins paired over the same trials):"]
+        out += [textwrap.fill(t, width, initial_indent="  ", subsequent_indent="    ")
+                for t in said]
     total = metrics.get("seconds")
     out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
                 f"until the loss is within {metrics.get('target_db', 3):g} dB ('never': not within "
@@ -252,7 +443,8 @@ def _wrap(text: str, width: int) -> str:
     if len(text) <= width:
         return text
     import textwrap
-    return "\n".join(textwrap.wrap(text, width))
+    return "\n".join(part if len(part) <= width else "\n".join(textwrap.wrap(part, width))
+                     for part in text.split("\n"))
 
 
 # --------------------------------------------------------------------------- compare
@@ -348,4 +540,5 @@ def write_compare_run(comparison: Comparison, out_root="runs",
     return runs.write_run(comparison.scene, comparison.evaluation, comparison.metrics,
                           out_root=out_root, command_line=command_line, kind="compare",
                           figures=figures, table=comparison.table(), folder=folder,
-                          scene_summary=summarise_scene(comparison.scene) if figures else "")
+                          scene_summary=summarise_scene(comparison.scene) if figures else "",
+                          verdict=verdict_lines(comparison.metrics))
