@@ -144,3 +144,43 @@ def test_scene_block_wraps_instead_of_scrolling(result):
     summary = "warning: " + "a very long line " * 40
     page = compare_report(result.evaluation, summary_rows(result.metrics), summary, {})
     assert '<pre class="wrap">' in page and "pre.wrap { white-space: pre-wrap;" in page
+
+
+# ------------------------------------------------------------------ one summary
+def test_convergence_figure_draws_the_summary_statistics(result):
+    from dataclasses import replace
+
+    from adapt.report import figures as F
+    ev = result.evaluation
+    plain = F.convergence_figure(ev)
+    drawn = F.convergence_figure(ev, result.metrics)
+    for a, b in zip(plain.axes[0].lines + plain.axes[1].lines,
+                    drawn.axes[0].lines + drawn.axes[1].lines):
+        np.testing.assert_array_equal(a.get_ydata(), b.get_ydata())
+    # with a summary the figure reads its numbers there, not from the trials
+    spoilt = replace(ev, processors=[replace(p, sinr=p.sinr * 0 + 1.0) for p in ev.processors])
+    again = F.convergence_figure(spoilt, result.metrics)
+    for a, b in zip(drawn.axes[0].lines, again.axes[0].lines):
+        np.testing.assert_array_equal(a.get_ydata(), b.get_ydata())
+    curve = result.metrics["processors"][2]["curve"]
+    assert len(curve["sinr_db_p10"]) == len(curve["snapshots"]) == len(curve["sinr_db_p90"])
+
+
+def test_the_scene_is_parsed_once_per_compare(tmp_path, monkeypatch):
+    import yaml
+
+    from adapt.scene import files
+    path = tmp_path / "s.yaml"
+    path.write_text(yaml.safe_dump(dict(SCENE, trials=3, snapshots=16)))
+    calls = []
+    real = files.parse_scene
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(files, "parse_scene", counted)
+    compare(path, threads=1)
+    assert len(calls) == 1
+    compare(files.load_scene(path), trials=2, threads=1)    # an override is re-validated
+    assert len(calls) == 3

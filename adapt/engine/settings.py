@@ -98,12 +98,15 @@ def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None
     t_ = whole_count(scene.trials if trials is None else trials, "trials", MAX_TRIALS)
     k_ = whole_count(scene.snapshots if snapshots is None else snapshots, "snapshots", MAX_SNAPSHOTS)
     s_ = whole_count(scene.seed if seed is None else seed, "seed", 2 ** 63 - 1, low=0)
-    mapping = dict(scene.resolved) if scene.resolved else scene_to_mapping(scene)
     if processors is None:
         given = list(scene.processors)
     else:
         # the specs as given (they rebuild the same processors); objects by their spec
         given = [p.spec() if isinstance(p, Processor) else p for p in processors]
+    if scene.resolved and (t_, k_, s_) == (scene.trials, scene.snapshots, scene.seed) \
+            and given == list(scene.processors):
+        return scene, procs           # already the scene as run: it is parsed only once
+    mapping = dict(scene.resolved) if scene.resolved else scene_to_mapping(scene)
     mapping.update(trials=t_, snapshots=k_, seed=s_, processors=given)
     try:
         used = parse_scene(mapping, file=scene.source_file)

@@ -217,7 +217,24 @@ def _nan_stats(x: np.ndarray, axis: int = 0):
 
 
 # ---------------------------------------------------------------------- convergence
-def convergence_figure(evaluation) -> Figure:
+def _summary_curves(summary) -> dict:
+    """Per label ``(mean, p10, p90)`` of the output SINR in dB and the mean loss per
+    checkpoint, read from a compare summary (the ``metrics.json`` dictionary), so the
+    figure shows the statistics the table and CSV show, computed once; empty without
+    a summary."""
+    if not summary:
+        return {}
+    out = {}
+    for p in summary.get("processors", ()):
+        c = p.get("curve", {})
+        if all(k in c for k in ("sinr_db_mean", "sinr_db_p10", "sinr_db_p90", "loss_db_mean")):
+            out[p["label"]] = tuple(np.array(c[k], dtype=float) for k in
+                                    ("sinr_db_mean", "sinr_db_p10", "sinr_db_p90",
+                                     "loss_db_mean"))
+    return out
+
+
+def convergence_figure(evaluation, summary: dict | None = None) -> Figure:
     """Output SINR (dB) against snapshots seen, one line per processor.
 
     Top panel: the mean over trials of the output SINR in dB (solid line), the band
@@ -226,8 +243,11 @@ def convergence_figure(evaluation) -> Figure:
     in dB at each checkpoint (a flat line when the scene is stationary). Bottom panel:
     the mean over trials of the loss against that optimum, dB. Snapshot axis is
     logarithmic. Checkpoints where the SINR is undefined (wanted source off) are gaps.
+    ``summary``: the compare summary whose statistics are drawn (computed from the
+    evaluation only when it is not given).
     """
     _check_evaluation(evaluation)
+    curves = _summary_curves(summary)
     cps = np.asarray(evaluation.checkpoints, dtype=float)
     styles = series_styles(p.label for p in evaluation.processors)
     fig, axes = new_figure(2, 1, size=(8.0, 6.2), height_ratios=(2.2, 1.0), sharex=True)
@@ -235,17 +255,22 @@ def convergence_figure(evaluation) -> Figure:
     single = len(cps) == 1
     for p in evaluation.processors:
         st = styles[p.label]
-        sinr_db = _db(p.sinr)
-        mean, lo, hi = _nan_stats(sinr_db)
+        if p.label in curves:
+            mean, lo, hi, loss_mean = curves[p.label]
+        else:
+            mean, lo, hi = _nan_stats(_db(p.sinr))
+            loss_mean, _, _ = _nan_stats(np.asarray(p.loss_db, dtype=float))
         kw = dict(color=st["color"], linestyle=st["linestyle"], linewidth=1.6)
         if single or len(cps) <= 12:
             kw.update(marker=st["marker"], markersize=3.5)
         top.plot(cps, mean, label=p.label, **kw)
         if evaluation.trials > 1:
             top.fill_between(cps, lo, hi, color=st["color"], alpha=0.15, linewidth=0)
-        loss_mean, _, _ = _nan_stats(np.asarray(p.loss_db, dtype=float))
         bottom.plot(cps, loss_mean, **kw)
-    opt_mean, _, _ = _nan_stats(_db(evaluation.optimum_sinr))
+    if summary and "optimum_curve" in summary:
+        opt_mean = np.array(summary["optimum_curve"]["sinr_db_mean"], dtype=float)
+    else:
+        opt_mean, _, _ = _nan_stats(_db(evaluation.optimum_sinr))
     top.plot(cps, opt_mean, color=REFERENCE_COLOUR, linestyle=(0, (5, 2)), linewidth=1.2,
              label="optimum (clairvoyant MVDR)",
              marker="_" if single else None)
@@ -594,9 +619,10 @@ FIGURE_TEXT = {
 }
 
 
-def standard_figures(evaluation) -> dict[str, bytes]:
+def standard_figures(evaluation, summary: dict | None = None) -> dict[str, bytes]:
     """The three figures of a comparison as PNG bytes: ``{"convergence": ..,
-    "beam_pattern": .., "null_depth": ..}`` (keys match :data:`FIGURE_TEXT`)."""
-    return {"convergence": save_png(convergence_figure(evaluation)),
+    "beam_pattern": .., "null_depth": ..}`` (keys match :data:`FIGURE_TEXT`);
+    ``summary``: the compare summary whose statistics the convergence figure draws."""
+    return {"convergence": save_png(convergence_figure(evaluation, summary)),
             "beam_pattern": save_png(beam_pattern_figure(evaluation)),
             "null_depth": save_png(null_depth_figure(evaluation))}

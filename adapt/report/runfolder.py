@@ -329,7 +329,7 @@ def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "
     figs = _module("figures")
     pngs: dict[str, bytes] = {}
     if figs is not None:
-        pngs = figs.standard_figures(evaluation)
+        pngs = figs.standard_figures(evaluation, metrics)
         for name, data in pngs.items():
             writer.bytes(f"{name}.png", data)
             written.append(f"{name}.png")

@@ -185,6 +185,8 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
                 "snapshots": [int(c) for c in checkpoints],
                 "normalized_sinr_mean": rho_stats["mean"].tolist(),
                 "sinr_db_mean": sinr_stats["mean"].tolist(),
+                "sinr_db_p10": sinr_stats["p10"].tolist(),
+                "sinr_db_p90": sinr_stats["p90"].tolist(),
                 "loss_db_mean": loss_stats["mean"].tolist(),
                 "loss_db_of_mean": loss_of_mean.tolist(),
                 "loss_db_p10": loss_stats["p10"].tolist(),
