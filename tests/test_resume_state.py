@@ -302,3 +302,17 @@ def test_cli_tampered_chunk_is_refused_with_exit_2(tmp_path, run_cli, monkeypatc
     chunk.write_bytes(bytes(data))
     code, _, err = run_cli(["compare", "--resume", folder, "--no-progress"])
     assert code == 2 and str(chunk) in err and "Traceback" not in err, err
+
+
+def test_staged_folder_is_absent_or_complete(tmp_path):
+    out = tmp_path / "set"
+    stage = runfolder.StagedFolder(out)
+    (stage.path / "a.txt").write_text("a")
+    assert not out.exists() and stage.path.name.startswith(".partial-set-")
+    assert stage.commit() == out and (out / "a.txt").read_text() == "a"
+    assert not stage.path.exists()
+    again = runfolder.StagedFolder(out)                   # the target is not empty
+    with pytest.raises(InputError, match="cannot move the finished set into place"):
+        again.commit()
+    again.discard()
+    assert not again.path.exists() and (out / "a.txt").exists()

@@ -38,6 +38,7 @@ import importlib.util
 import io as _io
 import json
 import math
+import os
 import shutil
 from pathlib import Path
 from typing import Callable, Sequence
@@ -48,7 +49,7 @@ from adapt import io
 from adapt.errors import InputError
 from adapt.report.numbers import format_number, format_range
 
-__all__ = ["RunWriter", "start_run_folder", "open_for_resume", "finish_seal",
+__all__ = ["RunWriter", "StagedFolder", "start_run_folder", "open_for_resume", "finish_seal",
            "remove_if_empty", "RESUME_FILE", "MARKER", "PARTIAL", "RESUME_STATE", "write_run",
            "write_scene_yaml", "write_curves_csv", "curves_rows",
            "CURVE_COLUMNS", "write_report_files", "summary_rows", "read_run", "RUN_FILES"]
@@ -223,6 +224,41 @@ class RunWriter:
         io.write_manifest(self.folder, info, exclude=RESUME_STATE)
         finish_seal(self.folder)
         return self.folder
+
+
+class StagedFolder:
+    """A folder built under a temporary sibling name (``.partial-NAME-PID``) and moved
+    into place whole by :meth:`commit`, so ``out`` either does not exist or is complete
+    (the life cycle of a reference set, :func:`adapt.studies.reference.record`; its
+    files and manifest are the recorder's own). :meth:`discard` removes the temporary
+    folder after a failure or an interruption.
+
+    Parameters
+    ----------
+    out : path
+        The final folder: absent or empty.
+    """
+
+    def __init__(self, out):
+        self.out = Path(out)
+        self.path = self.out.parent / f"{io.TMP_PREFIX}{self.out.name}-{os.getpid()}"
+        if self.path.exists():
+            shutil.rmtree(self.path)
+        self.path.mkdir()
+
+    def commit(self) -> Path:
+        """Move the finished folder into place (``os.rename``: replaces an empty folder,
+        refuses a non-empty one, InputError then)."""
+        try:
+            os.rename(self.path, self.out)
+        except OSError as exc:
+            raise InputError(f"cannot move the finished set into place ({exc.strerror}); "
+                             "was the folder filled meanwhile?", file=str(self.out)) from None
+        return self.out
+
+    def discard(self) -> None:
+        """Remove the temporary folder and everything in it."""
+        shutil.rmtree(self.path, ignore_errors=True)
 
 
 #: files every run folder has (figures and report.html in addition when available)

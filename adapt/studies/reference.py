@@ -108,6 +108,7 @@ from adapt.io import (
 from adapt.processors import Context, Processor, parse_spec, run_processors
 from adapt.processors.base import normalised_checkpoints
 from adapt.report.junit import TestOutcome, write_junit
+from adapt.report.runfolder import StagedFolder
 from adapt.scene.files import scene_to_mapping
 from adapt.scene.model import Scene
 from adapt.streams.snapshots import Block, TrialBatch
@@ -473,10 +474,8 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     sinr_db = to_db(output_sinr(weights, steer_b, cov_b, power[None, :]))   # (T, C)
 
     versions = library_versions()
-    tmp = out.parent / f".partial-{out.name}-{os.getpid()}"
-    if tmp.exists():
-        shutil.rmtree(tmp)
-    tmp.mkdir()
+    stage = StagedFolder(out)            # the shared run-folder life cycle
+    tmp = stage.path
     try:
         names = [f"case-{i:04d}" for i in range(t_)]
         for i, name in enumerate(names):
@@ -524,13 +523,9 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
         write_json(tmp / "reference.json", info)
         write_manifest(tmp, {"format": FORMAT, "format_version": FORMAT_VERSION,
                              "versions": versions})
-        try:
-            os.rename(tmp, out)           # replaces an empty folder, refuses a non-empty one
-        except OSError as exc:
-            raise InputError(f"cannot move the finished set into place ({exc.strerror}); "
-                             "was the folder filled meanwhile?", file=str(out)) from None
+        stage.commit()                    # replaces an empty folder, refuses a non-empty one
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        stage.discard()
         raise
     return out
 
