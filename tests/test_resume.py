@@ -12,7 +12,6 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -148,25 +147,43 @@ def test_sizing_interrupted_and_resumed_is_identical(tmp_path):
 
 
 # ------------------------------------------------------------------ command line
+#: the child: restores the default SIGINT action (a parent shell that started the
+#: suite in the background leaves SIGINT ignored), then runs the command; after its
+#: first chunk is stored it says READY and waits, so the signal lands at a known point
+_CHILD = """
+import signal, sys, time
+signal.signal(signal.SIGINT, signal.default_int_handler)
+from adapt.engine import chunks
+save = chunks.ChunkStore.save
+said = []
+def save_then_wait(self, first, count, arrays):
+    path = save(self, first, count, arrays)
+    if not said:
+        said.append(1)
+        print("READY", flush=True)
+        time.sleep(120)
+    return path
+chunks.ChunkStore.save = save_then_wait
+from adapt.cli.main import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
 def _start(argv, tmp_path) -> subprocess.Popen:
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-    return subprocess.Popen([sys.executable, "-m", "adapt", *map(str, argv)], cwd=tmp_path,
+    return subprocess.Popen([sys.executable, "-c", _CHILD, *map(str, argv)], cwd=tmp_path,
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
 def _stop_after_first_chunk(proc, out_root: Path, sig) -> tuple[int, str, Path]:
-    deadline = time.monotonic() + 60
-    folder = None
-    while time.monotonic() < deadline and proc.poll() is None:
-        chunks = list(out_root.glob(f"*/{PARTIAL}/chunk-*.npz"))
-        if chunks:
-            folder = chunks[0].parent.parent
-            break
-        time.sleep(0.01)
-    assert folder is not None, "no chunk was written (or the run ended first)"
+    line = proc.stdout.readline()           # blocks until the child is ready (or ends)
+    if line.strip() != "READY":
+        out, err = proc.communicate(timeout=60)
+        raise AssertionError(f"the child ended before its first chunk: {line}{out}{err}")
+    (chunk,) = out_root.glob(f"*/{PARTIAL}/chunk-*.npz")
     proc.send_signal(sig)
     out, err = proc.communicate(timeout=60)
-    return proc.returncode, err, folder
+    return proc.returncode, err, chunk.parent.parent
 
 
 def _check_incomplete(folder: Path, kind: str, err: str) -> None:
