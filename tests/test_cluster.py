@@ -22,6 +22,8 @@ from adapt.scene.files import parse_scene
 from adapt.studies.compare import TAIL, compare
 from adapt.studies.sizing import size
 
+pytestmark = pytest.mark.slow          # local Dask clusters: seconds to start each
+
 SCENE = {
     "name": "cluster check",
     "array": {"layout": "line", "elements": 6, "spacing": 0.5,

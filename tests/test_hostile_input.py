@@ -203,6 +203,7 @@ sys.exit(code)
 """
 
 
+@pytest.mark.slow
 def test_long_line_just_under_the_limit(tmp_path):
     # a real process: peak resident memory of the whole CLI (VmHWM, which
     # unlike wait4's ru_maxrss does not inherit the forking parent's size), for a scene

@@ -270,6 +270,7 @@ def test_png_is_deterministic_and_threads_work(stationary):
     assert out[0] == out[1] and out[0][:8] == PNG_SIGNATURE
 
 
+@pytest.mark.slow
 def test_no_pyplot_state():
     code = ("import sys, adapt.report.figures as F\n"
             "fig, ax = F.new_figure(); ax.plot([1, 2]); F.save_png(fig)\n"

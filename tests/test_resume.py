@@ -196,6 +196,7 @@ def _check_incomplete(folder: Path, kind: str, err: str) -> None:
     assert "Traceback" not in err
 
 
+@pytest.mark.slow
 def test_ctrl_c_during_compare_then_resume(tmp_path, run_cli):
     scene_file = tmp_path / "slow.yaml"
     scene_file.write_text(yaml.safe_dump(SLOW), encoding="utf-8")
@@ -230,6 +231,7 @@ def test_ctrl_c_during_compare_then_resume(tmp_path, run_cli):
     assert code == 2 and "already complete" in msg
 
 
+@pytest.mark.slow
 def test_sigterm_during_size_then_resume(tmp_path, run_cli):
     scene_file = tmp_path / "slow.yaml"
     scene_file.write_text(yaml.safe_dump(SLOW), encoding="utf-8")

@@ -325,6 +325,7 @@ def test_jammer_rich_is_as_described():
     assert scene_warnings(scene) == []
 
 
+@pytest.mark.slow
 def test_check_via_subprocess():
     proc = subprocess.run([sys.executable, "-m", "adapt", "check",
                            str(SCENES / "jammer_rich.yaml")],
