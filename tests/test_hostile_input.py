@@ -125,6 +125,7 @@ def _one_error_line(code, out, err):
     return lines[0]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("name", list(CASES))
 def test_hostile_scene_refused_through_cli(name, tmp_path, run_cli, monkeypatch):
     content, words = CASES[name]

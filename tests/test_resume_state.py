@@ -316,3 +316,16 @@ def test_staged_folder_is_absent_or_complete(tmp_path):
         again.commit()
     again.discard()
     assert not again.path.exists() and (out / "a.txt").exists()
+
+
+@pytest.mark.parametrize("change, where", [({"processors": 5}, "settings.processors"),
+                                           ({"chunk": -2}, "settings.chunk"),
+                                           ({"chunk": "x"}, "settings.chunk")])
+def test_cli_bad_size_resume_settings_are_refused(tmp_path, run_cli, change, where):
+    settings = {"processors": ["smi"], "snapshots": "4:16", "trials": 4, "seed": 1,
+                "target_loss_db": 3.0, "fraction": 0.9, "chunk": None, "draw": "samples",
+                "scene": parse_scene(QUICK).resolved}
+    folder = runfolder.start_run_folder(tmp_path / "runs", "x", "size",
+                                        dict(settings, **change))
+    code, _, err = run_cli(["size", "--resume", folder, "--no-progress"])
+    assert code == 2 and where in err and "Traceback" not in err, err

@@ -198,6 +198,12 @@ def resume(args, kind: str, refused: dict, execution: dict, execute_run, needs=(
         if key not in settings:
             raise InputError("the resume record lacks a setting this command needs",
                              file=where, path=f"settings.{key}")
+    procs = settings.get("processors")
+    if procs is not None and not (isinstance(procs, list)
+                                  and all(isinstance(p, (str, dict)) for p in procs)):
+        raise InputError("not a list of processor specs", file=where,
+                         path="settings.processors", value=procs,
+                         allowed="null or a list of specs")
     chunk = settings.get("chunk")
     if chunk is not None and (isinstance(chunk, bool) or not isinstance(chunk, int)
                               or chunk < 1):
