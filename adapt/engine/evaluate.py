@@ -261,7 +261,7 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     for i, (p, res) in enumerate(zip(processors, results)):
         w = res.weights                                            # (T, C, N)
         if not drawn:
-            require_bounded(p, i, w, r_in, a_d, p_d, cps)
+            require_bounded(p, i, w, r_in, a_d, p_d, checkpoints)
         if drawn:
             sinr = _stationary_sinr(w, a_d[:, 0], r_in[:, 0], p_d[0])
         elif sc.stationary:

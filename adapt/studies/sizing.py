@@ -605,9 +605,9 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message=".*sample covariance is singular",
                                     category=RuntimeWarning)
-            ev = evaluate(used, procs, points, chunk=chunk, tail=0, progress=None,
-                          workers=workers, scheduler=scheduler, store=None, draw=draw,
-                          threads=threads)
+            ev = run_trials(used, procs, points, chunk=chunk, tail=0, progress=None,
+                            workers=workers, scheduler=scheduler, store=None, draw=draw,
+                            threads=threads)
 
     facts = theory.scene_facts(used)
     opt = np.asarray(ev.optimum_sinr, dtype=float)
