@@ -17,6 +17,12 @@ from adapt.numerics import kernels as _kernels
 HAVE_NUMBA = importlib.util.find_spec("numba") is not None
 
 
+@pytest.fixture(autouse=True)
+def _compiled_kernels(monkeypatch):
+    # these tests are of the compiled kernel: rls_block runs its numpy twin otherwise
+    monkeypatch.setenv("ADAPT_KERNELS", "numba")
+
+
 def _textbook(p0, w0c, x, d, lam):
     """Haykin's RLS table, one trial at a time: pi = P x, k = pi / (lam + x^H pi),
     e = d - w^H x, w += k e^*, P = (P - k pi^H) / lam. Returns the weights after every

@@ -189,12 +189,12 @@ def span_sums(covariance: np.ndarray, streams: DrawStreams,
     """(T, S, N, N) independent draws of ``sum x x^H`` over spans of ``lengths`` (S,)
     snapshots of CN(0, R) data, R = ``covariance`` (T, N, N) Hermitian positive definite,
     or (1, N, N) shared by every trial: ``L_R A A^H L_R^H`` with A from
-    :func:`bartlett_factors`. With the compiled kernels on (:mod:`adapt.numerics.kernels`) the
-    same draws are combined in a compiled loop that skips the triangles' zeros (equal to
-    rounding); its sums are exactly Hermitian.
+    :func:`bartlett_factors`, combined by :func:`adapt.numerics.kernels.wishart_spans`
+    (compiled: a loop that skips the triangles' zeros, equal to rounding, exactly
+    Hermitian sums; else batched numpy products).
     ``cumulative``: the running totals instead, entry s the sum over spans 0..s (the
-    growing-window sums; ``np.cumsum`` order). ``scratch``: a dict whose buffers the
-    compiled path reuses from call to call (the result is then a view into it, valid
+    growing-window sums; ``np.cumsum`` order). ``scratch``: a dict whose buffers are
+    reused from call to call (the result is then a view into it, valid
     until the next call with the same dict)."""
     r = np.asarray(covariance)
     if r.ndim != 3 or r.shape[1] != r.shape[2] or r.shape[0] not in (1, len(streams)):
@@ -202,14 +202,10 @@ def span_sums(covariance: np.ndarray, streams: DrawStreams,
                          f"or (1, N, N) shared by all, got {r.shape}")
     chol = np.linalg.cholesky(r)                                   # (T or 1, N, N)
     n = r.shape[-1]
-    if _kernels.compiled():
-        gam, z, (si, ii, jj) = _draws(streams, lengths, n, scratch)
-        counts = np.bincount(si, minlength=len(lengths))
-        out = scratch_array(scratch, "sums", (len(streams), len(lengths), n, n), complex)
-        return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative, out=out)
-    g = chol[:, None] @ bartlett_factors(streams, lengths, n)
-    spans = g @ np.conj(np.swapaxes(g, -1, -2))
-    return np.cumsum(spans, axis=1) if cumulative else spans
+    gam, z, (si, ii, jj) = _draws(streams, lengths, n, scratch)
+    counts = np.bincount(si, minlength=len(lengths))
+    out = scratch_array(scratch, "sums", (len(streams), len(lengths), n, n), complex)
+    return _kernels.wishart_spans(chol, gam, z, ii, jj, counts, cumulative, out=out)
 
 
 class _Span:

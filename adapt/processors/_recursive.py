@@ -21,6 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.errors import SpecError
+from adapt.numerics.kernels import lms_pass, per_snapshot  # noqa: F401 - re-exported
 from adapt.processors.base import Context, Processor
 
 __all__ = ["local_marks", "per_snapshot", "lms_pass", "moments_of", "eigen_extent",
@@ -40,59 +41,6 @@ def local_marks(block, stops) -> np.ndarray:
     return marks
 
 
-def per_snapshot(array: np.ndarray) -> np.ndarray:
-    """(T, B, ...) block array -> contiguous (B, T, ...) copy, one snapshot per slice."""
-    return np.ascontiguousarray(np.swapaxes(np.asarray(array), 0, 1))
-
-
-def lms_pass(wc: np.ndarray, regressor: np.ndarray, marks: np.ndarray, gain,
-             desired: np.ndarray | None = None, direction_conj: np.ndarray | None = None
-             ) -> np.ndarray:
-    """Run the LMS-type recursion over one block for every trial at once.
-
-    wc: (T, M) conjugated weights ``conj(w)``, updated in place (the recursion state);
-    regressor: (B, T, M) vectors u(k), output ``y = w^H u``;
-    marks: sorted in-block indices after whose update the weight is recorded;
-    gain: scalar, (T,) per trial, or (B, T) per snapshot and trial (the step);
-    desired: (B, T) desired samples d(k), or None for d = 0 (minimise output power);
-    direction_conj: (B, T, M) ``conj(v(k))``, the update direction, or None for
-    ``conj(u(k))``.
-
-    Returns the weights w (not conjugated) after each mark, shape (T, len(marks), M).
-    Cost per snapshot: about 4 T M complex multiply-adds, no allocation of (T, M) arrays.
-    """
-    b, t_, m = regressor.shape
-    if wc.shape != (t_, m):
-        raise ValueError(f"weight state {wc.shape} does not match regressor {(t_, m)}")
-    if direction_conj is None:
-        direction_conj = np.conj(regressor)
-    gain = np.asarray(gain, dtype=float)
-    per_step = gain.ndim == 2
-    if per_step and gain.shape != (b, t_):
-        raise ValueError(f"per-snapshot gain must be {(b, t_)}, got {gain.shape}")
-    if gain.ndim == 1 and gain.shape != (t_,):
-        raise ValueError(f"per-trial gain must be ({t_},), got {gain.shape}")
-    out = np.empty((t_, len(marks), m), dtype=complex)
-    tmp = np.empty((t_, m), dtype=complex)
-    e = np.empty(t_, dtype=complex)
-    mark_list = [int(j) for j in marks]
-    nxt = 0
-    for j in range(b):
-        y = np.einsum("tm,tm->t", wc, regressor[j])
-        if desired is None:
-            np.negative(y, out=e)
-        else:
-            np.subtract(desired[j], y, out=e)
-        e *= gain[j] if per_step else gain
-        np.multiply(direction_conj[j], e[:, None], out=tmp)
-        wc += tmp
-        while nxt < len(mark_list) and mark_list[nxt] == j:
-            np.conjugate(wc, out=out[:, nxt, :])
-            nxt += 1
-    return out
-
-
-# ---------------------------------------------------------------------- stability checks
 def moments_of(context: Context) -> np.ndarray:
     """Snapshot indices at which to check covariances (context.moments or [0])."""
     k = getattr(context, "moments", None)

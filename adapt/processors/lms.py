@@ -41,9 +41,7 @@ from adapt.numerics import kernels as _kernels
 from adapt.processors._recursive import (
     AutoStep,
     bounded_steps,
-    lms_pass,
     local_marks,
-    per_snapshot,
     starting_weights,
 )
 from adapt.processors.base import Context, Parameter
@@ -84,8 +82,5 @@ class LeastMeanSquares(AutoStep):
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
         marks = local_marks(block, stops)
-        if _kernels.compiled():
-            return _kernels.lms_block(self._wc, block.data, marks, gain=self._steps,
-                                      desired=block.reference)
-        return lms_pass(self._wc, per_snapshot(block.data), marks, self._steps,
-                        desired=per_snapshot(block.reference))
+        return _kernels.lms_block(self._wc, block.data, marks, gain=self._steps,
+                                  desired=block.reference)

@@ -26,16 +26,10 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
-from adapt.processors._recursive import lms_pass, local_marks, per_snapshot, starting_weights
+from adapt.numerics.kernels import normalised_gain  # noqa: F401 - re-exported
+from adapt.processors._recursive import local_marks, starting_weights
 from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors.lms import INITIAL_HELP
-
-
-def normalised_gain(x: np.ndarray, step: float, eps: float) -> np.ndarray:
-    """NLMS gain ``step / (eps + |x|^2)`` for (B, T, M) vectors -> (B, T)."""
-    power = (np.einsum("...m,...m->...", x.real, x.real)
-             + np.einsum("...m,...m->...", x.imag, x.imag))
-    return step / (eps + power)
 
 
 class NormalisedLms(Processor):
@@ -59,10 +53,6 @@ class NormalisedLms(Processor):
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
         marks = local_marks(block, stops)
-        if _kernels.compiled():
-            return _kernels.lms_block(self._wc, block.data, marks, gain=None,
-                                      desired=block.reference, step=self.params["step"],
-                                      eps=self.params["eps"])
-        x = per_snapshot(block.data)
-        gain = normalised_gain(x, self.params["step"], self.params["eps"])
-        return lms_pass(self._wc, x, marks, gain, desired=per_snapshot(block.reference))
+        return _kernels.lms_block(self._wc, block.data, marks, gain=None,
+                                  desired=block.reference, step=self.params["step"],
+                                  eps=self.params["eps"])

@@ -34,15 +34,9 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
-from adapt.processors._recursive import local_marks, per_snapshot, starting_weights
+from adapt.processors._recursive import local_marks, starting_weights
 from adapt.processors.base import Context, Parameter, Processor
 from adapt.processors.lms import INITIAL_HELP
-
-#: P is re-symmetrised after every this many snapshots (counted from the stream start);
-#: defined once, beside the compiled recursion that must agree with this path
-SYMMETRISE_EVERY = _kernels.SYMMETRISE_EVERY
-#: trials are processed in groups of about this many P-matrix entries (cache-sized)
-TRIAL_GROUP_VALUES = 1 << 16
 
 
 class RecursiveLeastSquares(Processor):
@@ -69,48 +63,6 @@ class RecursiveLeastSquares(Processor):
         self._wc = np.conj(self.initial_weights(context))
 
     def update(self, block, stops: np.ndarray) -> np.ndarray:
-        if _kernels.compiled():
-            return _kernels.rls_block(self._p, self._wc, block.data, block.reference,
-                                      float(self.params["forgetting"]), block.start,
-                                      local_marks(block, stops))
-        marks = [int(j) for j in local_marks(block, stops)]
-        x = per_snapshot(block.data)                          # (B, T, N)
-        d = per_snapshot(block.reference)                     # (B, T)
-        t_, n = self._wc.shape
-        out = np.empty((t_, len(marks), n), dtype=complex)
-        # trials in groups whose P matrices stay in cache over the block's snapshots
-        group = max(8, TRIAL_GROUP_VALUES // (n * n))
-        for lo in range(0, t_, group):
-            hi = min(t_, lo + group)
-            self._run_group(x[:, lo:hi], d[:, lo:hi], self._p[lo:hi], self._wc[lo:hi],
-                            marks, out[lo:hi], block.start)
-        return out
-
-    def _run_group(self, x, d, p, wc, marks, out, start) -> None:
-        """The recursion over one block for a group of trials; p, wc, out are views
-        updated in place."""
-        lam = float(self.params["forgetting"])
-        xc = np.conj(x)
-        outer = np.empty_like(p)
-        tmp = np.empty_like(wc)
-        nxt = 0
-        for j in range(x.shape[0]):
-            u = x[j]
-            pi = np.matmul(p, u[:, :, None])[:, :, 0]                   # P x
-            den = lam + np.einsum("tn,tn->t", xc[j], pi).real
-            e = d[j] - np.einsum("tn,tn->t", wc, u)                     # a priori error
-            # w += g e^*  <=>  conj(w) += conj(g) e, g = pi / den
-            np.multiply(np.conj(pi), (e / den)[:, None], out=tmp)
-            wc += tmp
-            # P <- (P - pi pi^H / den) / lambda, as a Hermitian outer product q q^H
-            q = pi * np.sqrt(1.0 / (den * lam))[:, None]
-            np.multiply(q[:, :, None], np.conj(q)[:, None, :], out=outer)
-            if lam != 1.0:
-                p *= 1.0 / lam
-            p -= outer
-            if (start + j + 1) % SYMMETRISE_EVERY == 0:
-                p += np.conj(np.swapaxes(p, 1, 2))
-                p *= 0.5
-            while nxt < len(marks) and marks[nxt] == j:
-                np.conjugate(wc, out=out[:, nxt, :])
-                nxt += 1
+        return _kernels.rls_block(self._p, self._wc, block.data, block.reference,
+                                  float(self.params["forgetting"]), block.start,
+                                  local_marks(block, stops))

@@ -35,53 +35,27 @@ tail and wedge branches).
 """
 from __future__ import annotations
 
-import math
 from typing import Sequence
 
 import numpy as np
 
+from adapt.numerics import kernels as _kernels
+from adapt.numerics.tables import (  # noqa: F401 - LAYERS, GAMMA_STEP re-exported
+    ACCEPT,
+    DENSITY,
+    GAMMA_STEP,
+    GOLDEN,
+    LAYERS,
+    SCALE,
+    TAIL_START,
+)
 from adapt.streams.seeding import seed_states
 
-__all__ = ["stream_keys", "fill", "draw", "gamma_fill", "LAYERS", "TAIL_START"]
+__all__ = ["stream_keys", "fill", "draw", "gamma_fill", "noisy_sources", "LAYERS", "TAIL_START"]
 
-#: number of ziggurat layers
-LAYERS = 256
-#: r: where the tail of the ziggurat's base layer starts (the standard-normal value for
-#: 256 layers, Marsaglia & Tsang 2000 give the 128-layer one, 3.442619855899)
-TAIL_START = 3.6541528853610088
-_GOLDEN = 0x9E3779B97F4A7C15
-#: odd multiplier of a gamma variate's attempt words (any odd 64-bit constant with well
-#: mixed bits serves; this one differs from the golden gamma so the two word families
-#: of one word never meet)
-GAMMA_STEP = 0xD1B54A32D192ED03
 _M52 = (1 << 52) - 1
 _LAST_INDEX = (1 << 63) - 1         # stream positions are signed 64-bit in the kernels
 _M64 = (1 << 64) - 1
-
-
-def _tables(n: int = LAYERS, r: float = TAIL_START):
-    """Ziggurat tables for f(x) = exp(-x^2/2): every layer (and the base with its tail)
-    has the area v = r f(r) + int_r^inf f. Returns (k, w, f): uint64 (n,) acceptance
-    bounds ``floor(2^52 x_{i+1} / x_i)``, float (n,) scales ``x_i / 2^52`` and float
-    (n + 1,) ``f(x_i)`` with x_0 = v / f(r) (the base's pseudo-width), x_1 = r, ...,
-    x_n = 0 (so f[n] = 1)."""
-    def f(x):
-        return math.exp(-0.5 * x * x)
-
-    v = r * f(r) + math.sqrt(math.pi / 2.0) * math.erfc(r / math.sqrt(2.0))
-    x = [v / f(r), r]
-    for _ in range(2, n):
-        x.append(math.sqrt(-2.0 * math.log(v / x[-1] + f(x[-1]))))
-    x.append(0.0)
-    scale = float(1 << 52)
-    k = np.array([int(scale * r * f(r) / v)] + [int(scale * x[i + 1] / x[i]) for i in range(1, n)],
-                 dtype=np.uint64)
-    w = np.array([xi / scale for xi in x[:n]])
-    fx = np.array([f(xi) for xi in x])
-    return k, w, fx
-
-
-ACCEPT, SCALE, DENSITY = _tables()
 _ACCEPT_SIGNED = ACCEPT.view(np.int64)          # all below 2**52: same values
 
 
@@ -120,7 +94,6 @@ def fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
     """Normals ``start .. start + M - 1`` of each stream into ``out`` (T, M) float64
     (C-contiguous; any array viewable so, e.g. a (T, B, N, 2) block reshaped), returned.
     Compiled when the kernels are on (:mod:`adapt.numerics.kernels`), else numpy."""
-    from adapt.numerics import kernels as _kernels
     keys = np.asarray(keys)
     _check(keys, start, out)
     if out.size == 0:
@@ -160,7 +133,6 @@ def gamma_fill(keys: np.ndarray, shapes: np.ndarray, out: np.ndarray) -> np.ndar
     c = 1/sqrt(9d), v = (1 + c x)^3 > 0, accept d v if u < 1 - 0.0331 x^4 or
     log u < x^2/2 + d (1 - v + log v). Checkable fact (tested): the variates pass a
     Kolmogorov-Smirnov test against ``scipy.stats.gamma`` for each shape."""
-    from adapt.numerics import kernels as _kernels
     keys = np.asarray(keys)
     _check(keys, 0, out)
     shapes = _check_shapes(shapes, out)
@@ -171,6 +143,26 @@ def gamma_fill(keys: np.ndarray, shapes: np.ndarray, out: np.ndarray) -> np.ndar
     else:
         _gamma_numpy(keys, shapes, out)
     return out
+
+
+def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
+                  steer: np.ndarray, env_d: np.ndarray, steer_d: np.ndarray,
+                  inter: np.ndarray, data: np.ndarray) -> None:
+    """Noise and fixed sources of a block, and the data with the wanted source added:
+    ``inter`` (T, B, N) <- ``scale`` x the noise (normals ``2(k N + e)`` and
+    ``2(k N + e) + 1`` of the streams ``keys`` (T, 2) for element e of snapshot k =
+    ``start ..``) plus ``env`` (T, B, J) x ``steer`` (T or 1, J, N); ``data`` (T, B, N)
+    <- ``inter + env_d`` (T, B) x ``steer_d`` (T or 1, N). Compiled in one pass when
+    the kernels are on (:func:`adapt.numerics.kernels.noisy_sources`), else
+    :func:`fill` and :func:`adapt.numerics.kernels.add_sources` twice: the same
+    operations in the same order, so the same values."""
+    if _kernels.compiled():
+        _kernels.noisy_sources(keys, start, scale, env, steer, env_d, steer_d, inter, data)
+        return
+    t_, b_, n = inter.shape
+    fill(keys, int(start) * n * 2, inter.view(np.float64).reshape(t_, b_ * n * 2))
+    _kernels.add_sources(inter, scale, env, steer)
+    _kernels.add_sources(inter, 1.0, env_d[..., None], steer_d[:, None, :], out=data)
 
 
 # --------------------------------------------------------------------------- numpy path
@@ -190,7 +182,7 @@ def _unit(u: np.ndarray) -> np.ndarray:
 
 
 def _aux(u: np.ndarray, m: np.ndarray) -> np.ndarray:
-    return _mix64(u + m * np.uint64(_GOLDEN))
+    return _mix64(u + m * np.uint64(GOLDEN))
 
 
 def _fast(u: np.ndarray):

@@ -463,8 +463,8 @@ class TrialBatch:
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
             return scratch_array(kept, name, shape, dtype)
 
-        # one compiled pass forms noise, fixed sources and the data (no moving sources)
-        fused = _kernels.compiled() and not moving and desired_a is not None and sc.noise.plain
+        # one pass forms noise, fixed sources and the data (no moving sources)
+        fused = not moving and desired_a is not None and sc.noise.plain
         noise_scale = np.sqrt(0.5) if sc.noise.plain else 1.0
         diffuse_keys = keys_for(_DIFFUSE_KEY) if sc.noise.diffuse else None
 
@@ -482,8 +482,8 @@ class TrialBatch:
                 data = take("data", interference.shape, complex)
                 env_f, steer_f = (env, fixed_a) if fixed else \
                     (np.empty((self.trials, size, 0), complex), np.empty((1, 0, n), complex))
-                _kernels.noisy_sources(noise_keys, start, np.sqrt(0.5), env_f, steer_f,
-                                       reference, desired_a, interference, data)
+                normals.noisy_sources(noise_keys, start, np.sqrt(0.5), env_f, steer_f,
+                                      reference, desired_a, interference, data)
             else:
                 z = take("noise", (self.trials, size, n, 2), float)
                 # normals (k n + e) 2 + (0, 1) of the noise stream: element e, snapshot k
