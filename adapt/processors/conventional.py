@@ -18,7 +18,6 @@ import threading
 import warnings
 
 import numpy as np
-from scipy.signal import windows
 
 from adapt.errors import SpecError
 from adapt.processors.base import Context, Parameter, Processor
@@ -28,10 +27,13 @@ from adapt.processors.base import Context, Parameter, Processor
 _QUIET = threading.Lock()
 
 
-def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: int) -> np.ndarray:
+def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: int,
+                  layout_only: bool = False) -> np.ndarray:
     """Real amplitude taper (N,) for a line (along x) or a grid (x-z plane, separable).
 
     Raises ValueError for other layouts, where no standard taper applies.
+    ``layout_only``: check the layout only and return ones (the windows' library,
+    scipy.signal, is slow to import and not needed for the check).
     """
     pos = np.asarray(positions, float)
     n = len(pos)
@@ -46,6 +48,9 @@ def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: i
         steps = np.diff(values)
         if not np.allclose(steps, steps[0], rtol=1e-6, atol=1e-9):
             raise ValueError("a taper needs uniformly spaced elements along each axis")
+        if layout_only:
+            return np.ones(len(coord))
+        from scipy.signal import windows  # imported when a taper is computed
         if taper == "chebyshev":
             with _QUIET, warnings.catch_warnings():   # scipy: spectral-analysis use only
                 warnings.simplefilter("ignore", UserWarning)
@@ -81,16 +86,17 @@ class Conventional(Processor):
                           low=1, high=64),
     }
 
-    def check(self, context: Context) -> None:
+    def check(self, context: Context, layout_only: bool = True) -> None:
         try:
             self._taper = taper_weights(context.positions, self.params["taper"],
-                                        self.params["sidelobe_db"], self.params["nbar"])
+                                        self.params["sidelobe_db"], self.params["nbar"],
+                                        layout_only=layout_only)
         except ValueError as exc:
             raise SpecError(str(exc), path="taper", value=self.params["taper"],
                             allowed="none for this array") from None
 
     def begin(self, context: Context) -> None:
-        self.check(context)                  # the taper belongs to this context's array
+        self.check(context, layout_only=False)   # the taper belongs to this context's array
         w = self._taper * context.look
         w = w / np.conj(np.vdot(w, context.look))
         self._w = np.broadcast_to(w, (context.trials, context.elements))

@@ -1,0 +1,76 @@
+"""The compiled kernels load from numba's on-disk cache in a new process, and the
+commands that run no kernel import neither numba nor the heavy plotting and statistics
+libraries.
+
+Source of the cache check: numba's dispatcher statistics (``Dispatcher.stats``:
+``cache_hits`` and ``cache_misses`` count, per signature, the overloads loaded from or
+missing in the on-disk cache; numba documentation, "Notes on caching").
+"""
+from __future__ import annotations
+
+import importlib.util
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+HAVE_NUMBA = importlib.util.find_spec("numba") is not None
+ROOT = Path(__file__).resolve().parents[1]
+
+_REPORT = """
+import json
+from adapt.numerics import kernels
+kernels.warm_up()
+stats = {f.__name__: [sum(f.stats.cache_hits.values()), sum(f.stats.cache_misses.values())]
+         for f in kernels.loops().KERNELS}
+print(json.dumps(stats))
+"""
+
+
+def _run(code: str, **env) -> subprocess.CompletedProcess:
+    full = dict(os.environ, **env)
+    full.pop("ADAPT_KERNELS", None)
+    full.update(env)
+    return subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          cwd=ROOT, env=full, timeout=600)
+
+
+@pytest.mark.skipif(not HAVE_NUMBA, reason="numba not installed")
+def test_a_second_process_loads_every_kernel_from_the_cache():
+    # the first process compiles what the cache lacks (or loads it); the second must
+    # find every kernel's every signature there and compile nothing
+    first = _run(_REPORT)
+    assert first.returncode == 0, first.stderr
+    second = _run(_REPORT)
+    assert second.returncode == 0, second.stderr
+    stats = json.loads(second.stdout.strip().splitlines()[-1])
+    assert len(stats) == 8
+    for name, (hits, misses) in stats.items():
+        assert misses == 0 and hits >= 1, (name, hits, misses)
+
+
+_MODULES = """
+import sys
+from adapt.cli.main import main
+try:
+    code = main(ARGS)
+except SystemExit as exc:
+    code = exc.code
+heavy = [m for m in ("numba", "matplotlib", "scipy.stats", "scipy.signal")
+         if m in sys.modules]
+sys.stderr.write(repr(heavy))
+"""
+
+
+@pytest.mark.parametrize("args", [["--help"], ["--version"],
+                                  ["check", "scenes/jammer_rich.yaml"],
+                                  ["check", "scenes/grid.yaml", "scenes/ring.yaml"]])
+def test_quick_commands_import_no_heavy_library(args):
+    # --help, --version and check run no kernel and draw nothing: numba, matplotlib
+    # and scipy.stats stay unimported (they cost seconds of start-up)
+    done = _run(_MODULES.replace("ARGS", repr(args)))
+    assert done.returncode == 0, done.stderr
+    assert done.stderr.strip().splitlines()[-1] == "[]", done.stderr
