@@ -112,7 +112,7 @@ def png_size(data: bytes) -> tuple[int, int]:
 
 def check_png(data: bytes, width_in: float) -> None:
     w, h = png_size(data)
-    # 150 dpi figures; constrained layout keeps the canvas size (common practice)
+    # F.DPI figures; constrained layout keeps the canvas size (common practice)
     assert abs(w - width_in * F.DPI) <= 2, w
     assert 300 < h < 2000
     assert 5_000 < len(data) < 2_000_000

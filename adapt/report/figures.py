@@ -35,14 +35,15 @@ reproduces it from the conventional processor's final weights.
 from __future__ import annotations
 
 import io
-from typing import Iterable, Sequence
+from typing import TYPE_CHECKING, Iterable, Sequence
 
 import numpy as np
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
 
 from adapt.numerics.units import power_db as _db
 from adapt.scene import geometry
+
+if TYPE_CHECKING:                      # matplotlib is imported when a figure is drawn
+    from matplotlib.figure import Figure
 
 __all__ = [
     "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
@@ -74,7 +75,7 @@ INTERFERER_COLOUR = "#8C8C8C"
 #: coherent copies (multipath, repeaters) are marked apart from independent interferers
 COPY_COLOUR = "#B8561B"
 COPY_STYLE = (0, (1, 2))
-DPI = 150
+DPI = 100                         # 800 x 480 pixels at FIGURE_SIZE: sharp on screen, quick to render
 FIGURE_SIZE = (8.0, 4.8)          # inches
 FONT_SIZE = 9.0                   # points, axis labels and legends
 TITLE_SIZE = 10.5
@@ -113,6 +114,8 @@ def new_figure(rows: int = 1, columns: int = 1, size: tuple[float, float] | None
     ``rows == columns == 1``, else a 2-D array), no pyplot involved."""
     if rows < 1 or columns < 1:
         raise ValueError(f"a figure needs at least one row and column, got {rows} x {columns}")
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
     fig = Figure(figsize=size or FIGURE_SIZE, dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
     kw = {"height_ratios": list(height_ratios)} if height_ratios is not None else None
@@ -173,6 +176,8 @@ def save_png(fig, dpi: int = DPI) -> bytes:
 
     No timestamp is written, so the same figure gives the same bytes.
     """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
     if not isinstance(fig, Figure):
         raise ValueError(f"expected a matplotlib Figure, got {type(fig).__name__}")
     if not dpi or dpi <= 0:

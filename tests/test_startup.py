@@ -74,3 +74,15 @@ def test_quick_commands_import_no_heavy_library(args):
     done = _run(_MODULES.replace("ARGS", repr(args)))
     assert done.returncode == 0, done.stderr
     assert done.stderr.strip().splitlines()[-1] == "[]", done.stderr
+
+
+def test_report_modules_import_matplotlib_only_to_draw():
+    # the report modules load without matplotlib; drawing a figure imports it
+    code = ("import sys\n"
+            "import adapt.report.figures as F, adapt.report.html, adapt.report.runfolder\n"
+            "before = 'matplotlib' in sys.modules\n"
+            "fig, ax = F.new_figure()\n"
+            "print(before, 'matplotlib' in sys.modules, F.is_png(F.save_png(fig)))\n")
+    done = _run(code)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.split() == ["False", "True", "True"]
