@@ -135,8 +135,10 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
 def size(scene, specs: Sequence | None = None, **options):
     """Snapshot sizing sweep (as ``adapt size``): see :func:`adapt.studies.sizing.size`. Returns
     a :class:`adapt.studies.sizing.Sizing` with per-processor points, the required snapshot
-    counts with their uncertainty, and the theory beside the simulation."""
+    counts with their uncertainty, and the theory beside the simulation. ``draw`` is
+    ``auto`` unless given, as on the command line: drawn covariances where exact."""
     from adapt.studies.sizing import size as _size
+    options.setdefault("draw", "auto")
     return _size(_scene(scene), specs, **options)
 
 

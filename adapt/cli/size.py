@@ -52,12 +52,14 @@ def register(subparsers) -> None:
                    help="share of trials that must meet the target (default 0.9)")
     p.add_argument("--out", default=None, metavar="DIR",
                    help="folder that receives the run folder (default: runs)")
-    p.add_argument("--draw", choices=("samples", "covariance"), default=None,
-                   help="samples (default): simulate the snapshot streams; covariance: "
+    p.add_argument("--draw", choices=("auto", "samples", "covariance"), default=None,
+                   help="auto (default): covariance where it is exact, else samples; "
+                        "samples: simulate the snapshot streams; covariance: "
                         "draw each window's sample covariance directly from its complex-"
                         "Wishart law, the same statistics at a cost independent of the "
                         "snapshot count (Gaussian stationary scenes without quantisation, "
-                        "covariance-based processors only; no measured SINR)")
+                        "covariance-based processors only; no measured SINR). The summary "
+                        "and sizing.json say which was used and why")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     _run.add_options(p)
     p.set_defaults(func=run)
@@ -67,7 +69,7 @@ def command_line(args) -> str:
     """The command as a canonical, shell-quoted line (recorded in the manifest)."""
     fixed = {"--target-loss": args.target_loss or "3", "--fraction": args.fraction or "0.9",
              "--out": args.out or _run.DEFAULT_OUT}
-    if getattr(args, "draw", None) not in (None, "samples"):
+    if getattr(args, "draw", None) not in (None, "auto"):
         fixed["--draw"] = args.draw
     return _run.command_line("size", args, {"snapshots": "--snapshots", "trials": "--trials",
                                             "seed": "--seed"}, fixed)
@@ -84,7 +86,7 @@ def run(args) -> int:
                 "seed": _run.whole_number(args.seed, "--seed"),
                 "target_loss_db": _run.real_number(args.target_loss or "3", "--target-loss"),
                 "fraction": _run.real_number(args.fraction or "0.9", "--fraction"),
-                "chunk": execution["chunk"], "draw": args.draw or "samples"}
+                "chunk": execution["chunk"], "draw": args.draw or "auto"}
     scene = load_scene(args.scene)
     settings["scene"] = scene.resolved
     folder = _run.Folder("size", args.out, f"size-{scene.name}", settings, command_line(args))

@@ -484,6 +484,8 @@ def render_table(record: dict) -> str:
                 f"{_f(r['loss_db_p90'], '{:.2f}'):>6} "
                 f"{_f(100 * r['fraction_meeting_target'], '{:.0f} %') if r['fraction_meeting_target'] is not None else '-':>7} "
                 f"{_f(r['theory_normalized_sinr_mean'], '{:.4f}'):>8}")
+    if record.get("draw_reason"):
+        lines += ["", f"training data: {record['draw']} ({record['draw_reason']})"]
     lines += ["", "loss in dB; p10 = best 10 % of trials, p90 = worst 10 %; 'within' = "
               f"trials within {record['target_loss_db']:g} dB; theory = closed-form mean "
               "normalised SINR", "", "Recommendations:"]
@@ -532,6 +534,38 @@ def _number(value, name: str, low: float, high: float, low_open=False) -> float:
     return v
 
 
+#: ways of producing the training data :func:`size` accepts (``auto`` chooses)
+DRAW_CHOICES = ("auto", "samples", "covariance")
+
+
+def choose_draw(draw: str, scene: Scene, processors: Sequence[Processor]) -> tuple[str, str]:
+    """The way to produce the training data and why: ``(draw, reason)`` with draw
+    ``samples`` or ``covariance``.
+
+    ``auto`` takes the drawn covariances exactly where they are statistically exact: a
+    stationary scene, Gaussian training data, no ADC model and only covariance-based
+    processors (the conditions of :func:`adapt.engine.drawn.covariance_draw_refusal`; the
+    sample covariance of such data is complex Wishart, Goodman 1963), and the snapshot
+    streams otherwise. ``samples`` and ``covariance`` are taken as asked (``covariance``
+    is refused later where it does not apply). InputError for another value.
+    """
+    from adapt.engine.drawn import covariance_draw_refusal
+    if draw not in DRAW_CHOICES:
+        raise InputError("unknown way to draw the training data", path="draw", value=draw,
+                         allowed=", ".join(DRAW_CHOICES))
+    if draw == "samples":
+        return "samples", "samples requested: the snapshot streams are simulated"
+    if draw == "covariance":
+        return "covariance", ("covariance requested: window sample covariances drawn from "
+                              "their complex-Wishart law")
+    why = covariance_draw_refusal(scene, processors)
+    if why is None:
+        return "covariance", ("auto: stationary scene, Gaussian training data, no ADC model "
+                              "and covariance-based processors only, so the window sample "
+                              "covariances are drawn exactly from their complex-Wishart law")
+    return "samples", "auto: the snapshot streams are simulated, because " + why
+
+
 def size(scene, processors: Sequence | None = None, snapshots=None, trials: int | None = None,
          seed: int | None = None, target_loss_db: float = 3.0, fraction: float = 0.9,
          progress: Callable[[int], None] | None = None, *, chunk: int | None = None,
@@ -550,9 +584,11 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     chunk, threads, workers, scheduler, store, on_chunk: chunked execution on threads
     of this process or a Dask cluster and resumable runs, as in
     :func:`adapt.studies.compare.compare` (results never depend on them);
-    draw: ``samples`` (default) or ``covariance``: window covariances drawn directly from
-    the complex-Wishart law (:mod:`adapt.engine.drawn`; Gaussian stationary scenes, covariance
+    draw: ``samples`` (default here: simulate the snapshot streams), ``auto`` (the default
+    of ``adapt size`` and :func:`adapt.api.size`; see :func:`choose_draw`) or
+    ``covariance``: window covariances drawn directly from the complex-Wishart law (:mod:`adapt.engine.drawn`; Gaussian stationary scenes, covariance
     processors only), the same distribution at a cost independent of the snapshot count.
+    The record's ``draw`` says which was used and ``draw_reason`` why.
     InputError for bad values (exit code 2 on the command line).
     """
     from adapt.engine.settings import prepare_scene
@@ -583,6 +619,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         raise InputError("sizing needs at least 2 trials (standard errors, bootstrap)",
                          path="trials", value=used.trials, allowed="an integer >= 2")
     n = used.elements
+    draw, draw_reason = choose_draw(draw, used, procs)
     from adapt.engine.executors import check_cluster_options, check_threads
     from adapt.engine.settings import MAX_TRIALS, whole_count
     check_threads(threads, remote=workers is not None or scheduler is not None)
@@ -650,6 +687,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
         "trials": used.trials,
         "seed": used.seed,
         "draw": draw,
+        "draw_reason": draw_reason,
         "training": used.training,
         "optimum_sinr_db": 10 * math.log10(opt_mean) if opt_mean > 0 else None,
         "target_loss_db": target_loss_db,
