@@ -82,9 +82,11 @@ JAMMER_AZIMUTHS = (-60.0, -35.0, -15.0, 20.0, 40.0, 65.0)
 JAMMER_DB = 40.0
 SEED = 20240
 FULL = {"w1_trials": 2000, "w2_trials": 2000, "w2_snapshots": 4096, "w2_reference_trials": 8,
-        "w3_snapshots": 10_000_000, "w3_block": 65536}
+        "w3_snapshots": 10_000_000, "w3_block": 65536, "p_size_trials": 10_000,
+        "p_stream_snapshots": 10_000_000}
 QUICK = {"w1_trials": 200, "w2_trials": 100, "w2_snapshots": 1024, "w2_reference_trials": 2,
-         "w3_snapshots": 500_000, "w3_block": 65536}
+         "w3_snapshots": 500_000, "w3_block": 65536, "p_size_trials": 400,
+         "p_stream_snapshots": 500_000}
 W1_CHECKPOINTS = tuple(2 ** k for k in range(4, 11))          # 16 .. 1024
 
 
@@ -450,7 +452,7 @@ def w2_floor_kernels(trials: int, snapshots: int, spec: str, threads: int = 1,
 def kernel_compile_seconds() -> float | None:
     """Seconds to compile the numba kernels from scratch (a fresh cache folder, in a
     subprocess); None when the kernels are off or numba is absent."""
-    code = ("from adapt import _kernels; import sys; "
+    code = ("from adapt.numerics import kernels as _kernels; import sys; "
             "sys.stdout.write(repr(_kernels.warm_up() if _kernels.compiled() else -1.0))")
     with tempfile.TemporaryDirectory() as cache:
         env = dict(os.environ, NUMBA_CACHE_DIR=cache)
@@ -539,12 +541,136 @@ def machine() -> dict:
     return info
 
 
+# ----------------------------------------------------------------------------- processes
+ROOT = Path(__file__).resolve().parents[1]
+#: targets of whole processes, warm (seconds; the stream: snapshots/s and MB)
+P_TARGETS = {"help_seconds": 0.3, "check_seconds": 0.5, "compare_seconds": 2.0,
+             "size_speedup": 20.0, "stream_rate": 3_000_000, "stream_peak_mb": 300}
+
+
+def run_process(args: list, env: dict | None = None) -> dict:
+    """Run one command as a new process from the repository's top folder: wall seconds,
+    the process's peak resident memory (its own ``ru_maxrss``, from ``wait4``) and the
+    exit code. The command's output is discarded (kept in ``tail`` when it fails)."""
+    full = dict(os.environ, **(env or {}))
+    t0 = time.perf_counter()
+    with tempfile.TemporaryFile() as out:
+        proc = subprocess.Popen(args, cwd=ROOT, env=full, stdout=out, stderr=subprocess.STDOUT)
+        _, status, usage = os.wait4(proc.pid, 0)
+        seconds = time.perf_counter() - t0
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        out.seek(0)
+        tail = out.read()[-2000:].decode(errors="replace") if proc.returncode else ""
+    rec = {"seconds": seconds, "maxrss_mb": usage.ru_maxrss / 1024.0,
+           "returncode": proc.returncode}
+    if tail:
+        rec["tail"] = tail
+    return rec
+
+
+def _adapt(*words) -> list:
+    return [sys.executable, "-m", "adapt", *words]
+
+
+def _plain_w1_process(trials: int) -> dict:
+    """The W1 reference (:func:`w1_reference`, numpy only, no adapt) as a process of its
+    own, for ``trials`` trials."""
+    return run_process([sys.executable, str(Path(__file__).resolve()), "--plain-w1",
+                        str(trials)])
+
+
+def process_commands(z: dict, folder: Path) -> dict:
+    """The commands timed as whole processes: name -> argument list."""
+    from adapt.scene.files import dump_scene
+    size_scene = folder / "w1.yaml"
+    sc = scene(int(z["p_size_trials"]), W1_CHECKPOINTS[-1])
+    size_scene.write_text(dump_scene(sc))
+    out = str(folder / "runs")
+    checkpoints = ",".join(str(k) for k in W1_CHECKPOINTS)
+    return {
+        "help": _adapt("--help"),
+        "check": _adapt("check", "scenes/jammer_rich.yaml"),
+        "compare": _adapt("compare", "scenes/jammer_rich.yaml", "--no-progress", "--out", out),
+        "size": _adapt("size", str(size_scene), "-p", "smi", "-p", "smi loading_db=10",
+                       "--snapshots", checkpoints, "--no-progress", "--out", out),
+        "stream": _adapt("compare", "scenes/jammer_rich.yaml", "-p", "nlms", "--trials", "1",
+                         "--snapshots", str(int(z["p_stream_snapshots"])), "--no-progress",
+                         "--out", out),
+    }
+
+
+def processes(z: dict, say=print) -> dict:
+    """Whole processes, side by side in one run: cold (the first run after numba's cache
+    is emptied: a fresh ``NUMBA_CACHE_DIR``, so every kernel compiles) and warm (the
+    fastest of the runs after it, cache filled), and the plain numpy W1 script as a
+    process (its fastest of two runs, one before and one after adapt's)."""
+    out = {"cold": {}, "warm": {}}
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        cmds = process_commands(z, folder)
+        env = {"NUMBA_CACHE_DIR": str(folder / "numba-cache")}
+        plain = [_plain_w1_process(int(z["p_size_trials"]))]
+        for name, args in cmds.items():
+            out["cold"][name] = run_process(args, env)
+        for name, args in cmds.items():
+            repeats = 1 if name == "stream" else 3
+            out["warm"][name] = _fastest([run_process(args, env) for _ in range(repeats)])
+        plain.append(_plain_w1_process(int(z["p_size_trials"])))
+    out["plain_w1"] = _fastest(plain)
+    for phase in ("cold", "warm"):
+        rec = out[phase]
+        rec["size_speedup"] = out["plain_w1"]["seconds"] / rec["size"]["seconds"]
+        rec["stream_rate"] = z["p_stream_snapshots"] / rec["stream"]["seconds"]
+    w = out["warm"]
+    out["targets"] = {
+        "p_help_0.3s": w["help"]["seconds"] <= P_TARGETS["help_seconds"],
+        "p_check_0.5s": w["check"]["seconds"] <= P_TARGETS["check_seconds"],
+        "p_compare_2s": w["compare"]["seconds"] <= P_TARGETS["compare_seconds"],
+        "p_size_20x_plain": w["size_speedup"] >= P_TARGETS["size_speedup"],
+        "p_stream_3M_per_s": w["stream_rate"] >= P_TARGETS["stream_rate"],
+        "p_stream_under_300mb": w["stream"]["maxrss_mb"] < P_TARGETS["stream_peak_mb"],
+    }
+    bad = {f"{phase} {name}": r.get("tail", "") for phase in ("cold", "warm")
+           for name, r in out[phase].items() if isinstance(r, dict) and r.get("returncode")}
+    if bad:
+        raise RuntimeError("commands failed:\n" + "\n".join(f"{k}: {v}" for k, v in bad.items()))
+    return out
+
+
+def _run_p(z: dict, out: dict, say) -> None:
+    say(f"\nP whole processes (python -m adapt ..., from the repository's top folder; "
+        f"size: W1's scene at {z['p_size_trials']:,} trials, default settings; stream: "
+        f"{z['p_stream_snapshots']:,} snapshots of NLMS through compare)")
+    p = processes(z, say)
+    out["processes"] = p
+    say(f"  {'command':10s} {'cold s':>8s} {'warm s':>8s} {'warm MB':>8s}  target (warm)")
+    notes = {"help": f"<= {P_TARGETS['help_seconds']} s {_verdict(p['targets']['p_help_0.3s'])}",
+             "check": f"<= {P_TARGETS['check_seconds']} s "
+                      f"{_verdict(p['targets']['p_check_0.5s'])}",
+             "compare": f"<= {P_TARGETS['compare_seconds']} s "
+                        f"{_verdict(p['targets']['p_compare_2s'])}",
+             "size": f"{p['warm']['size_speedup']:.1f}x the plain script (cold "
+                     f"{p['cold']['size_speedup']:.1f}x); >= 20x "
+                     f"{_verdict(p['targets']['p_size_20x_plain'])}",
+             "stream": f"{p['warm']['stream_rate'] / 1e6:.2f} M snapshots/s (cold "
+                       f"{p['cold']['stream_rate'] / 1e6:.2f}); >= 3 M/s "
+                       f"{_verdict(p['targets']['p_stream_3M_per_s'])}; peak "
+                       f"{p['warm']['stream']['maxrss_mb']:.0f} MB < 300 MB "
+                       f"{_verdict(p['targets']['p_stream_under_300mb'])}"}
+    for name in ("help", "check", "compare", "size", "stream"):
+        say(f"  {name:10s} {p['cold'][name]['seconds']:8.2f} {p['warm'][name]['seconds']:8.2f} "
+            f"{p['warm'][name]['maxrss_mb']:8.0f}  {notes[name]}")
+    say(f"  {'plain W1':10s} {'':8s} {p['plain_w1']['seconds']:8.2f} "
+        f"{p['plain_w1']['maxrss_mb']:8.0f}  numpy script, one process, same trials")
+    out["targets"].update(p["targets"])
+
+
 # ----------------------------------------------------------------------------- driver
 def _verdict(ok: bool) -> str:
     return "PASS" if ok else "MISS"
 
 
-WORKLOADS = ("W1", "W2", "W3")
+WORKLOADS = ("W1", "W2", "W3", "P")
 
 
 def run(quick: bool = False, sizes: dict | None = None, say=print,
@@ -588,6 +714,8 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
         _run_w2(z, out, say)
     if "W3" in only:
         _run_w3(z, out, say)
+    if "P" in only:
+        _run_p(z, out, say)
     say("\ntargets: " + ", ".join(f"{k} {_verdict(v)}" for k, v in out["targets"].items()))
     return out
 
@@ -722,10 +850,15 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="scaled-down smoke check")
     ap.add_argument("--json", default="runs/benchmark.json", help="where to write the figures")
     ap.add_argument("--only", action="append", choices=WORKLOADS, metavar="W",
-                    help="run only this workload (W1, W2 or W3; repeatable)")
+                    help="run only this workload (W1, W2, W3 or P; repeatable)")
     ap.add_argument("--threads", type=int, default=None,
                     help="threads for the product and the floors (default: every usable core)")
+    ap.add_argument("--plain-w1", type=int, default=None, metavar="TRIALS",
+                    help=argparse.SUPPRESS)     # the W1 reference as a process (P)
     args = ap.parse_args(argv)
+    if args.plain_w1 is not None:
+        print(json.dumps(w1_reference(args.plain_w1)["mean_rho"]))
+        return 0
     figures = run(quick=args.quick, only=tuple(args.only) if args.only else WORKLOADS,
                   threads=args.threads)
     path = Path(args.json)

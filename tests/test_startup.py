@@ -86,3 +86,22 @@ def test_report_modules_import_matplotlib_only_to_draw():
     done = _run(code)
     assert done.returncode == 0, done.stderr
     assert done.stdout.split() == ["False", "True", "True"]
+
+
+def test_preload_imports_in_the_background_and_swallows_failures():
+    # compare and size import the plotting library while the trials run; a module that
+    # cannot be imported is left for the place that uses it to report
+    import threading
+
+    from adapt.cli import _run
+    sys.modules.pop("colorsys", None)
+    _run.preload("adapt_no_such_module", "colorsys")
+    for t in threading.enumerate():
+        if t.name == "adapt-preload":
+            t.join(timeout=60)
+    assert "colorsys" not in sys.modules      # stopped at the first failure
+    _run.preload("colorsys")
+    for t in threading.enumerate():
+        if t.name == "adapt-preload":
+            t.join(timeout=60)
+    assert "colorsys" in sys.modules

@@ -102,6 +102,24 @@ def command_line(command: str, args, options: dict, fixed: dict) -> str:
     return shlex.join(words)
 
 
+def preload(*modules: str) -> None:
+    """Import ``modules`` on a background thread while the trials run (the report's
+    plotting library takes most of a second to import, and the trials' threads spend
+    their time in compiled code and numpy, which release the GIL); an import that fails
+    there fails again, with its message, where the module is used."""
+    import importlib
+    import threading
+
+    def load():
+        for name in modules:
+            try:
+                importlib.import_module(name)
+            except Exception:            # noqa: BLE001 - reported where it is used
+                return
+
+    threading.Thread(target=load, name="adapt-preload", daemon=True).start()
+
+
 def progress_bar(args, total: int, desc: str):
     """A tqdm bar on stderr counting trial-snapshots (None with --no-progress; drawn
     only on a terminal)."""

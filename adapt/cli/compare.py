@@ -88,6 +88,7 @@ def _execute(args, folder, used, settings, execution, line) -> int:
         raise InputError("not a tail length", file=str(folder.path or "") + "/resume.json",
                          path="settings.tail", value=tail, allowed="an integer >= 0")
     bar = _run.progress_bar(args, used.trials * (used.snapshots + tail), "compare")
+    _run.preload("matplotlib.figure", "matplotlib.backends.backend_agg")
 
     def work(store):
         return compare(used, None, checkpoints=settings["checkpoints"], tail=tail,

@@ -105,6 +105,7 @@ def _resume(args, execution) -> int:
 def _execute(args, folder, scene, settings, execution, line) -> int:
     from adapt.studies.sizing import size, sweep_points, write_sizing_run
     bars = []
+    _run.preload("scipy.stats", "matplotlib.figure", "matplotlib.backends.backend_agg")
 
     def work(store):
         if not args.no_progress:

@@ -49,7 +49,6 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 import numpy as np
-from scipy import stats
 
 from adapt.engine.evaluate import Evaluation
 from adapt.engine.execute import run_trials
@@ -209,6 +208,7 @@ def clopper_pearson(successes, trials, level: float = CONFIDENCE) -> tuple[np.nd
     if np.any(m < 0) or np.any(m > n) or np.any(n < 1):
         raise ValueError("need 0 <= successes <= trials and trials >= 1")
     alpha = 1.0 - level
+    from scipy import stats  # slow to import: only where it is used
     with np.errstate(invalid="ignore"):
         lo = np.where(m > 0, stats.beta.ppf(alpha / 2, np.maximum(m, 1), n - m + 1), 0.0)
         hi = np.where(m < n, stats.beta.ppf(1 - alpha / 2, m + 1, np.maximum(n - m, 1)), 1.0)

@@ -48,7 +48,6 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 import numpy as np
-from scipy import integrate, stats
 
 from adapt.scene import geometry
 from adapt.scene.model import Scene
@@ -118,6 +117,7 @@ def rmb_quantile(q, k, n) -> np.ndarray:
     k = _counts(k, n)
     q = _check_q(q)
     q, k = np.broadcast_arrays(q, k)
+    from scipy import stats  # slow to import: only where it is used
     out = np.full(k.shape, np.nan)
     ok = k >= n
     out[ok] = stats.beta.ppf(q[ok], k[ok] - n + 2.0, n - 1.0)
@@ -151,6 +151,7 @@ def _signal_present_mean_one(k: float, n: int, s: float) -> float:
     a, b = k - n + 2.0, n - 1.0
     if s == 0.0:
         return a / (a + b)
+    from scipy import integrate, stats  # slow to import: only where it is used
     dist = stats.beta(a, b)
     lo, hi = dist.ppf(1e-13), dist.isf(1e-13)
     mode = min(max(dist.mean(), lo), hi)
