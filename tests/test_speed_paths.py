@@ -229,6 +229,21 @@ def test_benchmark_quick_functions_run_on_tiny_sizes():
     assert any("W2 recursive" in line for line in lines)
 
 
+def test_benchmark_times_whole_processes(tmp_path):
+    # workload P runs commands as processes of their own: wall time, peak memory and
+    # exit code of each (the full timings are the benchmark's, not a test's)
+    path = Path(__file__).resolve().parents[1] / "benchmarks" / "run.py"
+    spec = importlib.util.spec_from_file_location("adapt_benchmark_p", path)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    rec = bench.run_process(bench._adapt("--version"))
+    assert rec["returncode"] == 0 and rec["seconds"] > 0 and rec["maxrss_mb"] > 0
+    assert bench.run_process(bench._adapt("check", "no-such-scene.yaml"))["returncode"] == 2
+    cmds = bench.process_commands(bench.QUICK, tmp_path)
+    assert set(cmds) == {"help", "check", "compare", "size", "stream"}
+    assert (tmp_path / "w1.yaml").exists()
+
+
 def test_compiled_wishart_spans_match_numpy(monkeypatch):
     # the same draws combined by the compiled loop and by numpy matmuls agree to rounding
     rng = np.random.default_rng(4)
