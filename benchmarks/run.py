@@ -582,11 +582,17 @@ def _adapt(*words) -> list:
     return [sys.executable, "-m", "adapt", *words]
 
 
+#: the plain script runs on one core, as every reference here does (and its BLAS on
+#: one thread: on a shared 2-core machine, BLAS threads waiting for each other over
+#: 16 x 16 products made it many times slower, which would flatter adapt)
+_ONE_CORE = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+
+
 def _plain_w1_process(trials: int) -> dict:
     """The W1 reference (:func:`w1_reference`, numpy only, no adapt) as a process of its
-    own, for ``trials`` trials."""
+    own, for ``trials`` trials, on one core."""
     return run_process([sys.executable, str(Path(__file__).resolve()), "--plain-w1",
-                        str(trials)])
+                        str(trials)], _ONE_CORE)
 
 
 def process_commands(z: dict, folder: Path) -> dict:
