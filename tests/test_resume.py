@@ -247,7 +247,9 @@ def test_sigterm_during_size_then_resume(tmp_path, run_cli):
     assert code == 0, msg
     assert io.check_manifest(folder) == []
     _no_temporaries(folder)
-    plain = size(parse_scene(SLOW), ["rls", "smi loading_db=10"], snapshots="12:800:2")
+    # draw="auto": the command's default (the record says how the data were drawn, and why)
+    plain = size(parse_scene(SLOW), ["rls", "smi loading_db=10"], snapshots="12:800:2",
+                 draw="auto")
     got = json.loads((folder / "sizing.json").read_text())
     assert without_timing(got) == without_timing(plain.record)
 
