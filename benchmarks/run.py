@@ -2,7 +2,7 @@
 
     python benchmarks/run.py            # full sizes (about 6 minutes on 2 cores)
     python benchmarks/run.py --quick    # scaled-down smoke check (well under a minute)
-    python benchmarks/run.py --only W1  # selected workloads only (repeatable)
+    python benchmarks/run.py --only W1  # selected workloads only (repeatable; P: processes)
     python benchmarks/run.py --threads 1  # product and floors on one thread
 
 Workloads (16-element half-wavelength line, six 40 dB noise-like jammers, wanted source
@@ -20,6 +20,13 @@ broadside at 0 dB, training on interference plus noise):
   per snapshot), sliding-window SMI and NLMS: snapshots per second, and peak memory
   (tracemalloc peak of traced allocations, numpy's included, during the run; the
   process's maxrss is reported beside it). One trial is one chunk: one thread.
+* P whole processes (``python -m adapt ...`` from the top folder; the command-line run
+  includes it, :func:`run` only when asked): ``--help``, ``check``, ``compare`` of
+  jammer_rich, ``size`` of W1's scene at 10,000 trials with default settings against
+  the W1 reference as a plain numpy script process on one core, and a 10,000,000-
+  snapshot NLMS stream through ``compare``. Cold: the first run with an empty numba
+  cache (a fresh ``NUMBA_CACHE_DIR``, every kernel compiles); warm: the fastest of the
+  later runs. Wall seconds and the process's peak resident memory (GNU time).
 * Floors: the unavoidable work with the same libraries in the same run; the random
   numbers come from adapt's own counter-based generator (:mod:`adapt.streams.normals`, the
   fastest these libraries have; numpy's ``Generator.standard_normal`` is about 5x
@@ -38,7 +45,9 @@ run on one thread, as the hand-written scripts they stand for would. ``--threads
 sets the product's and the floors' thread count.
 
 Targets (PASS/MISS printed): W1 >= 20x its reference; W2 >= 20x its reference and within
-2x of its floor; W3 peak memory < 300 MB and NLMS >= 1,000,000 snapshots/s.
+2x of its floor; W3 peak memory < 300 MB and NLMS >= 1,000,000 snapshots/s; P (warm)
+``--help`` <= 0.3 s, ``check`` <= 0.5 s, ``compare`` <= 2 s, ``size`` >= 20x the plain
+script, the stream >= 3,000,000 snapshots/s in < 300 MB.
 
 Timing: wall-clock seconds; every run keeps the fastest of its repeats (the least
 disturbed by other work on a shared machine; every time is in the JSON): the W1
