@@ -55,6 +55,7 @@ _CHOICES = ("auto", "numpy", "numba")
 #: (cache-sized)
 TRIAL_GROUP_VALUES = 1 << 16
 _HAVE_NUMBA: bool | None = None
+_LOOPS = None                      # adapt.numerics.loops, once imported
 
 
 def mode() -> str:
@@ -66,24 +67,32 @@ def mode() -> str:
     return value
 
 
-def _numba_available() -> bool:
-    """Whether numba is installed, found without importing it (cheap, remembered)."""
-    global _HAVE_NUMBA
-    if _HAVE_NUMBA is None:
+def _load():
+    """:mod:`adapt.numerics.loops`, imported (with numba) on the first call, or None when
+    numba is absent or fails to import (any failure of numba's own import counts as
+    absent; a failure in the kernels' module is raised). Remembered; Python's import
+    lock makes concurrent first calls safe."""
+    global _HAVE_NUMBA, _LOOPS
+    if _LOOPS is None and _HAVE_NUMBA is not False:
         try:
             _HAVE_NUMBA = importlib.util.find_spec("numba") is not None
-        except (ImportError, ValueError):      # pragma: no cover - a broken install
+            if _HAVE_NUMBA:
+                import numba  # noqa: F401 - the slow import, here and only here
+        except Exception:                  # noqa: BLE001 - a broken install is an absent one
             _HAVE_NUMBA = False
-    return _HAVE_NUMBA
+        if _HAVE_NUMBA:
+            _LOOPS = importlib.import_module("adapt.numerics.loops")
+    return _LOOPS
 
 
 def compiled() -> bool:
     """True when the compiled kernels will run (numba present and not switched off).
-    Does not import numba."""
+    Imports numba (and the kernels) on the first call that may use them: ask only
+    where a compiled path is about to run."""
     m = mode()
     if m == "numpy":
         return False
-    if not _numba_available():
+    if _load() is None:
         if m == "numba":
             raise RuntimeError("ADAPT_KERNELS=numba but numba is not installed "
                                "(pip install 'adapt[fast]')")
@@ -92,16 +101,12 @@ def compiled() -> bool:
 
 
 def loops():
-    """The module of compiled kernels, :mod:`adapt.numerics.loops` (imports numba on the
-    first call; Python's import lock makes concurrent first calls safe). RuntimeError
-    when numba is missing."""
-    try:
-        return importlib.import_module("adapt.numerics.loops")
-    except ImportError as exc:
-        if exc.name is not None and exc.name.split(".")[0] == "numba":
-            raise RuntimeError("the compiled kernels need numba (pip install 'adapt[fast]')"
-                               ) from exc
-        raise
+    """The module of compiled kernels, :mod:`adapt.numerics.loops` (see
+    :func:`compiled`); RuntimeError when numba is missing."""
+    module = _load()
+    if module is None:
+        raise RuntimeError("the compiled kernels need numba (pip install 'adapt[fast]')")
+    return module
 
 
 def per_snapshot(array: np.ndarray) -> np.ndarray:
