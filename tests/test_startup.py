@@ -105,3 +105,25 @@ def test_preload_imports_in_the_background_and_swallows_failures():
         if t.name == "adapt-preload":
             t.join(timeout=60)
     assert "colorsys" in sys.modules
+
+
+def test_a_numba_that_fails_to_import_counts_as_absent():
+    # auto falls back to numpy (and the wrappers run their numpy twins); numba mode says
+    # why it cannot run
+    code = ("import sys, numpy as np\n"
+            "sys.modules['numba'] = None\n"
+            "from adapt.numerics import kernels\n"
+            "ok = not kernels.compiled()\n"
+            "x = np.ones((2, 3, 4), complex)\n"
+            "w = kernels.lms_block(np.zeros((2, 4), complex), x, [2], gain=0.1)\n"
+            "import os\n"
+            "os.environ['ADAPT_KERNELS'] = 'numba'\n"
+            "try:\n"
+            "    kernels.compiled()\n"
+            "    ok = False\n"
+            "except RuntimeError as exc:\n"
+            "    ok = ok and 'not installed' in str(exc)\n"
+            "print(ok, w.shape)\n")
+    done = _run(code)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "True (2, 1, 4)"
