@@ -432,6 +432,7 @@ class Law:
             t = t * (1.0 + s) / (1.0 + s * t)
         out = np.full(kk.shape, np.nan)
         if np.any(ok):
+            from scipy import stats  # slow to import: only where it is used
             out[ok] = stats.beta.sf(t, kk[ok] - self.elements + 2.0, self.elements - 1.0)
         return out
 
