@@ -586,8 +586,9 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     :func:`adapt.studies.compare.compare` (results never depend on them);
     draw: ``samples`` (default here: simulate the snapshot streams), ``auto`` (the default
     of ``adapt size`` and :func:`adapt.api.size`; see :func:`choose_draw`) or
-    ``covariance``: window covariances drawn directly from the complex-Wishart law (:mod:`adapt.engine.drawn`; Gaussian stationary scenes, covariance
-    processors only), the same distribution at a cost independent of the snapshot count.
+    ``covariance``: window covariances drawn directly from the complex-Wishart law
+    (:mod:`adapt.engine.drawn`; Gaussian stationary scenes, covariance processors
+    only), the same distribution at a cost independent of the snapshot count.
     The record's ``draw`` says which was used and ``draw_reason`` why.
     InputError for bad values (exit code 2 on the command line).
     """
