@@ -74,13 +74,14 @@ def real_number(text, option: str) -> float:
 def relocated(exc: InputError, options: dict) -> InputError:
     """The library's error re-addressed to the command-line option it came from:
     ``options`` maps library argument names to option texts; ``processors[i]...``
-    becomes ``--processor[i]...``."""
+    becomes ``--processor[i]...`` unless the error names a file (then the spec came from
+    the scene file's own ``processors:`` list and keeps that key path)."""
     path = exc.path or ""
     head = path.split(".")[0].split("[")[0]
     if head in options and path == head:
         return exc.__class__(exc.message, file=exc.file, path=options[head], value=exc.value,
                              allowed=exc.allowed)
-    if head == "processors":
+    if head == "processors" and not exc.file:
         return exc.__class__(exc.message, file=exc.file, path="--processor" + path[len(head):],
                              value=exc.value, allowed=exc.allowed)
     return exc

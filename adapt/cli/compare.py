@@ -32,8 +32,10 @@ def register(subparsers) -> None:
     p.add_argument("--trials", type=str, metavar="T", help="Monte Carlo trials (default: scene)")
     p.add_argument("--snapshots", type=str, metavar="K", help="snapshots per trial (default: scene)")
     p.add_argument("--seed", type=str, metavar="S", help="root random seed (default: scene)")
-    p.add_argument("--checkpoints", metavar="LIST",
-                   help="snapshot counts to score, e.g. 1,2,4,8,16 (default: 4 per octave)")
+    p.add_argument("--checkpoints", metavar="LIST|START:STOP:STEP",
+                   help="snapshot counts to score, e.g. 1,2,4,8,16, or every STEP snapshots "
+                        "from START to STOP, e.g. 100:4000:100 (STOP always included; "
+                        "default: 4 per octave)")
     p.add_argument("--out", default=None, metavar="DIR",
                    help="folder that receives the run folder (default: runs)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")

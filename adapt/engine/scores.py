@@ -30,8 +30,11 @@ __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
            "white_noise_gain", "white_noise_gain_db", "array_gain", "response_db",
            "responses_db", "loss_db_of", "mean_loss_db",
            "fraction_meeting", "first_checkpoint", "snapshots_to_target", "trial_summary",
+           "snapshots_staying_within",
            "azimuth_cut", "main_beam_peak", "pointing_error_deg", "peak_sidelobe_db",
-           "parabolic_peak"]
+           "parabolic_peak", "is_line_array", "plane_normal", "sphere_directions", "tangent_frame",
+           "direction_response", "main_beam_peak_2d", "pointing_error_2d_deg",
+           "peak_sidelobe_2d_db"]
 
 
 def _check_shapes(w: np.ndarray, a: np.ndarray, r: np.ndarray | None = None) -> None:
@@ -236,6 +239,38 @@ def snapshots_to_target(checkpoints, normalised: np.ndarray, target_db: float = 
     mean_ok = mean_loss_db(rho, axis=0) <= target_db
     frac_ok = fraction_meeting(per_trial, target_db, axis=0) >= fraction - 1e-12
     return first_checkpoint(c, mean_ok), first_checkpoint(c, frac_ok)
+
+
+def snapshots_staying_within(checkpoints, normalised: np.ndarray, target_db: float = 3.0,
+                             fraction: float = 0.9) -> tuple[int | None, int | None]:
+    """Convergence that lasts: (the checkpoint from which the mean loss
+    :func:`mean_loss_db` stays at most ``target_db`` through the last checkpoint, the
+    checkpoint from which at least ``fraction`` of the trials stay within it); None
+    when the last checkpoint itself misses the target.
+
+    Unlike :func:`snapshots_to_target` ("first reached"), a processor that meets the
+    target once and loses it again when the scene changes is not counted as converged
+    until it meets it for good. For a stationary scene whose mean loss falls
+    monotonically both agree (common practice: the settling time of a step response).
+    """
+    rho = np.asarray(normalised, dtype=float)
+    c = np.asarray(checkpoints)
+    if rho.ndim != 2 or rho.shape[1] != c.size:
+        raise ValueError(f"normalised SINR must be (trials, {c.size} checkpoints), got {rho.shape}")
+    if not 0 < fraction <= 1:
+        raise ValueError(f"fraction must be in (0, 1], got {fraction}")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        per_trial = -to_db(rho)
+    mean_ok = mean_loss_db(rho, axis=0) <= target_db
+    frac_ok = fraction_meeting(per_trial, target_db, axis=0) >= fraction - 1e-12
+
+    def settled(ok: np.ndarray):
+        if not ok[-1]:
+            return None
+        stays = np.flip(np.logical_and.accumulate(np.flip(ok)))      # ok from here on
+        return int(c[int(np.argmax(stays))])
+
+    return settled(mean_ok), settled(frac_ok)
 
 
 def trial_summary(values: np.ndarray, axis: int = 0) -> dict[str, np.ndarray]:
@@ -443,4 +478,322 @@ def peak_sidelobe_db(weights: np.ndarray, positions: np.ndarray, look_azimuth: f
     jl, jr = np.clip(j - 1, 0, m - 1), np.clip(j + 1, 0, m - 1)
     _, height = parabolic_peak(take(jl), take(j), take(jr))
     level = np.where(interior, np.maximum(height, take(j)), take(j))
+    return np.where(has, level - peak_db, np.nan)
+
+
+# --------------------------------------------------------------------------- 2-D patterns
+# A line responds only to the direction cosine along its axis, so its azimuth cut at the
+# look elevation holds every value of its pattern; a planar or 3-D array does not (a
+# jammer above the cut sits in a null the cut never crosses). For those the main beam
+# and the sidelobes are searched over the whole sphere of directions.
+
+def is_line_array(positions: np.ndarray, tol: float = 1e-9) -> bool:
+    """True when the (nominal) element positions lie on one straight line (or there is
+    a single element): the array's pattern is then a function of one direction cosine
+    and the azimuth cut describes it completely."""
+    pos = _nominal(positions)
+    if pos.shape[0] < 3:
+        return True
+    s = np.linalg.svd(pos - pos.mean(axis=0), compute_uv=False)
+    return bool(s[1] <= tol * max(float(s[0]), 1.0))
+
+
+def plane_normal(positions: np.ndarray, tol: float = 1e-9) -> np.ndarray | None:
+    """Unit normal of the plane holding the (nominal) element positions, or None when
+    they span three dimensions. A planar array cannot tell a direction from its mirror
+    image across that plane (the two give the same steering vector)."""
+    pos = _nominal(positions)
+    if pos.shape[0] < 3:
+        return None
+    _, s, vt = np.linalg.svd(pos - pos.mean(axis=0))
+    if s.size < 3 or s[2] <= tol * max(float(s[0]), 1.0):
+        return vt[-1] if s.size >= 3 else np.cross(vt[0], vt[1])
+    return None
+
+
+def _fold(u: np.ndarray, normal: np.ndarray | None, side: float) -> np.ndarray:
+    """Directions mirrored into the half-space ``side * (u . normal) >= 0`` (no change
+    without a plane)."""
+    if normal is None:
+        return u
+    h = u @ normal
+    return u - 2.0 * np.where(side * h < 0, h, 0.0)[..., None] * normal
+
+
+def sphere_directions(step_deg: float) -> np.ndarray:
+    """Unit vectors (D, 3) covering the sphere about every ``step_deg`` degrees.
+
+    A Fibonacci (golden-angle) lattice: D = ceil(4 pi / step^2) points of equal area,
+    with no crowding at the poles (Gonzalez, "Measurement of areas on a sphere using
+    Fibonacci and latitude-longitude lattices", Math. Geosci. 42, 2010).
+    """
+    if not 0 < step_deg <= 30:
+        raise ValueError(f"step_deg must be in (0, 30] degrees, got {step_deg}")
+    d = int(np.ceil(4 * np.pi / np.deg2rad(step_deg) ** 2))
+    i = np.arange(d) + 0.5
+    z = 1.0 - 2.0 * i / d
+    phi = np.pi * (3.0 - np.sqrt(5.0)) * i
+    r = np.sqrt(np.maximum(0.0, 1.0 - z * z))
+    return np.stack([r * np.cos(phi), r * np.sin(phi), z], axis=-1)
+
+
+def tangent_frame(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Two unit vectors (..., 3) orthogonal to the unit vectors ``u`` and to each other:
+    toward increasing azimuth and increasing elevation where those are defined, any
+    orthonormal pair at the poles."""
+    u = np.asarray(u, dtype=float)
+    east = np.stack([u[..., 1], -u[..., 0], np.zeros(u.shape[:-1])], axis=-1)
+    norm = np.linalg.norm(east, axis=-1, keepdims=True)
+    polar = norm[..., 0] < 1e-12
+    east = np.where(polar[..., None], np.array([1.0, 0.0, 0.0]),
+                    east / np.where(norm > 0, norm, 1.0))
+    return east, np.cross(east, u)
+
+
+def direction_response(weights: np.ndarray, positions: np.ndarray, directions: np.ndarray,
+                       gains: np.ndarray | None = None) -> np.ndarray:
+    """Power response ``|w^H a(u)|^2`` (linear) toward unit vectors ``u``.
+
+    weights (T, N); positions (N, 3) or (T, N, 3) wavelengths; directions (D, 3) shared
+    by every trial, or (T, D, 3) per trial; gains optional (T, N). Returns (T, D).
+    Computed in direction blocks to bound memory.
+    """
+    w = np.asarray(weights)
+    if w.ndim != 2:
+        raise ValueError(f"weights must be (trials, elements), got {w.shape}")
+    t_, n = w.shape
+    pos = np.asarray(positions, dtype=float)
+    u = np.asarray(directions, dtype=float)
+    wc = np.conj(w) if gains is None else np.conj(w) * np.asarray(gains)
+    if pos.ndim == 3:
+        flat = pos.reshape(-1, n, 3)
+        if np.all(flat == flat[0]):
+            pos = flat[0]
+    d = u.shape[-2]
+    out = np.empty((t_, d))
+    step = max(1, _CUT_VALUES // max(1, n * (t_ if (pos.ndim == 3 or u.ndim == 3) else 1)))
+    for lo in range(0, d, step):
+        uu = u[..., lo:lo + step, :]
+        if pos.ndim == 2 and uu.ndim == 2:
+            a = np.exp(2j * np.pi * (uu @ pos.T))                           # (d, N)
+            out[:, lo:lo + step] = np.abs(wc @ a.T) ** 2
+        else:
+            uu = np.broadcast_to(uu, (t_,) + uu.shape[-2:])
+            pp = np.broadcast_to(pos, (t_, n, 3))
+            a = np.exp(2j * np.pi * np.einsum("tdk,tnk->tdn", uu, pp))
+            out[:, lo:lo + step] = np.abs(np.einsum("tn,tdn->td", wc, a)) ** 2
+    return out
+
+
+def _offset_directions(center: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Unit vectors at tangent-plane offsets (x, y) radians (gnomonic) from ``center``
+    (T, 3): returns (T, len(x), 3)."""
+    e1, e2 = tangent_frame(center)
+    v = (center[:, None, :] + x[None, :, None] * e1[:, None, :]
+         + y[None, :, None] * e2[:, None, :])
+    return v / np.linalg.norm(v, axis=-1, keepdims=True)
+
+
+def main_beam_peak_2d(weights: np.ndarray, positions: np.ndarray, look_azimuth: float,
+                      look_elevation: float = 0.0, gains: np.ndarray | None = None,
+                      beamwidth_deg: float | None = None, points: int = 41):
+    """Direction (unit vector, (T, 3)) and power (dB, absolute) of the main-beam peak,
+    searched in two dimensions.
+
+    A ``points`` x ``points`` grid of tangent-plane offsets within +- one beamwidth
+    (default as :func:`main_beam_peak`) of the look direction is sampled; the local
+    maximum (over its 8 neighbours) nearest the look direction is refined by
+    :func:`parabolic_peak` along each grid axis; with no interior maximum the highest
+    sample is taken. weights (T, N).
+    """
+    if points < 5 or points % 2 == 0:
+        raise ValueError(f"points must be odd and >= 5, got {points}")
+    w = np.asarray(weights)
+    bw = _default_beamwidth(positions, look_azimuth, look_elevation) \
+        if beamwidth_deg is None else float(beamwidth_deg)
+    if not bw > 0:
+        raise ValueError(f"beamwidth must be > 0 degrees, got {beamwidth_deg}")
+    t_ = w.shape[0]
+    half = points // 2
+    axis = np.tan(np.deg2rad(np.linspace(-bw, bw, points)))
+    step = axis[half + 1] - axis[half]
+    gx, gy = np.meshgrid(axis, axis, indexing="ij")                        # x: axis 0
+    look = np.broadcast_to(geometry.direction_vector(look_azimuth, look_elevation), (t_, 3))
+    dirs = _offset_directions(look, gx.ravel(), gy.ravel())
+    pdb = to_db(direction_response(w, positions, dirs, gains)).reshape(t_, points, points)
+    mid = pdb[:, 1:-1, 1:-1]
+    is_max = np.ones(mid.shape, dtype=bool)
+    for dx in (-1, 0, 1):
+        for dy in (-1, 0, 1):
+            if dx or dy:
+                is_max &= mid >= pdb[:, 1 + dx:points - 1 + dx, 1 + dy:points - 1 + dy]
+    ii, jj = np.meshgrid(np.arange(1, points - 1), np.arange(1, points - 1), indexing="ij")
+    dist = np.where(is_max, (ii - half) ** 2 + (jj - half) ** 2, np.inf).reshape(t_, -1)
+    found = np.isfinite(dist.min(axis=1))
+    k = np.where(found, np.argmin(dist, axis=1),
+                 np.argmax(pdb[:, 1:-1, 1:-1].reshape(t_, -1), axis=1))
+    i, j = k // (points - 2) + 1, k % (points - 2) + 1
+    r = np.arange(t_)
+    ox, hx = parabolic_peak(pdb[r, i - 1, j], pdb[r, i, j], pdb[r, i + 1, j])
+    oy, hy = parabolic_peak(pdb[r, i, j - 1], pdb[r, i, j], pdb[r, i, j + 1])
+    x = axis[i] + ox * step
+    y = axis[j] + oy * step
+    height = np.maximum(hx, hy)
+    # the edges too: a beam pushed out of the window peaks on its border
+    top = np.argmax(pdb.reshape(t_, -1), axis=1)
+    edge = ~found & (pdb.reshape(t_, -1)[r, top] > pdb[r, i, j])
+    x = np.where(edge, axis[top // points], x)
+    y = np.where(edge, axis[top % points], y)
+    height = np.where(edge, pdb.reshape(t_, -1)[r, top], height)
+    e1, e2 = tangent_frame(look)
+    v = look + x[:, None] * e1 + y[:, None] * e2
+    return v / np.linalg.norm(v, axis=-1, keepdims=True), height
+
+
+def pointing_error_2d_deg(weights: np.ndarray, positions: np.ndarray, look_azimuth: float,
+                          look_elevation: float = 0.0, gains: np.ndarray | None = None,
+                          beamwidth_deg: float | None = None, points: int = 41,
+                          peak=None) -> np.ndarray:
+    """Main-beam pointing error in degrees: the angle between the 2-D main-beam peak
+    (:func:`main_beam_peak_2d`, or ``peak``: its result computed before) and the look
+    direction (>= 0); for a planar array the peak's mirror image on the look side of the
+    array plane. Checkable fact: weights phase-steered to a direction u0 peak at u0 (the
+    phased-array steering relation, antenna handbook), so the error is the angle between
+    u0 and the look direction."""
+    peak, _ = main_beam_peak_2d(weights, positions, look_azimuth, look_elevation, gains,
+                                beamwidth_deg, points) if peak is None else peak
+    look = geometry.direction_vector(look_azimuth, look_elevation)
+    normal = plane_normal(positions)
+    if normal is not None:       # a planar array's peak and its mirror image are one beam
+        peak = _fold(peak, normal, 1.0 if look @ normal >= 0 else -1.0)
+    return np.rad2deg(np.arccos(np.clip(peak @ look, -1.0, 1.0)))
+
+
+def _main_lobe(pdb: np.ndarray, start: np.ndarray, valid: np.ndarray,
+               wrap: bool, tol: float = 1e-9) -> np.ndarray:
+    """The main lobe on a 2-D grid of responses ``pdb`` (T, A, B) dB: every valid cell
+    reached from the peak cell ``start`` (T, 2) by steps to one of the 8 neighbours that
+    never go up (more than ``tol``). A sidelobe's peak is a local maximum, so no such
+    walk reaches it; the walk stops at the first nulls in every bearing. ``wrap``: the
+    second axis is periodic (azimuth)."""
+    t_, a_, b_ = pdb.shape
+    region = np.zeros(pdb.shape, dtype=bool)
+    region[np.arange(t_), start[:, 0], start[:, 1]] = True
+    val = np.where(valid, pdb, np.inf)
+    while True:
+        grown = region.copy()
+        for da in (-1, 0, 1):
+            for db in (-1, 0, 1):
+                if not (da or db):
+                    continue
+                # neighbour (a - da, b - db) of each cell, by shifting the grid
+                src = np.roll(np.roll(region, da, axis=1), db, axis=2)
+                ref = np.roll(np.roll(np.where(region, val, -np.inf), da, axis=1), db, axis=2)
+                ok = np.ones(b_, dtype=bool)
+                if not wrap and db:
+                    ok[0 if db == 1 else -1] = False
+                rows = np.ones(a_, dtype=bool)
+                if da:
+                    rows[0 if da == 1 else -1] = False
+                mask = rows[:, None] & ok[None, :]
+                grown |= src & mask & (val <= ref + tol)
+        grown &= valid
+        if np.array_equal(grown, region):
+            return region
+        region = grown
+
+
+def peak_sidelobe_2d_db(weights: np.ndarray, positions: np.ndarray, look_azimuth: float,
+                        look_elevation: float = 0.0, gains: np.ndarray | None = None,
+                        step_deg: float = 1.0, beamwidth_deg: float | None = None,
+                        peak=None) -> np.ndarray:
+    """Peak sidelobe level in dB relative to the main-beam peak, over every direction.
+
+    Definition (the 2-D form of :func:`peak_sidelobe_db`): the response is sampled on a
+    regular 2-D grid of spacing about ``step_deg``; the main lobe is every sample reached
+    from the main-beam peak (:func:`main_beam_peak_2d`) by steps between neighbours that
+    never go up, which ends at the first nulls in every bearing (:func:`_main_lobe`). The
+    sidelobe level is the highest sample outside it, refined by :func:`parabolic_peak`
+    along each grid axis, minus the peak power. Grating lobes count as sidelobes. NaN
+    when nothing lies outside. For a planar array the grid spans the direction cosines
+    in the array plane (the disc ``|rho| <= 1``: the pattern depends on nothing else,
+    and a direction and its mirror image across the plane cannot be told apart); for a
+    3-D array azimuth x elevation over the whole sphere. weights (T, N); ``peak``: the
+    result of :func:`main_beam_peak_2d` when already computed.
+
+    Checkable facts: for a uniform rectangular grid the array factor is the product of
+    its row and column factors (Balanis, *Antenna Theory*, planar arrays), so the peak
+    sidelobe is the higher of the two lines' first sidelobes; a dense uniform ring
+    steered to its axis has the pattern J0, whose first sidelobe is -7.90 dB
+    (|J0| = 0.4028 at the first zero of J1, 3.8317; Abramowitz and Stegun, table 9.5).
+    """
+    if not step_deg > 0:
+        raise ValueError(f"step_deg must be > 0, got {step_deg}")
+    w = np.asarray(weights)
+    t_ = w.shape[0]
+    peak, peak_db = main_beam_peak_2d(w, positions, look_azimuth, look_elevation, gains,
+                                      beamwidth_deg) if peak is None else peak
+    normal = plane_normal(positions)
+    look = geometry.direction_vector(look_azimuth, look_elevation)
+    dr = np.deg2rad(step_deg)
+    if normal is not None:
+        side = 1.0 if look @ normal >= 0 else -1.0
+        b1, b2 = tangent_frame(normal)
+        ax1 = np.arange(-1.0, 1.0 + dr / 2, dr)
+        ax1 = ax1 - ax1.mean()
+        ax2 = ax1
+        g1, g2 = np.meshgrid(ax1, ax2, indexing="ij")
+        valid = g1 ** 2 + g2 ** 2 <= 1.0
+        z = np.sqrt(np.maximum(0.0, 1.0 - g1 ** 2 - g2 ** 2))
+        dirs = g1[..., None] * b1 + g2[..., None] * b2 + side * z[..., None] * normal
+        c1, c2 = peak @ b1, peak @ b2
+        wrap = False
+    else:
+        ax1 = np.linspace(-90.0, 90.0, int(np.ceil(180.0 / step_deg)) + 1)      # elevation
+        nb = int(np.ceil(360.0 / step_deg))
+        ax2 = -180.0 + np.arange(nb) * (360.0 / nb)                              # azimuth
+        g1, g2 = np.meshgrid(ax1, ax2, indexing="ij")
+        valid = np.ones(g1.shape, dtype=bool)
+        dirs = geometry.direction_vector(g2, g1)
+        c1 = np.rad2deg(np.arcsin(np.clip(peak[:, 2], -1.0, 1.0)))
+        c2 = np.rad2deg(np.arctan2(peak[:, 0], peak[:, 1]))
+        wrap = True
+    a_, b_ = g1.shape
+    pdb = to_db(direction_response(w, positions, dirs.reshape(-1, 3), gains)).reshape(t_, a_, b_)
+    pdb = np.where(valid, pdb, -np.inf)
+    # the start: the highest valid sample within two cells of the refined peak
+    i0 = np.clip(np.rint((c1 - ax1[0]) / (ax1[1] - ax1[0])).astype(np.int64), 0, a_ - 1)
+    j0 = np.rint((c2 - ax2[0]) / (ax2[1] - ax2[0])).astype(np.int64)
+    j0 = j0 % b_ if wrap else np.clip(j0, 0, b_ - 1)
+    off = np.arange(-2, 3)
+    ii = np.clip(i0[:, None, None] + off[None, :, None], 0, a_ - 1)
+    jj = j0[:, None, None] + off[None, None, :]
+    jj = jj % b_ if wrap else np.clip(jj, 0, b_ - 1)
+    ii, jj = np.broadcast_arrays(ii, jj)
+    near = pdb[np.arange(t_)[:, None, None], ii, jj].reshape(t_, -1)
+    k = np.argmax(near, axis=1)
+    start = np.stack([ii.reshape(t_, -1)[np.arange(t_), k],
+                      jj.reshape(t_, -1)[np.arange(t_), k]], axis=-1)
+    lobe = _main_lobe(pdb, start, valid[None] & np.isfinite(pdb), wrap)
+    outside = valid[None] & ~lobe & np.isfinite(pdb)
+    flat = np.where(outside, pdb, -np.inf).reshape(t_, -1)
+    best = np.argmax(flat, axis=1)
+    has = outside.reshape(t_, -1).any(axis=1)
+    r = np.arange(t_)
+    bi, bj = best // b_, best % b_
+    level = flat[r, best]
+
+    def at(i, j):
+        ok = (i >= 0) & (i < a_)
+        j = j % b_ if wrap else j
+        ok &= (j >= 0) & (j < b_)
+        v = pdb[r, np.clip(i, 0, a_ - 1), np.clip(j, 0, b_ - 1)]
+        return np.where(ok, v, -np.inf)
+
+    with np.errstate(invalid="ignore"):
+        _, h1 = parabolic_peak(at(bi - 1, bj), level, at(bi + 1, bj))
+        _, h2 = parabolic_peak(at(bi, bj - 1), level, at(bi, bj + 1))
+    h1 = np.where(np.isfinite(h1), h1, level)
+    h2 = np.where(np.isfinite(h2), h2, level)
+    level = np.maximum(level, np.maximum(h1, h2))
     return np.where(has, level - peak_db, np.nan)

@@ -41,10 +41,13 @@ def whole_count(value, name: str, high: int, low: int = 1) -> int:
 
 
 def checkpoints_for(value, snapshots: int) -> np.ndarray:
-    """Checkpoints from a list or a '1,2,4' text (default: 4 per octave up to
-    ``snapshots``); InputError naming ``checkpoints`` otherwise."""
+    """Checkpoints from a list, a '1,2,4' text or an evenly spaced range
+    'START:STOP:STEP' (START, START + STEP, ... and STOP itself; default: 4 per octave
+    up to ``snapshots``); InputError naming ``checkpoints`` otherwise."""
     if value is None:
         return default_checkpoints(snapshots)
+    if isinstance(value, str) and ":" in value:
+        return _checkpoint_range(value, snapshots)
     if isinstance(value, str):
         parts = [p for p in value.replace(",", " ").split() if p]
         try:
@@ -60,6 +63,27 @@ def checkpoints_for(value, snapshots: int) -> np.ndarray:
     except ValueError as exc:
         raise InputError(str(exc), path="checkpoints", value=value,
                          allowed=f"whole numbers in [1, {snapshots}] (the snapshots)") from None
+
+
+def _checkpoint_range(text: str, snapshots: int) -> np.ndarray:
+    allowed = (f"START:STOP:STEP, whole numbers with 1 <= START <= STOP <= {snapshots} "
+               "(the snapshots) and STEP >= 1, e.g. 100:4000:100")
+    parts = [p.strip() for p in text.strip().split(":")]
+    if len(parts) != 3 or not all(parts):
+        raise InputError("a range of checkpoints is START:STOP:STEP", path="checkpoints",
+                         value=text.strip(), allowed=allowed)
+    try:
+        start, stop, step = (int(p) for p in parts)
+    except ValueError:
+        raise InputError("checkpoints must be whole snapshot counts", path="checkpoints",
+                         value=text.strip(), allowed=allowed) from None
+    if not (1 <= start <= stop <= snapshots and step >= 1):
+        raise InputError("checkpoint range out of bounds", path="checkpoints",
+                         value=text.strip(), allowed=allowed)
+    if (stop - start) // step + 2 > 100_000:
+        raise InputError("too many checkpoints", path="checkpoints", value=text.strip(),
+                         allowed="at most 100,000 checkpoints (a larger STEP)")
+    return normalised_checkpoints(np.append(np.arange(start, stop + 1, step), stop), snapshots)
 
 
 def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None,

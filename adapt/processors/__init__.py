@@ -89,6 +89,8 @@ def parse_spec(spec: Any, where: str = "") -> Processor:
         raise SpecError("the method must be a name", path=f"{prefix}method", value=method,
                         allowed=", ".join(registry()))
     classes = registry()
+    if method not in classes and method.lower() in classes:
+        method = method.lower()           # method names are case-insensitive ("SMI")
     if method not in classes:
         raise SpecError(f"unknown method '{method}'" + did_you_mean(method, classes),
                         path=f"{prefix}method" if where else None, allowed=", ".join(classes))

@@ -336,6 +336,11 @@ def check_smoothing(params: dict, given: dict, where: str) -> None:
         params.pop("smoothing", None)
 
 
+def _count(k: int, noun: str) -> str:
+    """``k`` and the noun, plural unless k is 1 ("1 training snapshot")."""
+    return f"{k} {noun}{'' if k == 1 else 's'}"
+
+
 def loading_parameters(auto: bool) -> dict[str, Parameter]:
     """The declared loading parameters (``loading`` only when ``auto`` is offered)."""
     out = {}
@@ -558,7 +563,7 @@ class SampleCovarianceProcessor(Processor):
                 exact = counts >= n
                 if not exact.all() and self.warns_singular:
                     self.warn_once(
-                        f"{int(counts.min())} training snapshots for {n} elements without "
+                        f"{_count(int(counts.min()), 'training snapshot')} for {n} elements without "
                         "loading: the sample covariance is singular; using the minimum-norm "
                         "(pseudo-inverse) solution on the data subspace until "
                         f"{n} snapshots are seen (add loading_db to avoid this)")

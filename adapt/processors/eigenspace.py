@@ -119,7 +119,7 @@ class Eigenspace(SampleCovarianceProcessor):
             j = int(self.params["rank"])
             big = np.broadcast_to(idx >= n - j, lam.shape)
             if np.any(counts <= j):
-                self.warn_once(f"{int(counts.min())} snapshots for rank {j}: fewer than "
+                self.warn_once(f"{int(counts.min())} snapshot{'' if counts.min() == 1 else 's'} for rank {j}: fewer than "
                                "rank + 1, the noise level is not estimable; using the "
                                "projection limit")
         a = np.broadcast_to(self.look, r.shape[:-1])

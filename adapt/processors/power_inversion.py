@@ -4,8 +4,9 @@ Source: Compton, "The power-inversion adaptive array: concept and performance", 
 Trans. AES-15, 1979 (the classic GNSS/communications anti-jam processor).
 
 Weight: ``w = R^-1 e / (e^H R^-1 e)``, ``e`` the unit vector of ``reference_element``,
-R the growing-window sample covariance of the training data (optionally loaded
-``loading_db`` above the noise floor). No look direction is used: the processor
+R the sample covariance of the training data over a growing window (every snapshot so
+far) or a sliding one (the last ``length`` snapshots, for jammers that change),
+optionally loaded ``loading_db`` above the noise floor. No look direction is used: the processor
 minimises total output power subject to ``w_ref = 1``, which puts deep nulls on strong
 jammers (they are "inverted": the stronger the jammer, the deeper its null) and leaves
 signals below the noise nearly untouched. Initial weight: ``e`` (the reference element
@@ -16,7 +17,9 @@ jammer, relative to the quiescent response (that of the reference element alone,
 every direction for isotropic elements), is below -30 dB after a few times N snapshots.
 
 Parameters: ``reference_element`` (index, default 0), ``loading_db`` (dB above the noise
-floor, default none). Cost per snapshot: O(N^2) accumulation; O(N^3) per checkpoint.
+floor, default none), ``window`` (growing | sliding, default growing) and ``length``
+(sliding window length, snapshots; a window shorter than N needs loading, as for ``smi``).
+Cost per snapshot: O(N^2) accumulation (2x for sliding); O(N^3) per checkpoint.
 """
 from __future__ import annotations
 
@@ -34,13 +37,36 @@ class PowerInversion(SampleCovarianceProcessor):
         "reference_element": Parameter("int", 0, "element whose weight is held at 1",
                                        low=0, high=10 ** 6),
         **loading_parameters(auto=False),
+        "window": Parameter("choice", "growing", "training window: all snapshots so far, "
+                            "or the last `length`", choices=("growing", "sliding")),
+        "length": Parameter("int", None, "sliding window length", unit="snapshots",
+                            low=1, high=10 ** 9, allow_none=True),
     }
+
+    @classmethod
+    def cross_check(cls, params: dict, where: str) -> None:
+        if params["window"] == "sliding" and params["length"] is None:
+            raise SpecError("a sliding window needs length (snapshots)", path=f"{where}length",
+                            allowed="an integer >= 1 snapshots")
+        if params["window"] == "growing" and params["length"] is not None:
+            raise SpecError("length applies to window=sliding only", path=f"{where}length",
+                            value=params["length"], allowed="none, or add window=sliding")
 
     def check(self, context: Context) -> None:
         if self.params["reference_element"] >= context.elements:
             raise SpecError("reference_element is not an element of this array",
                             path="reference_element", value=self.params["reference_element"],
                             allowed=f"0 .. {context.elements - 1}")
+        n = context.elements
+        if (self.params["window"] == "sliding" and self.params["loading_db"] is None
+                and self.params["length"] < n):
+            raise SpecError(f"a sliding window of {self.params['length']} snapshots is shorter "
+                            f"than the {n} elements: its covariance is always singular",
+                            path="length", value=self.params["length"],
+                            allowed=f">= {n} snapshots, or add loading_db")
+
+    def window_settings(self):
+        return self.params["window"], self.params["length"], 1
 
     def _unit(self, context: Context) -> np.ndarray:
         e = np.zeros(context.elements, dtype=complex)

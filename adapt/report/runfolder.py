@@ -344,7 +344,9 @@ def summary_rows(metrics: dict) -> list[dict]:
             f"snapshots to 3 dB ({metrics.get('fraction', 0.9) * 100:.0f}% of trials)":
                 p["snapshots_to_3db_fraction"] if p["snapshots_to_3db_fraction"] is not None
                 else "never",
-            "worst null dB": max(nulls) if nulls else None,
+            "snapshots to stay within 3 dB (mean)":
+                p.get("snapshots_to_stay_within_3db", p["snapshots_to_3db"]) or "never",
+            "worst null dB": f.get("worst_null_db", max(nulls) if nulls else None),
             "white-noise gain dB": f["white_noise_gain_db"],
             "pointing error deg (rms)": f.get("pointing_error_deg_rms"),
             "peak sidelobe dB": f.get("peak_sidelobe_db_mean"),

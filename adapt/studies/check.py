@@ -242,8 +242,8 @@ def scene_warnings(scene: Scene) -> list[str]:
     dof = n - 1
     count = len(scene.interferers)
     if count and count >= dof:
-        out.append(f"too many interferers: {count} interferers for {dof} degrees of "
-                   f"freedom ({n} elements - 1); the adaptive processors cannot null "
+        out.append(f"too many interferers: {count} interferer{'s' if count != 1 else ''} for "
+                   f"{dof} degree{'s' if dof != 1 else ''} of freedom ({n} elements - 1); the adaptive processors cannot null "
                    "them all")
     elif count and count >= dof - 1 and n > 2:
         # MDL-based noise floor (Wax & Kailath 1985) of loading=auto needs a noise
@@ -368,6 +368,12 @@ def _processor_labels(scene: Scene) -> list[str]:
     return [p.label for p in parse_specs(list(scene.processors))]
 
 
+def _length(value, fmt: str = "g") -> str:
+    """A length in wavelengths, singular for exactly 1 ("1 wavelength")."""
+    text = format(float(value), fmt)
+    return f"{text} wavelength{'' if float(text) == 1 else 's'}"
+
+
 def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
     """Summary text of a validated scene: array, beam, run, processors, sources table
     and warnings."""
@@ -376,13 +382,13 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
     n = scene.elements
     st = arr.settings
     if arr.layout == "line":
-        shape = f"line of {n} element{'s' if n != 1 else ''}, spacing {st.get('spacing', 0):g} wavelengths"
+        shape = f"line of {n} element{'s' if n != 1 else ''}, spacing {_length(st.get('spacing', 0))}"
     elif arr.layout == "grid":
         shape = (f"grid of {st.get('rows')} x {st.get('columns')} = {n} elements, spacing "
                  f"{st.get('spacing', 0):g} (columns) x {st.get('row_spacing', 0):g} (rows) "
                  "wavelengths")
     elif arr.layout == "ring":
-        shape = f"ring of {n} element{'s' if n != 1 else ''}, radius {st.get('radius', 0):.4g} wavelengths"
+        shape = f"ring of {n} element{'s' if n != 1 else ''}, radius {_length(st.get('radius', 0), '.4g')}"
     else:
         shape = f"custom layout of {n} elements"
     look = (scene.look_azimuth, scene.look_elevation)
@@ -391,7 +397,7 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
     e = arr.errors
     if e.any:
         errors = (f"gain {e.gain_db_rms:g} dB rms, phase {e.phase_deg_rms:g} deg rms, "
-                  f"position {e.position_rms:g} wavelengths rms (drawn per trial)")
+                  f"position {_length(e.position_rms)} rms (drawn per trial)")
     else:
         errors = "none"
     rx = scene.receiver
@@ -404,15 +410,16 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
     lines = [
         f"scene:       {scene.name}" + (f"  ({scene.source_file})" if scene.source_file else ""),
         f"array:       {shape}",
-        f"aperture:    {arr.aperture:.4g} wavelengths; half-power beamwidth {bw_text} "
+        f"aperture:    {_length(arr.aperture, '.4g')}; half-power beamwidth {bw_text} "
         f"at the look direction",
-        f"freedom:     {n - 1} degrees of freedom ({n} elements - 1)",
+        f"freedom:     {n - 1} degree{'s' if n != 2 else ''} of freedom ({n} element{'s' if n != 1 else ''} - 1)",
         f"look:        az {look[0]:g}, el {look[1]:g} degrees",
         f"errors:      {errors}",
         f"receiver:    {receiver}",
         f"training:    {training}",
         *_array_lines(scene),
-        f"run:         {scene.snapshots} snapshots x {scene.trials} trials, seed {scene.seed}",
+        f"run:         {scene.snapshots} snapshot{'s' if scene.snapshots != 1 else ''} x "
+        f"{scene.trials} trial{'s' if scene.trials != 1 else ''}, seed {scene.seed}",
         "processors:  " + (", ".join(labels) if labels else "(none listed)"),
         "sources:",
     ]

@@ -20,8 +20,13 @@ Conventions of the summary (all "mean" values are over Monte Carlo trials):
   checkpoint at which at least 90 % of the trials are within 3 dB; null if never;
 * null depths and white-noise gain are means over trials of dB values at the final
   checkpoint, pointing error and peak sidelobe come from the final weights on each
-  trial's true array (:func:`adapt.engine.scores.pointing_error_deg`,
-  :func:`adapt.engine.scores.peak_sidelobe_db`);
+  trial's true array: on the azimuth cut for a line (:func:`adapt.engine.scores.pointing_error_deg`,
+  :func:`adapt.engine.scores.peak_sidelobe_db`), over all directions for any other
+  array (``pattern_scope: "all directions"``; the pointing error is then the angle between the
+  main-beam peak and the look direction, :func:`adapt.engine.scores.pointing_error_2d_deg`,
+  :func:`adapt.engine.scores.peak_sidelobe_2d_db`, with the peak's azimuth and elevation
+  offsets and its height over the look-direction response, ``peak_over_look_db_mean``:
+  a beam that is flat toward the peak has a large but harmless pointing error);
 * ``measured_sinr_db_mean`` is the SINR measured from output samples (the held final
   weight over the ``tail`` snapshots after the last checkpoint): a cross-check of the
   covariance-based SINR, unbiased only on average.
@@ -85,6 +90,8 @@ def _pattern_scores(evaluation: Evaluation, weights: np.ndarray) -> dict:
     g = None if gains is None or np.all(gains[:use] == 1) else gains[:use]
     bw = geometry.half_power_beamwidth_deg(sc.array.positions, sc.look_azimuth,
                                            sc.look_elevation, resolution_deg=0.01)
+    if not scores.is_line_array(sc.array.positions):
+        return _pattern_scores_2d(evaluation, weights, pos, gains, ap, bw)
     args = dict(positions=pos[:use], look_azimuth=float(sc.look_azimuth),
                 look_elevation=float(sc.look_elevation), gains=g,
                 beamwidth_deg=float(bw) if np.isfinite(bw) and bw > 0 else None)
@@ -95,6 +102,49 @@ def _pattern_scores(evaluation: Evaluation, weights: np.ndarray) -> dict:
             "pointing_error_deg_rms": float(np.sqrt(_nanmean(pe ** 2))),
             "peak_sidelobe_db_mean": _nanmean(psl),
             "pattern_trials": use}
+
+
+def _pattern_scores_2d(evaluation: Evaluation, weights: np.ndarray, pos, gains,
+                       aperture: float, bw: float) -> dict:
+    """Pointing error (angle between the main-beam peak and the look direction) and
+    peak sidelobe searched over the sphere, for arrays that are not a line."""
+    sc = evaluation.scene
+    t_, n = weights.shape
+    step = float(np.clip(np.rad2deg(1.0 / aperture) / 8.0, 0.1, 2.0))
+    points = int(360.0 * 180.0 / step ** 2)
+    use = int(max(1, min(t_, _PATTERN_BUDGET // max(1, points * n))))
+    g = None if gains is None or np.all(gains[:use] == 1) else gains[:use]
+    args = dict(positions=pos[:use], look_azimuth=float(sc.look_azimuth),
+                look_elevation=float(sc.look_elevation), gains=g,
+                beamwidth_deg=float(bw) if np.isfinite(bw) and bw > 0 else None)
+    w = weights[:use]
+    with np.errstate(all="ignore"):
+        peak = scores.main_beam_peak_2d(w, **args)
+        pe = scores.pointing_error_2d_deg(w, **args, peak=peak)
+        psl = scores.peak_sidelobe_2d_db(w, step_deg=step, **args, peak=peak)
+        u = peak[0]
+        normal = scores.plane_normal(sc.array.positions)
+        look = geometry.direction_vector(sc.look_azimuth, sc.look_elevation)
+        if normal is not None:             # the mirror image on the look side of the plane
+            flip = (u @ normal) * (1.0 if look @ normal >= 0 else -1.0) < 0
+            u = np.where(flip[:, None], u - 2 * (u @ normal)[:, None] * normal, u)
+        az = np.rad2deg(np.arctan2(u[:, 0], u[:, 1]))
+        el = np.rad2deg(np.arcsin(np.clip(u[:, 2], -1.0, 1.0)))
+        look_db = scores.to_db(scores.direction_response(w, pos[:use], look[None], g))[:, 0]
+    return {"pointing_error_deg_mean": _nanmean(pe),
+            "pointing_error_deg_rms": float(np.sqrt(_nanmean(pe ** 2))),
+            "peak_sidelobe_db_mean": _nanmean(psl),
+            "pattern_trials": use,
+            "pattern_scope": "all directions",
+            "peak_azimuth_error_deg_mean": _nanmean((az - sc.look_azimuth + 180.0) % 360.0 - 180.0),
+            "peak_elevation_error_deg_mean": _nanmean(el - sc.look_elevation),
+            "peak_over_look_db_mean": _nanmean(peak[1] - look_db)}
+
+
+def _worst_null(depths: dict, on: list) -> float | None:
+    """The least-suppressed interferer among those on (None when none is on)."""
+    vals = [v for k, v in depths.items() if k in on and v is not None and math.isfinite(v)]
+    return max(vals) if vals else None
 
 
 def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 0.9,
@@ -126,6 +176,10 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
                           "sinr_db_mean": _nanmean(opt_db, axis=0).tolist()},
         "processors": [],
     }
+    # interferers transmitting at the moment the final weights are scored (snapshot c)
+    on_at_end = [s.name for s in sc.interferers if bool(s.active(int(checkpoints[-1])))]
+    if not sc.stationary:
+        out["interferers_on_at_end"] = on_at_end
     if seconds is not None:
         out["seconds"] = float(seconds)
     free_db = _interference_free_db(evaluation)                          # (T,) or None
@@ -147,6 +201,8 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         frac = scores.fraction_meeting(loss, target_db)
         to_mean, to_frac = scores.snapshots_to_target(checkpoints, np.nan_to_num(rho, nan=0.0),
                                                       target_db, fraction)
+        stay_mean, stay_frac = scores.snapshots_staying_within(
+            checkpoints, np.nan_to_num(rho, nan=0.0), target_db, fraction)
         measured_db = _db(p.measured_sinr)
         wng_db = _db(p.white_noise_gain)
         nd = np.asarray(p.null_depth_db, dtype=float)
@@ -170,6 +226,7 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         if free_db is not None:
             final["loss_db_vs_interference_free"] = _first(_nanmean(free_db - sinr_db[:, -1]))
         per_trial.append((sinr_db[:, -1], rho_stats))
+        final["worst_null_db"] = _worst_null(final["null_depth_db"], on_at_end)
         if patterns:
             final.update(_pattern_scores(evaluation, np.asarray(p.final_weights)))
         out["processors"].append({
@@ -180,6 +237,8 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
             "final": final,
             "snapshots_to_3db": to_mean,
             "snapshots_to_3db_fraction": to_frac,
+            "snapshots_to_stay_within_3db": stay_mean,
+            "snapshots_to_stay_within_3db_fraction": stay_frac,
             "seconds": float(p.seconds),
             "curve": {
                 "snapshots": [int(c) for c in checkpoints],
@@ -391,16 +450,25 @@ def render_table(metrics: dict, width: int = 100) -> str:
     heads = [("SINR dB", "final"), ("loss dB", "vs opt"), ("to 3 dB", "mean"),
              ("to 3 dB", f"{metrics.get('fraction', 0.9) * 100:.0f}% trials"),
              ("worst null", "dB"), ("WNG", "dB"), ("time", "s")]
+    # "stays within" differs from "first reached" when the loss comes back (the scene
+    # changes, or the mean wanders): then both are shown
+    stays = any(p.get("snapshots_to_stay_within_3db", p["snapshots_to_3db"])
+                != p["snapshots_to_3db"] for p in metrics["processors"])
+    if stays:
+        heads.insert(4, ("stays 3 dB", "mean from"))
     rows = []
     for p in metrics["processors"]:
         f = p["final"]
         nulls = [v for v in f["null_depth_db"].values() if v is not None]
+        worst = f["worst_null_db"] if "worst_null_db" in f else (max(nulls) if nulls else None)
         rows.append([p["label"],
                      _cell(f["sinr_db_mean"]), _cell(f["loss_db_mean"]),
                      _cell(p["snapshots_to_3db"], 0, "never"),
                      _cell(p["snapshots_to_3db_fraction"], 0, "never"),
-                     _cell(max(nulls) if nulls else None, 1),
+                     _cell(worst, 1),
                      _cell(f["white_noise_gain_db"]), _cell(p["seconds"], 2)])
+        if stays:
+            rows[-1].insert(5, _cell(p.get("snapshots_to_stay_within_3db"), 0, "never"))
     numw = [max(len(h[0]), len(h[1]), *(len(r[i + 1]) for r in rows)) for i, h in enumerate(heads)]
     fixed = sum(numw) + 2 * len(numw)
     labw = max(9, min(max([len(r[0]) for r in rows] + [9]), max(9, width - fixed)))
@@ -422,6 +490,11 @@ def render_table(metrics: dict, width: int = 100) -> str:
            line([""] + [h[1] for h in heads]),
            "-" * min(width, labw + fixed)]
     out += [line(r) for r in rows]
+    off = [name for name in metrics.get("interferers", [])
+           if "interferers_on_at_end" in metrics and name not in metrics["interferers_on_at_end"]]
+    if off:
+        out += ["", "worst null: interferers on at the last checkpoint only (off then: "
+                + ", ".join(off) + ")"]
     said = verdict_lines(metrics)
     if said:
         import textwrap
@@ -431,7 +504,10 @@ def render_table(metrics: dict, width: int = 100) -> str:
     total = metrics.get("seconds")
     out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
                 f"until the loss is within {metrics.get('target_db', 3):g} dB ('never': not within "
-                f"{k}); time = each processor's own compute time, summed over threads"
+                f"{k})" + ("; 'stays 3 dB' = snapshots from which the mean loss stays within "
+                           "it to the end (first reached and lost again counts only here)"
+                           if stays else "")
+            + "; time = each processor's own compute time, summed over threads"
             + (f" (whole comparison {total:.1f} s of wall time)" if total is not None else "")]
     if any("n/a" in r[1:] for r in rows) or _cell(metrics["optimum_sinr_db"]) == "n/a":
         out += ["n/a = undefined: no finite value in any trial (e.g. the wanted source is off "
