@@ -9,10 +9,11 @@ Style helpers shared with the other report modules (sizing figures reuse them):
 
 * :data:`PALETTE` - seven colours of Okabe and Ito (2008), "Color Universal Design",
   chosen to stay distinguishable under the common colour-vision deficiencies (their
-  black is kept for reference curves); :data:`LINE_STYLES` cycle after seven series so
-  no two series look the same;
+  black is kept for reference curves), then three of Paul Tol's; :data:`LINE_STYLES`
+  tell apart the variants of one processor family;
 * :func:`series_styles` - one (colour, line style, marker) per label, in the order given,
-  so the same processor list gets the same look in every figure of a report;
+  grouped by processor family (one colour per method), so the same processor list gets
+  the same look in every figure of a report and no two curves share colour and style;
 * :func:`new_figure`, :func:`style_axes`, :func:`add_title`, :func:`legend_outside` and
   :func:`save_png` (PNG bytes at :data:`DPI` dots per inch).
 
@@ -48,7 +49,7 @@ if TYPE_CHECKING:                      # matplotlib is imported when a figure is
 __all__ = [
     "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
     "HATCHES", "PATTERN_FLOOR_DB", "NULL_FLOOR_DB",
-    "series_styles", "new_figure", "style_axes", "label_axes", "add_title", "legend_outside",
+    "series_styles", "run_styles", "new_figure", "style_axes", "label_axes", "add_title", "legend_outside",
     "save_png", "figure_to_png", "is_png", "run_title",
     "default_azimuths", "mean_beam_pattern_db", "mean_beam_patterns_db",
     "convergence_figure", "beam_pattern_figure", "null_depth_figure",
@@ -56,13 +57,18 @@ __all__ = [
 ]
 
 #: Okabe & Ito (2008) colour-blind-safe palette less black, reordered so the first
-#: colours are the most distinct on white (yellow last: weakest contrast on paper).
+#: colours are the most distinct on white (yellow last: weakest contrast on paper),
+#: then three darker colours of Paul Tol's colour-blind-safe "muted" scheme (Tol 2021,
+#: "Colour schemes", SRON/EPS/TN/09-002) for scenes with many processor families.
 PALETTE = ("#0072B2",   # blue
            "#D55E00",   # vermillion
            "#009E73",   # bluish green
            "#CC79A7",   # reddish purple
            "#E69F00",   # orange
            "#56B4E9",   # sky blue
+           "#882255",   # wine (Tol)
+           "#332288",   # indigo (Tol)
+           "#999933",   # olive (Tol)
            "#F0E442")   # yellow
 #: (the palette's black is kept for reference curves and the wanted source's marker)
 LINE_STYLES = ("-", "--", "-.", ":")
@@ -87,25 +93,52 @@ NULL_FLOOR_DB = -100.0
 
 
 # ---------------------------------------------------------------------------- style
-def series_styles(labels: Iterable[str]) -> dict[str, dict]:
+def series_styles(labels: Iterable[str], methods: Iterable[str] | None = None) -> dict[str, dict]:
     """One style per label, in the order given: ``{label: {"color", "linestyle",
     "marker", "hatch"}}`` (hatch: for bars, changes with the line style).
 
-    The i-th label gets colour ``PALETTE[i % 7]`` and line style
-    ``LINE_STYLES[(i // 7) % 4]``, so up to 28 series differ; pass the same label list to
-    every figure of a report and each processor keeps its look throughout. Duplicate
-    labels keep their first style.
+    Processors are grouped by family: every label of one method (``methods``, aligned
+    with ``labels``; default: the label's first word, which is the method for default
+    labels) shares a colour, and its variants differ by line style, marker and hatch;
+    the clairvoyant ``optimum`` is drawn in the reference colour. Families take the
+    colours of :data:`PALETTE` in order; no two labels get the same colour and line
+    style (with more than ``len(PALETTE) * len(LINE_STYLES)`` labels the markers still
+    differ). Pass the same lists to every figure of a report and each processor keeps
+    its look throughout. Duplicate labels keep their first style.
     """
+    labels = list(labels)
+    methods = [lb.split(" ")[0] if lb else "" for lb in labels] if methods is None \
+        else list(methods)
+    if len(methods) != len(labels):
+        raise ValueError(f"{len(labels)} labels but {len(methods)} methods")
+    families: dict[str, int] = {}
+    used: set = set()
     out: dict[str, dict] = {}
-    for label in labels:
+    for label, method in zip(labels, methods):
         if label in out:
             continue
+        if method == "optimum":
+            colours = [REFERENCE_COLOUR] + list(PALETTE)
+        else:
+            f = families.setdefault(method, len(families))
+            colours = [PALETTE[(f + k) % len(PALETTE)] for k in range(len(PALETTE))]
+        # the family colour with the first free line style, else the next colours
+        free = [(c, d) for c in colours for d in range(len(LINE_STYLES))
+                if (c, LINE_STYLES[d]) not in used]
+        choice = free[0] if free else (colours[0], len(out) % len(LINE_STYLES))
+        colour, i_dash = choice
+        used.add((colour, LINE_STYLES[i_dash]))
         i = len(out)
-        out[label] = {"color": PALETTE[i % len(PALETTE)],
-                      "linestyle": LINE_STYLES[(i // len(PALETTE)) % len(LINE_STYLES)],
+        out[label] = {"color": colour, "linestyle": LINE_STYLES[i_dash],
                       "marker": MARKERS[i % len(MARKERS)],
-                      "hatch": HATCHES[(i // len(PALETTE)) % len(HATCHES)]}
+                      "hatch": HATCHES[i_dash % len(HATCHES)]}
     return out
+
+
+def run_styles(evaluation) -> dict[str, dict]:
+    """:func:`series_styles` of a run's processors, grouped by their methods."""
+    procs = evaluation.processors
+    return series_styles([p.label for p in procs], [p.method for p in procs])
 
 
 def new_figure(rows: int = 1, columns: int = 1, size: tuple[float, float] | None = None,
@@ -145,6 +178,9 @@ def label_axes(ax, xlabel: str | None = None, ylabel: str | None = None) -> None
 
 def add_title(fig, title: str, subtitle: str | None = None) -> None:
     """Figure title (and an optional smaller second line)."""
+    if subtitle and len(subtitle) > 90:          # keep a long subtitle inside the figure
+        import textwrap
+        subtitle = "\n".join(textwrap.wrap(subtitle, 90))
     text = title if not subtitle else f"{title}\n{subtitle}"
     fig.suptitle(text, fontsize=TITLE_SIZE)
 
@@ -198,9 +234,12 @@ def run_title(evaluation, what: str) -> tuple[str, str]:
     """(title, subtitle) naming the figure, the scene, trials and elements."""
     sc = evaluation.scene
     title = f"{what} - {sc.name}"
+    k = int(evaluation.snapshots)
+    last = int(evaluation.checkpoints[-1])
     sub = (f"{evaluation.trials} trial{'s' if evaluation.trials != 1 else ''}, "
-           f"{sc.elements} elements ({sc.array.layout}), "
-           f"{int(evaluation.checkpoints[-1])} snapshots")
+           f"{sc.elements} element{'s' if sc.elements != 1 else ''} ({sc.array.layout}), "
+           f"{k} snapshot{'s' if k != 1 else ''}"
+           + (f" (last checkpoint {last})" if last != k else ""))
     return title, sub
 
 
@@ -239,68 +278,163 @@ def _summary_curves(summary) -> dict:
     return out
 
 
+#: processor families drawn together when a run has too many curves for one panel
+FAMILY_GROUPS = (("fixed beams", ("conventional",)),
+                 ("sample-covariance (block) methods", ("smi", "lcmv", "power_inversion",
+                                                       "eigenspace")),
+                 ("recursive methods on the reference", ("lms", "nlms", "rls")),
+                 ("constrained recursive methods", ("frost", "gsc")))
+#: at most this many processors share one convergence panel
+PANEL_CURVES = 6
+
+
+def processor_panels(processors) -> list[tuple[str, list]]:
+    """Processors split into (title, processors) panels for small multiples: one panel
+    when there are at most :data:`PANEL_CURVES` of them (the clairvoyant optimum, drawn
+    as the reference in every panel, not counted), else one per family group of
+    :data:`FAMILY_GROUPS` (other methods in a last group), each cut into panels of at
+    most :data:`PANEL_CURVES`."""
+    curves = [p for p in processors if p.method != "optimum"]
+    if len(curves) <= PANEL_CURVES:
+        return [("", curves)]
+    out = []
+    taken = set()
+    groups = [(title, [p for p in curves if p.method in methods]) for title, methods in FAMILY_GROUPS]
+    for _, members in groups:
+        taken.update(id(p) for p in members)
+    groups.append(("other methods", [p for p in curves if id(p) not in taken]))
+    for title, members in groups:
+        for k in range(0, len(members), PANEL_CURVES):
+            part = members[k:k + PANEL_CURVES]
+            if part:
+                out.append((title, part))
+    return out
+
+
+def _time_axis_linear(scene) -> bool:
+    """A pulsing or moving scene is read against a linear time axis (its events are
+    evenly spaced in time); a stationary one against a log axis (convergence)."""
+    return not scene.stationary
+
+
 def convergence_figure(evaluation, summary: dict | None = None) -> Figure:
     """Output SINR (dB) against snapshots seen, one line per processor.
 
     Top panel: the mean over trials of the output SINR in dB (solid line), the band
     between the 10th and 90th percentiles over trials (shaded), and the optimum SINR
     ``sigma_s^2 a^H R^-1 a`` of the moment (Van Trees 2002, ch. 6), averaged over trials
-    in dB at each checkpoint (a flat line when the scene is stationary). Bottom panel:
-    the mean over trials of the loss against that optimum, dB. Snapshot axis is
-    logarithmic. Checkpoints where the SINR is undefined (wanted source off) are gaps.
+    in dB at each checkpoint (a flat line when the scene is stationary); the
+    ``optimum`` processor, whose SINR is that line by definition, is the line (one
+    legend entry). Bottom panel: the mean over trials of the loss against that optimum,
+    dB. With more than :data:`PANEL_CURVES` processors the SINR is drawn in small
+    multiples, one panel per family group (:func:`processor_panels`), each with the
+    optimum. The snapshot axis is logarithmic for a stationary scene and linear when a
+    source pulses or moves (the times when pulsing interferers are on are shaded
+    under the axis). Checkpoints where the SINR is undefined (wanted source off) are gaps.
     ``summary``: the compare summary whose statistics are drawn (computed from the
     evaluation only when it is not given).
     """
     _check_evaluation(evaluation)
     curves = _summary_curves(summary)
     cps = np.asarray(evaluation.checkpoints, dtype=float)
-    styles = series_styles(p.label for p in evaluation.processors)
-    fig, axes = new_figure(2, 1, size=(8.0, 6.2), height_ratios=(2.2, 1.0), sharex=True)
-    top, bottom = axes[0, 0], axes[1, 0]
+    styles = run_styles(evaluation)
+    panels = processor_panels(evaluation.processors)
+    linear = _time_axis_linear(evaluation.scene)
     single = len(cps) == 1
-    for p in evaluation.processors:
-        st = styles[p.label]
-        if p.label in curves:
-            mean, lo, hi, loss_mean = curves[p.label]
-        else:
-            mean, lo, hi = _nan_stats(_db(p.sinr))
-            loss_mean, _, _ = _nan_stats(np.asarray(p.loss_db, dtype=float))
-        kw = dict(color=st["color"], linestyle=st["linestyle"], linewidth=1.6)
-        if single or len(cps) <= 12:
-            kw.update(marker=st["marker"], markersize=3.5)
-        top.plot(cps, mean, label=p.label, **kw)
-        if evaluation.trials > 1:
-            top.fill_between(cps, lo, hi, color=st["color"], alpha=0.15, linewidth=0)
-        bottom.plot(cps, loss_mean, **kw)
+    pulsing = [s for s in evaluation.scene.interferers if s.pulsing is not None]
+    strip = [0.22 + 0.14 * len(pulsing)] if pulsing else []
+    if len(panels) == 1:
+        fig, axes = new_figure(2 + bool(strip), 1, size=(8.0, 6.2 + sum(strip)),
+                               height_ratios=[2.2, 1.0] + strip, sharex=True)
+        tops, bottom = [axes[0, 0]], axes[1, 0]
+    else:
+        rows = len(panels)
+        fig, axes = new_figure(rows + bool(strip), 1, size=(8.0, 1.2 + 2.3 * rows + sum(strip)),
+                               height_ratios=[2.3] * rows + strip, sharex=True)
+        tops, bottom = list(axes[:rows, 0]), None
+    on_axes = axes[-1, 0] if strip else None
     if summary and "optimum_curve" in summary:
         opt_mean = np.array(summary["optimum_curve"]["sinr_db_mean"], dtype=float)
     else:
         opt_mean, _, _ = _nan_stats(_db(evaluation.optimum_sinr))
-    top.plot(cps, opt_mean, color=REFERENCE_COLOUR, linestyle=(0, (5, 2)), linewidth=1.2,
-             label="optimum (clairvoyant MVDR)",
-             marker="_" if single else None)
-    bottom.axhline(0.0, color=REFERENCE_COLOUR, linewidth=0.8, linestyle=(0, (5, 2)))
-    top.set_xscale("log")
-    if single:
-        top.set_xlim(cps[0] / 2, cps[0] * 2)
-    else:
-        top.set_xlim(cps[0], cps[-1])
-    _plain_log_ticks(bottom, wide=single is False and cps[-1] / cps[0] >= 10)
-    label_axes(top, ylabel="output SINR, dB\n(mean over trials of dB)")
-    label_axes(bottom, xlabel="snapshots seen (log scale)",
-               ylabel="loss vs optimum, dB\n(mean over trials)")
-    bottom.invert_yaxis()        # better processors sit higher in both panels
-    handles, labels = top.get_legend_handles_labels()
-    if evaluation.trials > 1:
-        from matplotlib.patches import Patch
-        handles.append(Patch(color="#BBBBBB", alpha=0.6))
-        labels.append("10th-90th percentile over trials")
-    legend_outside(top, handles, labels, title="processor")
+    lows, highs = [], []
+    for ax, (group, procs) in zip(tops, panels):
+        for p in procs:
+            st = styles[p.label]
+            if p.label in curves:
+                mean, lo, hi, loss_mean = curves[p.label]
+            else:
+                mean, lo, hi = _nan_stats(_db(p.sinr))
+                loss_mean, _, _ = _nan_stats(np.asarray(p.loss_db, dtype=float))
+            kw = dict(color=st["color"], linestyle=st["linestyle"], linewidth=1.6)
+            if single or len(cps) <= 12:
+                kw.update(marker=st["marker"], markersize=3.5)
+            ax.plot(cps, mean, label=p.label, **kw)
+            if evaluation.trials > 1:
+                ax.fill_between(cps, lo, hi, color=st["color"], alpha=0.15, linewidth=0)
+            lows.append(np.nanmin(lo) if np.isfinite(lo).any() else np.nan)
+            if bottom is not None:
+                bottom.plot(cps, loss_mean, **kw)
+        ax.plot(cps, opt_mean, color=REFERENCE_COLOUR, linestyle=(0, (5, 2)), linewidth=1.2,
+                label="optimum (clairvoyant MVDR)", marker="_" if single else None)
+        highs.append(np.nanmax(opt_mean) if np.isfinite(opt_mean).any() else np.nan)
+        if group:
+            ax.set_title(group, fontsize=FONT_SIZE, loc="left")
+    axis_ax = on_axes if on_axes is not None else bottom if bottom is not None else tops[-1]
+    for ax in tops:
+        if not linear:
+            ax.set_xscale("log")
+        if single:
+            ax.set_xlim(cps[0] / 2, cps[0] * 2) if not linear else ax.set_xlim(cps[0] - 1, cps[0] + 1)
+        else:
+            ax.set_xlim(0 if linear else cps[0], cps[-1])
+    if len(panels) > 1 and np.isfinite(lows).any() and np.isfinite(highs).any():
+        lo_all, hi_all = np.nanmin(lows), np.nanmax(highs)
+        for ax in tops:
+            ax.set_ylim(lo_all - 2.0, hi_all + 3.0)                # one scale for all panels
+    if not linear:
+        _plain_log_ticks(axis_ax, wide=single is False and cps[-1] / cps[0] >= 10)
+    if on_axes is not None:
+        _mark_pulses(on_axes, evaluation, pulsing)
+    what = "snapshots seen" + (" (log scale)" if not linear else "")
+    for ax in tops:
+        label_axes(ax, ylabel="output SINR, dB\n(mean over trials of dB)")
+    if bottom is not None:
+        label_axes(bottom, ylabel="loss vs optimum, dB\n(mean over trials)")
+        bottom.axhline(0.0, color=REFERENCE_COLOUR, linewidth=0.8, linestyle=(0, (5, 2)))
+        bottom.invert_yaxis()        # better processors sit higher in both panels
+    label_axes(axis_ax, xlabel=what)
+    from matplotlib.patches import Patch
+    for i, ax in enumerate(tops):
+        handles, labels = ax.get_legend_handles_labels()
+        if i > 0:                    # the optimum's entry once, in the first panel
+            keep = [k for k, lb in enumerate(labels) if not lb.startswith("optimum")]
+            handles, labels = [handles[k] for k in keep], [labels[k] for k in keep]
+        if i == 0 and evaluation.trials > 1:
+            handles.append(Patch(color="#BBBBBB", alpha=0.6))
+            labels.append("10th-90th percentile over trials")
+        legend_outside(ax, handles, labels, title="processor" if i == 0 else None)
     title, sub = run_title(evaluation, "Convergence")
     if not evaluation.scene.stationary:
         sub += "; nonstationary scene: optimum of the moment"
     add_title(fig, title, sub)
     return fig
+
+
+def _mark_pulses(ax, evaluation, pulsing) -> None:
+    """A strip under the convergence panels: one row per pulsing interferer, filled
+    while it is on (sampled at 2,000 points over the run)."""
+    k = np.unique(np.linspace(0, int(evaluation.snapshots), 2000).astype(np.int64))
+    for i, s in enumerate(pulsing):
+        on = np.asarray(s.active(k), dtype=bool)
+        ax.fill_between(k, i - 0.35, i + 0.35, where=on, step="post",
+                        color=INTERFERER_COLOUR, linewidth=0)
+    ax.set_ylim(len(pulsing) - 0.5, -0.5)
+    ax.set_yticks(range(len(pulsing)))
+    ax.set_yticklabels([(s.name if len(s.name) <= 14 else s.name[:13] + "...") + " on"
+                        for s in pulsing], fontsize=TICK_SIZE - 0.5)
+    ax.grid(False, axis="y")
+    ax.tick_params(axis="y", length=0)
 
 
 def _plain_log_ticks(ax, wide: bool) -> None:
@@ -468,7 +602,7 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     sc = evaluation.scene
     full = _spans_depth(sc)
     az = default_azimuths(sc) if azimuths is None else np.asarray(azimuths, dtype=float)
-    styles = series_styles(p.label for p in evaluation.processors)
+    styles = run_styles(evaluation)
     fig, ax = new_figure(size=(8.6, 4.9))
     patterns = mean_beam_patterns_db(evaluation, [p.label for p in evaluation.processors],
                                      az, skip_dead=True)
@@ -546,8 +680,11 @@ def null_depth_figure(evaluation) -> Figure:
         ax.set_yticks([])
         add_title(fig, title, sub)
         return fig
-    styles = series_styles(p.label for p in evaluation.processors)
     procs = evaluation.processors
+    labels = _interferer_labels(evaluation)
+    if len(procs) * len(names) > BAR_LIMIT:
+        return _null_depth_map(evaluation, fig, ax, labels, title, sub)
+    styles = run_styles(evaluation)
     count = len(procs)
     width = 0.8 / count
     x0 = np.arange(len(names), dtype=float)
@@ -573,23 +710,81 @@ def null_depth_figure(evaluation) -> Figure:
         if finite.size:
             lowest = min(lowest, float(finite.min()))
     ax.axhline(0.0, color="#303030", linewidth=0.8)
-    by_name = {s.name: s for s in sc.interferers}
-    ticks = []
-    for name in names:
-        s = by_name.get(name)
-        short = name if len(name) <= 16 else name[:15] + "..."
-        if s is None:
-            ticks.append(short)
-            continue
-        copy = f"\ncopy of {s.waveform.of}" if s.waveform.kind == "copy" else ""
-        ticks.append(f"{short}\naz {s.azimuth:g} deg\nJNR {s.power_db:g} dB{copy}")
     ax.set_xticks(x0)
-    ax.set_xticklabels(ticks, fontsize=TICK_SIZE)
+    if len(names) <= 5:
+        ax.set_xticklabels(labels, fontsize=TICK_SIZE)
+    else:                          # many groups: one line each, slanted so they never overlap
+        ax.set_xticklabels([t.replace("\n", ", ") for t in labels], fontsize=TICK_SIZE - 0.5,
+                           rotation=30, ha="right", rotation_mode="anchor")
     ax.set_xlim(-0.6, len(names) - 0.4)
     ax.set_ylim(min(lowest * 1.1 - 4.0, -10.0), 5.0)
     label_axes(ax, ylabel="response re look direction, dB\n"
                           f"(mean over trials of dB, floor {NULL_FLOOR_DB:g})")
     legend_outside(ax, title="processor")
+    add_title(fig, title, sub + f"; weights after {int(evaluation.checkpoints[-1])} snapshots")
+    return fig
+
+
+#: above this many processor x interferer bars the null depths are drawn as a table
+#: of coloured cells instead (bars that thin cannot be told apart)
+BAR_LIMIT = 36
+
+
+def _interferer_labels(evaluation) -> list[str]:
+    """Label of each interferer for the null-depth figures: name, direction at the
+    final checkpoint (elevation shown whenever a source of the scene is off the
+    horizon), JNR, "copy of ..." for a coherent copy, and "off at end" for one not
+    transmitting then."""
+    sc = evaluation.scene
+    k = int(evaluation.checkpoints[-1])
+    show_el = any(abs(float(s.direction(k)[1])) > 1e-9 for s in sc.sources) \
+        or abs(sc.look_elevation) > 1e-9
+    by_name = {s.name: s for s in sc.interferers}
+    out = []
+    for name in evaluation.interferers:
+        short = name if len(name) <= 16 else name[:15] + "..."
+        s = by_name.get(name)
+        if s is None:
+            out.append(short)
+            continue
+        az, el = (float(v) for v in s.direction(k))
+        where = f"az {az:.3g}" + (f", el {el:.3g}" if show_el else "") + " deg"
+        off = "" if bool(s.active(k)) else " (off at end)"
+        copy = f", copy of {s.waveform.of}" if s.waveform.kind == "copy" else ""
+        out.append(f"{short}{off}\n{where}\nJNR {s.power_db:g} dB{copy}")
+    return out
+
+
+def _null_depth_map(evaluation, fig, ax, labels, title, sub) -> Figure:
+    """Null depths of many processors toward many interferers as a table of coloured
+    cells (rows: processors, columns: interferers), the mean written in each cell."""
+    procs = evaluation.processors
+    table = np.full((len(procs), len(labels)), np.nan)
+    for i, p in enumerate(procs):
+        nd = np.asarray(p.null_depth_db, dtype=float)[:, -1, :]
+        nd = np.where(np.isfinite(nd), np.maximum(nd, NULL_FLOOR_DB), np.nan)
+        table[i] = _nan_stats(nd)[0]
+    height = max(3.6, min(9.0, 1.9 + 0.32 * len(procs)))
+    fig.set_size_inches(FIGURE_SIZE[0], height)
+    img = ax.imshow(table, cmap="viridis", vmin=NULL_FLOOR_DB, vmax=0.0, aspect="auto",
+                    interpolation="nearest")
+    ax.grid(False)
+    for (i, j), v in np.ndenumerate(table):
+        ax.text(j, i, _depth_text(v), ha="center", va="center", fontsize=TICK_SIZE - 1,
+                color="white" if v < -45 else "black")
+    ax.set_yticks(range(len(procs)))
+    ax.set_yticklabels([p.label if len(p.label) <= 32 else p.label[:31] + "..." for p in procs],
+                       fontsize=TICK_SIZE - 0.5)
+    ax.set_xticks(range(len(labels)))
+    ax.set_xticklabels([t.replace("\n", ", ") for t in labels], fontsize=TICK_SIZE - 0.5,
+                       rotation=30, ha="right", rotation_mode="anchor")
+    for side in ("left", "bottom"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(length=0)
+    bar = fig.colorbar(img, ax=ax, shrink=0.9, pad=0.02)
+    bar.set_label("response re look direction, dB\n"
+                  f"(mean over trials of dB, floor {NULL_FLOOR_DB:g})", fontsize=FONT_SIZE)
+    bar.ax.tick_params(labelsize=TICK_SIZE)
     add_title(fig, title, sub + f"; weights after {int(evaluation.checkpoints[-1])} snapshots")
     return fig
 
