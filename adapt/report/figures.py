@@ -53,6 +53,7 @@ __all__ = [
     "save_png", "figure_to_png", "is_png", "run_title",
     "default_azimuths", "mean_beam_pattern_db", "mean_beam_patterns_db",
     "convergence_figure", "beam_pattern_figure", "null_depth_figure",
+    "response_map_figure", "response_map_db", "processor_panels",
     "standard_figures", "FIGURE_TEXT",
 ]
 
@@ -588,14 +589,50 @@ def _on_cut(az: float, full: bool) -> float:
     return a
 
 
+def _cut_elevations(evaluation) -> list[tuple[float, list]]:
+    """(elevation, sources on that cut) of the pattern panels: the look elevation, and
+    for an array that is not a line also the elevation of every interferer at the final
+    checkpoint (a line's response depends on one direction cosine only, so its cut at
+    the look elevation holds every value; a planar array's does not)."""
+    sc = evaluation.scene
+    k = int(evaluation.checkpoints[-1]) - 1
+    look = float(sc.look_elevation)
+    if scores_is_line(sc.array.positions):
+        return [(look, list(sc.sources))]
+    cuts: list[tuple[float, list]] = [(look, [])]
+    for s in sc.sources:
+        el = float(s.direction(k)[1])
+        for c_el, members in cuts:
+            if abs(c_el - el) < 0.05:
+                members.append(s)
+                break
+        else:
+            cuts.append((el, [s]))
+    return cuts
+
+
+def scores_is_line(positions) -> bool:
+    """True when the element positions lie on one line (see
+    :func:`adapt.engine.scores.is_line_array`; repeated here, the report layer sits
+    below the engine)."""
+    pos = np.asarray(positions, dtype=float).reshape(-1, 3)
+    if pos.shape[0] < 3:
+        return True
+    sv = np.linalg.svd(pos - pos.mean(axis=0), compute_uv=False)
+    return bool(sv[1] <= 1e-9 * max(float(sv[0]), 1.0))
+
+
 def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLOOR_DB) -> Figure:
-    """Beam patterns of every processor's final weights on the azimuth cut at the look
-    elevation, dB relative to the look-direction response, trial-averaged with each
-    trial's true array (:func:`mean_beam_pattern_db`); sources marked by vertical lines
-    at their direction at the final checkpoint (wanted source solid green, interferers
-    dashed grey, coherent copies dotted orange and labelled "copy of ...", each labelled
-    with its name), the look direction by a triangle.
-    Values below ``floor_db`` are drawn at the floor."""
+    """Beam patterns of every processor's final weights on azimuth cuts, dB relative to
+    the look-direction response, trial-averaged with each trial's true array
+    (:func:`mean_beam_pattern_db`); sources marked by vertical lines at their direction
+    at the final checkpoint (wanted source solid black, interferers dashed grey,
+    coherent copies dotted orange and labelled "copy of ...", each labelled with its
+    name), the look direction by a triangle. A line array gets the
+    cut at the look elevation; any other array one panel per elevation: the look's and
+    each interferer's (the cut through each jammer, where its null is), every source
+    marked on the cut at its own elevation. Values below ``floor_db`` are drawn at the
+    floor; :func:`response_map_figure` shows the whole sky of a planar array."""
     _check_evaluation(evaluation)
     if not floor_db < 0:
         raise ValueError(f"floor_db must be negative, got {floor_db}")
@@ -603,59 +640,180 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     full = _spans_depth(sc)
     az = default_azimuths(sc) if azimuths is None else np.asarray(azimuths, dtype=float)
     styles = run_styles(evaluation)
-    fig, ax = new_figure(size=(8.6, 4.9))
-    patterns = mean_beam_patterns_db(evaluation, [p.label for p in evaluation.processors],
-                                     az, skip_dead=True)
-    for p, pat in zip(evaluation.processors, patterns):
-        st = styles[p.label]
-        dead = not np.any(np.isfinite(pat))
-        ax.plot(az, np.maximum(pat, floor_db), color=st["color"], linestyle=st["linestyle"],
-                linewidth=1.3, label=p.label + (" (no response toward look)" if dead else ""))
-    top = 10.0
-    ax.set_ylim(floor_db, top)
-    ax.set_xlim(az[0], az[-1])
+    cuts = _cut_elevations(evaluation)
+    rows = len(cuts)
+    size = (8.6, 4.9) if rows == 1 else (8.6, 1.3 + 2.5 * rows)
+    fig, axes = new_figure(rows, 1, size=size, sharex=True)
+    axes = [axes] if rows == 1 else list(axes[:, 0])
+    labels = [p.label for p in evaluation.processors]
     k_final = int(evaluation.checkpoints[-1]) - 1
     from matplotlib.transforms import blended_transform_factory
-    trans = blended_transform_factory(ax.transData, ax.transAxes)
-    for s in sc.sources:
-        a_s, e_s = s.direction(k_final)
-        x = _on_cut(float(a_s), full)
-        desired = s.role == "desired"
-        copy = s.waveform.kind == "copy"
-        ax.axvline(x, color=DESIRED_COLOUR if desired else (COPY_COLOUR if copy
-                                                            else INTERFERER_COLOUR),
-                   linestyle="-" if desired else (COPY_STYLE if copy else (0, (4, 3))),
-                   linewidth=1.1 if desired else (1.3 if copy else 0.9),
-                   alpha=0.75 if desired else 1.0, zorder=1)
-        name = s.name if len(s.name) <= 18 else s.name[:17] + "..."
-        extra = [f"copy of {s.waveform.of}"] if copy else []
-        if abs(float(e_s) - sc.look_elevation) > 1e-9:
-            extra.append(f"el {float(e_s):g}")
-        if not s.stationary:
-            extra.append("at end")
-        text = name + (f" ({', '.join(extra)})" if extra else "")
-        ax.text(x, 0.995, text, transform=trans, rotation=90, ha="right", va="top",
-                fontsize=TICK_SIZE - 0.5,
-                color="#000000" if desired else "#505050",
-                fontweight="bold" if desired else "normal", clip_on=True)
-    ax.plot([_on_cut(sc.look_azimuth, full)], [floor_db], marker="^", markersize=8,
-            color=REFERENCE_COLOUR, clip_on=False, linestyle="none", label="look direction")
-    step = 30 if full else 15
-    ax.set_xticks(np.arange(np.ceil(az[0] / step) * step, az[-1] + 1e-9, step))
-    label_axes(ax, xlabel=f"azimuth, degrees (cut at elevation {sc.look_elevation:g} deg)",
-               ylabel="power response re look direction, dB\n(mean over trials)")
+    for i, (ax, (el, here)) in enumerate(zip(axes, cuts)):
+        patterns = mean_beam_patterns_db(evaluation, labels, az, elevation=el, skip_dead=True)
+        for p, pat in zip(evaluation.processors, patterns):
+            st = styles[p.label]
+            dead = not np.any(np.isfinite(pat))
+            ax.plot(az, np.maximum(pat, floor_db), color=st["color"],
+                    linestyle=st["linestyle"], linewidth=1.3,
+                    label=p.label + (" (no response toward look)" if dead else ""))
+        ax.set_ylim(floor_db, 10.0)
+        ax.set_xlim(az[0], az[-1])
+        trans = blended_transform_factory(ax.transData, ax.transAxes)
+        for s in here:
+            a_s, e_s = s.direction(k_final)
+            x = _on_cut(float(a_s), full)
+            desired = s.role == "desired"
+            copy = s.waveform.kind == "copy"
+            ax.axvline(x, color=DESIRED_COLOUR if desired else (COPY_COLOUR if copy
+                                                                else INTERFERER_COLOUR),
+                       linestyle="-" if desired else (COPY_STYLE if copy else (0, (4, 3))),
+                       linewidth=1.1 if desired else (1.3 if copy else 0.9),
+                       alpha=0.75 if desired else 1.0, zorder=1)
+            name = s.name if len(s.name) <= 18 else s.name[:17] + "..."
+            extra = [f"copy of {s.waveform.of}"] if copy else []
+            if rows == 1 and abs(float(e_s) - sc.look_elevation) > 1e-9:
+                extra.append(f"el {float(e_s):g}")
+            if not s.stationary:
+                extra.append("at end")
+            text = name + (f" ({', '.join(extra)})" if extra else "")
+            ax.text(x, 0.995, text, transform=trans, rotation=90, ha="right", va="top",
+                    fontsize=TICK_SIZE - 0.5,
+                    color="#000000" if desired else "#505050",
+                    fontweight="bold" if desired else "normal", clip_on=True)
+        if abs(el - sc.look_elevation) < 0.05:
+            ax.plot([_on_cut(sc.look_azimuth, full)], [floor_db], marker="^", markersize=8,
+                    color=REFERENCE_COLOUR, clip_on=False, linestyle="none",
+                    label="look direction")
+        if rows > 1:
+            names = ", ".join(s.name for s in here if s.role != "desired")
+            what = "look elevation" if abs(el - sc.look_elevation) < 0.05 else ""
+            ax.set_title(f"cut at elevation {el:g} deg"
+                         + (f" ({what})" if what else "") + (f": {names}" if names else ""),
+                         fontsize=FONT_SIZE, loc="left")
+            label_axes(ax, ylabel="response, dB")
+        step = 30 if full else 15
+        ax.set_xticks(np.arange(np.ceil(az[0] / step) * step, az[-1] + 1e-9, step))
+    if rows == 1:
+        label_axes(axes[0], xlabel=f"azimuth, degrees (cut at elevation {sc.look_elevation:g} deg)",
+                   ylabel="power response re look direction, dB\n(mean over trials)")
+    else:
+        label_axes(axes[-1], xlabel="azimuth, degrees")
     from matplotlib.lines import Line2D
-    handles, labels = ax.get_legend_handles_labels()
+    handles, names = axes[0].get_legend_handles_labels()
     handles += [Line2D([], [], color=DESIRED_COLOUR, linewidth=1.1, alpha=0.75),
                 Line2D([], [], color=INTERFERER_COLOUR, linestyle=(0, (4, 3)))]
-    labels += ["wanted source", "interferer"]
+    names += ["wanted source", "interferer"]
     if sc.coherent:
         handles.append(Line2D([], [], color=COPY_COLOUR, linestyle=COPY_STYLE, linewidth=1.3))
-        labels.append("coherent copy")
-    legend_outside(ax, handles, labels, title="processor")
+        names.append("coherent copy")
+    legend_outside(axes[0], handles, names, title="processor")
     title, sub = run_title(evaluation, "Beam patterns at the final checkpoint")
+    if rows > 1:
+        sub += "; dB re the look-direction response, mean over trials"
     if sc.array.errors.any:
         sub += "; true arrays with hardware errors"
+    add_title(fig, title, sub)
+    return fig
+
+
+def _map_extent(scene) -> tuple[tuple[float, float], tuple[float, float]]:
+    """(azimuth span, elevation span) of the response map: a planar array's mirror
+    half is left out (a horizontal array: the hemisphere on the look side; an array in
+    the x-z plane: the front, azimuth -90..90)."""
+    pos = np.asarray(scene.array.positions, dtype=float)
+    c = pos - pos.mean(axis=0)
+    _, sv, vt = np.linalg.svd(c)
+    if sv.size >= 3 and sv[2] <= 1e-9 * max(float(sv[0]), 1.0):
+        n = vt[-1]
+        if abs(abs(n[2]) - 1) < 1e-9:
+            return (-180.0, 180.0), ((0.0, 90.0) if scene.look_elevation >= 0 else (-90.0, 0.0))
+        if abs(abs(n[1]) - 1) < 1e-9:
+            return (-90.0, 90.0), (-90.0, 90.0)
+    return (-180.0, 180.0), (-90.0, 90.0)
+
+
+def response_map_db(evaluation, labels: Sequence[str], azimuths, elevations) -> np.ndarray:
+    """Trial-averaged power response (dB re the look direction) of processors' final
+    weights over an azimuth x elevation grid: (len(labels), len(elevations),
+    len(azimuths)); each row is :func:`mean_beam_patterns_db` at that elevation."""
+    el = np.atleast_1d(np.asarray(elevations, dtype=float))
+    rows = [mean_beam_patterns_db(evaluation, labels, azimuths, elevation=float(e),
+                                  skip_dead=True) for e in el]
+    return np.stack(rows, axis=1)
+
+
+def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
+    """The whole sky: one map per processor of the trial-averaged response of its
+    final weights (dB re the look direction, :func:`response_map_db`) over azimuth x
+    elevation, every source marked at its direction at the final checkpoint (wanted
+    source: star; interferers: crosses, named in the first map; look direction:
+    plus). Meant for arrays that are not a line, whose azimuth cut misses sources at
+    other elevations. Values below ``floor_db`` show at the floor."""
+    _check_evaluation(evaluation)
+    if not floor_db < 0:
+        raise ValueError(f"floor_db must be negative, got {floor_db}")
+    sc = evaluation.scene
+    (a0, a1), (e0, e1) = _map_extent(sc)
+    ap = max(float(sc.array.aperture), 0.5)
+    step = float(np.clip(np.rad2deg(1.0 / ap) / 4.0, 0.5, 3.0))
+    az = np.linspace(a0, a1, int(round((a1 - a0) / step)) + 1)
+    el = np.linspace(e0, e1, int(round((e1 - e0) / step)) + 1)
+    procs = evaluation.processors
+    labels = [p.label for p in procs]
+    maps = response_map_db(evaluation, labels, az, el)
+    count = len(procs)
+    cols = 1 if count == 1 else 2 if count <= 4 else 3
+    rows = int(np.ceil(count / cols))
+    aspect = (e1 - e0) / (a1 - a0)
+    panel_w = 7.6 / cols
+    fig, axes = new_figure(rows, cols, size=(8.6, 1.3 + rows * (panel_w * aspect + 0.75)),
+                           sharex=True)
+    axes = np.atleast_1d(axes).ravel() if count > 1 else np.array([axes])
+    finite = maps[np.isfinite(maps)]
+    top = float(np.clip(np.ceil(finite.max()) if finite.size else 0.0, 0.0, 30.0))
+    k = int(evaluation.checkpoints[-1]) - 1
+    img = None
+    for i, (ax, p) in enumerate(zip(axes, procs)):
+        ax.grid(False)
+        img = ax.imshow(np.maximum(maps[i], floor_db), origin="lower", aspect="auto",
+                        extent=(a0 - step / 2, a1 + step / 2, e0 - step / 2, e1 + step / 2),
+                        cmap="viridis", vmin=floor_db, vmax=top, interpolation="nearest")
+        for s in sc.sources:
+            sa, se = (float(v) for v in s.direction(k))
+            sa = _wrap(sa)
+            if not (a0 - 1e-9 <= sa <= a1 + 1e-9 and e0 - 1e-9 <= se <= e1 + 1e-9):
+                continue
+            desired = s.role == "desired"
+            ax.plot([sa], [se], linestyle="none", marker="*" if desired else "X",
+                    markersize=10 if desired else 7, markerfacecolor="white",
+                    markeredgecolor="black", markeredgewidth=0.8)
+            if i == 0:
+                name = s.name if len(s.name) <= 12 else s.name[:11] + "..."
+                ax.annotate(name, (sa, se), xytext=(4, 3), textcoords="offset points",
+                            fontsize=TICK_SIZE - 1.5, color="white",
+                            bbox={"boxstyle": "round,pad=0.1", "facecolor": "black",
+                                  "alpha": 0.55, "edgecolor": "none"})
+        ax.plot([_wrap(sc.look_azimuth)], [sc.look_elevation], marker="+", markersize=11,
+                color="white", markeredgewidth=1.4, linestyle="none")
+        ax.set_title(p.label if len(p.label) <= 40 else p.label[:39] + "...",
+                     fontsize=FONT_SIZE - 0.5, loc="left")
+        ax.set_xlim(a0, a1)
+        ax.set_ylim(e0, e1)
+        ax.set_xticks(np.arange(a0, a1 + 1e-9, 90 if a1 - a0 > 180 else 45))
+        ax.set_yticks(np.arange(e0, e1 + 1e-9, 30))
+    for ax in axes[count:]:
+        ax.set_visible(False)
+    for ax in axes[(rows - 1) * cols:count] if count else []:
+        label_axes(ax, xlabel="azimuth, deg")
+    for r in range(rows):
+        label_axes(axes[r * cols], ylabel="elevation, deg")
+    if img is not None:
+        bar = fig.colorbar(img, ax=list(axes[:count]), shrink=0.85, pad=0.02)
+        bar.set_label(f"response re look direction, dB (mean over trials, floor {floor_db:g})",
+                      fontsize=FONT_SIZE - 0.5)
+        bar.ax.tick_params(labelsize=TICK_SIZE)
+    title, sub = run_title(evaluation, "Response over the sky at the final checkpoint")
+    sub += "; star: wanted source, crosses: interferers, plus: look direction"
     add_title(fig, title, sub)
     return fig
 
@@ -811,6 +969,12 @@ FIGURE_TEXT = {
         "elevation, relative to the look-direction response and averaged over trials, "
         "each trial with its true element positions and gains. Vertical lines: the "
         "wanted source (solid) and interferers (dashed)."),
+    "response_map": (
+        "Maps of each processor's response over azimuth and elevation, sources marked",
+        "Response of each processor's final weights over azimuth and elevation, relative "
+        "to the look direction and averaged over trials (arrays that are not a line: "
+        "sources away from the look elevation are not on the azimuth cut). Star: the "
+        "wanted source; crosses: interferers; plus: the look direction."),
     "null_depth": (
         "Grouped bar chart of the response toward each interferer per processor",
         "Response toward each interferer relative to the look direction at the final "
@@ -820,9 +984,13 @@ FIGURE_TEXT = {
 
 
 def standard_figures(evaluation, summary: dict | None = None) -> dict[str, bytes]:
-    """The three figures of a comparison as PNG bytes: ``{"convergence": ..,
-    "beam_pattern": .., "null_depth": ..}`` (keys match :data:`FIGURE_TEXT`);
-    ``summary``: the compare summary whose statistics the convergence figure draws."""
-    return {"convergence": save_png(convergence_figure(evaluation, summary)),
-            "beam_pattern": save_png(beam_pattern_figure(evaluation)),
-            "null_depth": save_png(null_depth_figure(evaluation))}
+    """The figures of a comparison as PNG bytes: ``{"convergence": ..,
+    "beam_pattern": .., "null_depth": ..}`` and, for an array that is not a line,
+    ``"response_map"`` (keys match :data:`FIGURE_TEXT`); ``summary``: the compare
+    summary whose statistics the convergence figure draws."""
+    out = {"convergence": save_png(convergence_figure(evaluation, summary)),
+           "beam_pattern": save_png(beam_pattern_figure(evaluation)),
+           "null_depth": save_png(null_depth_figure(evaluation))}
+    if not scores_is_line(evaluation.scene.array.positions):
+        out["response_map"] = save_png(response_map_figure(evaluation))
+    return out
