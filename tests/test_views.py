@@ -5,6 +5,7 @@ from __future__ import annotations
 import subprocess
 import sys
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -366,8 +367,7 @@ def test_power_inversion_sliding_window_uses_the_last_snapshots():
 
 
 def test_distribution_has_its_own_name():
-    import tomllib
-    from pathlib import Path
+    tomllib = pytest.importorskip("tomllib")          # Python 3.11+
     meta = tomllib.loads((Path(__file__).parents[1] / "pyproject.toml").read_text())
     name = meta["project"]["name"]
     assert name != "adapt" and name.startswith("adapt-")

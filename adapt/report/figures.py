@@ -827,7 +827,6 @@ def null_depth_figure(evaluation) -> Figure:
     trials as a whisker and the mean written on the bar when there is room. Each group is labelled with
     the interferer's name, azimuth and JNR (per-element jammer-to-noise ratio, dB)."""
     _check_evaluation(evaluation)
-    sc = evaluation.scene
     names = list(evaluation.interferers)
     fig, ax = new_figure(size=(8.0, 4.6))
     title, sub = run_title(evaluation, "Null depth toward each interferer")
