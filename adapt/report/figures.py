@@ -294,7 +294,7 @@ def processor_panels(processors) -> list[tuple[str, list]]:
     when there are at most :data:`PANEL_CURVES` of them (the clairvoyant optimum, drawn
     as the reference in every panel, not counted), else one per family group of
     :data:`FAMILY_GROUPS` (other methods in a last group), each cut into panels of at
-    most :data:`PANEL_CURVES`."""
+    most :data:`PANEL_CURVES`; neighbouring groups that fit together share a panel."""
     curves = [p for p in processors if p.method != "optimum"]
     if len(curves) <= PANEL_CURVES:
         return [("", curves)]
@@ -307,7 +307,11 @@ def processor_panels(processors) -> list[tuple[str, list]]:
     for title, members in groups:
         for k in range(0, len(members), PANEL_CURVES):
             part = members[k:k + PANEL_CURVES]
-            if part:
+            if not part:
+                continue
+            if out and len(out[-1][1]) + len(part) <= PANEL_CURVES:   # small groups share
+                out[-1] = (f"{out[-1][0]}; {title}", out[-1][1] + part)
+            else:
                 out.append((title, part))
     return out
 
@@ -641,21 +645,31 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     az = default_azimuths(sc) if azimuths is None else np.asarray(azimuths, dtype=float)
     styles = run_styles(evaluation)
     cuts = _cut_elevations(evaluation)
-    rows = len(cuts)
+    everyone = list(evaluation.processors)
+    # (elevation, sources on the cut, processors, group title) of each panel: one per
+    # elevation, or for a line with many processors one per family group
+    groups = processor_panels(everyone) if len(cuts) == 1 else [("", everyone)]
+    optimum = [p for p in everyone if p.method == "optimum"]
+    if len(groups) > 1:
+        panels = [(cuts[0][0], cuts[0][1], optimum + procs, title) for title, procs in groups]
+    else:
+        panels = [(el, here, everyone, "") for el, here in cuts]
+    rows = len(panels)
     size = (8.6, 4.9) if rows == 1 else (8.6, 1.3 + 2.5 * rows)
     fig, axes = new_figure(rows, 1, size=size, sharex=True)
     axes = [axes] if rows == 1 else list(axes[:, 0])
-    labels = [p.label for p in evaluation.processors]
     k_final = int(evaluation.checkpoints[-1]) - 1
     from matplotlib.transforms import blended_transform_factory
-    for i, (ax, (el, here)) in enumerate(zip(axes, cuts)):
-        patterns = mean_beam_patterns_db(evaluation, labels, az, elevation=el, skip_dead=True)
-        for p, pat in zip(evaluation.processors, patterns):
+    for i, (ax, (el, here, procs, group)) in enumerate(zip(axes, panels)):
+        patterns = mean_beam_patterns_db(evaluation, [p.label for p in procs], az,
+                                         elevation=el, skip_dead=True)
+        for p, pat in zip(procs, patterns):
             st = styles[p.label]
             dead = not np.any(np.isfinite(pat))
             ax.plot(az, np.maximum(pat, floor_db), color=st["color"],
                     linestyle=st["linestyle"], linewidth=1.3,
-                    label=p.label + (" (no response toward look)" if dead else ""))
+                    label=(p.label + (" (no response toward look)" if dead else ""))
+                    if i == 0 or p.method != "optimum" else "_" + p.label)
         ax.set_ylim(floor_db, 10.0)
         ax.set_xlim(az[0], az[-1])
         trans = blended_transform_factory(ax.transData, ax.transAxes)
@@ -684,7 +698,10 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
             ax.plot([_on_cut(sc.look_azimuth, full)], [floor_db], marker="^", markersize=8,
                     color=REFERENCE_COLOUR, clip_on=False, linestyle="none",
                     label="look direction")
-        if rows > 1:
+        if group:
+            ax.set_title(group, fontsize=FONT_SIZE, loc="left")
+            label_axes(ax, ylabel="response, dB")
+        elif rows > 1:
             names = ", ".join(s.name for s in here if s.role != "desired")
             what = "look elevation" if abs(el - sc.look_elevation) < 0.05 else ""
             ax.set_title(f"cut at elevation {el:g} deg"
@@ -697,16 +714,21 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
         label_axes(axes[0], xlabel=f"azimuth, degrees (cut at elevation {sc.look_elevation:g} deg)",
                    ylabel="power response re look direction, dB\n(mean over trials)")
     else:
-        label_axes(axes[-1], xlabel="azimuth, degrees")
+        label_axes(axes[-1], xlabel="azimuth, degrees" + (
+            f" (cut at elevation {sc.look_elevation:g} deg)" if len(cuts) == 1 else ""))
     from matplotlib.lines import Line2D
-    handles, names = axes[0].get_legend_handles_labels()
-    handles += [Line2D([], [], color=DESIRED_COLOUR, linewidth=1.1, alpha=0.75),
-                Line2D([], [], color=INTERFERER_COLOUR, linestyle=(0, (4, 3)))]
-    names += ["wanted source", "interferer"]
+    marks = [Line2D([], [], color=DESIRED_COLOUR, linewidth=1.1, alpha=0.75),
+             Line2D([], [], color=INTERFERER_COLOUR, linestyle=(0, (4, 3)))]
+    mark_names = ["wanted source", "interferer"]
     if sc.coherent:
-        handles.append(Line2D([], [], color=COPY_COLOUR, linestyle=COPY_STYLE, linewidth=1.3))
-        names.append("coherent copy")
-    legend_outside(axes[0], handles, names, title="processor")
+        marks.append(Line2D([], [], color=COPY_COLOUR, linestyle=COPY_STYLE, linewidth=1.3))
+        mark_names.append("coherent copy")
+    for i, ax in enumerate(axes):
+        handles, names = ax.get_legend_handles_labels()
+        if i == 0:                   # the source marks once, with the first panel's curves
+            legend_outside(ax, handles + marks, names + mark_names, title="processor")
+        elif len(groups) > 1:        # family panels: each lists its own curves
+            legend_outside(ax, handles, names)
     title, sub = run_title(evaluation, "Beam patterns at the final checkpoint")
     if rows > 1:
         sub += "; dB re the look-direction response, mean over trials"
