@@ -575,13 +575,21 @@ def direction_response(weights: np.ndarray, positions: np.ndarray, directions: n
     for lo in range(0, d, step):
         uu = u[..., lo:lo + step, :]
         if pos.ndim == 2 and uu.ndim == 2:
-            a = np.exp(2j * np.pi * (uu @ pos.T))                           # (d, N)
+            a = _cis(2 * np.pi * (uu @ pos.T))                                # (d, N)
             out[:, lo:lo + step] = np.abs(wc @ a.T) ** 2
         else:
             uu = np.broadcast_to(uu, (t_,) + uu.shape[-2:])
             pp = np.broadcast_to(pos, (t_, n, 3))
-            a = np.exp(2j * np.pi * np.einsum("tdk,tnk->tdn", uu, pp))
+            a = _cis(2 * np.pi * np.einsum("tdk,tnk->tdn", uu, pp))           # (T, d, N)
             out[:, lo:lo + step] = np.abs(np.einsum("tn,tdn->td", wc, a)) ** 2
+    return out
+
+
+def _cis(phase: np.ndarray) -> np.ndarray:
+    """``exp(j phase)`` of a real array, as cos + j sin (cheaper than a complex exp)."""
+    out = np.empty(phase.shape, dtype=complex)
+    np.cos(phase, out=out.real)
+    np.sin(phase, out=out.imag)
     return out
 
 
@@ -596,7 +604,7 @@ def _offset_directions(center: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.n
 
 def main_beam_peak_2d(weights: np.ndarray, positions: np.ndarray, look_azimuth: float,
                       look_elevation: float = 0.0, gains: np.ndarray | None = None,
-                      beamwidth_deg: float | None = None, points: int = 41):
+                      beamwidth_deg: float | None = None, points: int = 25):
     """Direction (unit vector, (T, 3)) and power (dB, absolute) of the main-beam peak,
     searched in two dimensions.
 
@@ -652,7 +660,7 @@ def main_beam_peak_2d(weights: np.ndarray, positions: np.ndarray, look_azimuth: 
 
 def pointing_error_2d_deg(weights: np.ndarray, positions: np.ndarray, look_azimuth: float,
                           look_elevation: float = 0.0, gains: np.ndarray | None = None,
-                          beamwidth_deg: float | None = None, points: int = 41,
+                          beamwidth_deg: float | None = None, points: int = 25,
                           peak=None) -> np.ndarray:
     """Main-beam pointing error in degrees: the angle between the 2-D main-beam peak
     (:func:`main_beam_peak_2d`, or ``peak``: its result computed before) and the look
@@ -680,23 +688,23 @@ def _main_lobe(pdb: np.ndarray, start: np.ndarray, valid: np.ndarray,
     region = np.zeros(pdb.shape, dtype=bool)
     region[np.arange(t_), start[:, 0], start[:, 1]] = True
     val = np.where(valid, pdb, np.inf)
+    # neighbours by slicing a grid padded with one cell: -inf (never a source of a step)
+    # beyond the edges, the opposite columns where the second axis wraps around
+    mode = (("constant",) * 2) if not wrap else ("constant", "wrap")
+
+    def padded(x, fill):
+        x = np.pad(x, ((0, 0), (1, 1), (0, 0)), mode="constant", constant_values=fill)
+        if mode[1] == "wrap":
+            return np.pad(x, ((0, 0), (0, 0), (1, 1)), mode="wrap")
+        return np.pad(x, ((0, 0), (0, 0), (1, 1)), mode="constant", constant_values=fill)
+
     while True:
+        ref = padded(np.where(region, val, -np.inf), -np.inf)
         grown = region.copy()
         for da in (-1, 0, 1):
             for db in (-1, 0, 1):
-                if not (da or db):
-                    continue
-                # neighbour (a - da, b - db) of each cell, by shifting the grid
-                src = np.roll(np.roll(region, da, axis=1), db, axis=2)
-                ref = np.roll(np.roll(np.where(region, val, -np.inf), da, axis=1), db, axis=2)
-                ok = np.ones(b_, dtype=bool)
-                if not wrap and db:
-                    ok[0 if db == 1 else -1] = False
-                rows = np.ones(a_, dtype=bool)
-                if da:
-                    rows[0 if da == 1 else -1] = False
-                mask = rows[:, None] & ok[None, :]
-                grown |= src & mask & (val <= ref + tol)
+                if da or db:   # neighbour (a - da, b - db) of each cell (a, b)
+                    grown |= val <= ref[:, 1 - da:1 - da + a_, 1 - db:1 - db + b_] + tol
         grown &= valid
         if np.array_equal(grown, region):
             return region
