@@ -809,9 +809,18 @@ def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
             ax.plot([sa], [se], linestyle="none", marker="*" if desired else "X",
                     markersize=10 if desired else 7, markerfacecolor="white",
                     markeredgecolor="black", markeredgewidth=0.8)
+            text = ""
             if i == 0:
-                name = s.name if len(s.name) <= 12 else s.name[:11] + "..."
-                ax.annotate(name, (sa, se), xytext=(4, 3), textcoords="offset points",
+                text = s.name if len(s.name) <= 12 else s.name[:11] + "..."
+            if not desired and s.name in evaluation.interferers:
+                # the null is a point of the sky, narrower than the map's cells: its depth
+                j = list(evaluation.interferers).index(s.name)
+                nd = np.asarray(p.null_depth_db, dtype=float)[:, -1, j]
+                depth = _nan_stats(np.where(np.isfinite(nd), np.maximum(nd, NULL_FLOOR_DB),
+                                            np.nan))[0]
+                text = (text + " " if text else "") + _depth_text(float(depth))
+            if text:
+                ax.annotate(text, (sa, se), xytext=(4, 3), textcoords="offset points",
                             fontsize=TICK_SIZE - 1.5, color="white",
                             bbox={"boxstyle": "round,pad=0.1", "facecolor": "black",
                                   "alpha": 0.55, "edgecolor": "none"})
@@ -835,7 +844,8 @@ def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
                       fontsize=FONT_SIZE - 0.5)
         bar.ax.tick_params(labelsize=TICK_SIZE)
     title, sub = run_title(evaluation, "Response over the sky at the final checkpoint")
-    sub += "; star: wanted source, crosses: interferers, plus: look direction"
+    sub += ("; star: wanted source, crosses: interferers with their null depth in dB, "
+            "plus: look direction")
     add_title(fig, title, sub)
     return fig
 
@@ -995,7 +1005,9 @@ FIGURE_TEXT = {
         "Response of each processor's final weights over azimuth and elevation, relative "
         "to the look direction and averaged over trials (arrays that are not a line: "
         "sources away from the look elevation are not on the azimuth cut). Star: the "
-        "wanted source; crosses: interferers; plus: the look direction."),
+        "wanted source; crosses: interferers, each with its null depth (dB, mean over "
+        "trials: a null is a point of the sky, narrower than a cell); plus: the look "
+        "direction."),
     "null_depth": (
         "Grouped bar chart of the response toward each interferer per processor",
         "Response toward each interferer relative to the look direction at the final "
