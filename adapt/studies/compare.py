@@ -503,7 +503,7 @@ def render_table(metrics: dict, width: int = 100) -> str:
                 for t in said]
     total = metrics.get("seconds")
     out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
-                f"until the loss is within {metrics.get('target_db', 3):g} dB ('never': not within "
+                f"until the loss is first within {metrics.get('target_db', 3):g} dB ('never': not within "
                 f"{k})" + ("; 'stays 3 dB' = snapshots from which the mean loss stays within "
                            "it to the end (first reached and lost again counts only here)"
                            if stays else "")
