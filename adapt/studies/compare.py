@@ -110,8 +110,11 @@ def _pattern_scores_2d(evaluation: Evaluation, weights: np.ndarray, pos, gains,
     peak sidelobe searched over the sphere, for arrays that are not a line."""
     sc = evaluation.scene
     t_, n = weights.shape
-    step = float(np.clip(np.rad2deg(1.0 / aperture) / 8.0, 0.1, 2.0))
-    points = int(360.0 * 180.0 / step ** 2)
+    # about six samples across a sidelobe (lambda / aperture wide); parabolic refinement
+    # does the rest
+    step = float(np.clip(np.rad2deg(1.0 / aperture) / 6.0, 0.1, 3.0))
+    points = int(360.0 * 180.0 / step ** 2) if scores.plane_normal(sc.array.positions) is None \
+        else int((2.0 / np.deg2rad(step)) ** 2)
     use = int(max(1, min(t_, _PATTERN_BUDGET // max(1, points * n))))
     g = None if gains is None or np.all(gains[:use] == 1) else gains[:use]
     args = dict(positions=pos[:use], look_azimuth=float(sc.look_azimuth),
