@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from adapt.engine import scores as S
-from adapt.engine.execute import evaluate
+from adapt.engine.execute import run_trials as evaluate
 from adapt.engine.settings import checkpoints_for
 from adapt.errors import InputError
 from adapt.processors import Context, parse_spec, run_processors
