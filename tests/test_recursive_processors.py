@@ -410,7 +410,7 @@ def test_auto_step_is_inside_the_bound_for_a_changing_scene(rough_scene):
     proc.check(ctx)
     r = ctx.data_covariance(ctx.moments)
     lam = np.linalg.eigvalsh(r)[..., -1].max(axis=1)
-    assert len(ctx.moments) > 1 and np.all(proc._steps < 2 / lam)
+    assert len(ctx.moments) > 1 and np.all(proc.begin(ctx).steps < 2 / lam)
     # the pulsed jammer's on-time raises the bound check: worse than snapshot 0 alone
     lam0 = np.linalg.eigvalsh(ctx.data_covariance([0])[:, 0])[:, -1]
     assert np.all(lam > lam0)

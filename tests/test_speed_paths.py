@@ -329,7 +329,7 @@ def test_smi_fast_solve_equals_general_path(monkeypatch):
     fast = execute.run_trials(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
                             draw="covariance", threads=1)
     monkeypatch.setattr(SampleCovarianceProcessor, "weights_from_scaled",
-                        lambda self, table, counts, load: None)
+                        lambda self, state, table, counts, load: None)
     slow = execute.run_trials(sc, parse_specs(specs), [4, 8, 16, 64], trials=30, tail=0,
                             draw="covariance", threads=1)
     for a, b in zip(fast.processors, slow.processors):

@@ -111,13 +111,14 @@ class _FailsOnShortChunks(SampleMatrixInversion):
     """SMI that refuses, mid-stream, to run a chunk of two trials (a test double)."""
 
     def begin(self, context):
-        super().begin(context)
-        self._fail = context.trials == 2
+        state = super().begin(context)
+        state.fail = context.trials == 2
+        return state
 
-    def update(self, block, stops):
-        if self._fail and block.start > 0:
+    def update(self, state, block, stops):
+        if state.fail and block.start > 0:
             raise InputError("no chunks of two trials here", path="processors[0]", value=2)
-        return super().update(block, stops)
+        return super().update(state, block, stops)
 
 
 def test_an_error_in_a_chunk_reaches_the_caller_unchanged(scene):

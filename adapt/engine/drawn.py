@@ -45,7 +45,7 @@ import numpy as np
 from adapt.errors import InputError
 from adapt.numerics import kernels as _kernels
 from adapt.numerics.linalg import compiled_solves
-from adapt.processors._covariance import SampleCovarianceProcessor
+from adapt.processors import registry
 from adapt.processors.base import Context, Processor, ProcessorResult
 from adapt.scene.model import Scene
 from adapt.streams import normals
@@ -58,11 +58,8 @@ __all__ = ["DRAWS", "DrawStreams", "covariance_draw_refusal", "check_covariance_
 DRAWS = ("samples", "covariance")
 #: spawn-key component of the drawn covariances (streams use 0 and 1)
 _DRAWN_KEY = 2
-#: methods that need no training data at all
-_DATA_FREE = ("optimum", "conventional")
 #: complex values per (trials, spans, N, N) array of one trial group (about 4 MB)
 _GROUP_VALUES = 1 << 18
-_COVARIANCE_METHODS = "smi, eigenspace, lcmv, power_inversion, optimum, conventional"
 
 
 def covariance_draw_refusal(scene: Scene, processors: Sequence[Processor]) -> str | None:
@@ -88,11 +85,11 @@ def covariance_draw_refusal(scene: Scene, processors: Sequence[Processor]) -> st
         return ("these training-data sources are not Gaussian: " + ", ".join(odd)
                 + "; their sample covariance is not Wishart (use waveform: gaussian, or "
                 "draw samples)")
-    bad = [p.label for p in processors
-           if not isinstance(p, SampleCovarianceProcessor) and p.method not in _DATA_FREE]
+    bad = [p.label for p in processors if not p.drawn_covariance]
     if bad:
+        serves = ", ".join(m for m, cls in registry().items() if cls.drawn_covariance)
         return ("these processors need the samples themselves, not only their covariance: "
-                + ", ".join(bad) + f" (a drawn covariance serves {_COVARIANCE_METHODS})")
+                + ", ".join(bad) + f" (a drawn covariance serves {serves})")
     return None
 
 
@@ -108,11 +105,11 @@ def check_covariance_draw(scene: Scene, processors: Sequence[Processor]) -> None
 def cut_points(processors: Sequence[Processor], checkpoints) -> np.ndarray:
     """Sorted snapshot indices where the stream is cut into independently drawn spans:
     0, every update time behind a checkpoint and every window start, for every
-    covariance processor (their ``begin`` must have run)."""
+    covariance-based processor."""
     cps = np.asarray(checkpoints, dtype=np.int64)
     cuts = [np.zeros(1, dtype=np.int64)]
     for p in processors:
-        if isinstance(p, SampleCovarianceProcessor):
+        if p.covariance_based:
             times = p.update_times(cps)
             cuts += [times, p.window_start(times)]
     return np.unique(np.concatenate(cuts))
@@ -229,20 +226,20 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
     check_covariance_draw(batch.scene, procs)
     t_, n = batch.trials, batch.scene.elements
     seconds = [0.0] * len(procs)
-    initial = []
+    initial, states = [], []
     for i, p in enumerate(procs):
         t0 = time.perf_counter()
         p.check(context)
-        p.begin(context)
+        states.append(p.begin(context))
         initial.append(p.initial_weights(context))
         seconds[i] += time.perf_counter() - t0
     weights = [np.empty((t_, len(cps), n), dtype=complex) for _ in procs]
     for i, p in enumerate(procs):
-        if not isinstance(p, SampleCovarianceProcessor):
+        if not p.covariance_based:
             t0 = time.perf_counter()
-            weights[i][:] = p.update(_Span(0, int(cps[-1])), cps)
+            weights[i][:] = p.update(states[i], _Span(0, int(cps[-1])), cps)
             seconds[i] += time.perf_counter() - t0
-    cov = [(i, p) for i, p in enumerate(procs) if isinstance(p, SampleCovarianceProcessor)]
+    cov = [(i, p) for i, p in enumerate(procs) if p.covariance_based]
     cuts = cut_points(procs, cps)
     if cov and len(cuts) > 1:                # spans [cuts[s], cuts[s+1]); none past the last
         t0 = time.perf_counter()
@@ -288,7 +285,7 @@ def run_drawn(processors: Sequence[Processor], batch, context: Context,
                     table = np.einsum("us,tsij->tuij", mask, spans)
                 with compiled_solves():
                     weights[i][lo:hi] = p.weights_from_sums(
-                        cps, distinct, table, slice(lo, hi), hermitian=hermitian and mask is None)
+                        states[i], cps, distinct, table, slice(lo, hi), hermitian=hermitian and mask is None)
                 seconds[i] += time.perf_counter() - t1
         for i, _ in cov:
             seconds[i] += shared / len(cov)

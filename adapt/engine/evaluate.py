@@ -28,7 +28,6 @@ import numpy as np
 from adapt.engine import scores
 from adapt.errors import SpecError
 from adapt.processors import Context, Processor, run_processors
-from adapt.processors._covariance import SampleCovarianceProcessor
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene
 from adapt.streams.snapshots import TrialBatch
@@ -185,7 +184,7 @@ def require_bounded(processor: Processor, index: int, w: np.ndarray, r_in: np.nd
     solve from a sample covariance are not iterations and are exempt: below N snapshots
     without loading their minimum-norm weights may be large by design (and are warned).
     """
-    if isinstance(processor, SampleCovarianceProcessor):
+    if processor.covariance_based:
         return
     with np.errstate(over="ignore", invalid="ignore"):
         rw = (r_in @ w[..., None])[..., 0]                                # (T, C, N)

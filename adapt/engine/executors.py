@@ -4,8 +4,8 @@
   one after another; with more (default: every usable core, :func:`usable_cores`) on a
   pool of threads. The heavy work inside a chunk (the random fills, batched matrix
   products and factorisations, the numba kernels compiled ``nogil``) releases the GIL,
-  so the threads use the cores. Processors keep per-batch state on themselves, so every
-  chunk runs on its own fresh copy (one ``copy.deepcopy`` in :func:`run_threaded`).
+  so the threads use the cores. Processors are immutable settings (each run's state is
+  the object ``begin()`` returns), so every chunk shares them and nothing is copied.
   Side effects stay on the calling thread, in trial order; the ``progress`` callback is
   called per block from the worker threads, one call at a time (a lock). An
   interruption in the calling thread stops the run: chunks not yet started are
@@ -20,7 +20,6 @@
 """
 from __future__ import annotations
 
-import copy
 import logging
 import os
 import re
@@ -204,8 +203,8 @@ def cluster_client(workers: int | None = None, scheduler: str | None = None,
 def run_threaded(todo, threads: int, scene: Scene, processors: Sequence[Processor], checkpoints, *,
                   snapshots: int, seed: int, tail: int, block: int, draw: str, progress,
                   keep_arrays: bool, finished) -> None:
-    """The chunks ``todo`` on a pool of threads (see :func:`run_on_threads`): each on
-    fresh copies of ``processors`` (the one place the engine copies processors);
+    """The chunks ``todo`` on a pool of threads (see :func:`run_on_threads`), all sharing
+    ``processors`` (immutable; each chunk's run state is its own);
     ``finished(key, evaluation, arrays)`` in the calling thread."""
     templates = list(processors)
     lock = threading.Lock()
@@ -219,9 +218,8 @@ def run_threaded(todo, threads: int, scene: Scene, processors: Sequence[Processo
                 with lock:
                     progress(done)
 
-        procs = copy.deepcopy(templates)
         ev = evaluate_batch(TrialBatch(scene, trials=count, seed=seed, first_trial=first),
-                            procs, checkpoints, snapshots, tail=tail, block=block, progress=tick,
+                            templates, checkpoints, snapshots, tail=tail, block=block, progress=tick,
                             **draw_option(draw))
         return ev, (part_arrays(ev) if keep_arrays else None)
 

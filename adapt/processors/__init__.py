@@ -1,14 +1,13 @@
-"""Adaptive processors, one file each, found automatically.
+"""Adaptive processors, one file each, listed in one table.
 
-``registry()`` maps each method name to its class; ``parse_spec`` builds a processor from
-a spec: a string ``"smi loading_db=10 label=loaded"`` or a mapping
-``{"method": "smi", "loading_db": 10, "label": "loaded"}``. A new method is one new
-module in this package defining a :class:`Processor` subclass with a ``method`` name.
+``registry()`` maps each method name to its class (the table :data:`PROCESSORS` below);
+``parse_spec`` builds a processor from a spec: a string ``"smi loading_db=10
+label=loaded"`` or a mapping ``{"method": "smi", "loading_db": 10, "label": "loaded"}``.
+A new method is one new module in this package defining a :class:`Processor` subclass
+with a ``method`` name, and its line in :data:`PROCESSORS`.
 """
 from __future__ import annotations
 
-import importlib
-import pkgutil
 import shlex
 from typing import Any
 
@@ -18,32 +17,46 @@ from adapt.processors.base import (
     Parameter,
     Processor,
     ProcessorResult,
+    State,
     held_outputs,
     run_processor,
     run_processors,
 )
+from adapt.processors.conventional import Conventional
+from adapt.processors.eigenspace import Eigenspace
+from adapt.processors.frost import FrostConstrainedLms
+from adapt.processors.gsc import GeneralisedSidelobeCanceller
+from adapt.processors.lcmv import LinearlyConstrained
+from adapt.processors.lms import LeastMeanSquares
+from adapt.processors.nlms import NormalisedLms
+from adapt.processors.optimum import Optimum
+from adapt.processors.power_inversion import PowerInversion
+from adapt.processors.rls import RecursiveLeastSquares
+from adapt.processors.smi import SampleMatrixInversion
 
 __all__ = ["registry", "parse_spec", "parse_specs", "Processor", "Parameter", "Context",
-           "ProcessorResult", "run_processor", "run_processors", "held_outputs"]
+           "State", "ProcessorResult", "run_processor", "run_processors", "held_outputs",
+           "PROCESSORS"]
 
-_REGISTRY: dict[str, type[Processor]] | None = None
+#: method name -> processor class, in name order: the spec names users type
+PROCESSORS: dict[str, type[Processor]] = {
+    "conventional": Conventional,
+    "eigenspace": Eigenspace,
+    "frost": FrostConstrainedLms,
+    "gsc": GeneralisedSidelobeCanceller,
+    "lcmv": LinearlyConstrained,
+    "lms": LeastMeanSquares,
+    "nlms": NormalisedLms,
+    "optimum": Optimum,
+    "power_inversion": PowerInversion,
+    "rls": RecursiveLeastSquares,
+    "smi": SampleMatrixInversion,
+}
 
 
 def registry() -> dict[str, type[Processor]]:
-    """Method name -> processor class, for every module in this package."""
-    global _REGISTRY
-    if _REGISTRY is None:
-        found: dict[str, type[Processor]] = {}
-        for info in sorted(pkgutil.iter_modules(__path__), key=lambda m: m.name):
-            if info.name.startswith("_") or info.name == "base":
-                continue
-            module = importlib.import_module(f"{__name__}.{info.name}")
-            for obj in vars(module).values():
-                if (isinstance(obj, type) and issubclass(obj, Processor) and obj.method
-                        and obj.__module__ == module.__name__):
-                    found[obj.method] = obj
-        _REGISTRY = dict(sorted(found.items()))
-    return _REGISTRY
+    """Method name -> processor class (a copy of :data:`PROCESSORS`)."""
+    return dict(PROCESSORS)
 
 
 def parse_spec(spec: Any, where: str = "") -> Processor:
@@ -95,15 +108,11 @@ def parse_spec(spec: Any, where: str = "") -> Processor:
         raise SpecError(f"unknown method '{method}'" + did_you_mean(method, classes),
                         path=f"{prefix}method" if where else None, allowed=", ".join(classes))
     label = params.pop("label", None)
-    if label is not None and (not isinstance(label, str) or not label.strip() or len(label) > 80):
-        raise SpecError("label must be non-empty text of at most 80 characters",
-                        path=f"{prefix}label", value=label, allowed="text of 1 to 80 characters")
     cls = classes[method]
-    checked = cls.validate(params, prefix)
-    proc = cls.__new__(cls)
-    proc.params = checked
-    proc.label = label or proc.default_label()
-    return proc
+    try:
+        return cls(label=label, **params)
+    except SpecError as exc:
+        raise exc.at(path_prefix=where) from None
 
 
 def parse_specs(specs, where: str = "processors") -> list[Processor]:

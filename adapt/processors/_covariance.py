@@ -17,14 +17,13 @@ window, which also removes expiring snapshots); O(N^3) per weight computation.
 """
 from __future__ import annotations
 
-import shlex
 import warnings
 
 import numpy as np
 
 from adapt.errors import SpecError
 from adapt.numerics.linalg import solve_hermitian
-from adapt.processors.base import Context, Parameter, Processor, _fmt
+from adapt.processors.base import Context, Parameter, Processor, State
 
 __all__ = ["outer_sum", "GrowingSums", "SlidingSums", "hermitian_part", "loading_level",
            "noise_floor_estimate", "signal_count_mdl", "solve_sample", "SampleCovarianceProcessor",
@@ -348,7 +347,8 @@ def loading_parameters(auto: bool) -> dict[str, Parameter]:
         out["loading"] = Parameter(
             "choice", None, "diagonal loading: none, fixed (loading_db above the known noise "
             "floor) or auto (loading_db above a noise floor estimated from the data; "
-            "loading_db defaults to 10)", choices=("fixed", "auto"), allow_none=True)
+            "loading_db defaults to 10)", choices=("fixed", "auto"), allow_none=True,
+            omit_unset=True)     # unset stays out of the spec: loading_db alone is fixed
     out["loading_db"] = Parameter(
         "float", None, "diagonal load above the noise floor (alone: fixed loading)",
         unit="dB", low=-60.0, high=100.0, allow_none=True)
@@ -387,22 +387,20 @@ class SampleCovarianceProcessor(Processor):
     Checkpoint c uses the estimate at the last update time ``u = floor(c/interval) *
     interval`` (u = c for interval 1), from the snapshots [0, u) (growing window) or
     [max(0, u - length), u) (sliding window). ``u = 0`` (no data yet) gives the initial
-    weight. Subclasses implement ``weights_from(r, counts, exact)``; r (T, C, N, N) is the
-    loaded sample covariance ``S/count + load I``.
+    weight. Subclasses implement ``weights_from(state, r, counts, exact)``; r (T, C, N, N)
+    is the loaded sample covariance ``S/count + load I``.
+
+    The run state (:meth:`begin`) holds the window sums (``sums``), the sum held at the
+    last update time (``held``), the initial weight (``initial``) and whether the
+    singular-covariance warning was given (``warned``; ``warned_auto`` for the crowded
+    noise floor of ``loading=auto``).
     """
 
     method = ""
+    covariance_based = True
+    drawn_covariance = True
     #: warn when unloaded data are singular (a subclass that does not solve with R sets False)
     warns_singular = True
-
-    def spec(self) -> str:
-        """The spec string that rebuilds this processor (an unset ``loading`` is left
-        out, so ``loading_db`` alone still reads as fixed loading)."""
-        parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()
-                                 if not (k == "loading" and v is None)]
-        if self.label != self.default_label():
-            parts.append(f"label={self.label}")
-        return " ".join(shlex.quote(p) for p in parts)      # parse_spec splits with shlex
 
     # -- settings a subclass may override ------------------------------------------
     def window_settings(self) -> tuple[str, int | None, int]:
@@ -416,12 +414,11 @@ class SampleCovarianceProcessor(Processor):
         return (self.params.get("subarray"),
                 self.params.get("smoothing") == "forward-backward")
 
-    @property
-    def look(self) -> np.ndarray:
+    def look(self, context: Context) -> np.ndarray:
         """The assumed look steering the weights are formed for: the whole array's, or
         with spatial smoothing the first subarray's (its first M entries)."""
         m, _ = self.smoothing_settings()
-        return self.context.look if m is None else self.context.look[..., :m]
+        return context.look if m is None else context.look[..., :m]
 
     def check_subarray(self, context: Context) -> None:
         """Refuse smoothing on layouts that are not shift-invariant, and subarrays
@@ -439,10 +436,11 @@ class SampleCovarianceProcessor(Processor):
                             path="subarray", value=m,
                             allowed="a line array, or drop subarray")
 
-    def weights_from(self, r: np.ndarray, counts: np.ndarray, exact: np.ndarray) -> np.ndarray:
+    def weights_from(self, state: State, r: np.ndarray, counts: np.ndarray,
+                     exact: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
-    def weights_from_scaled(self, table: np.ndarray, counts: np.ndarray,
+    def weights_from_scaled(self, state: State, table: np.ndarray, counts: np.ndarray,
                             load: np.ndarray | None) -> np.ndarray | None:
         """Optional fast path: the weights of :meth:`weights_from` straight from the
         window sums ``table`` (T, C, N, N), exactly Hermitian, with ``S / count + load I``
@@ -451,22 +449,23 @@ class SampleCovarianceProcessor(Processor):
         return None
 
     # -- driver ------------------------------------------------------------------
-    def begin(self, context: Context) -> None:
-        self.context = context
-        window, length, interval = self.window_settings()
+    def begin(self, context: Context) -> State:
+        self.check(context)
+        window, length, _ = self.window_settings()
         t_, n = context.trials, context.elements
-        self._interval = int(interval)
-        self._sums = GrowingSums(t_, n) if window == "growing" else SlidingSums(t_, n, length)
-        self._held = None                 # (sum (T, N, N), update time) at the last update
-        self._warned = False
-        self._initial = self.initial_weights(context)
+        return State(context=context,
+                     sums=GrowingSums(t_, n) if window == "growing" else SlidingSums(t_, n, length),
+                     held=None,           # (sum (T, N, N), update time) at the last update
+                     warned=False,
+                     warned_auto=False,
+                     initial=self.initial_weights(context))
 
-    def warn_once(self, message: str) -> None:
-        if not self._warned:
-            self._warned = True
+    def warn_once(self, state: State, message: str) -> None:
+        if not state.warned:
+            state.warned = True
             warnings.warn(f"{self.label}: {message}", RuntimeWarning, stacklevel=4)
 
-    def _warn_crowded_floor(self, r: np.ndarray, count: int) -> None:
+    def _warn_crowded_floor(self, state: State, r: np.ndarray, count: int) -> None:
         """Warn once when ``loading=auto`` finds at most two noise eigenvalues left after
         the MDL count (Wax & Kailath 1985) in the median trial: the interferers nearly
         fill the array and the estimated floor rests on very few numbers."""
@@ -475,7 +474,7 @@ class SampleCovarianceProcessor(Processor):
         top = np.linalg.eigvalsh(r)[:, n - m:][:, ::-1]
         k = int(np.median(signal_count_mdl(top, count)))
         if m - k <= 2 and n > 2:
-            self._warned_auto = True
+            state.warned_auto = True
             warnings.warn(f"{self.label}: loading=auto finds {k} interference eigenvalue(s) "
                           f"on {n} elements after {count} snapshots, so the noise floor "
                           f"rests on {m - k} eigenvalue(s); give loading_db alone (fixed "
@@ -484,29 +483,30 @@ class SampleCovarianceProcessor(Processor):
 
     def update_times(self, stops) -> np.ndarray:
         """Update time ``u = floor(c/interval) * interval`` behind each checkpoint c."""
-        every = self._interval
+        every = int(self.window_settings()[2])
         return (np.asarray(stops, dtype=np.int64) // every) * every
 
     def window_start(self, times) -> np.ndarray:
         """First snapshot of the training window ending at each update time (exclusive
         end): 0 for a growing window, ``max(0, u - length)`` for a sliding one."""
         times = np.asarray(times, dtype=np.int64)
-        if isinstance(self._sums, SlidingSums):
-            return np.maximum(times - self._sums.length, 0)
+        window, length, _ = self.window_settings()
+        if window != "growing":
+            return np.maximum(times - int(length), 0)
         return np.zeros_like(times)
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
         stops = np.asarray(stops, dtype=np.int64)
-        every = self._interval
+        every = int(self.window_settings()[2])
         times = self.update_times(stops)
         last = (block.stop // every) * every
         wanted = np.union1d(times[times > block.start],
                             [last] if last > block.start else []).astype(np.int64)
-        sums = self._sums.advance(block.training, block.start, wanted)
-        t_, n = self.context.trials, self.context.elements
+        sums = state.sums.advance(block.training, block.start, wanted)
+        t_, n = state.context.trials, state.context.elements
         if not stops.size:
             if wanted.size:
-                self._held = (sums[:, -1], int(wanted[-1]))
+                state.held = (sums[:, -1], int(wanted[-1]))
             return np.empty((t_, 0, n), dtype=complex)
         # the sum behind each distinct update time used by this block's checkpoints
         distinct = np.unique(times[times > 0])
@@ -515,14 +515,14 @@ class SampleCovarianceProcessor(Processor):
             if u > block.start:
                 table[:, i] = sums[:, int(np.searchsorted(wanted, u))]
             else:
-                if self._held is None or self._held[1] != u:
+                if state.held is None or state.held[1] != u:
                     raise RuntimeError("internal: no covariance held for the update time")
-                table[:, i] = self._held[0]
+                table[:, i] = state.held[0]
         if wanted.size:
-            self._held = (sums[:, -1], int(wanted[-1]))
-        return self.weights_from_sums(stops, distinct, table)
+            state.held = (sums[:, -1], int(wanted[-1]))
+        return self.weights_from_sums(state, stops, distinct, table)
 
-    def weights_from_sums(self, stops, distinct: np.ndarray, table: np.ndarray,
+    def weights_from_sums(self, state: State, stops, distinct: np.ndarray, table: np.ndarray,
                           rows: slice = slice(None), hermitian: bool = False) -> np.ndarray:
         """Weights (T, len(stops), N) at checkpoints ``stops`` from the window sums
         ``table`` (T, len(distinct), N, N) at the distinct nonzero update times
@@ -533,28 +533,28 @@ class SampleCovarianceProcessor(Processor):
         (:mod:`adapt.engine.drawn`)."""
         stops = np.asarray(stops, dtype=np.int64)
         times = self.update_times(stops)
-        t_, n = table.shape[0], self.context.elements
+        t_, n = table.shape[0], state.context.elements
         w = np.empty((t_, len(stops), n), dtype=complex)
-        w[:, times == 0] = self._initial[rows][:, None, :]
+        w[:, times == 0] = state.initial[rows][:, None, :]
         if distinct.size and self.smoothing_settings()[0] is not None:
-            w[:, times > 0] = self._smoothed_weights(table, distinct, hermitian)[
+            w[:, times > 0] = self._smoothed_weights(state, table, distinct, hermitian)[
                 :, np.searchsorted(distinct, times[times > 0])]
         elif distinct.size:
-            counts = self._sums.count(distinct)
+            counts = state.sums.count(distinct)
             pos = np.searchsorted(distinct, times[times > 0])
             mode, db = self.loading_settings()
             if hermitian and mode != "auto" and (mode is not None or counts.min() >= n):
-                load = loading_level(table, counts, mode, db, self.context.noise_power)
-                wd = self.weights_from_scaled(table, counts, load)
+                load = loading_level(table, counts, mode, db, state.context.noise_power)
+                wd = self.weights_from_scaled(state, table, counts, load)
                 if wd is not None:
                     w[:, times > 0] = wd[:, pos]
                     return w
             r = table * (1.0 / counts)[None, :, None, None]
             if not hermitian:
                 r = hermitian_part(r)
-            load = loading_level(r, counts, mode, db, self.context.noise_power)
-            if mode == "auto" and not getattr(self, "_warned_auto", False):
-                self._warn_crowded_floor(r[:, -1], int(counts[-1]))
+            load = loading_level(r, counts, mode, db, state.context.noise_power)
+            if mode == "auto" and not state.warned_auto:
+                self._warn_crowded_floor(state, r[:, -1], int(counts[-1]))
             if load is not None:
                 idx = np.arange(n)
                 r[..., idx, idx] += load[..., None]           # r is a fresh array
@@ -563,15 +563,16 @@ class SampleCovarianceProcessor(Processor):
                 exact = counts >= n
                 if not exact.all() and self.warns_singular:
                     self.warn_once(
+                        state,
                         f"{_count(int(counts.min()), 'training snapshot')} for {n} elements without "
                         "loading: the sample covariance is singular; using the minimum-norm "
                         "(pseudo-inverse) solution on the data subspace until "
                         f"{n} snapshots are seen (add loading_db to avoid this)")
-            wd = self.weights_from(r, counts, exact)
+            wd = self.weights_from(state, r, counts, exact)
             w[:, times > 0] = wd[:, pos]
         return w
 
-    def _smoothed_weights(self, table: np.ndarray, distinct: np.ndarray,
+    def _smoothed_weights(self, state: State, table: np.ndarray, distinct: np.ndarray,
                           hermitian: bool) -> np.ndarray:
         """Weights (T, len(distinct), N) with spatial smoothing: the M-element weight
         from the smoothed covariance (loaded as the unsmoothed one would be), applied to
@@ -579,7 +580,7 @@ class SampleCovarianceProcessor(Processor):
         of k snapshots has rank at most min(M, k L) (2 k L forward-backward)."""
         m, backward = self.smoothing_settings()
         n = table.shape[-1]
-        counts = self._sums.count(distinct)
+        counts = state.sums.count(distinct)
         r = table * (1.0 / counts)[None, :, None, None]
         if not hermitian:
             r = hermitian_part(r)
@@ -587,7 +588,7 @@ class SampleCovarianceProcessor(Processor):
         looks = counts * (n - m + 1) * (2 if backward else 1)     # subarray snapshots
         reach = np.minimum(looks, m)
         mode, db = self.loading_settings()
-        load = loading_level(r, looks, mode, db, self.context.noise_power)
+        load = loading_level(r, looks, mode, db, state.context.noise_power)
         if load is not None:
             idx = np.arange(m)
             r[..., idx, idx] += load[..., None]
@@ -595,9 +596,10 @@ class SampleCovarianceProcessor(Processor):
         else:
             exact = looks >= m
             if not exact.all() and self.warns_singular:
-                self.warn_once(f"{int(counts.min())} training snapshots are too few for a "
+                self.warn_once(state,
+                               f"{int(counts.min())} training snapshots are too few for a "
                                f"full-rank smoothed covariance of {m} elements; using the "
                                "minimum-norm solution (add loading_db to avoid this)")
         out = np.zeros(r.shape[:2] + (n,), dtype=complex)
-        out[..., :m] = self.weights_from(r, reach, exact)
+        out[..., :m] = self.weights_from(state, r, reach, exact)
         return out

@@ -15,29 +15,41 @@ Conventions (documented once, here and in README):
 * the noise power per element is 1 in scene units; a processor that needs a noise
   level (diagonal loading in dB above the noise floor) takes it from the context.
 
-Writing a processor (one file in this package):
+Settings plus state: a :class:`Processor` object holds only its settings (the method,
+the validated parameters, the label) and is immutable once built; everything a run
+changes lives in the :class:`State` that ``begin(context)`` returns, one per run. So one
+processor object serves any number of runs, threads and chunks at once, and nothing is
+ever copied.
 
-1. subclass :class:`Processor`, set ``method`` (the spec name), ``summary`` and
-   ``parameters`` (a dict of :class:`Parameter`); the base validates them;
-2. implement ``begin(context)`` (allocate state for ``context.trials`` trials) and
-   ``update(block, stops)`` returning the weights after each snapshot count in
-   ``stops`` (sorted, all within the block), shape (T, len(stops), N);
+Writing a processor (one file in this package, plus its line in the registry table of
+:mod:`adapt.processors`):
+
+1. subclass :class:`Processor`, set ``method`` (the spec name), ``summary``,
+   ``parameters`` (a dict of :class:`Parameter`; the constructor validates them) and
+   the capability flags that apply (``covariance_based``, ``reference_trained``, ...);
+2. implement ``begin(context)`` returning a fresh :class:`State` for
+   ``context.trials`` trials (refusing, like ``check``, what cannot work) and
+   ``update(state, block, checkpoints)`` returning the weights after each snapshot
+   count in ``checkpoints`` (sorted, all within the block), shape
+   (T, len(checkpoints), N), and advancing ``state``;
 3. optionally ``check(context)`` to refuse settings that cannot work for this scene
    (an LMS step above its stability bound), and ``initial_weights(context)``.
 """
 from __future__ import annotations
 
 import math
+import shlex
 from dataclasses import dataclass
+from types import SimpleNamespace
 from typing import Any, Callable, ClassVar, Iterable
 
 import numpy as np
 
 from adapt.errors import SpecError, did_you_mean
 
-__all__ = ["Parameter", "Processor", "Context", "ProcessorResult", "held_outputs",
-           "run_processor", "run_processors", "normalised_checkpoints", "check_processors",
-           "require_finite"]
+__all__ = ["Parameter", "Processor", "State", "Settings", "Context", "ProcessorResult",
+           "held_outputs", "run_processor", "run_processors", "normalised_checkpoints",
+           "check_processors", "begin_processors", "require_finite", "format_value"]
 
 
 @dataclass(frozen=True)
@@ -46,7 +58,10 @@ class Parameter:
 
     kind: ``float``, ``int``, ``bool``, ``str`` or ``choice``; ``choices`` for choice;
     ``low``/``high`` inclusive bounds (``low_open``/``high_open`` make them strict);
-    ``allow_none``: the value may be ``none``; ``unit``: shown in help and errors.
+    ``allow_none``: the value may be ``none``; ``unit``: shown in help and errors;
+    ``omit_unset``: an unset (None) value is left out of the full spec (where writing
+    ``none`` back would contradict another parameter, as ``loading=none`` does
+    ``loading_db``).
     """
     kind: str
     default: Any
@@ -58,6 +73,7 @@ class Parameter:
     high_open: bool = False
     choices: tuple = ()
     allow_none: bool = False
+    omit_unset: bool = False
 
     def describe_allowed(self) -> str:
         if self.kind == "choice":
@@ -248,21 +264,119 @@ class ProcessorResult:
     seconds: float = 0.0
 
 
+class Settings(dict):
+    """A processor's validated parameters, read-only (a ``dict`` for reading, JSON and
+    ``dict(...)`` copies; every change is refused)."""
+
+    def _refuse(self, *args, **kwargs):
+        raise TypeError("processor settings are immutable: build a new processor "
+                        "(parse_spec or the class) with other parameters")
+
+    __setitem__ = __delitem__ = clear = pop = popitem = setdefault = update = _refuse
+    __ior__ = _refuse
+
+    def __reduce__(self):
+        return (Settings, (dict(self),))
+
+    def __copy__(self):
+        return self
+
+    def __deepcopy__(self, memo):
+        return self
+
+
+class State(SimpleNamespace):
+    """The run state of one processor over one stream: what ``begin(context)`` returns
+    and ``update(state, block, checkpoints)`` advances (recursion weights, window sums,
+    steps worked out for this context, ...). ``state.context`` is the context it was
+    begun for. A fresh state per run: nothing is shared between runs or threads."""
+
+    context: Context
+
+
+#: names a processor parameter cannot take (they mean something else in a spec)
+_RESERVED = ("method", "label")
+
+
 class Processor:
-    """Base class: declared parameters, validation, and the block-driving loop."""
+    """Base class: the settings of one processor (method, declared parameters, label),
+    immutable once built, and the block-driving loop.
+
+    ``Processor(label=None, **params)`` is the one constructor: it validates ``params``
+    against the declared :attr:`parameters` (defaults filled in, values coerced, ranges
+    and cross-checks enforced; :class:`~adapt.errors.SpecError` otherwise). Two
+    processors with the same method, parameters and label are equal.
+
+    Capability flags (class attributes, read by the engine and the studies instead of
+    lists of method names):
+
+    * ``covariance_based``: the weights come from the sample covariance of the training
+      data only (:class:`adapt.processors._covariance.SampleCovarianceProcessor`);
+    * ``reference_trained``: trains on the received data and the reference waveform
+      (``block.data`` and ``block.reference``) rather than on ``block.training``;
+    * ``clairvoyant``: needs the true covariance (``context.covariance``), known only in
+      simulation;
+    * ``data_free``: needs no training data at all (its weights depend on the context
+      only);
+    * ``drawn_covariance``: can run on covariances drawn directly
+      (:mod:`adapt.engine.drawn`): the covariance-based and the data-free processors;
+    * ``sample_mvdr``: the MVDR weight of the (optionally loaded) sample covariance, so
+      the Reed-Mallett-Brennan law and its rules of thumb apply
+      (:mod:`adapt.studies.theory`).
+    """
 
     method: ClassVar[str] = ""
     summary: ClassVar[str] = ""
     parameters: ClassVar[dict[str, Parameter]] = {}
-    #: the method trains on the reference waveform (LMS family)
-    uses_reference: ClassVar[bool] = False
+    covariance_based: ClassVar[bool] = False
+    reference_trained: ClassVar[bool] = False
+    clairvoyant: ClassVar[bool] = False
+    data_free: ClassVar[bool] = False
+    drawn_covariance: ClassVar[bool] = False
+    sample_mvdr: ClassVar[bool] = False
     #: fewest elements the method works with (2 for anything that adapts under a
     #: look constraint: one element leaves no freedom)
     min_elements: ClassVar[int] = 1
 
-    def __init__(self, label: str | None = None, **params: Any):
-        self.params = self.validate(params)
-        self.label = label or self.default_label()
+    params: Settings
+    label: str
+
+    def __init__(self, /, label: str | None = None, **params: Any):
+        if label is not None and (not isinstance(label, str) or not label.strip()
+                                  or len(label) > 80):
+            raise SpecError("label must be non-empty text of at most 80 characters",
+                            path="label", value=label, allowed="text of 1 to 80 characters")
+        object.__setattr__(self, "params", Settings(self.validate(params)))
+        object.__setattr__(self, "label", label or self.default_label())
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        clash = [name for name in cls.parameters if name in _RESERVED]
+        if clash:
+            raise TypeError(f"{cls.__name__}: parameter names {clash} are reserved")
+
+    def __setattr__(self, name, value):
+        raise AttributeError(f"a {type(self).__name__} is immutable (settings only): "
+                             "keep run state in the State that begin() returns")
+
+    def __delattr__(self, name):
+        raise AttributeError(f"a {type(self).__name__} is immutable")
+
+    def __eq__(self, other) -> bool:
+        return (type(other) is type(self) and other.params == self.params
+                and other.label == self.label)
+
+    def __hash__(self) -> int:
+        return hash((type(self), self.spec()))
+
+    def __repr__(self) -> str:
+        return f"<{type(self).__name__} {self.spec()!r}>"
+
+    def __copy__(self):
+        return self                      # immutable: a copy is the same processor
+
+    def __deepcopy__(self, memo):
+        return self
 
     # -- parameters ----------------------------------------------------------
     @classmethod
@@ -285,31 +399,45 @@ class Processor:
     def cross_check(cls, params: dict, where: str) -> None:
         """Checks between parameters; raise SpecError. Default: none."""
 
+    # -- the one spec serialiser -------------------------------------------------
+    def _words(self, defaults: bool) -> list[str]:
+        words = [self.method]
+        for name, value in self.params.items():
+            declared = self.parameters[name]
+            if (value is None and declared.omit_unset) or (not defaults
+                                                            and value == declared.default):
+                continue
+            words.append(f"{name}={format_value(value)}")
+        return words
+
     def default_label(self) -> str:
-        changed = [f"{k}={_fmt(v)}" for k, v in self.params.items()
-                   if v != self.parameters[k].default]
-        return " ".join([self.method] + changed)
+        """The method and the parameters that differ from their defaults."""
+        return " ".join(self._words(defaults=False))
 
-    def spec(self) -> str:
-        """The spec string that rebuilds this processor (words holding spaces or quotes
-        are shell-quoted, as :func:`adapt.processors.parse_spec` splits with shlex)."""
-        import shlex
-        parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()]
-        if self.label != self.default_label():
-            parts.append(f"label={self.label}")
-        return " ".join(shlex.quote(p) for p in parts)
+    def spec(self, *, defaults: bool = True, label: bool = True) -> str:
+        """The spec text that rebuilds this processor exactly (floats are written so
+        that they parse back to the same double; words holding spaces or quotes are
+        shell-quoted, as :func:`adapt.processors.parse_spec` splits with shlex).
 
-    def compact_spec(self, label: bool = True) -> str:
-        """Like :meth:`spec`, with only the parameters that differ from their defaults
-        (what a person would type; passing defaults back could trip cross-checks between
-        parameters). It rebuilds the same processor; ``label=False`` leaves out a custom
-        label."""
-        import shlex
-        parts = [self.method] + [f"{k}={_fmt(v)}" for k, v in self.params.items()
-                                 if v != self.parameters[k].default]
+        Parameters
+        ----------
+        defaults : bool
+            True: every parameter (an unset ``omit_unset`` parameter excepted); False:
+            only those that differ from their declared defaults (what a person would
+            type; passing defaults back could trip cross-checks between parameters).
+        label : bool
+            Add ``label=...`` when the label is not the default one.
+
+        Returns
+        -------
+        str
+            ``"method key=value ..."``; ``parse_spec(spec)`` equals this processor
+            (with ``label=False``, up to a custom label).
+        """
+        words = self._words(defaults)
         if label and self.label != self.default_label():
-            parts.append(f"label={self.label}")
-        return " ".join(shlex.quote(p) for p in parts)
+            words.append(f"label={self.label}")
+        return " ".join(shlex.quote(w) for w in words)
 
     # -- the kernel interface --------------------------------------------------
     def check(self, context: Context) -> None:
@@ -321,10 +449,14 @@ class Processor:
         w = context.look / context.elements
         return np.broadcast_to(w, (context.trials, context.elements)).copy()
 
-    def begin(self, context: Context) -> None:
+    def begin(self, context: Context) -> State:
+        """A fresh run state for ``context.trials`` trials; refuses (SpecError) what
+        :meth:`check` refuses."""
         raise NotImplementedError
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
+        """Advance ``state`` over ``block`` and return the weights after each snapshot
+        count in ``checkpoints`` (sorted, inside the block): (T, len(checkpoints), N)."""
         raise NotImplementedError
 
     # -- driver ----------------------------------------------------------------
@@ -334,9 +466,14 @@ class Processor:
         return run_processor(self, blocks, context, checkpoints, outputs=outputs)
 
 
-def _fmt(v: Any) -> str:
+def format_value(v: Any) -> str:
+    """Spec text of a parameter value that parses back to exactly the same value:
+    ``none``, ``true``/``false``, integers and text as they are, floats in their short
+    ``%g`` form when that is exact (``10``, ``1e-05``) and otherwise as ``repr`` (the
+    shortest text that round-trips, ``0.000123456789``)."""
     if isinstance(v, float):
-        return f"{v:g}"
+        short = f"{v:g}"
+        return short if float(short) == v else repr(v)
     if v is None:
         return "none"
     if isinstance(v, bool):
@@ -401,12 +538,11 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
     import time
     cps = normalised_checkpoints(checkpoints, snapshots)
     procs = list(processors)
-    check_processors(procs, context)
     seconds = [0.0] * len(procs)
+    states = begin_processors(procs, context, seconds)
     held, initial = [], []
     for i, p in enumerate(procs):
         t0 = time.perf_counter()
-        p.begin(context)
         w0 = p.initial_weights(context)
         seconds[i] += time.perf_counter() - t0
         held.append(w0)
@@ -422,7 +558,7 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
         for i, p in enumerate(procs):
             t0 = time.perf_counter()
             # every block goes through update: recursive state and window sums need it
-            w = p.update(block, inside)
+            w = p.update(states[i], block, inside)
             seconds[i] += time.perf_counter() - t0
             if inside.size:
                 require_finite(p, i, w, inside)
@@ -449,15 +585,50 @@ def check_processors(processors, context: Context) -> None:
     """Each processor's own scene checks (stability bounds, constraints) and its
     element minimum; a SpecError is located at ``processors[i]``."""
     for i, p in enumerate(processors):
-        if context.elements < p.min_elements:
-            raise SpecError(f"'{p.method}' needs at least {p.min_elements} elements; this "
-                            f"array has {context.elements}", path=f"processors[{i}]",
-                            value=p.label, allowed="a method that works on one element "
-                                                   "(conventional, optimum, smi, ...)")
+        _check_elements(i, p, context)
         try:
             p.check(context)
         except SpecError as exc:
             raise exc.at(path_prefix=f"processors[{i}]") from None
+
+
+def begin_processors(processors, context: Context,
+                     seconds: list | None = None) -> list[State]:
+    """A fresh run state per processor (``begin(context)``), after its element minimum;
+    a SpecError (a stability bound, a constraint) is located at ``processors[i]``.
+
+    Parameters
+    ----------
+    processors : sequence of Processor
+    context : Context
+    seconds : list of float, optional
+        Each processor's time in ``begin`` is added to its entry.
+
+    Returns
+    -------
+    list of State
+        One per processor, in order.
+    """
+    import time
+    states = []
+    for i, p in enumerate(processors):
+        _check_elements(i, p, context)
+        t0 = time.perf_counter()
+        try:
+            states.append(p.begin(context))
+        except SpecError as exc:
+            raise exc.at(path_prefix=f"processors[{i}]") from None
+        if seconds is not None:
+            seconds[i] += time.perf_counter() - t0
+    return states
+
+
+def _check_elements(i: int, p: Processor, context: Context) -> None:
+    if context.elements < p.min_elements:
+        raise SpecError(f"'{p.method}' needs at least {p.min_elements} elements; this "
+                        f"array has {context.elements}", path=f"processors[{i}]",
+                        value=p.label, allowed="a method that works on one element "
+                                               "(conventional, optimum, smi, ...)")
 
 
 def require_finite(processor: Processor, index: int, weights: np.ndarray,

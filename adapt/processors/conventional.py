@@ -20,7 +20,7 @@ import warnings
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.processors.base import Context, Parameter, Processor
+from adapt.processors.base import Context, Parameter, Processor, State
 
 # processors start in the executor's worker threads, and the warnings state is process
 # wide: two overlapping catch_warnings blocks can leave a filter behind, so ours take turns
@@ -76,8 +76,40 @@ def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: i
 
 
 class Conventional(Processor):
+    """Phase-steered (delay-and-sum) beam toward the look direction, optionally tapered.
+
+    Parameters
+    ----------
+    taper : {"none", "taylor", "chebyshev"}
+        Amplitude taper (lines along x and full x-z grids only).
+    sidelobe_db : float
+        Taper sidelobe level below the main beam, dB, in [10, 120].
+    nbar : int
+        Taylor taper: number of near-in equal sidelobes, in [1, 64].
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        ``update`` gives ``w = t * a_look / sum(t)`` (unit look response) at every
+        checkpoint; not adaptive, and needs no data (``data_free``).
+
+    Notes
+    -----
+    Checkable fact: untapered on a uniform half-wavelength line the first sidelobe is
+    -13.26 dB; with ``taper=chebyshev sidelobe_db=30`` every sidelobe is -30 dB.
+
+    References
+    ----------
+    .. [1] C. L. Dolph, "A current distribution for broadside arrays which optimizes the
+       relationship between beam width and side-lobe level", Proc. IRE 34 (1946).
+    .. [2] T. T. Taylor, "Design of line-source antennas for narrow beamwidth and low
+       side lobes", IRE Trans. Antennas Propag. 3 (1955).
+    """
+
     method = "conventional"
     summary = "phase-steered sum toward the look direction, optional Taylor or Chebyshev taper"
+    data_free = True
+    drawn_covariance = True
     parameters = {
         "taper": Parameter("choice", "none", "amplitude taper", choices=("none", "taylor", "chebyshev")),
         "sidelobe_db": Parameter("float", 30.0, "taper sidelobe level below the main beam",
@@ -86,25 +118,30 @@ class Conventional(Processor):
                           low=1, high=64),
     }
 
-    def check(self, context: Context, layout_only: bool = True) -> None:
+    def _taper(self, context: Context, layout_only: bool = False) -> np.ndarray:
         try:
-            self._taper = taper_weights(context.positions, self.params["taper"],
-                                        self.params["sidelobe_db"], self.params["nbar"],
-                                        layout_only=layout_only)
+            return taper_weights(context.positions, self.params["taper"],
+                                 self.params["sidelobe_db"], self.params["nbar"],
+                                 layout_only=layout_only)
         except ValueError as exc:
             raise SpecError(str(exc), path="taper", value=self.params["taper"],
                             allowed="none for this array") from None
 
-    def begin(self, context: Context) -> None:
-        self.check(context, layout_only=False)   # the taper belongs to this context's array
-        w = self._taper * context.look
+    def check(self, context: Context, layout_only: bool = True) -> None:
+        self._taper(context, layout_only=layout_only)   # the layout only: no scipy window
+
+    def _weight(self, context: Context) -> np.ndarray:
+        """(T, N) read-only view of the one weight (the taper of this context's array)."""
+        w = self._taper(context) * context.look
         w = w / np.conj(np.vdot(w, context.look))
-        self._w = np.broadcast_to(w, (context.trials, context.elements))
+        return np.broadcast_to(w, (context.trials, context.elements))
+
+    def begin(self, context: Context) -> State:
+        return State(context=context, w=self._weight(context))
 
     def initial_weights(self, context: Context) -> np.ndarray:
-        self.begin(context)
-        return self._w.copy()
+        return self._weight(context).copy()
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
-        return np.broadcast_to(self._w[:, None, :],
-                               (self._w.shape[0], len(stops), self._w.shape[1])).copy()
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+        w = state.w
+        return np.broadcast_to(w[:, None, :], (w.shape[0], len(stops), w.shape[1])).copy()

@@ -55,6 +55,44 @@ from adapt.processors.base import Context, Parameter
 
 
 class Eigenspace(SampleCovarianceProcessor):
+    """Dominant-mode rejection or interference-subspace projection from the eigenvectors
+    of the growing-window sample covariance.
+
+    Parameters
+    ----------
+    variant : {"dmr", "projection"}
+        ``dmr``: MVDR on the dominant-mode matrix; ``projection``: ``P a / (a^H P a)``.
+    rank : str
+        Interference eigenvectors: an integer ``0 <= rank < N``, or ``auto`` (the
+        eigenvalues above ``threshold_db`` over the noise power).
+    threshold_db : float
+        Auto rank threshold above the noise power, dB, in [0, 100].
+    subarray : int or None
+        Spatial smoothing over subarrays of this many consecutive elements (uniform
+        lines only); the weight is the subarray's, applied to the first subarray.
+    smoothing : {"forward", "forward-backward"}
+        With ``subarray``: forward, or forward-backward smoothing.
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        Distortionless weights (``w^H a = 1``) at each checkpoint.
+
+    Notes
+    -----
+    Checkable fact: with the right rank against J strong jammers the normalised SINR is
+    close to Beta(K-J+1, J), mean (K+1-J)/(K+1): within 3 dB on average from K = 2J
+    snapshots (measured in the tests).
+
+    References
+    ----------
+    .. [1] B. D. Abraham and N. L. Owsley, "Beamforming with dominant mode rejection",
+       Proc. IEEE Oceans (1990).
+    .. [2] A. M. Haimovich and Y. Bar-Ness, "An eigenanalysis interference canceler",
+       IEEE Trans. Signal Processing 39 (1991).
+    .. [3] H. L. Van Trees, *Optimum Array Processing* (2002), sec. 6.8.
+    """
+
     method = "eigenspace"
     summary = "dominant-mode rejection or interference-subspace projection from eigenvectors"
     parameters = {
@@ -103,26 +141,22 @@ class Eigenspace(SampleCovarianceProcessor):
 
     warns_singular = False
 
-    def begin(self, context: Context) -> None:
-        self.check(context)
-        super().begin(context)
-
-    def weights_from(self, r, counts, exact):
+    def weights_from(self, state, r, counts, exact):
         n = r.shape[-1]
         lam, e = np.linalg.eigh(r)                       # ascending
         idx = np.arange(n)
         if self.params["rank"] == "auto":
-            thr = self.context.noise_power * 10.0 ** (self.params["threshold_db"] / 10.0)
+            thr = state.context.noise_power * 10.0 ** (self.params["threshold_db"] / 10.0)
             big = lam > thr
             big[..., 0] = False                          # at most N - 1
         else:
             j = int(self.params["rank"])
             big = np.broadcast_to(idx >= n - j, lam.shape)
             if np.any(counts <= j):
-                self.warn_once(f"{int(counts.min())} snapshot{'' if counts.min() == 1 else 's'} for rank {j}: fewer than "
+                self.warn_once(state, f"{int(counts.min())} snapshot{'' if counts.min() == 1 else 's'} for rank {j}: fewer than "
                                "rank + 1, the noise level is not estimable; using the "
                                "projection limit")
-        a = np.broadcast_to(self.look, r.shape[:-1])
+        a = np.broadcast_to(self.look(state.context), r.shape[:-1])
         coef = np.einsum("...nk,...n->...k", np.conj(e), a)        # E^H a
         proj = a - np.einsum("...nk,...k->...n", e, coef * big)   # P a
         if self.params["variant"] == "projection":

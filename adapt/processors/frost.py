@@ -52,7 +52,7 @@ from adapt.processors._recursive import (
     local_marks,
     per_snapshot,
 )
-from adapt.processors.base import Context, Parameter
+from adapt.processors.base import Context, Parameter, State
 from adapt.scene.geometry import steering_derivatives
 
 
@@ -97,6 +97,37 @@ def look_constraints(look: np.ndarray, positions: np.ndarray,
 
 
 class FrostConstrainedLms(AutoStep):
+    """Frost's linearly constrained LMS: minimum output power under ``C^H w = f``.
+
+    Parameters
+    ----------
+    step : float or None
+        Step size ``mu`` in inverse noise-power units; ``auto`` (or none):
+        ``0.1 / tr(P R P)`` per trial. Refused where the mean-square sum
+        ``sum_i mu lambda_i / (2 - mu lambda_i)`` over ``P R P`` reaches 1.
+    derivatives : int
+        Azimuth-derivative constraints added to the look constraint (0, 1 or 2).
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        The re-projected weights ``P w + F`` at each checkpoint (``C^H w = f`` to
+        rounding).
+
+    Notes
+    -----
+    Checkable fact: the mean weight converges to ``R^-1 C (C^H R^-1 C)^-1 f``, for the
+    look constraint alone the MVDR weight ``R^-1 a / (a^H R^-1 a)``.
+
+    References
+    ----------
+    .. [1] O. L. Frost III, "An algorithm for linearly constrained adaptive array
+       processing", Proc. IEEE 60 (1972).
+    .. [2] B. Widrow, J. M. McCool, M. G. Larimore and C. R. Johnson, "Stationary and
+       nonstationary learning characteristics of the LMS adaptive filter", Proc. IEEE 64
+       (1976) (the mean-square bound; title from memory).
+    """
+
     method = "frost"
     min_elements = 2
     summary = "Frost's constrained LMS: minimum output power with unit look response"
@@ -110,30 +141,30 @@ class FrostConstrainedLms(AutoStep):
                                  low=0, high=2),
     }
 
-    def _prepare(self, context: Context) -> None:
-        if getattr(self, "_prepared_for", None) is context:
-            return
+    def _projector(self, context: Context) -> Projector:
         c, f = look_constraints(context.look, context.positions,
                                 getattr(context, "look_direction", None),
                                 self.params["derivatives"])
-        self._proj = Projector(c, f)
-        self._steps = bounded_steps(self.params["step"], context.training_covariance, context,
-                                    self.method, "training covariance",
-                                    "the projected training covariance P R P",
-                                    basis=self._proj.basis())
-        self._prepared_for = context
+        return Projector(c, f)
+
+    def _steps(self, context: Context, proj: Projector) -> np.ndarray:
+        return bounded_steps(self.params["step"], context.training_covariance, context,
+                             self.method, "training covariance",
+                             "the projected training covariance P R P", basis=proj.basis())
 
     def check(self, context: Context) -> None:
-        self._prepare(context)
+        self._steps(context, self._projector(context))
 
     def initial_weights(self, context: Context) -> np.ndarray:
-        self._prepare(context)
-        return np.broadcast_to(self._proj.quiescent, (context.trials, context.elements)).copy()
+        quiescent = self._projector(context).quiescent
+        return np.broadcast_to(quiescent, (context.trials, context.elements)).copy()
 
-    def begin(self, context: Context) -> None:
-        self._prepare(context)
-        self._wc = np.conj(self.initial_weights(context))
+    def begin(self, context: Context) -> State:
+        proj = self._projector(context)
+        steps = self._steps(context, proj)
+        wc = np.conj(np.broadcast_to(proj.quiescent, (context.trials, context.elements)))
+        return State(context=context, proj=proj, steps=steps, wc=wc)
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
-        return constrained_pass(self._wc, per_snapshot(block.training),
-                                local_marks(block, stops), self._steps, self._proj)
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+        return constrained_pass(state.wc, per_snapshot(block.training),
+                                local_marks(block, stops), state.steps, state.proj)

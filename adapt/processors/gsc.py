@@ -39,11 +39,38 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.processors._recursive import Projector, constrained_pass, local_marks, per_snapshot
-from adapt.processors.base import Context, Parameter, Processor
+from adapt.processors.base import Context, Parameter, Processor, State
 from adapt.processors.nlms import normalised_gain
 
 
 class GeneralisedSidelobeCanceller(Processor):
+    """Griffiths-Jim generalised sidelobe canceller: the look beam minus an
+    NLMS-adapted blocked branch.
+
+    Parameters
+    ----------
+    step : float
+        Normalised step ``mu`` of the adaptive branch, stable for ``0 < mu < 2``.
+    eps : float
+        Regularisation added to ``z^H z``, noise-power units, > 0.
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        The full weight ``w = w_q - B w_a`` at each checkpoint (``w^H a = 1`` to
+        rounding).
+
+    Notes
+    -----
+    Checkable fact: converged, the weight equals the MVDR weight
+    ``R^-1 a / (a^H R^-1 a)`` of the training covariance.
+
+    References
+    ----------
+    .. [1] L. J. Griffiths and C. W. Jim, "An alternative approach to linearly
+       constrained adaptive beamforming", IEEE Trans. Antennas Propag. 30 (1982).
+    """
+
     method = "gsc"
     min_elements = 2
     summary = "Griffiths-Jim sidelobe canceller: look beam minus NLMS-adapted blocked branch"
@@ -54,19 +81,22 @@ class GeneralisedSidelobeCanceller(Processor):
                          unit="noise power", low=0.0, low_open=True),
     }
 
-    def _prepare(self, context: Context) -> None:
+    @staticmethod
+    def _projector(context: Context) -> Projector:
         look = np.asarray(context.look, dtype=complex)
-        self._proj = Projector(look[:, None], np.ones(1))     # w_q = a / (a^H a)
+        return Projector(look[:, None], np.ones(1))           # w_q = a / (a^H a)
 
     def initial_weights(self, context: Context) -> np.ndarray:
-        self._prepare(context)
-        return np.broadcast_to(self._proj.quiescent, (context.trials, context.elements)).copy()
+        quiescent = self._projector(context).quiescent
+        return np.broadcast_to(quiescent, (context.trials, context.elements)).copy()
 
-    def begin(self, context: Context) -> None:
-        self._wc = np.conj(self.initial_weights(context))
+    def begin(self, context: Context) -> State:
+        proj = self._projector(context)
+        wc = np.conj(np.broadcast_to(proj.quiescent, (context.trials, context.elements)))
+        return State(context=context, proj=proj, wc=wc)
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
         x = per_snapshot(block.training)                      # (B, T, N)
-        px = self._proj.project(x)                            # B B^H x = P x
+        px = state.proj.project(x)                            # B B^H x = P x
         gain = normalised_gain(px, self.params["step"], self.params["eps"])
-        return constrained_pass(self._wc, x, local_marks(block, stops), gain, self._proj, px)
+        return constrained_pass(state.wc, x, local_marks(block, stops), gain, state.proj, px)

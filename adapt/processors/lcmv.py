@@ -37,7 +37,7 @@ import numpy as np
 from adapt.errors import SpecError
 from adapt.numerics.linalg import solve_hermitian
 from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
-from adapt.processors.base import Context, Parameter
+from adapt.processors.base import Context, Parameter, State, format_value
 from adapt.scene.geometry import steering_derivatives, steering_vector
 
 
@@ -63,7 +63,7 @@ def _angle_list(value) -> str | None:
         x = float(item)
         if not math.isfinite(x) or not -180.0 <= x <= 180.0:
             raise ValueError("out of range")
-        out.append(f"{x:g}")
+        out.append(format_value(x))
     return ",".join(out) if out else None
 
 
@@ -73,6 +73,41 @@ def parse_angles(text: str | None) -> np.ndarray:
 
 
 class LinearlyConstrained(SampleCovarianceProcessor):
+    """Linearly constrained minimum variance on the growing-window sample covariance:
+    look, null and azimuth-derivative constraints.
+
+    Parameters
+    ----------
+    nulls : str or None
+        Azimuths forced to zero response, degrees, e.g. ``20,35.5``.
+    null_elevations : str or None
+        Elevation of each null, degrees (one value: all; default 0).
+    derivative : bool
+        Zero first derivative of the response in azimuth at the look direction.
+    second_derivative : bool
+        Also zero the second derivative (needs ``derivative``).
+    loading_db : float or None
+        Diagonal load above the noise floor, dB, in [-60, 100].
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        ``w = R^-1 C (C^H R^-1 C)^-1 f`` at each checkpoint.
+
+    Notes
+    -----
+    Checkable facts: the constraints hold exactly (``w^H a = 1``, ``|w^H a(null)|`` about
+    1e-15, ``w^H da/d(az) = 0``); with no extra constraint LCMV is exactly SMI/MVDR.
+
+    References
+    ----------
+    .. [1] O. L. Frost III, "An algorithm for linearly constrained adaptive array
+       processing", Proc. IEEE 60 (1972).
+    .. [2] K. M. Buckley and L. J. Griffiths, "An adaptive generalized sidelobe canceller
+       with derivative constraints", IEEE Trans. Antennas Propag. 34 (1986).
+    .. [3] H. L. Van Trees, *Optimum Array Processing* (2002), sec. 6.7.
+    """
+
     method = "lcmv"
     min_elements = 2
     summary = "minimum variance with look, null and derivative constraints (Frost)"
@@ -155,9 +190,10 @@ class LinearlyConstrained(SampleCovarianceProcessor):
     def check(self, context: Context) -> None:
         self.constraints(context)
 
-    def begin(self, context: Context) -> None:
-        self._c, self._f = self.constraints(context)
-        super().begin(context)
+    def begin(self, context: Context) -> State:
+        state = super().begin(context)
+        state.c, state.f = self.constraints(context)
+        return state
 
     def initial_weights(self, context: Context) -> np.ndarray:
         """The quiescent weight ``C (C^H C)^-1 f`` (white noise)."""
@@ -165,10 +201,10 @@ class LinearlyConstrained(SampleCovarianceProcessor):
         w = c @ np.linalg.solve(np.conj(c.T) @ c, f)
         return np.broadcast_to(w, (context.trials, context.elements)).copy()
 
-    def weights_from(self, r, counts, exact):
-        c = np.broadcast_to(self._c, r.shape[:-2] + self._c.shape)
+    def weights_from(self, state, r, counts, exact):
+        c = np.broadcast_to(state.c, r.shape[:-2] + state.c.shape)
         ric = solve_sample(r, c, counts, exact)                   # R^-1 C, (T, C, N, M)
         g = np.conj(np.swapaxes(c, -1, -2)) @ ric                 # C^H R^-1 C
         g = 0.5 * (g + np.conj(np.swapaxes(g, -1, -2)))
-        lam = solve_hermitian(g, np.broadcast_to(self._f, g.shape[:-1]))
+        lam = solve_hermitian(g, np.broadcast_to(state.f, g.shape[:-1]))
         return np.einsum("...nm,...m->...n", ric, lam)

@@ -44,15 +44,46 @@ from adapt.processors._recursive import (
     local_marks,
     starting_weights,
 )
-from adapt.processors.base import Context, Parameter
+from adapt.processors.base import Context, Parameter, State
 
 INITIAL_HELP = "start weight: quiescent (look vector / N, the conventional beam) or zero"
 
 
 class LeastMeanSquares(AutoStep):
+    """Widrow-Hoff LMS trained on the reference waveform, ``w += mu x e^*``.
+
+    Parameters
+    ----------
+    step : float or None
+        Step size ``mu`` in inverse noise-power units; ``auto`` (or none):
+        ``0.1 / tr(R_xx)`` per trial. Refused where the mean-square sum
+        ``sum_i mu lambda_i / (2 - mu lambda_i)`` over ``R_xx`` reaches 1.
+    initial : {"quiescent", "zero"}
+        Start weight: the look vector / N (the conventional beam) or zero.
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        The recursion's weight after each checkpoint's snapshot count.
+
+    Notes
+    -----
+    Checkable fact: for independent snapshots the mean weight converges to the Wiener
+    solution ``R_xx^-1 P_d a``.
+
+    References
+    ----------
+    .. [1] B. Widrow, P. E. Mantey, L. J. Griffiths and B. B. Goode, "Adaptive antenna
+       systems", Proc. IEEE 55 (1967).
+    .. [2] B. Widrow and S. D. Stearns, *Adaptive Signal Processing* (1985), ch. 6.
+    .. [3] B. Widrow, J. M. McCool, M. G. Larimore and C. R. Johnson, "Stationary and
+       nonstationary learning characteristics of the LMS adaptive filter", Proc. IEEE 64
+       (1976) (the mean-square bound; title from memory).
+    """
+
     method = "lms"
     summary = "Widrow-Hoff LMS on the reference waveform, w += mu x e^*"
-    uses_reference = True
+    reference_trained = True
     parameters = {
         "step": Parameter("float", None,
                           "step size mu; auto (or none): 0.1 / tr(R_xx) per trial; must keep "
@@ -62,25 +93,22 @@ class LeastMeanSquares(AutoStep):
                              choices=("quiescent", "zero")),
     }
 
-    def _prepare(self, context: Context) -> None:
-        if getattr(self, "_prepared_for", None) is context:
-            return
-        self._steps = bounded_steps(self.params["step"], context.data_covariance, context,
-                                    self.method, "data covariance",
-                                    "the received data covariance R_xx")
-        self._prepared_for = context
+    def _steps(self, context: Context) -> np.ndarray:
+        return bounded_steps(self.params["step"], context.data_covariance, context,
+                             self.method, "data covariance",
+                             "the received data covariance R_xx")
 
     def check(self, context: Context) -> None:
-        self._prepare(context)
+        self._steps(context)
 
     def initial_weights(self, context: Context) -> np.ndarray:
         return starting_weights(context, self.params["initial"])
 
-    def begin(self, context: Context) -> None:
-        self._prepare(context)
-        self._wc = np.conj(self.initial_weights(context))
+    def begin(self, context: Context) -> State:
+        return State(context=context, steps=self._steps(context),
+                     wc=np.conj(self.initial_weights(context)))
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
         marks = local_marks(block, stops)
-        return _kernels.lms_block(self._wc, block.data, marks, gain=self._steps,
+        return _kernels.lms_block(state.wc, block.data, marks, gain=state.steps,
                                   desired=block.reference)

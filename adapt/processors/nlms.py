@@ -28,14 +28,43 @@ import numpy as np
 from adapt.numerics import kernels as _kernels
 from adapt.numerics.kernels import normalised_gain  # noqa: F401 - re-exported
 from adapt.processors._recursive import local_marks, starting_weights
-from adapt.processors.base import Context, Parameter, Processor
+from adapt.processors.base import Context, Parameter, Processor, State
 from adapt.processors.lms import INITIAL_HELP
 
 
 class NormalisedLms(Processor):
+    """Normalised LMS trained on the reference waveform,
+    ``w += mu x e^* / (eps + x^H x)``.
+
+    Parameters
+    ----------
+    step : float
+        Normalised step ``mu``, stable for ``0 < mu < 2`` whatever the input power.
+    eps : float
+        Regularisation added to ``x^H x``, noise-power units, > 0.
+    initial : {"quiescent", "zero"}
+        Start weight: the look vector / N (the conventional beam) or zero.
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        The recursion's weight after each checkpoint's snapshot count.
+
+    Notes
+    -----
+    Checkable fact: for jointly Gaussian data and reference the mean weight converges
+    to the Wiener solution ``R_xx^-1 P_d a``.
+
+    References
+    ----------
+    .. [1] J. Nagumo and A. Noda, "A learning method for system identification", IEEE
+       Trans. Automatic Control 12 (1967).
+    .. [2] S. Haykin, *Adaptive Filter Theory*, the normalised LMS chapter.
+    """
+
     method = "nlms"
     summary = "normalised LMS on the reference waveform, w += mu x e^* / (eps + x^H x)"
-    uses_reference = True
+    reference_trained = True
     parameters = {
         "step": Parameter("float", 0.05, "normalised step mu; stable for 0 < mu < 2",
                           low=0.0, high=2.0, low_open=True, high_open=True),
@@ -48,11 +77,11 @@ class NormalisedLms(Processor):
     def initial_weights(self, context: Context) -> np.ndarray:
         return starting_weights(context, self.params["initial"])
 
-    def begin(self, context: Context) -> None:
-        self._wc = np.conj(self.initial_weights(context))
+    def begin(self, context: Context) -> State:
+        return State(context=context, wc=np.conj(self.initial_weights(context)))
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
         marks = local_marks(block, stops)
-        return _kernels.lms_block(self._wc, block.data, marks, gain=None,
+        return _kernels.lms_block(state.wc, block.data, marks, gain=None,
                                   desired=block.reference, step=self.params["step"],
                                   eps=self.params["eps"])

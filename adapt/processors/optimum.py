@@ -24,42 +24,71 @@ import numpy as np
 
 from adapt.errors import SpecError
 from adapt.numerics.linalg import mvdr
-from adapt.processors.base import Context, Processor
+from adapt.processors.base import Context, Processor, State
 
 
 class Optimum(Processor):
+    """The clairvoyant optimum: MVDR from the true interference-plus-noise covariance.
+
+    Parameters
+    ----------
+    None. Needs ``context.covariance`` (``clairvoyant``), known only in simulation.
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        ``R^-1 a / (a^H R^-1 a)`` with R the true covariance at each checkpoint's
+        snapshot index and ``a`` the assumed look steering.
+
+    Notes
+    -----
+    Checkable fact: with no mismatch its output SINR is ``sigma_s^2 a^H R^-1 a``; for one
+    interferer of INR P and steering v, ``sigma_s^2 [N - P |a^H v|^2 / (1 + N P)]``
+    (Woodbury).
+
+    References
+    ----------
+    .. [1] J. Capon, "High-resolution frequency-wavenumber spectrum analysis", Proc.
+       IEEE 57 (1969).
+    .. [2] H. L. Van Trees, *Optimum Array Processing* (2002), ch. 6.
+    """
+
     method = "optimum"
     summary = "clairvoyant MVDR from the true interference-plus-noise covariance (the bound)"
     parameters = {}
+    clairvoyant = True
+    data_free = True
+    drawn_covariance = True
 
     def check(self, context: Context) -> None:
         if context.covariance is None:
             raise SpecError("the optimum needs the true covariance, known only in simulation",
                             path="method", value="optimum")
 
-    def begin(self, context: Context) -> None:
+    def begin(self, context: Context) -> State:
         self.check(context)
-        self.context = context
-        self._r = None          # last solved covariance (T, N, N)
-        self._w = None
+        return State(context=context,
+                     r=None,             # last solved covariance (T, N, N)
+                     w=None)
 
-    def _solve(self, r: np.ndarray) -> np.ndarray:
+    @staticmethod
+    def _solve(state: State, r: np.ndarray) -> np.ndarray:
         """MVDR for r (T, N, N), reusing the previous solve for an identical covariance."""
-        if self._r is None or not np.array_equal(r, self._r):
-            self._r, self._w = r.copy(), mvdr(r, self.context.look)
-        return self._w
+        if state.r is None or not np.array_equal(r, state.r):
+            state.r, state.w = r.copy(), mvdr(r, state.context.look)
+        return state.w
 
     def initial_weights(self, context: Context) -> np.ndarray:
         r = context.covariance(np.array([0]))[:, 0]
         return mvdr(r, context.look)
 
-    def update(self, block, stops: np.ndarray) -> np.ndarray:
-        t_, n = self.context.trials, self.context.elements
+    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+        t_, n = state.context.trials, state.context.elements
         stops = np.asarray(stops, dtype=np.int64)
         if not stops.size:
             return np.empty((t_, 0, n), dtype=complex)
-        r = self.context.covariance(stops)                      # (T, C, N, N)
+        r = state.context.covariance(stops)                     # (T, C, N, N)
         if np.all(r == r[:, :1]):
-            w = self._solve(r[:, 0])
+            w = self._solve(state, r[:, 0])
             return np.repeat(w[:, None, :], len(stops), axis=1)
-        return mvdr(r, self.context.look)
+        return mvdr(r, state.context.look)

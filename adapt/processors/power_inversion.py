@@ -27,10 +27,37 @@ import numpy as np
 
 from adapt.errors import SpecError
 from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
-from adapt.processors.base import Context, Parameter
+from adapt.processors.base import Context, Parameter, State
 
 
 class PowerInversion(SampleCovarianceProcessor):
+    """Power inversion: minimum output power with the reference element's weight held
+    at 1, from the growing-window sample covariance; no look direction used.
+
+    Parameters
+    ----------
+    reference_element : int
+        Index of the element whose weight is held at 1.
+    loading_db : float or None
+        Diagonal load above the noise floor, dB, in [-60, 100].
+
+    Returns
+    -------
+    weights : ndarray, (T, C, N)
+        ``R^-1 e / (e^H R^-1 e)`` at each checkpoint.
+
+    Notes
+    -----
+    Checkable fact: against 40 dB jammers (fewer than N) the response toward each
+    jammer, relative to the reference element alone, is below -30 dB after a few
+    times N snapshots.
+
+    References
+    ----------
+    .. [1] R. T. Compton, "The power-inversion adaptive array: concept and
+       performance", IEEE Trans. Aerosp. Electron. Syst. 15 (1979).
+    """
+
     method = "power_inversion"
     summary = "minimum output power with the reference element's weight fixed at 1 (Compton)"
     parameters = {
@@ -73,16 +100,16 @@ class PowerInversion(SampleCovarianceProcessor):
         e[self.params["reference_element"]] = 1.0
         return e
 
-    def begin(self, context: Context) -> None:
-        self.check(context)
-        self._e = self._unit(context)
-        super().begin(context)
+    def begin(self, context: Context) -> State:
+        state = super().begin(context)
+        state.e = self._unit(context)
+        return state
 
     def initial_weights(self, context: Context) -> np.ndarray:
         return np.broadcast_to(self._unit(context), (context.trials, context.elements)).copy()
 
-    def weights_from(self, r, counts, exact):
-        e = np.broadcast_to(self._e, r.shape[:-1])
+    def weights_from(self, state, r, counts, exact):
+        e = np.broadcast_to(state.e, r.shape[:-1])
         x = solve_sample(r, e, counts, exact)
         ref = self.params["reference_element"]
         return x / np.conj(x[..., ref])[..., None]

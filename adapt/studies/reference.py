@@ -35,7 +35,7 @@ Reference-set layout (``record`` writes it, ``load_reference`` reads and checks 
 
 Which stream: blind and constrained methods (smi, gsc, frost, eigenspace, ...) adapt on
 the *training* stream (interference plus noise, or the received data when the scene
-trains with the signal present); reference-trained methods (``uses_reference``: lms,
+trains with the signal present); reference-trained methods (``reference_trained``: lms,
 nlms, rls) adapt on the *received* data with the reference waveform. ``samples.npy`` is
 that stream, and the recorded weights are exactly what the processor produces when fed
 ``samples.npy`` (and ``reference.npy``) alone, with no knowledge of the true covariance:
@@ -138,7 +138,6 @@ INPUT_FILES = ("samples.npy", "steering.npy", "reference.npy", "checkpoints.npy"
 _MAX_VALUES = 1 << 24            # trials x snapshots x elements complex values per set
 _MAX_CASES = 9999
 _DB_FLOOR = -300.0               # dB value of an exact match (ratio floored at 1e-15)
-_REFERENCE_METHODS = ("lms", "nlms", "rls")
 
 
 # ============================================================================ tolerances
@@ -233,8 +232,8 @@ def _held_segments(checkpoints: np.ndarray, snapshots: int) -> list[tuple[int, i
 # ============================================================================ record
 def uses_reference(processor: Processor) -> bool:
     """True when the method trains on the reference waveform (adapts on the received
-    data): ``Processor.uses_reference`` or one of lms, nlms, rls."""
-    return bool(getattr(processor, "uses_reference", False)) or processor.method in _REFERENCE_METHODS
+    data): the class flag ``Processor.reference_trained``."""
+    return bool(processor.reference_trained)
 
 
 def _candidate_context(look, positions, trials: int, noise_power: float, has_reference: bool,
@@ -359,11 +358,9 @@ def _record_on_threads(proc: Processor, samples: np.ndarray, reference: np.ndarr
                        look, positions, with_ref: bool, look_dir, cps,
                        threads: int) -> tuple[np.ndarray, np.ndarray]:
     """The expected weights and outputs with the cases split over ``threads`` threads
-    (:func:`adapt.engine.execute.run_on_threads`), each part on its own copy of ``proc``. Every
+    (:func:`adapt.engine.execute.run_on_threads`), all sharing ``proc`` (immutable). Every
     computation runs along the case axis with no sums across cases, so the arrays equal
     a one-batch recording bit for bit."""
-    import copy
-
     from adapt.engine.evaluate import trial_chunks
     from adapt.engine.execute import run_on_threads
     parts: dict = {}
@@ -372,7 +369,7 @@ def _record_on_threads(proc: Processor, samples: np.ndarray, reference: np.ndarr
         first, count = key
         rows = slice(first, first + count)
         ctx = _candidate_context(look, positions, count, 1.0, with_ref, look_dir)
-        res = _run_on_stream(copy.deepcopy(proc), samples[rows],
+        res = _run_on_stream(proc, samples[rows],
                              None if reference is None else reference[rows], ctx, cps,
                              outputs=True)
         return res.weights, res.outputs
@@ -452,13 +449,13 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             weights, outputs = _record_on_cluster(sc, proc, t_, k, cps, with_ref, workers,
                                                   scheduler)
     except (SpecError, ValueError) as exc:
-        raise SpecError(f"'{proc.compact_spec(label=False)}' cannot be recorded as a reference: it needs what "
+        raise SpecError(f"'{proc.spec(defaults=False, label=False)}' cannot be recorded as a reference: it needs what "
                         f"a candidate implementation is not given ({exc}); give explicit "
                         "settings (e.g. a numeric step) or choose an adaptive method",
-                        path="processor", value=proc.compact_spec(label=False)) from None
+                        path="processor", value=proc.spec(defaults=False, label=False)) from None
     if not (np.all(np.isfinite(weights)) and np.all(np.isfinite(outputs))):
-        raise SpecError(f"'{proc.compact_spec(label=False)}' produced non-finite weights on this scene; nothing "
-                        "written", path="processor", value=proc.compact_spec(label=False))
+        raise SpecError(f"'{proc.spec(defaults=False, label=False)}' produced non-finite weights on this scene; nothing "
+                        "written", path="processor", value=proc.spec(defaults=False, label=False))
 
     # truth: scored at snapshot index c, the first snapshot each weight is applied to
     if sc.stationary:
@@ -488,7 +485,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             write_npy(folder / "checkpoints.npy", cps.astype(np.int64))
             write_json(folder / "case.json", {
                 "case": i, "trial": int(batch.first_trial + i), "method": proc.method,
-                "spec": proc.compact_spec(label=False), "label": proc.label, "params": proc.params,
+                "spec": proc.spec(defaults=False, label=False), "label": proc.label, "params": proc.params,
                 "uses_reference": with_ref,
                 "stream": "received data" if with_ref else "training data",
                 "noise_power": 1.0, "elements": n, "snapshots": k,
@@ -498,7 +495,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             write_sigmf(folder / "samples", samples[i], cps, description=(
                 f"adapt reference case {i} of scene '{sc.name}' (seed {sc.seed}, trial "
                 f"{batch.first_trial + i}): the {n}-element {'received' if with_ref else 'training'}"
-                f" snapshots '{proc.compact_spec(label=False)}' adapts on; one sample per snapshot (sample "
+                f" snapshots '{proc.spec(defaults=False, label=False)}' adapts on; one sample per snapshot (sample "
                 "rate normalised to 1), element e is channel e"))
             write_npy(folder / "weights.npy", weights[i])
             write_npy(folder / "outputs.npy", outputs[i])
@@ -514,7 +511,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
         write_json(tmp / "tolerances.json", {"tolerances": tol, "metrics": METRICS})
         info = {
             "format": FORMAT, "format_version": FORMAT_VERSION, "scene": sc.name,
-            "scene_file": sc.source_file, "seed": int(sc.seed), "processor": proc.compact_spec(label=False),
+            "scene_file": sc.source_file, "seed": int(sc.seed), "processor": proc.spec(defaults=False, label=False),
             "method": proc.method, "label": proc.label, "trials": t_, "snapshots": k,
             "elements": n, "checkpoints": cps.tolist(), "cases": names,
             "uses_reference": with_ref, "versions": versions,

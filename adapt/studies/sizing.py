@@ -351,14 +351,14 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
 
 
 def _unloaded_smi(proc: Processor) -> bool:
-    return proc.method == "smi" and effective_loading(proc.params)[0] is None
+    return proc.sample_mvdr and effective_loading(proc.params)[0] is None
 
 
 # --------------------------------------------------------------------------- rules of thumb
 def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | None:
     """The rule of thumb for one processor, or None (methods other than smi, and
     spatially smoothed smi)."""
-    if proc.method != "smi" or proc.params.get("subarray") is not None:
+    if not proc.sample_mvdr or proc.params.get("subarray") is not None:
         return None
     n = scene.elements
     mode, db = effective_loading(proc.params)
@@ -659,7 +659,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     for proc, scores in zip(procs, ev.processors):
         law = theory.theory_for(proc, facts)
         rec = {"label": proc.label, "method": proc.method, "params": dict(proc.params),
-               "spec": proc.compact_spec()}
+               "spec": proc.spec(defaults=False)}
         rec.update(analyse_processor(scores.normalised, points, target_loss_db, fraction,
                                      used.seed, law))
         if law is not None:

@@ -507,7 +507,7 @@ def theory_for(processor, scene_info) -> Law | None:
     for key in ("elements", "training", "optimum_sinr"):
         if key not in facts:
             raise ValueError(f"scene information lacks '{key}'")
-    if proc.method != "smi" or proc.params.get("subarray") is not None:
+    if not proc.sample_mvdr or proc.params.get("subarray") is not None:
         return None                      # (the laws are for the whole, unsmoothed array)
     mode, _ = effective_loading(proc.params)
     if mode is not None:
