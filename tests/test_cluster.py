@@ -154,3 +154,33 @@ def test_record_on_a_cluster_writes_the_same_set(scheduler, tmp_path):
         for ca, cb in zip(a.cases, b.cases):
             np.testing.assert_array_equal(ca.weights, cb.weights)      # bit-identical
             np.testing.assert_array_equal(ca.outputs, cb.outputs)
+
+
+#: floats a %g spec text used to round (issue: workers then ran other parameters) or
+#: refuse ("cannot be rebuilt from its spec")
+AWKWARD = ["smi loading_db=10.123456789", "lms step=0.000123456789", "nlms step=1.999999",
+           "rls forgetting=0.9999999"]
+
+
+def test_awkward_float_parameters_give_the_same_arrays_on_threads_and_workers(scheduler):
+    # workers rebuild processors from spec text: every float must come back the same double
+    from adapt.processors import parse_specs
+    scene = parse_scene({**SCENE, "processors": AWKWARD})
+    threads = execute.evaluate(scene, parse_specs(AWKWARD), [8, 64, 128], threads=2, chunk=2)
+    workers = execute.evaluate(scene, parse_specs(AWKWARD), [8, 64, 128], chunk=2,
+                               scheduler=scheduler)
+    _same(threads, workers)
+    assert [p.spec for p in workers.processors] == [p.spec for p in threads.processors]
+    assert workers.processors[1].params["step"] == 0.000123456789
+
+
+def test_record_with_an_awkward_step_writes_the_same_set_on_a_cluster(scheduler, tmp_path):
+    from adapt.studies.reference import load_reference, record
+    scene = parse_scene(SCENE)
+    spec = "lms step=0.000123456789"
+    here = record(scene, spec, 4, 64, None, tmp_path / "here", threads=1)
+    there = record(scene, spec, 4, 64, None, tmp_path / "there", scheduler=scheduler)
+    a, b = load_reference(here), load_reference(there)
+    for ca, cb in zip(a.cases, b.cases):
+        np.testing.assert_array_equal(ca.weights, cb.weights)          # bit-identical
+    assert json.loads((there / "reference.json").read_text())["processor"] == spec
