@@ -142,6 +142,32 @@ def test_a_processor_is_immutable_and_built_by_its_constructor():
     assert info.value.path == "processors[1].label"
 
 
+def test_a_processor_pickles_to_an_equal_one():
+    import pickle
+    proc = parse_spec("rls forgetting=0.9999999 label=slow")
+    again = pickle.loads(pickle.dumps(proc))
+    assert again == proc and again.params["forgetting"] == 0.9999999
+
+
+@pytest.mark.parametrize("spec", ["smi window=sliding length=3", "lms step=1",
+                                  "frost step=5", "eigenspace rank=6",
+                                  "power_inversion reference_element=6",
+                                  "lcmv nulls=10,20,30,40,50"])
+def test_begin_refuses_what_check_refuses(spec):
+    # the engine calls begin only (its error located at processors[i]); adapt check calls
+    # check: both must say no
+    batch = TrialBatch(parse_scene(SCENE), trials=2)
+    ctx = Context.from_batch(batch)
+    proc = parse_spec(spec)
+    with pytest.raises(SpecError):
+        proc.check(ctx)
+    with pytest.raises(SpecError):
+        proc.begin(ctx)
+    with pytest.raises(SpecError) as info:
+        run_processors([parse_spec("conventional"), proc], batch.blocks(64), ctx, [64])
+    assert info.value.path.startswith("processors[1]")
+
+
 def test_parameter_names_that_mean_something_else_are_refused():
     from adapt.processors import Parameter
     with pytest.raises(TypeError, match="reserved"):

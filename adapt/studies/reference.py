@@ -286,7 +286,7 @@ def _rebuild(method: str, params, label: str | None = None) -> Processor:
 
 
 def _as_processor(processor) -> Processor:
-    if isinstance(processor, Processor):             # a fresh copy: no state carried over
+    if isinstance(processor, Processor):             # rebuilt as verify will rebuild it
         return _rebuild(processor.method, processor.params, processor.label)
     return parse_spec(processor, "processor")
 
