@@ -16,7 +16,7 @@ from scipy.signal.windows import boxcar
 from adapt.engine.execute import run_trials as evaluate
 from adapt.numerics.linalg import solve_hermitian
 from adapt.processors import parse_spec
-from adapt.processors.base import Processor
+from adapt.processors.base import Processor, State
 from adapt.report import figures as F
 from adapt.report import html as H
 from adapt.scene.files import parse_scene
@@ -33,25 +33,25 @@ class LoadedSampleMatrix(Processor):
 
     def begin(self, context):
         n = context.elements
-        self._look = context.look
-        self._r = np.zeros((context.trials, n, n), complex)
-        self._k = 0
+        return State(context=context, look=context.look,
+                     r=np.zeros((context.trials, n, n), complex), k=0)
 
-    def _add(self, x):
-        self._r += np.einsum("tbn,tbm->tnm", x, np.conj(x))
-        self._k += x.shape[1]
+    @staticmethod
+    def _add(state, x):
+        state.r += np.einsum("tbn,tbm->tnm", x, np.conj(x))
+        state.k += x.shape[1]
 
-    def update(self, block, stops):
+    def update(self, state, block, stops):
         x = block.training
         out, lo = [], 0
         for s in stops:
             hi = int(s - block.start)
-            self._add(x[:, lo:hi])
+            self._add(state, x[:, lo:hi])
             lo = hi
-            r = self._r / max(self._k, 1) + np.eye(len(self._look))
-            v = solve_hermitian(r, np.broadcast_to(self._look, r.shape[:-1]))
-            out.append(v / np.conj(np.einsum("n,tn->t", np.conj(self._look), v))[:, None])
-        self._add(x[:, lo:])
+            r = state.r / max(state.k, 1) + np.eye(len(state.look))
+            v = solve_hermitian(r, np.broadcast_to(state.look, r.shape[:-1]))
+            out.append(v / np.conj(np.einsum("n,tn->t", np.conj(state.look), v))[:, None])
+        self._add(state, x[:, lo:])
         if not out:
             return np.zeros((x.shape[0], 0, x.shape[2]), complex)
         return np.stack(out, axis=1)
