@@ -15,7 +15,7 @@ import pytest
 
 from adapt.errors import SpecError
 from adapt.numerics.linalg import mvdr
-from adapt.processors import Context, Processor, parse_spec, registry, run_processors
+from adapt.processors import Context, Processor, State, parse_spec, registry, run_processors
 from adapt.processors._recursive import look_blocking_matrix, mean_square_bound, mean_square_sum
 from adapt.processors.frost import look_constraints
 from adapt.scene.files import parse_scene
@@ -514,7 +514,7 @@ def test_frost_refuses_a_step_beyond_its_projected_mean_square_bound():
     ctx = Context.from_batch(TrialBatch(scene))
     proc = parse_spec("frost")
     proc.check(ctx)
-    basis = proc._proj.basis()
+    basis = proc.begin(ctx).proj.basis()
     r = ctx.training_covariance([0])[0, 0]
     lam = np.linalg.eigvalsh(np.conj(basis).T @ r @ basis)
     bound = mean_square_bound(lam)
@@ -572,12 +572,12 @@ class _Runaway(Processor):
     method = "runaway_test"
 
     def begin(self, context):
-        self._n = context.elements
+        return State(context=context, n=context.elements)
 
-    def update(self, block, stops):
+    def update(self, state, block, stops):
         t_ = block.data.shape[0]
         grow = 1.05 ** np.asarray(stops, float)
-        return np.ones((t_, len(stops), self._n), complex) * grow[None, :, None]
+        return np.ones((t_, len(stops), state.n), complex) * grow[None, :, None]
 
 
 @pytest.mark.filterwarnings("ignore:.*training snapshots:RuntimeWarning")
