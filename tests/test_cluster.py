@@ -166,8 +166,8 @@ def test_awkward_float_parameters_give_the_same_arrays_on_threads_and_workers(sc
     # workers rebuild processors from spec text: every float must come back the same double
     from adapt.processors import parse_specs
     scene = parse_scene({**SCENE, "processors": AWKWARD})
-    threads = execute.evaluate(scene, parse_specs(AWKWARD), [8, 64, 128], threads=2, chunk=2)
-    workers = execute.evaluate(scene, parse_specs(AWKWARD), [8, 64, 128], chunk=2,
+    threads = execute.run_trials(scene, parse_specs(AWKWARD), [8, 64, 128], threads=2, chunk=2)
+    workers = execute.run_trials(scene, parse_specs(AWKWARD), [8, 64, 128], chunk=2,
                                scheduler=scheduler)
     _same(threads, workers)
     assert [p.spec for p in workers.processors] == [p.spec for p in threads.processors]

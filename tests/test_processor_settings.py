@@ -111,8 +111,8 @@ def test_awkward_values_are_shippable_and_rebuild_the_same_processors():
 
 def test_awkward_values_give_the_same_arrays_on_one_thread_and_on_several(tmp_path):
     scene = parse_scene(SCENE)
-    one = execute.evaluate(scene, parse_specs(AWKWARD), [8, 64], threads=1, tail=16)
-    many = execute.evaluate(scene, parse_specs(AWKWARD), [8, 64], threads=2, chunk=2,
+    one = execute.run_trials(scene, parse_specs(AWKWARD), [8, 64], threads=1, tail=16)
+    many = execute.run_trials(scene, parse_specs(AWKWARD), [8, 64], threads=2, chunk=2,
                             tail=16, store=tmp_path / "chunks")       # through the specs
     a, b = execute.part_arrays(one), execute.part_arrays(many)
     for k in a:
