@@ -32,7 +32,7 @@ from adapt.processors.base import Context, Parameter, State
 
 class PowerInversion(SampleCovarianceProcessor):
     """Power inversion: minimum output power with the reference element's weight held
-    at 1, from the growing-window sample covariance; no look direction used.
+    at 1, from the sample covariance (growing or sliding window); no look direction used.
 
     Parameters
     ----------
@@ -40,6 +40,10 @@ class PowerInversion(SampleCovarianceProcessor):
         Index of the element whose weight is held at 1.
     loading_db : float or None
         Diagonal load above the noise floor, dB, in [-60, 100].
+    window : {"growing", "sliding"}
+        Training window: every snapshot so far, or the last ``length``.
+    length : int or None
+        Sliding window length, snapshots (shorter than N needs loading).
 
     Returns
     -------
