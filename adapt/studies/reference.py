@@ -73,13 +73,16 @@ scene's jammer powers in mind.
 """
 from __future__ import annotations
 
+import hashlib
 import importlib
 import importlib.util
 import json
 import os
+import re
 import shlex
 import shutil
 import signal
+import stat
 import subprocess
 import sys
 import tempfile
@@ -98,7 +101,6 @@ from adapt.errors import CorruptReferenceError, InputError, SpecError, did_you_m
 from adapt.io import (
     atomic_write_bytes,
     atomic_write_text,
-    check_manifest,
     library_versions,
     read_npy,
     write_json,
@@ -135,6 +137,14 @@ METRICS = {
 DEFAULT_TOLERANCES = {"sinr_db": 0.1, "weight_error_db": -40.0, "output_evm_db": -40.0}
 
 INPUT_FILES = ("samples.npy", "steering.npy", "reference.npy", "checkpoints.npy", "case.json")
+#: every file of a case folder the recorder writes (plus reference.npy when it uses one)
+_CASE_FILES = ("samples.npy", "steering.npy", "checkpoints.npy", "case.json",
+               "samples.sigmf-data", "samples.sigmf-meta", "weights.npy", "outputs.npy",
+               "sinr_db.npy", "truth_covariance.npy", "truth_steering.npy", "truth.json")
+_CASE_NAME = re.compile(r"case-[0-9]{4}")
+_MANIFEST = "manifest.json"
+_MAX_JSON_BYTES = 64 << 20       # a set's JSON files (reference.json holds the scene)
+_MAX_ARRAY_BYTES = 4 << 30       # one array of a set (the samples are at most 256 MiB)
 _MAX_VALUES = 1 << 24            # trials x snapshots x elements complex values per set
 _MAX_CASES = 9999
 _DB_FLOOR = -300.0               # dB value of an exact match (ratio floored at 1e-15)
@@ -674,26 +684,240 @@ def _corrupt(message: str, file=None) -> CorruptReferenceError:
     return CorruptReferenceError(message, file=None if file is None else str(file))
 
 
-def _read_json(path: Path) -> dict:
+def case_files(with_reference: bool) -> tuple[str, ...]:
+    """The files of one recorder-made case folder (``reference.npy`` only for methods
+    that train on the reference waveform)."""
+    return _CASE_FILES + (("reference.npy",) if with_reference else ())
+
+
+class _SetFiles:
+    """The files of a reference set, checked against its manifest before use.
+
+    Every entry of the folder is found without following links: only regular files and
+    the case folders, no symbolic links, FIFOs or devices, nothing deeper than one
+    folder. The manifest must list exactly the files found (paths relative to the set,
+    nothing outside it), each with its size and sha256. A file is read once, through a
+    descriptor opened without following links and without blocking, its size compared
+    with the manifest before reading and its digest after: the bytes checked are the
+    bytes used."""
+
+    def __init__(self, root: Path):
+        self.root = root
+        self.found = self._scan()
+        self.listed = self._manifest()
+        self.used: set[str] = set()
+        problems = [f"{rel}: listed in the manifest but missing"
+                    for rel in sorted(set(self.listed) - set(self.found))]
+        problems += [f"{rel}: not listed in the manifest (every file of a set must be)"
+                     for rel in sorted(set(self.found) - set(self.listed))]
+        problems += [f"{rel}: {self.found[rel]:,} bytes, the manifest says "
+                     f"{self.listed[rel][1]:,} (file changed or corrupt)"
+                     for rel in sorted(set(self.found) & set(self.listed))
+                     if self.found[rel] != self.listed[rel][1]]
+        if problems:
+            shown = "; ".join(problems[:10]) + (f"; and {len(problems) - 10} more"
+                                                if len(problems) > 10 else "")
+            raise CorruptReferenceError(
+                f"the reference set does not match its manifest: {shown}", file=str(root))
+
+    def _scan(self) -> dict[str, int]:
+        """relative path -> size of every regular file (InputError for anything else)."""
+        found: dict[str, int] = {}
+
+        def entries(folder: Path, rel: str):
+            try:
+                with os.scandir(folder) as it:
+                    items = sorted(it, key=lambda e: e.name)
+            except OSError as exc:
+                raise _corrupt(f"cannot list the folder ({exc.strerror or exc})", folder) from None
+            if len(items) > 4 * _MAX_CASES:
+                raise _corrupt(f"holds {len(items):,} entries; not a reference set", folder)
+            for e in items:
+                yield e, f"{rel}{e.name}"
+
+        for entry, rel in entries(self.root, ""):
+            if entry.is_symlink():
+                raise _corrupt("is a symbolic link; a reference set holds only its own "
+                               "regular files", self.root / rel)
+            if entry.is_dir(follow_symlinks=False):
+                if not _CASE_NAME.fullmatch(entry.name):
+                    raise _corrupt("unexpected folder in a reference set (case folders are "
+                                   "named case-NNNN)", self.root / rel)
+                for sub, subrel in entries(Path(entry.path), rel + "/"):
+                    if sub.is_symlink() or not sub.is_file(follow_symlinks=False):
+                        raise _corrupt("is not a regular file (symbolic link, folder, FIFO "
+                                       "or device); a case folder holds only its own regular "
+                                       "files", self.root / subrel)
+                    found[subrel] = sub.stat(follow_symlinks=False).st_size
+            elif entry.is_file(follow_symlinks=False):
+                if rel != _MANIFEST:
+                    found[rel] = entry.stat(follow_symlinks=False).st_size
+            else:
+                raise _corrupt("is not a regular file or folder (FIFO, socket or device)",
+                               self.root / rel)
+        return found
+
+    def _manifest(self) -> dict[str, tuple[str, int]]:
+        path = self.root / _MANIFEST
+        try:
+            data = self._read_path(path, _MAX_JSON_BYTES)
+        except FileNotFoundError:
+            raise CorruptReferenceError(f"the reference set does not match its manifest: "
+                                        f"{path} is missing", file=str(self.root)) from None
+        try:
+            doc = json.loads(data.decode("utf-8"))
+            files = doc["files"]
+            if not isinstance(files, dict):
+                raise TypeError
+        except (ValueError, KeyError, TypeError, UnicodeDecodeError, RecursionError):
+            raise CorruptReferenceError(f"the reference set does not match its manifest: "
+                                        f"{path} is not a readable manifest",
+                                        file=str(self.root)) from None
+        listed = {}
+        for rel, entry in files.items():
+            parts = rel.split("/")
+            if (not rel or rel.startswith("/") or "\\" in rel or len(parts) > 2
+                    or any(p in ("", ".", "..") for p in parts) or rel == _MANIFEST):
+                raise _corrupt(f"lists {_show_text(rel)}, which is not a file inside the set "
+                               "(paths are relative, at most one folder deep, no '..')", path)
+            if (not isinstance(entry, dict) or not isinstance(entry.get("sha256"), str)
+                    or isinstance(entry.get("bytes"), bool)
+                    or not isinstance(entry.get("bytes"), int) or entry["bytes"] < 0):
+                raise _corrupt(f"the entry of {_show_text(rel)} needs sha256 (text) and bytes "
+                               "(a whole number)", path)
+            listed[rel] = (entry["sha256"], entry["bytes"])
+        return listed
+
+    def _read_path(self, path: Path, limit: int) -> bytes:
+        """The bytes of a regular file opened without following links or blocking
+        (at most ``limit`` bytes; InputError otherwise)."""
+        flags = os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0)
+        try:
+            fd = os.open(path, flags)
+        except FileNotFoundError:
+            raise
+        except OSError as exc:
+            raise _corrupt(f"cannot be opened as a regular file ({exc.strerror or exc}); "
+                           "symbolic links are refused", path) from None
+        try:
+            st = os.fstat(fd)
+            if not stat.S_ISREG(st.st_mode):
+                raise _corrupt("is not a regular file", path)
+            if st.st_size > limit:
+                raise _corrupt(f"is {st.st_size:,} bytes, more than a reference set's file "
+                               f"may hold ({limit:,})", path)
+            chunks, left = [], st.st_size + 1
+            while left > 0:
+                b = os.read(fd, min(left, 1 << 24))
+                if not b:
+                    break
+                chunks.append(b)
+                left -= len(b)
+            data = b"".join(chunks)
+        finally:
+            os.close(fd)
+        if len(data) > limit:
+            raise _corrupt(f"grew past {limit:,} bytes while being read", path)
+        return data
+
+    def read(self, rel: str, limit: int = 0) -> bytes:
+        """The checked bytes of the listed file ``rel``."""
+        path = self.root / rel
+        if rel not in self.listed:
+            raise CorruptReferenceError("the reference set does not match its manifest: "
+                                        f"{rel}: missing from the manifest and the folder",
+                                        file=str(self.root))
+        digest, size = self.listed[rel]
+        try:
+            data = self._read_path(path, min(size, limit or size))
+        except FileNotFoundError:
+            raise _corrupt("missing", path) from None
+        if len(data) != size or hashlib.sha256(data).hexdigest() != digest:
+            raise CorruptReferenceError(
+                f"the reference set does not match its manifest: {rel}: sha256 does not "
+                "match the manifest (file changed or corrupt)", file=str(self.root))
+        self.used.add(rel)
+        return data
+
+    def require_exactly(self, expected: set[str]) -> None:
+        """Refuse files a recorder-made set would not hold and missing ones."""
+        extra = sorted(set(self.found) - expected)
+        missing = sorted(expected - set(self.found))
+        if extra:
+            raise _corrupt(f"{extra[0]} is not part of a reference set"
+                           + (f" (and {len(extra) - 1} more)" if len(extra) > 1 else ""),
+                           self.root)
+        if missing:
+            raise CorruptReferenceError("the reference set does not match its manifest: "
+                                        f"{missing[0]}: missing", file=str(self.root))
+
+    def check_rest(self) -> None:
+        """Digest every listed file not read yet (e.g. the SigMF copy of the samples)."""
+        for rel in sorted(set(self.listed) - self.used):
+            self.read(rel)
+
+
+def _show_text(text) -> str:
+    """A value from a file as a short, printable quoted text."""
+    return repr(str(text)[:120])
+
+
+def _read_json(files: _SetFiles, rel: str) -> dict:
+    path = files.root / rel
+    data = files.read(rel, _MAX_JSON_BYTES)
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise _corrupt("missing", path) from None
-    except (OSError, ValueError, UnicodeDecodeError):
+        doc = json.loads(data.decode("utf-8"))
+    except (ValueError, UnicodeDecodeError, RecursionError):
         raise _corrupt("not readable JSON", path) from None
-    if not isinstance(data, dict):
+    if not isinstance(doc, dict):
         raise _corrupt("expected a JSON object", path)
-    return data
+    return doc
 
 
-def _read_array(path: Path, shape: tuple, complex_: bool = True) -> np.ndarray:
-    """Read one .npy (never unpickling), check its shape and that it is finite."""
+def parse_npy(data: bytes, where) -> np.ndarray:
+    """An array from the bytes of a ``.npy`` file, never unpickling: the header is read
+    first, object (pickled) data refused, and the data size the header describes must
+    equal the bytes that follow it (a header claiming terabytes is refused before any
+    allocation). CorruptReferenceError naming ``where`` otherwise."""
+    import io as _io
+    fmt = np.lib.format
+    if not data.startswith(b"\x93NUMPY"):
+        raise _corrupt("not a readable .npy array: it does not start with the NumPy "
+                       "header (random or damaged bytes)", where)
+    fh = _io.BytesIO(data)
     try:
-        a = read_npy(path)
-    except FileNotFoundError:
-        raise _corrupt("missing", path) from None
-    except (OSError, ValueError, EOFError) as exc:
-        raise _corrupt(f"not a readable .npy array ({exc})", path) from None
+        version = fmt.read_magic(fh)
+        if version == (1, 0):
+            shape, fortran, dtype = fmt.read_array_header_1_0(fh)
+        elif version == (2, 0):
+            shape, fortran, dtype = fmt.read_array_header_2_0(fh)
+        else:
+            raise ValueError(f".npy format version {version} is not supported")
+    except (ValueError, TypeError, SyntaxError, EOFError) as exc:
+        raise _corrupt(f"not a readable .npy array (bad header: {exc})", where) from None
+    if dtype.hasobject:
+        raise _corrupt("not a readable .npy array: it holds Python objects (pickled "
+                       "data), which are never loaded", where)
+    if dtype.kind not in "biufc" or dtype.fields is not None or dtype.subdtype is not None:
+        raise _corrupt(f"not a readable .npy array: it holds {dtype} values, not numbers",
+                       where)
+    count = 1
+    for d in shape:
+        count *= int(d)
+    offset = fh.tell()
+    need = count * dtype.itemsize
+    if need != len(data) - offset:
+        raise _corrupt(f"not a readable .npy array: its header describes {need:,} bytes of "
+                       f"data ({shape} {dtype}) but the file holds {len(data) - offset:,}",
+                       where)
+    a = np.frombuffer(data, dtype=dtype, count=count, offset=offset)
+    return a.reshape(shape, order="F" if fortran else "C").copy()
+
+
+def _read_array(files: _SetFiles, rel: str, shape: tuple, complex_: bool = True) -> np.ndarray:
+    """Read one listed .npy (never unpickling), check its shape and that it is finite."""
+    path = files.root / rel
+    a = parse_npy(files.read(rel, _MAX_ARRAY_BYTES), path)
     if a.dtype.kind not in ("c", "f", "i", "u"):
         raise _corrupt(f"holds {a.dtype} values, not numbers", path)
     if a.shape != tuple(shape):
@@ -704,55 +928,100 @@ def _read_array(path: Path, shape: tuple, complex_: bool = True) -> np.ndarray:
     return a.astype(complex) if complex_ else a
 
 
+def _case_names(names, path: Path) -> list[str]:
+    """The case list of reference.json: recorder-made names ``case-0000, case-0001, ...``
+    in order, each once, at most :data:`_MAX_CASES`."""
+    if not isinstance(names, list) or not names:
+        raise _corrupt("lists no cases", path)
+    if len(names) > _MAX_CASES:
+        raise _corrupt(f"lists {len(names):,} cases; a set holds at most {_MAX_CASES}", path)
+    expected = [f"case-{i:04d}" for i in range(len(names))]
+    for i, (name, want) in enumerate(zip(names, expected)):
+        if not isinstance(name, str) or not _CASE_NAME.fullmatch(name):
+            raise _corrupt(f"bad case name {_show_text(name)} at cases[{i}]: only the names "
+                           "the recorder writes (case-0000, case-0001, ...) are accepted", path)
+        if name != want:
+            raise _corrupt(f"cases[{i}] is {name!r}, expected {want!r}: the recorder lists "
+                           "case-0000, case-0001, ... in order, each once", path)
+    return list(names)
+
+
 def load_reference(folder) -> ReferenceSet:
     """Read and check a reference set written by :func:`record`.
 
-    Raises CorruptReferenceError (exit code 2) naming the files when the manifest does
-    not match (changed, missing or unreadable files), a file is malformed, or any array
-    holds NaN or infinity. Arrays are read with ``allow_pickle=False``.
+    Raises CorruptReferenceError (exit code 2) naming the file when the set holds
+    anything but its own regular files (symbolic links, FIFOs, devices, unexpected
+    files or folders), when the manifest does not list exactly the files of the set
+    (unlisted, missing, extra, outside the set) or a file does not match its size and
+    sha256, when a file is malformed, or when any array holds NaN or infinity. Arrays
+    are read with their header checked against the file size, never unpickled.
     """
+    if not isinstance(folder, (str, os.PathLike)):
+        raise InputError("expected the path of a reference-set folder",
+                         value=type(folder).__name__)
     root = Path(folder)
     if not root.is_dir():
         raise _corrupt("no such reference-set folder", root)
-    problems = check_manifest(root)
-    if problems:
-        shown = "; ".join(problems[:10]) + (f"; and {len(problems) - 10} more"
-                                            if len(problems) > 10 else "")
-        raise CorruptReferenceError(f"the reference set does not match its manifest: {shown}",
-                                    file=str(root))
-    info = _read_json(root / "reference.json")
+    files = _SetFiles(root)
+    info = _read_json(files, "reference.json")
     if info.get("format") != FORMAT:
-        raise _corrupt(f"not an adapt reference set (format {info.get('format')!r})",
+        raise _corrupt(f"not an adapt reference set (format {_show_text(info.get('format'))})",
                        root / "reference.json")
-    tol_doc = _read_json(root / "tolerances.json")
+    tol_doc = _read_json(files, "tolerances.json")
     try:
         tolerances = parse_tolerances(tol_doc.get("tolerances", {}))
     except InputError as exc:
         raise _corrupt(exc.message, root / "tolerances.json") from None
-    names = info.get("cases")
-    if not isinstance(names, list) or not names or not all(isinstance(s, str) for s in names):
-        raise _corrupt("lists no cases", root / "reference.json")
-    cases = []
-    for name in names:
-        if "/" in name or "\\" in name or name.startswith("."):
-            raise _corrupt(f"bad case name {name!r}", root / "reference.json")
-        cases.append(_load_case(root / name, name))
+    names = _case_names(info.get("cases"), root / "reference.json")
+    if "trials" in info and info["trials"] != len(names):
+        raise _corrupt(f"says {_show_text(info['trials'])} trials but lists {len(names)} cases",
+                       root / "reference.json")
+    with_ref = info.get("uses_reference")
+    if not isinstance(with_ref, bool):
+        raise _corrupt("uses_reference must be true or false", root / "reference.json")
+    files.require_exactly({"reference.json", "tolerances.json"}
+                          | {f"{name}/{f}" for name in names for f in case_files(with_ref)})
+    cases = [_load_case(files, name, with_ref) for name in names]
+    files.check_rest()
     return ReferenceSet(folder=root, info=info, tolerances=tolerances, cases=cases)
 
 
-def _load_case(folder: Path, name: str) -> ReferenceCase:
-    meta = _read_json(folder / "case.json")
+def _finite_numbers(value, shape, what: str, path: Path) -> np.ndarray:
     try:
-        k, n = int(meta["snapshots"]), int(meta["elements"])
-        with_ref = bool(meta["uses_reference"])
+        a = np.asarray(value, dtype=float)
+    except (TypeError, ValueError, OverflowError):
+        a = None
+    if a is None or a.shape != shape or not np.all(np.isfinite(a)):
+        raise _corrupt(f"{what} must be {shape} finite numbers", path)
+    return a
+
+
+def _load_case(files: _SetFiles, name: str, with_ref: bool) -> ReferenceCase:
+    folder = files.root / name
+    meta = _read_json(files, f"{name}/case.json")
+    try:
+        k, n = meta["snapshots"], meta["elements"]
+        if not all(isinstance(v, int) and not isinstance(v, bool) for v in (k, n)):
+            raise TypeError
+        if not (1 <= k <= _MAX_VALUES and 1 <= n <= 4096 and k * n <= _MAX_VALUES):
+            raise ValueError
+        if meta["uses_reference"] is not with_ref:
+            raise _corrupt("uses_reference differs from reference.json", folder / "case.json")
     except (KeyError, TypeError, ValueError):
-        raise _corrupt("lacks snapshots, elements or uses_reference", folder / "case.json") from None
-    try:
-        cps_raw = read_npy(folder / "checkpoints.npy")
-    except FileNotFoundError:
-        raise _corrupt("missing", folder / "checkpoints.npy") from None
-    except (OSError, ValueError, EOFError) as exc:
-        raise _corrupt(f"not a readable .npy array ({exc})", folder / "checkpoints.npy") from None
+        raise _corrupt("lacks snapshots, elements or uses_reference (whole numbers in range "
+                       "and true/false)", folder / "case.json") from None
+    _finite_numbers(meta.get("positions"), (n, 3), "positions", folder / "case.json")
+    look = meta.get("look_direction")
+    if look is not None:
+        _finite_numbers(look, (2,), "look_direction", folder / "case.json")
+    noise = _finite_numbers(meta.get("noise_power", 1.0), (), "noise_power", folder / "case.json")
+    if not float(noise) > 0:
+        raise _corrupt("noise_power must be positive", folder / "case.json")
+    if not isinstance(meta.get("params", {}), dict) or not all(
+            isinstance(meta.get(key, ""), str) for key in ("method", "spec")):
+        raise _corrupt("params must be a mapping, method and spec text", folder / "case.json")
+    cps_raw = parse_npy(files.read(f"{name}/checkpoints.npy", _MAX_ARRAY_BYTES),
+                        folder / "checkpoints.npy")
     if cps_raw.ndim != 1 or cps_raw.dtype.kind not in "iu":
         raise _corrupt("must be a 1-D integer array", folder / "checkpoints.npy")
     try:
@@ -762,28 +1031,25 @@ def _load_case(folder: Path, name: str) -> ReferenceCase:
     if len(cps) != len(cps_raw) or np.any(cps != cps_raw):
         raise _corrupt("checkpoints must be sorted and distinct", folder / "checkpoints.npy")
     c = len(cps)
-    truth = _read_json(folder / "truth.json")
-    try:
-        power = np.asarray(truth["signal_power_at_checkpoints"], float)
-    except (KeyError, TypeError, ValueError):
-        raise _corrupt("lacks signal_power_at_checkpoints", folder / "truth.json") from None
-    if power.shape != (c,) or not np.all(np.isfinite(power)):
-        raise _corrupt(f"signal_power_at_checkpoints must be {c} finite numbers",
-                       folder / "truth.json")
+    truth = _read_json(files, f"{name}/truth.json")
+    power = _finite_numbers(truth.get("signal_power_at_checkpoints"), (c,),
+                            "signal_power_at_checkpoints", folder / "truth.json")
     stationary = truth.get("moments") == "stationary"
+
+    def arr(fname, shape, complex_=True):
+        return _read_array(files, f"{name}/{fname}", shape, complex_)
+
     return ReferenceCase(
         name=name, folder=folder, info=meta,
-        samples=_read_array(folder / "samples.npy", (k, n)),
-        steering=_read_array(folder / "steering.npy", (n,)),
-        reference=_read_array(folder / "reference.npy", (k,)) if with_ref else None,
+        samples=arr("samples.npy", (k, n)),
+        steering=arr("steering.npy", (n,)),
+        reference=arr("reference.npy", (k,)) if with_ref else None,
         checkpoints=cps,
-        weights=_read_array(folder / "weights.npy", (c, n)),
-        outputs=_read_array(folder / "outputs.npy", (k,)),
-        sinr_db=_read_array(folder / "sinr_db.npy", (c,), complex_=False).astype(float),
-        truth_covariance=_read_array(folder / "truth_covariance.npy",
-                                     (n, n) if stationary else (c, n, n)),
-        truth_steering=_read_array(folder / "truth_steering.npy",
-                                   (n,) if stationary else (c, n)),
+        weights=arr("weights.npy", (c, n)),
+        outputs=arr("outputs.npy", (k,)),
+        sinr_db=arr("sinr_db.npy", (c,), complex_=False).astype(float),
+        truth_covariance=arr("truth_covariance.npy", (n, n) if stationary else (c, n, n)),
+        truth_steering=arr("truth_steering.npy", (n,) if stationary else (c, n)),
         signal_power=power,
     )
 
