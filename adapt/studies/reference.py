@@ -102,7 +102,6 @@ from adapt.io import (
     atomic_write_bytes,
     atomic_write_text,
     library_versions,
-    read_npy,
     write_json,
     write_manifest,
     write_npy,
@@ -117,6 +116,7 @@ from adapt.streams.snapshots import Block, TrialBatch
 
 __all__ = ["DEFAULT_TOLERANCES", "METRICS", "record", "load_reference", "verify",
            "ReferenceSet", "ReferenceCase", "CaseInputs", "CaseResult", "VerifyReport",
+           "not_run_report", "run_bounded", "parse_npy", "CandidateLoadError",
            "reference_implementation", "load_implementation", "parse_tolerances",
            "format_report", "write_report_junit", "weight_error_db", "output_evm_db",
            "sinr_difference_db", "write_sigmf", "uses_reference"]
@@ -690,6 +690,39 @@ def case_files(with_reference: bool) -> tuple[str, ...]:
     return _CASE_FILES + (("reference.npy",) if with_reference else ())
 
 
+def _read_regular(path: Path, limit: int) -> bytes:
+    """The bytes of a regular file opened without following links or blocking
+    (at most ``limit`` bytes; InputError otherwise)."""
+    flags = os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0)
+    try:
+        fd = os.open(path, flags)
+    except FileNotFoundError:
+        raise
+    except OSError as exc:
+        raise _corrupt(f"cannot be opened as a regular file ({exc.strerror or exc}); "
+                       "symbolic links are refused", path) from None
+    try:
+        st = os.fstat(fd)
+        if not stat.S_ISREG(st.st_mode):
+            raise _corrupt("is not a regular file", path)
+        if st.st_size > limit:
+            raise _corrupt(f"is {st.st_size:,} bytes, more than a reference set's file "
+                           f"may hold ({limit:,})", path)
+        chunks, left = [], st.st_size + 1
+        while left > 0:
+            b = os.read(fd, min(left, 1 << 24))
+            if not b:
+                break
+            chunks.append(b)
+            left -= len(b)
+        data = b"".join(chunks)
+    finally:
+        os.close(fd)
+    if len(data) > limit:
+        raise _corrupt(f"grew past {limit:,} bytes while being read", path)
+    return data
+
+
 class _SetFiles:
     """The files of a reference set, checked against its manifest before use.
 
@@ -760,7 +793,7 @@ class _SetFiles:
     def _manifest(self) -> dict[str, tuple[str, int]]:
         path = self.root / _MANIFEST
         try:
-            data = self._read_path(path, _MAX_JSON_BYTES)
+            data = _read_regular(path, _MAX_JSON_BYTES)
         except FileNotFoundError:
             raise CorruptReferenceError(f"the reference set does not match its manifest: "
                                         f"{path} is missing", file=str(self.root)) from None
@@ -788,38 +821,6 @@ class _SetFiles:
             listed[rel] = (entry["sha256"], entry["bytes"])
         return listed
 
-    def _read_path(self, path: Path, limit: int) -> bytes:
-        """The bytes of a regular file opened without following links or blocking
-        (at most ``limit`` bytes; InputError otherwise)."""
-        flags = os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0)
-        try:
-            fd = os.open(path, flags)
-        except FileNotFoundError:
-            raise
-        except OSError as exc:
-            raise _corrupt(f"cannot be opened as a regular file ({exc.strerror or exc}); "
-                           "symbolic links are refused", path) from None
-        try:
-            st = os.fstat(fd)
-            if not stat.S_ISREG(st.st_mode):
-                raise _corrupt("is not a regular file", path)
-            if st.st_size > limit:
-                raise _corrupt(f"is {st.st_size:,} bytes, more than a reference set's file "
-                               f"may hold ({limit:,})", path)
-            chunks, left = [], st.st_size + 1
-            while left > 0:
-                b = os.read(fd, min(left, 1 << 24))
-                if not b:
-                    break
-                chunks.append(b)
-                left -= len(b)
-            data = b"".join(chunks)
-        finally:
-            os.close(fd)
-        if len(data) > limit:
-            raise _corrupt(f"grew past {limit:,} bytes while being read", path)
-        return data
-
     def read(self, rel: str, limit: int = 0) -> bytes:
         """The checked bytes of the listed file ``rel``."""
         path = self.root / rel
@@ -829,7 +830,7 @@ class _SetFiles:
                                         file=str(self.root))
         digest, size = self.listed[rel]
         try:
-            data = self._read_path(path, min(size, limit or size))
+            data = _read_regular(path, min(size, limit or size))
         except FileNotFoundError:
             raise _corrupt("missing", path) from None
         if len(data) != size or hashlib.sha256(data).hexdigest() != digest:
@@ -1072,9 +1073,16 @@ def reference_implementation(case: CaseInputs) -> np.ndarray:
     return _run_on_stream(proc, x, ref, ctx, np.asarray(case.checkpoints), False).weights[0]
 
 
+class CandidateLoadError(InputError):
+    """The candidate's own code failed (raised, exited or was interrupted) while its
+    module was imported: :func:`verify` reports it as every case's error."""
+
+
 def load_implementation(target: str) -> Callable:
     """``MODULE:FUNCTION`` or ``path/to/file.py:FUNCTION`` -> the callable (InputError
-    when it cannot be imported or found). The current folder is searched for modules."""
+    when it cannot be found; :class:`CandidateLoadError` when the module's own code
+    raises or exits while importing, ``SystemExit`` included). The current folder is
+    searched for modules."""
     text = str(target)
     where, sep, func = text.rpartition(":")
     if not sep or not where or not func:
@@ -1100,11 +1108,14 @@ def load_implementation(target: str) -> Callable:
                     sys.path.remove(os.getcwd())
     except InputError:
         raise
-    except ImportError as exc:
+    except ModuleNotFoundError as exc:
+        if exc.name is not None and where.split(".")[0] != exc.name.split(".")[0]:
+            raise CandidateLoadError(f"importing '{where}' failed: {type(exc).__name__}: "
+                                     f"{exc}", value=text) from None
         raise InputError(f"cannot import '{where}': {exc}", value=text) from None
-    except Exception as exc:  # noqa: BLE001 - the user's module failed while importing
-        raise InputError(f"importing '{where}' failed: {type(exc).__name__}: {exc}",
-                         value=text) from None
+    except BaseException as exc:  # noqa: BLE001 - the candidate's code failed or exited
+        raise CandidateLoadError(f"importing '{where}' failed: {type(exc).__name__}: {exc}",
+                                 value=text) from None
     fn = getattr(module, func, None)
     if fn is None:
         names = [k for k in vars(module) if not k.startswith("_")]
@@ -1129,8 +1140,15 @@ class CaseResult:
     sinr_db: np.ndarray | None = None
     weight_error_db: np.ndarray | None = None
     output_evm_db: np.ndarray | None = None
-    #: (metric, checkpoint, value, tolerance, excess) of the worst metric, if any
+    #: (metric, checkpoint, value, tolerance, excess) with the largest excess over its
+    #: tolerance, if any (excesses of different metrics are in the same unit, dB over
+    #: the tolerance, but rank only within a metric: see ``failing``)
     worst: tuple | None = None
+    #: every metric beyond its tolerance, each at its worst checkpoint, same tuples
+    failing: list = field(default_factory=list)
+    #: the complex factor relating the candidate's outputs to the reference's when
+    #: they match up to one (only set on a failure it explains)
+    scale: complex | None = None
 
     @property
     def passed(self) -> bool:
@@ -1151,6 +1169,7 @@ class VerifyReport:
     implementation: str
     tolerances: dict
     cases: list[CaseResult] = field(default_factory=list)
+    scale_blind: bool = False
 
     @property
     def passed(self) -> bool:
@@ -1174,6 +1193,22 @@ class VerifyReport:
                 best = (c.name,) + tuple(c.worst)
         return best
 
+    def worst_by_metric(self) -> dict:
+        """metric -> (case name, checkpoint, value, tolerance, excess) of the case with
+        the largest value of that metric (cases ranked within each metric only)."""
+        out: dict = {}
+        for metric in METRICS:
+            tol = self.tolerances.get(metric)
+            for c in self.cases:
+                a = getattr(c, metric)
+                if a is None or not np.any(~np.isnan(a)):
+                    continue
+                i = int(np.nanargmax(a))
+                value = float(a[i])
+                if metric not in out or value > out[metric][2]:
+                    out[metric] = (c.name, int(c.checkpoints[i]), value, tol, value - tol)
+        return out
+
 
 class _CaseFailure(Exception):
     def __init__(self, kind: str, message: str, details: str = ""):
@@ -1183,10 +1218,12 @@ class _CaseFailure(Exception):
 
 def _check_weights(raw: Any, c: int, n: int) -> np.ndarray:
     try:
-        w = np.asarray(raw)
-    except Exception as exc:  # noqa: BLE001
-        raise _CaseFailure("failure", f"returned weights are not an array ({exc})") from None
-    if w.dtype.kind not in "biufc":
+        w = np.array(raw, copy=True)
+        kind = w.dtype.kind
+    except BaseException as exc:  # noqa: BLE001 - the candidate's object misbehaved
+        raise _CaseFailure("failure", f"returned weights are not an array "
+                           f"({type(exc).__name__}: {exc})") from None
+    if kind not in "biufc":
         raise _CaseFailure("failure", f"returned {type(raw).__name__} of {w.dtype}, not "
                            f"numeric weights of shape ({c}, {n})")
     if w.shape != (c, n):
@@ -1200,54 +1237,129 @@ def _check_weights(raw: Any, c: int, n: int) -> np.ndarray:
     return w.astype(complex)
 
 
-def _compare(case: ReferenceCase, w: np.ndarray, tol: dict) -> CaseResult:
+def _best_scale(yc: np.ndarray, yr: np.ndarray) -> complex:
+    """The complex g minimising ``||yc - g yr||`` (least squares): the candidate is
+    ``g`` times the reference when the residual vanishes."""
+    den = float(np.vdot(yr, yr).real)
+    return complex(np.vdot(yr, yc) / den) if den > 0 else 1.0 + 0j
+
+
+def _scale_text(g: complex) -> str:
+    """'1.017' for a real scale, '1.017 at 12.5 degrees' for a complex one."""
+    mag, deg = abs(g), float(np.degrees(np.angle(g)))
+    if abs(deg) < 0.05:
+        return f"{mag:.4g}"
+    if abs(abs(deg) - 180.0) < 0.05:
+        return f"{-mag:.4g}"
+    return f"{mag:.4g} at {deg:.1f} degrees"
+
+
+def _compare(case: ReferenceCase, w: np.ndarray, tol: dict, scale_blind: bool = False
+             ) -> CaseResult:
     cps = case.checkpoints
     k = case.samples.shape[0]
     sinr = sinr_difference_db(w, case.truth_steering, case.truth_covariance,
                               case.signal_power, case.sinr_db)
     werr = weight_error_db(w, case.weights, case.steering)
     evm = np.full(len(cps), np.nan)
+    raw_evm = np.full(len(cps), np.nan)
+    scales = []
     for i, (lo, hi) in enumerate(_held_segments(cps, k)):
         if hi > lo:
             yc = np.conj(w[i]) @ case.samples[lo:hi].T
-            evm[i] = output_evm_db(yc, case.outputs[lo:hi])
+            yr = case.outputs[lo:hi]
+            g = _best_scale(yc, yr)
+            blind = output_evm_db(yc / g, yr) if g != 0 else float(raw_evm[i])
+            scales.append((g, blind))
+            raw_evm[i] = output_evm_db(yc, yr)
+            evm[i] = blind if scale_blind else raw_evm[i]
+    failing = []                      # (metric, checkpoint, value, tolerance, excess)
     worst = None
     for metric, values in (("sinr_db", sinr), ("weight_error_db", werr),
                            ("output_evm_db", evm)):
+        own = None
         for i, v in enumerate(values):
             if np.isnan(v):
                 continue
             excess = float(v - tol[metric])
-            if worst is None or excess > worst[4]:
-                worst = (metric, int(cps[i]), float(v), float(tol[metric]), excess)
-    ok = worst is None or worst[4] <= 0
-    res = CaseResult(case.name, "pass" if ok else "failure", checkpoints=cps, sinr_db=sinr,
-                     weight_error_db=werr, output_evm_db=evm, worst=worst)
-    if not ok:
-        metric, cp, value, limit, _ = worst
-        res.message = (f"{metric} = {value:.3g} dB at checkpoint {cp} exceeds the tolerance "
-                       f"{limit:g} dB")
-        lines = [f"{'checkpoint':>10} {'sinr_db':>10} {'weight_error_db':>16} {'output_evm_db':>14}"]
-        for i, cp_ in enumerate(cps):
-            lines.append(f"{int(cp_):>10} {sinr[i]:>10.4g} {werr[i]:>16.4g} {evm[i]:>14.4g}")
-        res.details = res.message + "\n" + "\n".join(lines)
+            item = (metric, int(cps[i]), float(v), float(tol[metric]), excess)
+            if own is None or excess > own[4]:
+                own = item
+        if own is not None:
+            if worst is None or own[4] > worst[4]:
+                worst = own
+            if own[4] > 0:
+                failing.append(own)
+    res = CaseResult(case.name, "failure" if failing else "pass", checkpoints=cps,
+                     sinr_db=sinr, weight_error_db=werr, output_evm_db=evm, worst=worst,
+                     failing=failing)
+    if not failing:
+        return res
+    parts = []
+    for metric, cp, value, limit, _ in failing:
+        count = int(np.sum(getattr(res, metric) > limit))
+        parts.append(f"{metric} = {value:.3g} dB at checkpoint {cp} exceeds the tolerance "
+                     f"{limit:g} dB" + (f" (at {count} of {len(cps)} checkpoints)"
+                                        if count > 1 else ""))
+    res.message = "; ".join(parts)
+    # a candidate equal to the reference up to a constant factor: say so
+    names = {f[0] for f in failing}
+    if names == {"output_evm_db"} and not scale_blind and scales:
+        g = np.array([x[0] for x in scales])
+        fixed = max(x[1] for x in scales)
+        if fixed <= tol["output_evm_db"] and np.all(g != 0):
+            same = bool(np.all(np.abs(g - g[0]) <= 1e-6 * np.abs(g[0])))
+            res.scale = complex(g[0]) if same else None
+            hint = (f"matches up to a scale of {_scale_text(g[0])}" if same else
+                    f"matches up to a scale per checkpoint ({_scale_text(g[0])} .. "
+                    f"{_scale_text(g[-1])})")
+            res.message += (f"; the output {hint} (output EVM after removing it: "
+                            f"{fixed:.3g} dB): if the scale is arbitrary in your "
+                            "implementation, verify with scale_blind (--scale-blind)")
+    lines = [f"{'checkpoint':>10} {'sinr_db':>10} {'weight_error_db':>16} {'output_evm_db':>14}"]
+    for i, cp_ in enumerate(cps):
+        lines.append(f"{int(cp_):>10} {sinr[i]:>10.4g} {werr[i]:>16.4g} {evm[i]:>14.4g}")
+    res.details = res.message + "\n" + "\n".join(lines)
     return res
 
 
 def _run_python(fn: Callable, case: ReferenceCase) -> Any:
     try:
         return fn(case.inputs())
-    except Exception as exc:  # noqa: BLE001 - the candidate's own failure, reported per case
+    except BaseException as exc:  # noqa: BLE001 - the candidate's own failure, SystemExit,
+        # KeyboardInterrupt and GeneratorExit included: reported as this case's error
         tb = traceback.format_exc(limit=-5)
-        raise _CaseFailure("error", f"raised {type(exc).__name__}: {exc}", tb) from None
+        what = type(exc).__name__
+        text = f"raised {what}: {exc}" if str(exc) else f"raised {what}"
+        if isinstance(exc, SystemExit):
+            text = f"called sys.exit({exc.code!r}) (SystemExit): a candidate returns weights"
+        raise _CaseFailure("error", text, tb) from None
+
+
+#: bytes of each of the candidate's stdout and stderr kept (the tail)
+OUTPUT_TAIL_BYTES = 64 * 1024
+#: seconds a command's output is still read after it exited (its pipes may be held open
+#: by a process it left behind)
+_DRAIN_SECONDS = 0.5
+_MARKER = "ADAPT_VERIFY_RUN"
+
+
+def _printable(text: str) -> str:
+    """``text`` with control and other unprintable characters escaped (``\\x1b``), line
+    breaks kept: text from a candidate or a file never drives the terminal."""
+    return "\n".join(line if line.isprintable() else
+                     "".join(c if c.isprintable() else repr(c)[1:-1] for c in line)
+                     for line in str(text).split("\n"))
 
 
 def _tail(data: bytes, lines: int = 12, chars: int = 2000) -> str:
     text = data.decode("utf-8", "replace").rstrip()
-    return "\n".join(text.splitlines()[-lines:])[-chars:]
+    return _printable("\n".join(text.splitlines()[-lines:])[-chars:])
 
 
 def _command_args(template: str) -> list[str]:
+    if not isinstance(template, str):
+        raise InputError("a command template is text", value=type(template).__name__)
     try:
         args = shlex.split(template)
     except ValueError as exc:
@@ -1263,6 +1375,114 @@ def _command_args(template: str) -> list[str]:
     return args
 
 
+def _marked_processes(token: str) -> list[int]:
+    """Process ids (other than this one) whose environment carries this run's marker:
+    what a candidate started, even in a new session or process group (Linux /proc;
+    empty elsewhere)."""
+    needle = f"{_MARKER}={token}".encode() + b"\0"
+    found = []
+    try:
+        names = os.listdir("/proc")
+    except OSError:
+        return found
+    me = os.getpid()
+    for name in names:
+        if not name.isdigit() or int(name) == me:
+            continue
+        try:
+            with open(f"/proc/{name}/environ", "rb") as fh:
+                env = fh.read(1 << 20)
+        except OSError:
+            continue
+        if needle in env or env.endswith(needle[:-1]):
+            found.append(int(name))
+    return found
+
+
+def _stop_everything(pid: int, token: str) -> None:
+    """Kill the candidate's process group and every process left behind that carries
+    this run's marker (a grandchild that started its own session)."""
+    try:
+        os.killpg(pid, signal.SIGKILL)          # the group this run started, only
+    except (ProcessLookupError, PermissionError):
+        pass
+    for _ in range(5):
+        left = _marked_processes(token)
+        if not left:
+            return
+        for other in left:
+            try:
+                os.kill(other, signal.SIGKILL)
+            except (ProcessLookupError, PermissionError):
+                pass
+        time.sleep(0.02)
+
+
+def run_bounded(argv: list[str], timeout: float, env: dict | None = None,
+                keep: int = OUTPUT_TAIL_BYTES) -> tuple[int | None, bytes, bytes, int]:
+    """Run ``argv`` (no shell) in its own session and process group, at most
+    ``timeout`` seconds, keeping the last ``keep`` bytes of its stdout and stderr.
+
+    At the timeout, or when the program exits, its process group and every process
+    carrying this run's environment marker (so also a grandchild that started a new
+    session) are killed; output still arriving through pipes held open by such a
+    process is read for at most half a second. Returns (exit code or None when it
+    timed out, stdout tail, stderr tail, total bytes of output). OSError when the
+    program cannot be started."""
+    import secrets
+    import selectors
+    token = secrets.token_hex(8)
+    env = dict(os.environ if env is None else env)
+    env[_MARKER] = token
+    proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, start_new_session=True, env=env)
+    bufs = {proc.stdout.fileno(): bytearray(), proc.stderr.fileno(): bytearray()}
+    total = 0
+    sel = selectors.DefaultSelector()
+    for fd in bufs:
+        os.set_blocking(fd, False)
+        sel.register(fd, selectors.EVENT_READ)
+    deadline = time.monotonic() + timeout
+    exited_at = None
+    timed_out = False
+    try:
+        while True:
+            now = time.monotonic()
+            if exited_at is None and proc.poll() is not None:
+                exited_at = now
+            if exited_at is not None and (not sel.get_map() or now - exited_at > _DRAIN_SECONDS):
+                break
+            if exited_at is None and now >= deadline:
+                timed_out = True
+                break
+            for key, _ in sel.select(timeout=0.05):
+                try:
+                    chunk = os.read(key.fd, 1 << 16)
+                except BlockingIOError:
+                    continue
+                except OSError:
+                    chunk = b""
+                if not chunk:
+                    sel.unregister(key.fd)
+                    continue
+                total += len(chunk)
+                buf = bufs[key.fd]
+                buf += chunk
+                if len(buf) > 2 * keep:
+                    del buf[:-keep]
+    finally:
+        sel.close()
+        _stop_everything(proc.pid, token)
+        try:
+            proc.wait(timeout=5)
+        except subprocess.TimeoutExpired:       # pragma: no cover - SIGKILL was sent
+            pass
+        proc.stdout.close()
+        proc.stderr.close()
+    out, err = (bytes(buf[-keep:]) for buf in bufs.values())
+    return (None if timed_out else proc.returncode), out, err, total
+
+
 def _run_command(args: list[str], case: ReferenceCase, timeout: float) -> Any:
     work = Path(tempfile.mkdtemp(prefix="adapt-verify-"))
     try:
@@ -1272,62 +1492,92 @@ def _run_command(args: list[str], case: ReferenceCase, timeout: float) -> Any:
             if (case.folder / fname).exists():
                 shutil.copyfile(case.folder / fname, inputs / fname)
         out = work / "weights.npy"
+        # {case} and {out} are replaced inside each word after splitting: no shell is
+        # involved unless the template runs one (see README on quoting)
         argv = [a.replace("{case}", str(inputs)).replace("{out}", str(out)) for a in args]
+        env = dict(os.environ, ADAPT_CASE=str(inputs), ADAPT_OUT=str(out))
         try:
-            proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
-                                    stderr=subprocess.PIPE, start_new_session=True)
+            code, _, err, total = run_bounded(argv, timeout, env)
         except OSError as exc:
-            raise _CaseFailure("error", f"cannot start '{argv[0]}': {exc.strerror or exc}") from None
-        try:
-            _, err = proc.communicate(timeout=timeout)
-        except subprocess.TimeoutExpired:
-            try:
-                os.killpg(proc.pid, signal.SIGKILL)   # the group this run started, only
-            except (ProcessLookupError, PermissionError):
-                proc.kill()
-            _, err = proc.communicate()
-            raise _CaseFailure("error", f"timed out after {timeout:g} s (killed)",
-                               _tail(err)) from None
-        if proc.returncode != 0:
-            tail = _tail(err)
+            raise _CaseFailure("error", f"cannot start {_printable(repr(argv[0]))}: "
+                               f"{exc.strerror or exc}") from None
+        tail = _tail(err)
+        if total > 2 * OUTPUT_TAIL_BYTES:
+            tail = (f"[output of {total:,} bytes; the last {OUTPUT_TAIL_BYTES // 1024} KiB "
+                    "of stderr kept]\n" + tail)
+        if code is None:
+            raise _CaseFailure("error", f"timed out after {timeout:g} s (killed)", tail)
+        if code != 0:
             last = tail.splitlines()[-1] if tail else "(no error output)"
-            raise _CaseFailure("error", f"exited with code {proc.returncode}: {last}", tail)
-        if not out.exists():
-            raise _CaseFailure("error", f"wrote no weights file ({{out}} = {out.name})",
-                               _tail(err))
+            raise _CaseFailure("error", f"exited with code {code}: {last}", tail)
+        c, n = len(case.checkpoints), case.samples.shape[1]
         try:
-            return read_npy(out)
-        except (OSError, ValueError, EOFError) as exc:
-            raise _CaseFailure("failure", f"the weights file is not a readable .npy array "
-                               f"without pickling ({exc})") from None
+            data = _read_regular(out, c * n * 16 + 65536)
+        except FileNotFoundError:
+            raise _CaseFailure("error", f"wrote no weights file ({{out}} = {out.name})",
+                               tail) from None
+        except CorruptReferenceError as exc:
+            raise _CaseFailure("failure", f"the weights file is refused: {exc.message}") from None
+        try:
+            return parse_npy(data, out.name)
+        except CorruptReferenceError as exc:
+            raise _CaseFailure("failure", f"the weights file is {exc.message}") from None
     finally:
         shutil.rmtree(work, ignore_errors=True)
 
 
-def verify(reference_set, implementation, tolerances=None, timeout=None) -> VerifyReport:
+def verify(reference_set, implementation, tolerances=None, timeout=None,
+           scale_blind: bool = False, on_start=None) -> VerifyReport:
     """Run a candidate on every case of a reference set and compare it.
 
-    reference_set: a :class:`ReferenceSet` or a folder (checked by
-    :func:`load_reference`; CorruptReferenceError when damaged). implementation: a
-    callable ``f(case: CaseInputs) -> weights (C, N)``, a ``"MODULE:FUNCTION"`` /
-    ``"file.py:FUNCTION"`` text prefixed ``python:``, or a command template containing
-    ``{case}`` and ``{out}``. tolerances: overrides (mapping or ``NAME=VALUE``) of the
-    set's own tolerances.json. timeout: seconds per case for commands (default 60).
+    Parameters
+    ----------
+    reference_set : a :class:`ReferenceSet` or a folder (checked by
+        :func:`load_reference`; CorruptReferenceError when damaged).
+    implementation : a callable ``f(case: CaseInputs) -> weights (C, N)``, a
+        ``"MODULE:FUNCTION"`` / ``"file.py:FUNCTION"`` text prefixed ``python:``, or a
+        command template containing ``{case}`` and ``{out}``.
+    tolerances : overrides (mapping or ``NAME=VALUE``) of the set's tolerances.json.
+    timeout : seconds per case for commands (default 60).
+    scale_blind : compare the output samples after removing the best complex scale per
+        checkpoint (for implementations whose weights carry an arbitrary constant
+        factor; the SINR and the weight error are scale-free already).
+    on_start : called with the (empty) report before the first case runs (the command
+        line writes a JUnit file marking every case "not run" there, so a candidate that
+        ends the process cannot leave a passing trace).
 
-    Per case: crashes, timeouts and missing output are errors; wrong shapes, NaN or a
-    metric beyond tolerance are failures; see the module docstring for the metrics.
+    Returns
+    -------
+    VerifyReport
+        Per case: crashes (any exception, ``SystemExit`` and ``KeyboardInterrupt``
+        included), timeouts and missing output are errors; wrong shapes, NaN or a
+        metric beyond tolerance are failures; see the module docstring for the metrics.
     """
     ref = reference_set if isinstance(reference_set, ReferenceSet) else load_reference(reference_set)
     tol = parse_tolerances(tolerances, base=ref.tolerances)
-    limit = 60.0 if timeout is None else float(timeout)
+    if timeout is None:
+        limit = 60.0
+    else:
+        try:
+            limit = float(timeout)
+        except (TypeError, ValueError):
+            raise InputError("timeout must be a positive number of seconds",
+                             value=timeout) from None
     if not np.isfinite(limit) or limit <= 0:
         raise InputError("timeout must be a positive number of seconds", value=timeout)
+    if not isinstance(scale_blind, (bool, np.bool_)):
+        raise InputError("scale_blind must be true or false", value=scale_blind)
+    load_failure = None
     if callable(implementation):
         mode, label = "python", getattr(implementation, "__qualname__", repr(implementation))
         run = lambda case: _run_python(implementation, case)          # noqa: E731
     elif isinstance(implementation, str) and implementation.startswith("python:"):
-        fn = load_implementation(implementation[len("python:"):])
         mode, label = "python", implementation[len("python:"):]
+        try:
+            fn = load_implementation(implementation[len("python:"):])
+        except CandidateLoadError as exc:
+            load_failure = exc.message
+            fn = None
         run = lambda case: _run_python(fn, case)                      # noqa: E731
     elif isinstance(implementation, str):
         args = _command_args(implementation)
@@ -1335,16 +1585,22 @@ def verify(reference_set, implementation, tolerances=None, timeout=None) -> Veri
         run = lambda case: _run_command(args, case, limit)            # noqa: E731
     else:
         raise InputError("implementation must be a callable or a command template",
-                         value=implementation)
-    report = VerifyReport(folder=ref.folder, mode=mode, implementation=label, tolerances=tol)
+                         value=type(implementation).__name__)
+    report = VerifyReport(folder=ref.folder, mode=mode, implementation=label, tolerances=tol,
+                          scale_blind=bool(scale_blind))
+    if on_start is not None:
+        on_start(report)
     for case in ref.cases:
         t0 = time.perf_counter()
         try:
+            if load_failure is not None:
+                raise _CaseFailure("error", load_failure)
             raw = run(case)
             w = _check_weights(raw, len(case.checkpoints), case.samples.shape[1])
-            res = _compare(case, w, tol)
+            res = _compare(case, w, tol, scale_blind=bool(scale_blind))
         except _CaseFailure as exc:
-            res = CaseResult(case.name, exc.kind, exc.message, exc.details or exc.message)
+            res = CaseResult(case.name, exc.kind, _printable(exc.message),
+                             _printable(exc.details or exc.message))
         res.seconds = time.perf_counter() - t0
         report.cases.append(res)
     return report
@@ -1361,11 +1617,15 @@ def _fmt_db(v: float) -> str:
 
 def format_report(report: VerifyReport) -> str:
     """The terminal table: per case the worst SINR difference, weight error and output
-    EVM (dB) and the result; then the overall worst case, checkpoint and metric."""
+    EVM (dB) and the result naming every failing metric; then, per metric, the case and
+    checkpoint where it is worst (metrics in different units are never ranked against
+    each other). Text from outside (paths, the candidate's messages) is printed with
+    control characters escaped."""
     head = (f"{'case':<12} {'SINR diff dB':>12} {'weight err dB':>13} "
             f"{'output EVM dB':>13}  result")
     lines = [f"verify {report.folder} with {report.mode} '{report.implementation}'",
-             "tolerances: " + ", ".join(f"{k} {v:g} dB" for k, v in report.tolerances.items()),
+             "tolerances: " + ", ".join(f"{k} {v:g} dB" for k, v in report.tolerances.items())
+             + (" (output EVM scale-blind)" if report.scale_blind else ""),
              head, "-" * len(head)]
     for c in report.cases:
         result = "pass" if c.passed else f"{'FAIL' if c.kind == 'failure' else 'ERROR'}: {c.message}"
@@ -1373,15 +1633,24 @@ def format_report(report: VerifyReport) -> str:
                      f"{_fmt_db(c.worst_of('weight_error_db')):>13} "
                      f"{_fmt_db(c.worst_of('output_evm_db')):>13}  {result}")
     lines.append("-" * len(head))
-    w = report.worst
-    if w is not None:
-        name, metric, cp, value, limit, _ = w
+    ranked = sorted(report.worst_by_metric().items(), key=lambda kv: kv[1][4] <= 0)
+    for metric, (name, cp, value, limit, excess) in ranked:
+        verdict = "over" if excess > 0 else "within"
         lines.append(f"worst: {name}, checkpoint {cp}, {metric} = {_fmt_db(value)} dB "
-                     f"(tolerance {limit:g} dB)")
+                     f"({verdict} the tolerance {limit:g} dB)")
     n = report.counts
     lines.append(f"{len(report.cases)} cases: {n['pass']} passed, {n['failure']} failed, "
                  f"{n['error']} errors -> {'PASS' if report.passed else 'FAIL'}")
-    return "\n".join(lines)
+    return _printable("\n".join(lines))
+
+
+def not_run_report(report: VerifyReport, ref: ReferenceSet) -> VerifyReport:
+    """A copy of ``report`` with every case of ``ref`` an error "not run" (what the JUnit
+    file says until verify finishes)."""
+    from dataclasses import replace
+    return replace(report, cases=[CaseResult(c.name, "error", "not run: verify did not "
+                                             "finish (the candidate may have ended the "
+                                             "process)") for c in ref.cases])
 
 
 def write_report_junit(report: VerifyReport, path) -> Path:
@@ -1390,6 +1659,7 @@ def write_report_junit(report: VerifyReport, path) -> Path:
     outcomes = [TestOutcome(name=c.name, classname=f"adapt.verify.{report.folder.name}",
                             seconds=c.seconds, kind=c.kind, message=c.message,
                             details=c.details) for c in report.cases]
-    props = {"implementation": report.implementation, "mode": report.mode}
+    props = {"implementation": report.implementation, "mode": report.mode,
+             "scale_blind": str(report.scale_blind).lower()}
     props.update({f"tolerance.{k}": f"{v:g}" for k, v in report.tolerances.items()})
     return write_junit(path, suite, outcomes, props)
