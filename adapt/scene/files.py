@@ -276,11 +276,69 @@ SceneLoader.yaml_implicit_resolvers = {
 SceneLoader.add_implicit_resolver(
     "tag:yaml.org,2002:bool", re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$"),
     list("tTfF"))
-# YAML 1.2 floats such as 1e3 or -2.5E-4 (YAML 1.1, PyYAML's default, needs a dot)
+# Numbers by YAML 1.2 core-schema resolution (PyYAML resolves YAML 1.1): integers are
+# decimal, 0o octal or 0x hexadecimal; floats include 1e3 and -2.5E-4. The YAML 1.1-only
+# forms, read differently by different YAML tools, are kept as text marked ambiguous:
+# sexagesimal 1:30 (90 in YAML 1.1), a leading zero 010 (octal 8 in YAML 1.1, 10 in
+# YAML 1.2), 0b binary and digits grouped with underscores. Where a number is expected
+# they are refused with a message saying how to write it; where text is expected they
+# are the text as written (as YAML 1.2 reads them).
+_AMBIGUOUS_TAG = "tag:adapt,2026:yaml11-number"
+
+
+class AmbiguousNumber(str):
+    """A scalar that YAML 1.1 reads as a number and YAML 1.2 as text (or as another
+    number): ``1:30``, ``010``, ``0b101``, ``1_000``."""
+
+    def meaning(self) -> str:
+        """How YAML 1.1 and YAML 1.2 read it (with the YAML 1.1 value where one exists)."""
+        text = str(self)
+        sign = -1 if text.startswith("-") else 1
+        body = text.lstrip("+-").replace("_", "")
+        try:
+            if ":" in body:
+                value = 0.0
+                for part in body.split(":"):
+                    value = value * 60 + float(part)
+                return (f"YAML 1.1 reads it as {sign * value:g} (base 60), YAML 1.2 as "
+                        "the text")
+            if "_" in text:
+                return f"YAML 1.1 reads it as {sign * float(body):g}, YAML 1.2 as the text"
+            if body.lower().startswith("0b"):
+                return (f"YAML 1.1 reads it as {sign * int(body[2:], 2)} (binary), YAML 1.2 "
+                        "as the text")
+            if set(body) <= set("01234567"):
+                return (f"YAML 1.1 reads it as {sign * int(body, 8)} (octal), YAML 1.2 as "
+                        f"{sign * int(body, 10)}")
+        except ValueError:
+            pass
+        return "YAML 1.1 and YAML 1.2 read it differently"
+
+
+SceneLoader.add_constructor(_AMBIGUOUS_TAG,
+                            lambda loader, node: AmbiguousNumber(loader.construct_scalar(node)))
+SceneLoader.yaml_implicit_resolvers = {
+    first: [(tag, rx) for tag, rx in resolvers
+            if tag not in ("tag:yaml.org,2002:int", "tag:yaml.org,2002:float")]
+    for first, resolvers in SceneLoader.yaml_implicit_resolvers.items()}
+# (the ambiguous forms first: resolvers are tried in order)
+SceneLoader.add_implicit_resolver(
+    _AMBIGUOUS_TAG,
+    re.compile(r"^(?:[-+]?[0-9][0-9_]*(?::[0-5]?[0-9])+(?:\.[0-9_]*)?"   # 1:30, 1:30:00.5
+               r"|[-+]?0[0-9_]+(?:\.[0-9_]*)?(?:[eE][-+]?[0-9]+)?"        # 010 (not 0.5)
+               r"|[-+]?0b[0-1_]+"                                       # 0b101
+               r"|[-+]?[0-9]+_[0-9_]*(?:\.[0-9_]*)?(?:[eE][-+]?[0-9]+)?"      # 1_000
+               r"|[-+]?[0-9]*\.[0-9]*_[0-9_]*(?:[eE][-+]?[0-9]+)?)$"),   # 1.000_5
+    list("-+.0123456789"))
+SceneLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:int",
+    re.compile(r"^(?:[-+]?(?:0|[1-9][0-9]*)|0o[0-7]+|0x[0-9a-fA-F]+)$"),
+    list("-+0123456789"))
 SceneLoader.add_implicit_resolver(
     "tag:yaml.org,2002:float",
-    re.compile(r"^[-+]?(?:[0-9][0-9_]*)(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
-    list("-+0123456789"))
+    re.compile(r"^(?:[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?"
+               r"|[-+]?\.(?:inf|Inf|INF)|\.(?:nan|NaN|NAN))$"),
+    list("-+.0123456789"))
 
 
 def _tab_line(text: str) -> int | None:
@@ -485,6 +543,10 @@ class _Reader:
         allowed = f"{'an integer' if integer else 'a number'} in {rng}" + (f" {unit}" if unit else "")
         if isinstance(value, bool):
             raise self.error("expected a number, not true/false", path, value, allowed)
+        if isinstance(value, AmbiguousNumber):
+            raise self.error(f"'{value}' is ambiguous: {value.meaning()}; write the "
+                             "number you mean in plain decimal digits",
+                             path, str(value), allowed)
         if isinstance(value, (int, np.integer)):
             number = int(value)
         elif isinstance(value, (float, np.floating)):
@@ -509,7 +571,35 @@ class _Reader:
         if not isinstance(value, str) or not value.strip() or len(value) > 200:
             raise self.error(f"expected {what}", path, value,
                              "text of 1 to 200 characters")
-        return value
+        self.printable(value, path)
+        return str(value)
+
+    def printable(self, value, path) -> None:
+        """Refuse control and other unprintable characters (escape sequences such as
+        ``"\\e[2J"`` after YAML's escape processing, lone surrogates such as
+        ``"\\ud800"``) in text that is printed or written to files, found in ``value``
+        or anywhere inside a list or mapping (each shared list or mapping walked once,
+        so the walk is bounded by the distinct values)."""
+        seen: set[int] = set()
+        todo = [(value, path)]
+        while todo:
+            item, where = todo.pop()
+            if isinstance(item, str):
+                if not item.isprintable():
+                    bad = next(c for c in item if not c.isprintable())
+                    raise self.error(f"text holds the unprintable character U+{ord(bad):04X} "
+                                     "(control characters and escape sequences are refused)",
+                                     where, item, "printable text")
+            elif isinstance(item, (dict, list, tuple)):
+                if id(item) in seen:
+                    continue
+                seen.add(id(item))
+                if isinstance(item, dict):
+                    for k, v in item.items():
+                        todo.append((k, where))
+                        todo.append((v, _join(where, k) if isinstance(k, str) else where))
+                else:
+                    todo.extend((v, _join(where, i)) for i, v in enumerate(item))
 
     def choice(self, value, path, choices) -> str:
         if not isinstance(value, str) or value not in choices:
@@ -953,6 +1043,7 @@ class _Reader:
             raise self.error("expected a list of processor specs", path, value,
                              "e.g. [conventional, 'smi loading_db=10']")
         from adapt.processors import parse_specs
+        self.printable(value, path)
         try:
             parse_specs(value, where=path)
         except SpecError as exc:
@@ -975,6 +1066,8 @@ def _plain(value):
         return float(value)
     if isinstance(value, np.ndarray):
         return _plain(value.tolist())
+    if isinstance(value, str):
+        return str(value)
     return value
 
 
