@@ -28,11 +28,20 @@ from typing import Sequence
 from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation, ProcessorScores
 from adapt.engine.execute import run_trials
-from adapt.engine.settings import checkpoints_for, prepare_scene
+from adapt.engine.settings import (
+    MAX_SNAPSHOTS,
+    check_scheduler_address,
+    check_specs_argument,
+    checkpoints_for,
+    estimate_run,
+    estimate_samples,
+    prepare_scene,
+    whole_count,
+)
 from adapt.errors import InputError, SceneError, SpecError
 from adapt.processors import Context, Processor, ProcessorResult, parse_spec, parse_specs, registry
 from adapt.processors import run_processors as _run_processors
-from adapt.report.runfolder import read_run
+from adapt.report.runfolder import read_run as _read_run
 from adapt.scene.files import dump_scene, load_scene, parse_scene
 from adapt.scene.model import Scene
 from adapt.streams.snapshots import Block, TrialBatch
@@ -61,6 +70,9 @@ def generate(scene, trials: int | None = None, snapshots: int | None = None,
     the true steering vectors and covariances (``batch.covariance()``). Trial i is the
     same whatever ``trials`` is. Defaults come from the scene."""
     sc = _with(_scene(scene), trials, snapshots, seed)
+    estimate_samples(sc.trials, sc.snapshots, sc.elements).check_fits(
+        "fewer trials or snapshots, or TrialBatch(scene).blocks(...) to stream them in "
+        "blocks", sc.trials)
     batch = TrialBatch(sc)
     return batch, batch.samples(sc.snapshots)
 
@@ -73,6 +85,7 @@ def _with(scene: Scene, trials, snapshots, seed) -> Scene:
 
 def processors(specs=None, scene=None) -> list[Processor]:
     """Processor objects from specs (default: the scene's own list)."""
+    check_specs_argument(specs)
     if specs is None:
         if scene is None:
             raise InputError("give processor specs or a scene that lists them")
@@ -99,8 +112,14 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
     ``y = w^H x`` (T, K) under the held-weight convention (see
     :mod:`adapt.processors.base`). Scores are not computed; use :func:`evaluate`.
     """
+    if not isinstance(outputs, bool):
+        raise InputError("outputs must be true or false", path="outputs", value=outputs)
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, sc.snapshots)
+    est = estimate_run(sc, len(procs), len(cps), threads=1, what="this run")
+    est.bytes += len(procs) * sc.trials * (len(cps) * sc.elements + (sc.snapshots if outputs
+                                                                      else 0)) * 16.0
+    est.check_fits("fewer trials, checkpoints or processors", sc.trials)
     batch = TrialBatch(sc)
     return _run_processors(procs, batch.blocks(sc.snapshots), Context.from_batch(batch), cps,
                            outputs=outputs, snapshots=sc.snapshots)
@@ -122,6 +141,13 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
     are summed over chunks: with threads, time summed over the threads, not wall time."""
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, sc.snapshots)
+    tail = whole_count(tail, "tail", MAX_SNAPSHOTS, low=0)
+    if block is not None:
+        block = whole_count(block, "block", MAX_SNAPSHOTS)
+    check_scheduler_address(scheduler)
+    estimate_run(sc, len(procs), len(cps), tail, threads,
+                 samples=draw != "covariance").check_fits(
+        "fewer trials, checkpoints, snapshots or processors", sc.trials)
     return run_trials(sc, procs, cps, tail=tail, draw=draw, block=block, workers=workers,
                       scheduler=scheduler, threads=threads)
 
@@ -129,7 +155,22 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
 def write_run(comparison: Comparison, out="runs", command_line: str | None = None) -> Path:
     """Write a comparison to a new run folder under ``out`` (as ``adapt compare`` does);
     returns the folder path."""
+    if not isinstance(comparison, Comparison):
+        raise InputError("write_run takes the result of compare()", path="comparison",
+                         value=type(comparison).__name__)
+    if not isinstance(out, (str, Path)):
+        raise InputError("out is the path of a folder", path="out", value=type(out).__name__)
+    if command_line is not None and not isinstance(command_line, str):
+        raise InputError("command_line is text", path="command_line",
+                         value=type(command_line).__name__)
     return write_compare_run(comparison, out, command_line=command_line)
+
+
+def read_run(folder):
+    """Read a run folder written by ``compare`` (see :func:`adapt.report.runfolder.read_run`)."""
+    if not isinstance(folder, (str, Path)):
+        raise InputError("expected the path of a run folder", value=type(folder).__name__)
+    return _read_run(folder)
 
 
 def size(scene, specs: Sequence | None = None, **options):
@@ -137,7 +178,17 @@ def size(scene, specs: Sequence | None = None, **options):
     a :class:`adapt.studies.sizing.Sizing` with per-processor points, the required snapshot
     counts with their uncertainty, and the theory beside the simulation. ``draw`` is
     ``auto`` unless given, as on the command line: drawn covariances where exact."""
+    import inspect
+
+    from adapt.errors import did_you_mean
     from adapt.studies.sizing import size as _size
+    known = list(inspect.signature(_size).parameters)[2:]
+    for name in options:
+        if name not in known:
+            raise InputError(f"size() has no option '{name}'" + did_you_mean(name, known),
+                             allowed=", ".join(known))
+    check_specs_argument(specs)
+    check_scheduler_address(options.get("scheduler"))
     options.setdefault("draw", "auto")
     return _size(_scene(scene), specs, **options)
 

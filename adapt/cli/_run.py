@@ -71,17 +71,17 @@ def real_number(text, option: str) -> float:
         raise InputError("expected a number", path=option, value=text) from None
 
 
-def relocated(exc: InputError, options: dict) -> InputError:
+def relocated(exc: InputError, options: dict, given_processors: bool = True) -> InputError:
     """The library's error re-addressed to the command-line option it came from:
     ``options`` maps library argument names to option texts; ``processors[i]...``
-    becomes ``--processor[i]...`` unless the error names a file (then the spec came from
-    the scene file's own ``processors:`` list and keeps that key path)."""
+    becomes ``--processor[i]...`` when the specs came from the command line
+    (``given_processors``), else it stays the scene file's ``processors[i]``."""
     path = exc.path or ""
     head = path.split(".")[0].split("[")[0]
     if head in options and path == head:
         return exc.__class__(exc.message, file=exc.file, path=options[head], value=exc.value,
                              allowed=exc.allowed)
-    if head == "processors" and not exc.file:
+    if head == "processors" and given_processors and not exc.file:
         return exc.__class__(exc.message, file=exc.file, path="--processor" + path[len(head):],
                              value=exc.value, allowed=exc.allowed)
     return exc
@@ -131,7 +131,8 @@ def progress_bar(args, total: int, desc: str):
                 disable=None, leave=False, desc=desc)
 
 
-def complete(folder: "Folder", work, write, line, options: dict, on_exit=None) -> int:
+def complete(folder: "Folder", work, write, line, options: dict, on_exit=None,
+             given_processors: bool = True) -> int:
     """Run ``work(store)`` in ``folder`` (library InputErrors re-addressed to the
     command-line ``options``; ``on_exit`` called however it ends, e.g. to close the
     progress bar), write the run with ``write(result, command_line=line, folder=path)``
@@ -140,7 +141,7 @@ def complete(folder: "Folder", work, write, line, options: dict, on_exit=None) -
         try:
             return work(store)
         except InputError as exc:
-            raise relocated(exc, options) from None
+            raise relocated(exc, options, given_processors) from None
         finally:
             if on_exit is not None:
                 on_exit()
@@ -149,6 +150,12 @@ def complete(folder: "Folder", work, write, line, options: dict, on_exit=None) -
         return write(result, command_line=line, folder=path)
 
     return print_outcome(*execute(folder, guarded, finish))
+
+
+def announce(estimate) -> None:
+    """Print a run's memory and time estimate on stderr when the run is long or large."""
+    if estimate.long:
+        print(f"adapt: {estimate.text()}", file=sys.stderr)
 
 
 def print_outcome(result, written, code) -> int:
@@ -167,7 +174,8 @@ def cluster_options(args) -> dict:
     (InputError)."""
     from adapt.engine.executors import check_cluster_options
     workers = whole_number(args.workers, "--workers")
-    scheduler = args.scheduler
+    from adapt.engine.settings import check_scheduler_address
+    scheduler = check_scheduler_address(args.scheduler, "--scheduler")
     threads = threads_option(args, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)
     chunk = whole_number(args.chunk, "--chunk")

@@ -55,7 +55,7 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from adapt.engine.settings import checkpoints_for, prepare_scene
+    from adapt.engine.settings import checkpoints_for, estimate_run, prepare_scene
     from adapt.errors import InputError
     from adapt.studies.compare import TAIL
     execution = _run.cluster_options(args)
@@ -66,11 +66,15 @@ def run(args) -> int:
     snapshots = _run.whole_number(args.snapshots, "--snapshots")
     seed = _run.whole_number(args.seed, "--seed")
     try:
-        used, _ = prepare_scene(args.scene, args.processors, trials, snapshots, seed,
-                                where="--processor")
+        used, procs = prepare_scene(args.scene, args.processors, trials, snapshots, seed,
+                                    where="--processor")
         cps = checkpoints_for(args.checkpoints, used.snapshots)
+        est = estimate_run(used, len(procs), len(cps), TAIL, execution["threads"])
+        est.check_fits("fewer --trials, --checkpoints, --snapshots or processors",
+                       used.trials)
     except InputError as exc:
-        raise _run.relocated(exc, _OPTIONS) from None
+        raise _run.relocated(exc, _OPTIONS, args.processors is not None) from None
+    _run.announce(est)
     settings = {"scene": used.resolved, "checkpoints": [int(c) for c in cps],
                 "chunk": execution["chunk"], "tail": TAIL}
     folder = _run.Folder("compare", args.out, used.name, settings, command_line(args))
@@ -100,4 +104,5 @@ def _execute(args, folder, used, settings, execution, line) -> int:
                        threads=execution["threads"])
 
     return _run.complete(folder, work, write_compare_run, line, _OPTIONS,
-                         on_exit=bar.close if bar is not None else None)
+                         on_exit=bar.close if bar is not None else None,
+                         given_processors=getattr(args, "processors", None) is not None)

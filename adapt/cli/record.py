@@ -67,7 +67,9 @@ def run(args) -> int:
 
     from adapt.cli._run import library_warnings, threads_option, whole_number
     from adapt.engine.execute import check_cluster_options
+    from adapt.engine.settings import check_scheduler_address
     from adapt.studies.reference import load_reference, record
+    check_scheduler_address(args.scheduler, "--scheduler")
     workers = whole_number(args.workers, "--workers")
     threads = threads_option(args, remote=workers is not None or args.scheduler is not None)
     check_cluster_options(workers, args.scheduler)

@@ -9,6 +9,7 @@ setting (exit code 2 on the command line).
 from __future__ import annotations
 
 import math
+import os
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +20,9 @@ from adapt.processors import Processor, parse_specs
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene
 
-__all__ = ["prepare_scene", "checkpoints_for", "whole_count", "MAX_TRIALS", "MAX_SNAPSHOTS"]
+__all__ = ["prepare_scene", "checkpoints_for", "whole_count", "MAX_TRIALS", "MAX_SNAPSHOTS",
+           "check_scheduler_address", "check_specs_argument", "estimate_run",
+           "estimate_samples", "available_memory", "RunEstimate"]
 
 MAX_TRIALS = 1_000_000
 MAX_SNAPSHOTS = 1_000_000_000
@@ -103,8 +106,12 @@ def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None
             raise SpecError("the scene lists no processors and none were given",
                             file=scene.source_file, path="processors",
                             allowed="a 'processors:' list in the scene or --processor SPEC")
-        procs = parse_specs(list(scene.processors), where="processors")
+        try:
+            procs = parse_specs(list(scene.processors), where="processors")
+        except SpecError as exc:                 # the scene's own list: name its file
+            raise exc.at(file=scene.source_file) from None
     else:
+        check_specs_argument(processors, where)
         if isinstance(processors, (str, dict, Processor)):
             processors = [processors]
         processors = list(processors)
@@ -139,3 +146,168 @@ def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None
                          file=exc.file, path=exc.path, value=exc.value,
                          allowed=exc.allowed) from None
     return used, procs
+
+
+# --------------------------------------------------------------------------- checks
+def check_scheduler_address(address, path: str = "scheduler"):
+    """``address`` of a Dask scheduler as ``tcp://HOST:PORT`` or ``HOST:PORT`` (None
+    stays None); InputError for anything else (no port, or a transport this tool does
+    not set up: ``tls://`` needs certificates, ``inproc://`` lives inside one process,
+    ``ucx://`` needs its own library)."""
+    if address is None:
+        return None
+    if not isinstance(address, str):
+        raise InputError("a scheduler address is text", path=path,
+                         value=type(address).__name__, allowed="e.g. tcp://10.1.2.3:8786")
+    text = address.strip()
+    scheme, sep, rest = text.partition("://")
+    if not sep:
+        scheme, rest = "tcp", text
+    if scheme != "tcp":
+        raise InputError(f"the '{scheme}://' transport is not supported", path=path,
+                         value=address, allowed="tcp://HOST:PORT, e.g. tcp://10.1.2.3:8786")
+    host, colon, port = rest.rstrip("/").rpartition(":")
+    if not colon or not host or not port.isdigit() or not 1 <= int(port) <= 65535:
+        raise InputError("a scheduler address needs a host and a port", path=path,
+                         value=address, allowed="tcp://HOST:PORT, e.g. tcp://10.1.2.3:8786")
+    return text
+
+
+def check_specs_argument(processors, where: str = "processors") -> None:
+    """InputError unless ``processors`` is None, one spec (text, mapping, Processor) or
+    a list or tuple of them."""
+    if processors is None or isinstance(processors, (str, dict, Processor)):
+        return
+    if not isinstance(processors, (list, tuple)):
+        raise SpecError("processor specs are text, a mapping, a Processor or a list of them",
+                        path=where, value=type(processors).__name__,
+                        allowed="e.g. ['conventional', 'smi loading_db=10']")
+
+
+# --------------------------------------------------------------------------- estimates
+#: seconds per trial-snapshot and element^2 of a processor, and per element of the
+#: stream (measured order of magnitude on 2 cores: see README, Speed; deliberately high)
+_COST_PROCESSOR = 0.5e-9
+_COST_STREAM = 10e-9
+#: an estimate is printed beyond these
+LONG_RUN_SECONDS = 30.0
+LARGE_RUN_BYTES = 1 << 30
+
+
+def available_memory() -> int | None:
+    """Bytes of memory this process may still use: the smaller of the system's
+    available memory (Linux ``MemAvailable``) and the cgroup limit; None if unknown."""
+    found = []
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    found.append(int(line.split()[1]) * 1024)
+    except (OSError, ValueError):
+        pass
+    try:
+        text = Path("/sys/fs/cgroup/memory.max").read_text().strip()
+        if text.isdigit():
+            found.append(int(text))
+    except OSError:
+        pass
+    return min(found) if found else None
+
+
+def _size_text(n: float) -> str:
+    for unit, scale in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6)):
+        if n >= scale:
+            return f"{n / scale:.3g} {unit}"
+    return f"{n / 1e3:.3g} kB"
+
+
+def _time_text(s: float) -> str:
+    for unit, scale in (("years", 3.156e7), ("days", 86400), ("h", 3600), ("min", 60)):
+        if s >= scale:
+            return f"{s / scale:.2g} {unit}"
+    return f"{s:.2g} s"
+
+
+class RunEstimate:
+    """Memory (bytes, peak, about) and time (seconds, about) of a run, with the terms
+    that dominate; ``text()`` says both in one line."""
+
+    def __init__(self, bytes_: float, seconds: float, threads: int, what: str):
+        self.bytes, self.seconds, self.threads, self.what = float(bytes_), float(seconds), \
+            int(threads), what
+
+    def text(self) -> str:
+        return (f"{self.what} needs about {_size_text(self.bytes)} of memory and about "
+                f"{_time_text(self.seconds)} on {self.threads} thread(s)")
+
+    @property
+    def long(self) -> bool:
+        return self.seconds > LONG_RUN_SECONDS or self.bytes > LARGE_RUN_BYTES
+
+    def check_fits(self, shrink: str, trials: int | None = None) -> None:
+        """InputError when the run cannot fit in the memory available (saying how
+        much it needs and how to shrink it)."""
+        avail = available_memory()
+        if avail is None or self.bytes <= 0.8 * avail:
+            return
+        hint = shrink
+        if trials:
+            fits = int(trials * 0.8 * avail / self.bytes)
+            hint += f" (about {fits:,} trials would fit)" if fits >= 1 else ""
+        raise InputError(f"{self.text()}: more than the {_size_text(avail)} of memory "
+                         "available", allowed=hint)
+
+
+def _threads(threads) -> int:
+    if threads:
+        return int(threads)
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def estimate_run(scene: Scene, processors: int, checkpoints: int, tail: int = 0,
+                 threads: int | None = None, samples: bool = True,
+                 what: str = "this run") -> RunEstimate:
+    """Memory and time of scoring ``processors`` processors at ``checkpoints``
+    checkpoints over ``scene.trials`` trials of ``scene.snapshots`` snapshots.
+
+    Parameters
+    ----------
+    scene : the scene as run (trials, snapshots, elements, interferers).
+    processors, checkpoints : how many.
+    tail : extra snapshots streamed after the last checkpoint.
+    threads : threads running chunks (default: every usable core).
+    samples : False for the drawn-covariance path (time independent of snapshots).
+
+    Returns
+    -------
+    RunEstimate
+        Memory: the scores kept per trial, checkpoint and processor (five arrays plus a
+        null depth per interferer, merged from the chunks: twice), plus per running
+        chunk its blocks of snapshots, weights and (for a changing scene) the true
+        covariance at every checkpoint. Time: a deliberately high order of magnitude.
+    """
+    from adapt.engine.execute import block_size, chunk_size
+    t, k, n = int(scene.trials), int(scene.snapshots), int(scene.elements)
+    p, c = max(1, int(processors)), max(1, int(checkpoints))
+    j = len(scene.interferer_indices)
+    th = _threads(threads)
+    total = k + int(tail)
+    results = 2.0 * t * c * 8 * (p * (5 + j) + 1) + p * t * n * 16
+    blk = block_size(n, total)
+    ch = min(t, chunk_size(t, n, total, p))
+    working = ch * blk * n * 16 * 6 + p * ch * c * n * 16 + 2 * p * ch * c * 8
+    if not scene.stationary:
+        working += ch * c * n * n * 16 * 2
+    seconds = t * (total if samples else c) * (p * n * n * _COST_PROCESSOR + n * _COST_STREAM)
+    return RunEstimate(results + min(th, max(1, t // ch)) * working, seconds / th, th, what)
+
+
+def estimate_samples(trials: int, snapshots: int, elements: int) -> RunEstimate:
+    """Memory and time of drawing every snapshot of ``trials`` trials at once (the
+    data, wanted-signal and training arrays, complex, and the reference waveform)."""
+    t, k, n = int(trials), int(snapshots), int(elements)
+    return RunEstimate(t * k * (3 * n + 1) * 16.0, t * k * n * _COST_STREAM, 1,
+                       f"{t:,} trials x {k:,} snapshots x {n} elements")

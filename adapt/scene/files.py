@@ -117,6 +117,7 @@ positions).
 from __future__ import annotations
 
 import math
+import os
 import re
 from pathlib import Path
 from typing import Any
@@ -412,6 +413,9 @@ def _mark_text(mark) -> str:
 # --------------------------------------------------------------------------- entry points
 def load_scene(path) -> Scene:
     """Read and validate a scene file; SceneError/SpecError on any problem."""
+    if not isinstance(path, (str, os.PathLike)):
+        raise SceneError("expected the path of a scene file", value=type(path).__name__,
+                         allowed="the path of a YAML scene file, e.g. scenes/single_jammer.yaml")
     p = Path(path)
     name = str(path)
     if not p.exists():
@@ -1166,6 +1170,8 @@ def _noise_mapping(scene: Scene) -> dict:
 
 def dump_scene(scene: Scene) -> str:
     """The resolved scene as YAML text (keys in the documented order)."""
+    if not isinstance(scene, Scene):
+        raise SceneError("expected a Scene", value=type(scene).__name__)
     return yaml.safe_dump(scene_to_mapping(scene), sort_keys=False, default_flow_style=None,
                           allow_unicode=True)
 

@@ -45,7 +45,15 @@ import numpy as np
 from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation
 from adapt.engine.execute import run_trials
-from adapt.engine.settings import MAX_TRIALS, checkpoints_for, prepare_scene, whole_count
+from adapt.engine.settings import (
+    MAX_SNAPSHOTS,
+    MAX_TRIALS,
+    check_scheduler_address,
+    checkpoints_for,
+    estimate_run,
+    prepare_scene,
+    whole_count,
+)
 from adapt.numerics.units import power_db as _db
 from adapt.report.numbers import format_number
 from adapt.scene import geometry
@@ -584,8 +592,10 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     """
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
     checkpoints = checkpoints_for(checkpoints, used.snapshots)
-    if tail < 0:
-        raise ValueError(f"tail must be >= 0 snapshots, got {tail}")
+    tail = whole_count(tail, "tail", MAX_SNAPSHOTS, low=0)
+    check_scheduler_address(scheduler)
+    estimate_run(used, len(procs), len(checkpoints), tail, threads).check_fits(
+        "fewer trials, checkpoints, snapshots or processors", used.trials)
     from adapt.engine.executors import check_cluster_options, check_threads
     check_threads(threads, remote=workers is not None or scheduler is not None)
     check_cluster_options(workers, scheduler)

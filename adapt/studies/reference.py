@@ -415,12 +415,10 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     sc = _as_scene(scene)
     proc = _as_processor(processor)
     tol = parse_tolerances(tolerances)
-    t_ = 3 if trials is None else int(trials)
-    if not 1 <= t_ <= _MAX_CASES:
-        raise InputError(f"trials must be 1 .. {_MAX_CASES}", value=trials)
-    k = int(sc.snapshots if snapshots is None else snapshots)
-    if k < 1:
-        raise InputError("snapshots must be >= 1", value=snapshots)
+    from adapt.engine.settings import MAX_SNAPSHOTS, check_scheduler_address, whole_count
+    t_ = 3 if trials is None else whole_count(trials, "trials", _MAX_CASES)
+    k = sc.snapshots if snapshots is None else whole_count(snapshots, "snapshots", MAX_SNAPSHOTS)
+    check_scheduler_address(scheduler)
     n = sc.elements
     if t_ * k * n > _MAX_VALUES:
         raise InputError(f"a reference set of {t_} cases x {k} snapshots x {n} elements is too "
