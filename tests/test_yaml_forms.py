@@ -84,3 +84,15 @@ def test_control_characters_in_processor_labels_refused(tmp_path, run_cli):
     path.write_text(scene() + "processors: [{method: smi, label: \"a\\e[2J\"}]\n")
     code, out, err = run_cli(["check", path])
     assert code == 2 and "unprintable" in err and "processors[0].label" in err, err
+
+
+@pytest.mark.parametrize("array, key", [
+    ("{layout: ring, elements: 2, radius: 1.0e-300}", "array.radius"),
+    ("{layout: grid, rows: 2, columns: 2, spacing: 1.0e-300}", "array.spacing"),
+    ("{layout: line, elements: 3, spacing: 1.0e-300}", "array.spacing"),
+])
+def test_vanishing_apertures_refused_not_divided_by(array, key, tmp_path, run_cli):
+    path = tmp_path / "s.yaml"
+    path.write_text(scene().replace("{layout: line, elements: 4}", array))
+    code, out, err = run_cli(["check", path])
+    assert code == 2 and key in err and "too small an array" in err, err

@@ -163,6 +163,9 @@ MAX_YAML_DEPTH = 64
 MAX_INTEGER_DIGITS = 1000
 
 _MAX_ELEMENTS = 1024
+#: smallest distance of an element from the array's centre, wavelengths (below it the
+#: aperture underflows: beamwidths divide by it)
+_MIN_APERTURE = 1e-6
 _MAX_SOURCES = 256
 
 
@@ -691,6 +694,15 @@ class _Reader:
                                  allowed=", ".join(keys))
             positions = self.positions(value["positions"], p("positions"))
             settings = {"positions": positions.tolist()}
+        if len(positions) >= 2:
+            extent = float(np.max(np.linalg.norm(positions - positions.mean(axis=0), axis=1)))
+            if not extent >= _MIN_APERTURE:
+                key = {"line": "spacing", "grid": "spacing", "ring": "radius"}.get(
+                    layout, "positions")
+                raise self.error(f"the elements span {extent:.3g} wavelengths: too small an "
+                                 "array to steer (beamwidths and nulls are undefined)",
+                                 p(key), allowed=f"elements spread over at least "
+                                 f"{_MIN_APERTURE:g} wavelengths")
         errors = self.hardware(value.get("errors"), p("errors"))
         element = self.element(value.get("element"), p("element"), layout)
         coupling = self.coupling(value.get("coupling"), p("coupling"), layout, len(positions))
