@@ -217,6 +217,7 @@ def test_one_case_listed_twenty_thousand_times_refused(copy, run_cli):
     refused(run_cli, bad, "lists 20,000 cases")
 
 
+@pytest.mark.slow
 def test_command_gets_paths_in_the_environment(genuine, tmp_path):
     # no shell: the template's words are passed as they are, the paths in ADAPT_CASE /
     # ADAPT_OUT for templates that run one
@@ -259,6 +260,7 @@ def test_sys_exit_in_function_and_at_import(genuine, tmp_path, run_cli):
     assert ET.parse(junit2).getroot().find("testsuite").get("errors") == "2"
 
 
+@pytest.mark.slow
 def test_hard_exit_leaves_a_failing_junit(genuine, tmp_path):
     mod = tmp_path / "hard.py"
     mod.write_text("import os\n\ndef f(case):\n    os._exit(0)\n")
@@ -278,6 +280,7 @@ def test_malicious_array_like_is_a_failure(genuine):
 
 
 # ---------------------------------------------------------------------- item 8: commands
+@pytest.mark.slow
 def test_grandchild_in_new_session_is_killed_at_the_timeout(genuine, tmp_path):
     pidfile = tmp_path / "pid"
     prog = tmp_path / "escape.py"
@@ -310,6 +313,7 @@ def test_grandchild_in_new_session_is_killed_at_the_timeout(genuine, tmp_path):
             pytest.fail(f"grandchild {line} survived")
 
 
+@pytest.mark.slow
 def test_huge_stderr_is_capped(genuine, tmp_path):
     prog = tmp_path / "loud.py"
     prog.write_text("import sys\nfor _ in range(400):\n    sys.stderr.write('x' * 65535 + "
