@@ -109,6 +109,10 @@ Scene file keys (``*`` = required)::
     processors: list of specs           strings ("smi loading_db=10") or mappings
                                         ({method: smi, loading_db: 10}); validated by
                                         :func:`adapt.processors.parse_specs`; default none
+    sweep:                              optional design study run by ``adapt sweep``
+      vary: [KEY=VALUES, ...]           one or two axes (see adapt.studies.sweep), e.g.
+                                        "sources[jam-1].azimuth=0:20:1"
+      target_loss_db: dB                (0, 100]; default 3
 
 Checkable facts (tested in tests/test_scenefile.py): every example scene loads, and
 ``parse_scene(scene_to_mapping(s))`` gives back ``s`` (same resolved mapping and
@@ -482,8 +486,9 @@ def parse_scene(mapping_or_text, file: str | None = None, *, _stem: str | None =
 
 # --------------------------------------------------------------------------- validation
 _TOP_KEYS = ("name", "array", "sources", "look", "training", "receiver", "snapshots",
-             "trials", "seed", "processors", "noise")
+             "trials", "seed", "processors", "noise", "sweep")
 _NOISE_KEYS = ("field", "level_db", "element_noise_db_rms")
+_SWEEP_KEYS = ("vary", "target_loss_db")
 _ARRAY_KEYS = {
     "line": ("layout", "elements", "spacing", "errors"),
     "grid": ("layout", "rows", "columns", "spacing", "row_spacing", "errors"),
@@ -638,10 +643,34 @@ class _Reader:
         receiver = self.receiver(data.get("receiver"), "receiver")
         noise = self.noise(data.get("noise"), "noise", array)
         processors = self.processors(data.get("processors", []), "processors")
+        vary, target = self.sweep(data.get("sweep"), "sweep")
         return Scene(name=name, array=array, sources=sources, look_azimuth=look_az,
                      look_elevation=look_el, training=training, receiver=receiver, noise=noise,
                      snapshots=snapshots, trials=trials, seed=seed, processors=processors,
-                     source_file=self.file)
+                     source_file=self.file, sweep_vary=vary, sweep_target_db=target)
+
+    def sweep(self, value, path) -> tuple[tuple, float | None]:
+        """The ``sweep:`` section: its axes are checked against the scene when the
+        study runs (adapt.studies.sweep); here only their form."""
+        if value is None:
+            return (), None
+        self.mapping(value, path, _SWEEP_KEYS, required=("vary",))
+        vary = value["vary"]
+        if isinstance(vary, str):
+            vary = [vary]
+        if not isinstance(vary, list) or not 1 <= len(vary) <= 2:
+            raise self.error("expected a list of one or two KEY=VALUES texts",
+                             _join(path, "vary"), vary,
+                             "e.g. ['sources[jam-1].azimuth=0:20:1']")
+        for i, item in enumerate(vary):
+            if not isinstance(item, str) or "=" not in item or len(item) > 200:
+                raise self.error("expected KEY=VALUES", f"{_join(path, 'vary')}[{i}]", item,
+                                 "e.g. 'smi.loading_db=0:20:2'")
+        target = None
+        if "target_loss_db" in value:
+            target = self.number(value["target_loss_db"], _join(path, "target_loss_db"),
+                                 0, 100, low_open=True, unit="dB")
+        return tuple(vary), target
 
     def array(self, value, path) -> ArrayLayout:
         self.mapping(value, path, _ALL_ARRAY_KEYS)
@@ -1141,6 +1170,10 @@ def scene_to_mapping(scene: Scene) -> dict:
         "seed": int(scene.seed),
         "processors": [_plain(p) for p in scene.processors],
         **_noise_mapping(scene),
+        **({"sweep": {"vary": list(scene.sweep_vary),
+                      **({} if scene.sweep_target_db is None
+                         else {"target_loss_db": float(scene.sweep_target_db)})}}
+           if scene.sweep_vary else {}),
     }
 
 

@@ -225,6 +225,10 @@ class Scene:
     processors: tuple = ()
     #: file the scene came from, if any
     source_file: str | None = None
+    #: a design study kept with the scene (``sweep:`` key): the axes as KEY=VALUES texts
+    #: and the target loss in dB (None: the command's default); read by ``adapt sweep``
+    sweep_vary: tuple = ()
+    sweep_target_db: float | None = None
     #: the scene as a plain mapping, defaults filled in (for scene.yaml in run folders)
     resolved: dict = field(default_factory=dict, compare=False, repr=False)
 

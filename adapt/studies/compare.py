@@ -573,7 +573,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
             fraction: float = 0.9, tail: int = TAIL, chunk: int | None = None,
             workers: int | None = None, scheduler: str | None = None, store=None,
             on_chunk: Callable[[int, int], None] | None = None,
-            threads: int | None = None) -> Comparison:
+            threads: int | None = None, patterns: bool = True) -> Comparison:
     """Run and score ``processors`` on ``scene`` (a :class:`Scene` or a scene file).
 
     processors: specs or Processor objects (default: the scene's ``processors`` list;
@@ -587,7 +587,8 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     cluster (not with threads); store: a folder that
     keeps finished chunks, so an interrupted run resumes where it stopped (a callable
     returning the folder is called once the work starts); on_chunk: called with (first
-    trial, count) after each finished chunk. Results are bit-identical whatever the
+    trial, count) after each finished chunk; patterns: False leaves out the pattern
+    scores (pointing error, peak sidelobe), the costliest part of the summary. Results are bit-identical whatever the
     chunking, the number of threads or workers or any interruption and resume.
     """
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
@@ -605,7 +606,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     ev = run_trials(used, procs, checkpoints, chunk=chunk, tail=tail, progress=progress,
                   workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
                   threads=threads)
-    metrics = summarise(ev, target_db, fraction)
+    metrics = summarise(ev, target_db, fraction, patterns=patterns)
     seconds = time.perf_counter() - t0
     metrics["seconds"] = seconds
     return Comparison(evaluation=ev, metrics=metrics, scene=used, processors=procs,
