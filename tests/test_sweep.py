@@ -206,3 +206,34 @@ def test_sweep_command(tmp_path, run_cli):
     code, out, err = run_cli(["sweep", str(path), "--vary", "sources[jam-9].azimuth=1,2",
                               "--out", str(tmp_path / "runs")])
     assert code == 2 and "Traceback" not in err and "jam-9" in err
+
+
+def test_interrupted_study_resumes_to_the_same_result(tmp_path, run_cli, monkeypatch):
+    import yaml
+
+    import adapt.studies.compare as compare_module
+    path = tmp_path / "walk.yaml"
+    path.write_text(yaml.safe_dump(line_scene(trials=6, snapshots=32)))
+    real = compare_module.compare
+    calls = []
+
+    def stop_at_second_point(*args, **kwargs):
+        calls.append(1)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(compare_module, "compare", stop_at_second_point)
+    out = tmp_path / "runs"
+    code, _, err = run_cli(["sweep", str(path), "--vary", "sources[jam-1].azimuth=10,20,30",
+                            "--out", str(out), "--no-progress"])
+    assert code == 130, err
+    folder = next(out.iterdir())
+    assert (folder / "INCOMPLETE").is_file()
+    monkeypatch.setattr(compare_module, "compare", real)
+    code, _, err = run_cli(["sweep", "--resume", str(folder), "--no-progress"])
+    assert code == 0, err
+    got = json.loads((folder / "sweep.json").read_text())
+    plain = sweep(str(path), ["sources[jam-1].azimuth=10,20,30"])
+    assert got["points"] == json.loads(json.dumps(plain.to_json()["points"]))
+    assert "--vary" in json.loads((folder / "manifest.json").read_text())["command_line"]
