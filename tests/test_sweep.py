@@ -237,3 +237,12 @@ def test_interrupted_study_resumes_to_the_same_result(tmp_path, run_cli, monkeyp
     plain = sweep(str(path), ["sources[jam-1].azimuth=10,20,30"])
     assert got["points"] == json.loads(json.dumps(plain.to_json()["points"]))
     assert "--vary" in json.loads((folder / "manifest.json").read_text())["command_line"]
+
+
+@pytest.mark.slow
+def test_local_workers_give_the_same_study():
+    pytest.importorskip("dask.distributed")
+    scene = parse_scene(line_scene(processors=["smi loading_db=10", "nlms"], trials=12))
+    one = sweep(scene, ["sources[jam-1].azimuth=10,30"], threads=1)
+    many = sweep(scene, ["sources[jam-1].azimuth=10,30"], workers=2, chunk=5)
+    assert [p["processors"] for p in many.points] == [p["processors"] for p in one.points]

@@ -502,31 +502,40 @@ def sweep(scene, vary: Sequence[str], processors: Sequence | None = None,
     if chunk is not None:
         from adapt.engine.settings import MAX_TRIALS, whole_count
         chunk = whole_count(chunk, "chunk", MAX_TRIALS)
-    prepared = study.points
     labels = swept_labels(procs, axes)
     points, losses = [], {label: [] for label in labels}
-    for index, (values, sc, pp) in enumerate(prepared):
-        point_store = None
-        if store is not None:
-            def point_store(i=index):
-                root = store() if callable(store) else store
-                return Path(root) / f"point-{i:04d}"
-        comparison = compare(sc, pp, target_db=target_db, progress=progress, chunk=chunk,
-                             threads=threads, workers=workers, scheduler=scheduler,
-                             store=point_store, tail=TAIL, patterns=False)
-        m = comparison.metrics
-        entry = {"values": dict(zip(keys, values)), "optimum_sinr_db": m["optimum_sinr_db"],
-                 "processors": []}
-        for p, scored in zip(m["processors"], comparison.evaluation.processors):
-            entry["processors"].append({
-                "label": p["label"], "method": p["method"], "params": p["params"],
-                "final": p["final"], "snapshots_to_3db": p["snapshots_to_3db"],
-                "snapshots_to_3db_fraction": p["snapshots_to_3db_fraction"]})
-            with np.errstate(all="ignore"):
-                loss = np.where(np.isnan(scored.normalised[:, -1]), np.nan,
-                                np.asarray(scored.loss_db[:, -1], float))
-            losses[p["label"]].append(loss)
-        points.append(entry)
+
+    def run_points(workers, scheduler):
+        for index, (values, sc, pp) in enumerate(study.points):
+            point_store = None
+            if store is not None:
+                def point_store(i=index):
+                    root = store() if callable(store) else store
+                    return Path(root) / f"point-{i:04d}"
+            comparison = compare(sc, pp, target_db=target_db, progress=progress, chunk=chunk,
+                                 threads=threads, workers=workers, scheduler=scheduler,
+                                 store=point_store, tail=TAIL, patterns=False)
+            m = comparison.metrics
+            entry = {"values": dict(zip(keys, values)),
+                     "optimum_sinr_db": m["optimum_sinr_db"], "processors": []}
+            for p, scored in zip(m["processors"], comparison.evaluation.processors):
+                entry["processors"].append({
+                    "label": p["label"], "method": p["method"], "params": p["params"],
+                    "final": p["final"], "snapshots_to_3db": p["snapshots_to_3db"],
+                    "snapshots_to_3db_fraction": p["snapshots_to_3db_fraction"]})
+                with np.errstate(all="ignore"):
+                    loss = np.where(np.isnan(scored.normalised[:, -1]), np.nan,
+                                    np.asarray(scored.loss_db[:, -1], float))
+                losses[p["label"]].append(loss)
+            points.append(entry)
+
+    if workers is not None:
+        # one local cluster for the whole study, every point sent to its scheduler
+        from adapt.engine.executors import cluster_client
+        with cluster_client(workers=workers) as client:
+            run_points(None, client.scheduler.address)
+    else:
+        run_points(None, scheduler)
     result = Sweep(scene=base, axes=axes, points=points,
                    losses={k: np.asarray(v) for k, v in losses.items()},
                    labels=labels, trials=base.trials, snapshots=base.snapshots,
@@ -764,35 +773,27 @@ def write_sweep_run(result: Sweep, out_root="runs", command_line: str | None = N
     ``summary.txt``, ``report.html`` and ``manifest.json``, every file atomically. With
     ``folder`` (a resumable run folder) the outputs go there and its resume state is
     removed once they are written."""
-    from pathlib import Path
-
     from adapt import io
-    from adapt.engine.execute import seal
     from adapt.report.html import build_page
+    from adapt.report.runfolder import RunWriter
     from adapt.report.sweep_figures import sweep_figures, sweep_sections
     from adapt.scene.files import dump_scene
     if not isinstance(result, Sweep):
         raise ValueError(f"expected a Sweep, got {type(result).__name__}")
     record = io.to_jsonable(result.to_json())
-    if folder is None:
-        folder = io.new_run_folder(out_root, f"sweep-{result.scene.name}")
-    folder = Path(folder)
-    io.atomic_write_text(folder / "scene.yaml",
-                         "# The base scene of the study (defaults filled in); the axes are "
-                         "in sweep.json.\n" + dump_scene(result.scene))
-    io.write_json(folder / "sweep.json", record)
-    io.atomic_write_text(folder / "sweep.csv", csv_text(record))
-    io.atomic_write_text(folder / "summary.txt", result.table() + "\n")
+    writer = RunWriter(folder, out_root, f"sweep-{result.scene.name}")
+    writer.text("scene.yaml", "# The base scene of the study (defaults filled in); the axes "
+                              "are in sweep.json.\n" + dump_scene(result.scene))
+    writer.json("sweep.json", record)
+    writer.text("sweep.csv", csv_text(record))
+    writer.text("summary.txt", result.table() + "\n")
     pngs = sweep_figures(record)
     for name, data in pngs.items():
-        io.atomic_write_bytes(folder / f"{name}.png", data)
+        writer.bytes(f"{name}.png", data)
     page = build_page(f"Design study: {record['scene']}", sweep_sections(record, pngs),
                       footer=f"adapt sweep, seed {record['seed']}, {record['trials']} trials "
                              f"per point")
-    io.atomic_write_text(folder / "report.html", page)
-    seal(folder)
-    io.write_manifest(folder, {"kind": "sweep", "scene": record["scene"],
-                               "seed": record["seed"], "trials": record["trials"],
-                               "points": len(record["points"]),
-                               "command_line": command_line, "seconds": result.seconds})
-    return folder
+    writer.text("report.html", page)
+    return writer.seal({"kind": "sweep", "scene": record["scene"], "seed": record["seed"],
+                        "trials": record["trials"], "points": len(record["points"]),
+                        "command_line": command_line, "seconds": result.seconds})
