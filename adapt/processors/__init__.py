@@ -34,7 +34,7 @@ from adapt.processors.power_inversion import PowerInversion
 from adapt.processors.rls import RecursiveLeastSquares
 from adapt.processors.smi import SampleMatrixInversion
 
-__all__ = ["registry", "parse_spec", "parse_specs", "Processor", "Parameter", "Context",
+__all__ = ["registry", "is_clairvoyant", "parse_spec", "parse_specs", "Processor", "Parameter", "Context",
            "State", "ProcessorResult", "run_processor", "run_processors", "held_outputs",
            "PROCESSORS"]
 
@@ -57,6 +57,13 @@ PROCESSORS: dict[str, type[Processor]] = {
 def registry() -> dict[str, type[Processor]]:
     """Method name -> processor class (a copy of :data:`PROCESSORS`)."""
     return dict(PROCESSORS)
+
+
+def is_clairvoyant(method: str) -> bool:
+    """Whether the method is a bound computed from the truth (the ``clairvoyant``
+    capability flag): drawn as the reference curve and left out of rankings."""
+    cls = PROCESSORS.get(str(method).lower())
+    return bool(cls is not None and cls.clairvoyant)
 
 
 def parse_spec(spec: Any, where: str = "") -> Processor:

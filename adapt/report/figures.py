@@ -41,6 +41,7 @@ from typing import TYPE_CHECKING, Iterable, Sequence
 import numpy as np
 
 from adapt.numerics.units import power_db as _db
+from adapt.processors import is_clairvoyant
 from adapt.scene import geometry
 
 if TYPE_CHECKING:                      # matplotlib is imported when a figure is drawn
@@ -118,7 +119,7 @@ def series_styles(labels: Iterable[str], methods: Iterable[str] | None = None) -
     for label, method in zip(labels, methods):
         if label in out:
             continue
-        if method == "optimum":
+        if is_clairvoyant(method):
             colours = [REFERENCE_COLOUR] + list(PALETTE)
         else:
             f = families.setdefault(method, len(families))
@@ -295,7 +296,7 @@ def processor_panels(processors) -> list[tuple[str, list]]:
     as the reference in every panel, not counted), else one per family group of
     :data:`FAMILY_GROUPS` (other methods in a last group), each cut into panels of at
     most :data:`PANEL_CURVES`; neighbouring groups that fit together share a panel."""
-    curves = [p for p in processors if p.method != "optimum"]
+    curves = [p for p in processors if not is_clairvoyant(p.method)]
     if len(curves) <= PANEL_CURVES:
         return [("", curves)]
     out = []
@@ -649,7 +650,7 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
     # (elevation, sources on the cut, processors, group title) of each panel: one per
     # elevation, or for a line with many processors one per family group
     groups = processor_panels(everyone) if len(cuts) == 1 else [("", everyone)]
-    optimum = [p for p in everyone if p.method == "optimum"]
+    optimum = [p for p in everyone if is_clairvoyant(p.method)]
     if len(groups) > 1:
         panels = [(cuts[0][0], cuts[0][1], optimum + procs, title) for title, procs in groups]
     else:
@@ -669,7 +670,7 @@ def beam_pattern_figure(evaluation, azimuths=None, floor_db: float = PATTERN_FLO
             ax.plot(az, np.maximum(pat, floor_db), color=st["color"],
                     linestyle=st["linestyle"], linewidth=1.3,
                     label=(p.label + (" (no response toward look)" if dead else ""))
-                    if i == 0 or p.method != "optimum" else "_" + p.label)
+                    if i == 0 or not is_clairvoyant(p.method) else "_" + p.label)
         ax.set_ylim(floor_db, 10.0)
         ax.set_xlim(az[0], az[-1])
         trans = blended_transform_factory(ax.transData, ax.transAxes)

@@ -16,6 +16,7 @@ import math
 
 import numpy as np
 
+from adapt.processors import is_clairvoyant
 from adapt.report.figures import (
     REFERENCE_COLOUR,
     add_title,
@@ -40,7 +41,7 @@ def _labels(record) -> list[str]:
     """The processors drawn: all but the clairvoyant optimum, which is the reference
     curve (its loss is zero by definition)."""
     return [p["label"] for p in record["points"][0]["processors"]
-            if p["method"] != "optimum"] or \
+            if not is_clairvoyant(p["method"])] or \
         [p["label"] for p in record["points"][0]["processors"]]
 
 

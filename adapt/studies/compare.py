@@ -55,6 +55,7 @@ from adapt.engine.settings import (
     whole_count,
 )
 from adapt.numerics.units import power_db as _db
+from adapt.processors import is_clairvoyant
 from adapt.report.numbers import format_number
 from adapt.scene import geometry
 from adapt.scene.model import Scene
@@ -288,8 +289,6 @@ def _interference_free_db(evaluation: Evaluation):
     return _db(power * energy)
 
 
-#: methods that are bounds (clairvoyant), left out of the verdict's ranking
-BOUNDS = ("optimum",)
 #: bootstrap resamples of the robustness margin's uncertainty
 VERDICT_RESAMPLES = 200
 
@@ -331,7 +330,7 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
     """
     labels = [p["label"] for p in metrics["processors"]]
     # the clairvoyant bound is what the others are measured against, not a contender
-    contenders = [i for i, p in enumerate(metrics["processors"]) if p["method"] not in BOUNDS]
+    contenders = [i for i, p in enumerate(metrics["processors"]) if not is_clairvoyant(p["method"])]
     checkpoints = np.asarray(metrics["checkpoints"])
     finals = [np.asarray(x, float) for x, _ in per_trial]
 

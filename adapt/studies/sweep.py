@@ -47,7 +47,7 @@ from typing import Callable, Sequence
 import numpy as np
 
 from adapt.errors import InputError, SpecError, did_you_mean
-from adapt.processors import Processor, parse_spec, registry
+from adapt.processors import Processor, is_clairvoyant, parse_spec, registry
 from adapt.scene.model import Scene
 
 __all__ = ["Axis", "Sweep", "parse_axis", "sweep", "recommendations", "MAX_POINTS",
@@ -674,8 +674,7 @@ def _adaptive(result: Sweep) -> list[str]:
     """Labels of the processors a recommendation is about: all but the clairvoyant
     optimum, which is the yardstick (its loss is zero by definition)."""
     first = result.points[0]["processors"]
-    return [p["label"] for p in first if not registry()[p["method"]].__dict__.get(
-        "clairvoyant", p["method"] == "optimum")]
+    return [p["label"] for p in first if not is_clairvoyant(p["method"])]
 
 
 def _label_matches(result: Sweep, label: str, owner: str) -> bool:
