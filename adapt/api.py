@@ -42,8 +42,8 @@ from adapt.errors import InputError, SceneError, SpecError
 from adapt.processors import Context, Processor, ProcessorResult, parse_spec, parse_specs, registry
 from adapt.processors import run_processors as _run_processors
 from adapt.report.runfolder import read_run as _read_run
-from adapt.scene.files import dump_scene, load_scene, parse_scene
 from adapt.scene.model import Scene
+from adapt.scenefile import dump_scene, load_scene, parse_scene
 from adapt.streams.snapshots import Block, TrialBatch
 from adapt.studies.compare import Comparison, compare, write_compare_run
 

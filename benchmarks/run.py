@@ -102,7 +102,7 @@ W1_CHECKPOINTS = tuple(2 ** k for k in range(4, 11))          # 16 .. 1024
 # ----------------------------------------------------------------------------- scene
 def scene(trials: int, snapshots: int):
     """The benchmark scene as an adapt Scene."""
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     sources = [{"name": "wanted", "role": "desired", "azimuth": 0, "power_db": 0,
                 "waveform": "gaussian"}]
     sources += [{"name": f"jam-{i + 1}", "role": "interferer", "azimuth": az,
@@ -606,7 +606,7 @@ def _plain_w1_process(trials: int) -> dict:
 
 def process_commands(z: dict, folder: Path) -> dict:
     """The commands timed as whole processes: name -> argument list."""
-    from adapt.scene.files import dump_scene
+    from adapt.scenefile import dump_scene
     size_scene = folder / "w1.yaml"
     sc = scene(int(z["p_size_trials"]), W1_CHECKPOINTS[-1])
     size_scene.write_text(dump_scene(sc))

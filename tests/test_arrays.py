@@ -10,7 +10,7 @@ import pytest
 
 from adapt.api import compare
 from adapt.errors import SceneError
-from adapt.scene.files import dump_scene, parse_scene
+from adapt.scenefile import dump_scene, parse_scene
 from adapt.streams.snapshots import TrialBatch
 
 
@@ -470,7 +470,7 @@ def test_coupling_input_checked():
 def test_check_warns_about_each_new_effect():
     from pathlib import Path
 
-    from adapt.scene.files import load_scene
+    from adapt.scenefile import load_scene
     from adapt.studies.check import scene_warnings, summarise_scene
     sc = load_scene(Path(__file__).parent.parent / "scenes" / "navigation_ring.yaml")
     text = "\n".join(scene_warnings(sc))

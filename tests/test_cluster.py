@@ -18,7 +18,7 @@ from adapt import io
 from adapt.engine import execute
 from adapt.engine.execute import part_arrays
 from adapt.errors import InputError
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import TAIL, compare
 from adapt.studies.sizing import size
 

@@ -16,7 +16,7 @@ from adapt.cli.main import main
 from adapt.errors import InputError, SpecError
 from adapt.report.runfolder import CURVE_COLUMNS, RUN_FILES, read_run
 from adapt.scene import geometry
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import compare, write_compare_run
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -15,7 +15,7 @@ import pytest
 
 from adapt.cli.main import main
 from adapt.errors import InputError
-from adapt.scene.files import dump_scene, parse_scene
+from adapt.scenefile import dump_scene, parse_scene
 from adapt.studies.sizing import choose_draw, size
 
 WANTED = {"name": "s", "role": "desired", "azimuth": 0, "power_db": 0, "waveform": "qpsk"}

@@ -226,7 +226,7 @@ def test_failed_write_keeps_the_previous_file(tmp_path, monkeypatch):
 # --------------------------------------------------------------------------- references
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory):
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     from adapt.studies.reference import record
     root = tmp_path_factory.mktemp("faultref")
     return record(parse_scene(SCENE), "smi loading_db=10", 2, 32, [4, 8, 32], root / "set")

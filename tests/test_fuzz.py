@@ -18,8 +18,8 @@ from hypothesis import strategies as st
 
 from adapt.errors import InputError, SpecError
 from adapt.processors import Processor, parse_spec, registry
-from adapt.scene.files import parse_scene, scene_to_mapping
 from adapt.scene.model import Scene
+from adapt.scenefile import parse_scene, scene_to_mapping
 
 FUZZ = settings(max_examples=400, deadline=None, derandomize=True, database=None,
                 phases=[Phase.explicit, Phase.generate, Phase.shrink],

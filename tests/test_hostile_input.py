@@ -18,9 +18,9 @@ from pathlib import Path
 import pytest
 from conftest import SCENES
 
+from adapt import scenefile
 from adapt.errors import InputError, SceneError
-from adapt.scene import files as scenefile
-from adapt.scene.files import MAX_FILE_BYTES, MAX_YAML_DEPTH, MAX_YAML_NODES, parse_scene
+from adapt.scenefile import MAX_FILE_BYTES, MAX_YAML_DEPTH, MAX_YAML_NODES, parse_scene
 
 #: a hang guard, not a speed test (an expanded alias bomb runs for hours): far above the
 #: 1.5 s worst case measured on an idle 2-core machine, so a loaded CI machine passes

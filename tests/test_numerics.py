@@ -25,7 +25,7 @@ import pytest
 from adapt.errors import SceneError
 from adapt.io import read_npy, write_manifest, write_npy
 from adapt.processors import parse_spec
-from adapt.scene.files import MAX_DYNAMIC_RANGE_DB, parse_scene
+from adapt.scenefile import MAX_DYNAMIC_RANGE_DB, parse_scene
 from adapt.streams.snapshots import TrialBatch
 from adapt.studies.compare import compare, write_compare_run
 

@@ -11,7 +11,7 @@ import pytest
 from adapt.report.html import compare_report, table
 from adapt.report.numbers import format_number, format_range
 from adapt.report.runfolder import summary_rows
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import compare, render_table, verdict_lines, write_compare_run
 
 SCENE = {
@@ -169,7 +169,7 @@ def test_convergence_figure_draws_the_summary_statistics(result):
 def test_the_scene_is_parsed_once_per_compare(tmp_path, monkeypatch):
     import yaml
 
-    from adapt.scene import files
+    from adapt import scenefile as files
     path = tmp_path / "s.yaml"
     path.write_text(yaml.safe_dump(dict(SCENE, trials=3, snapshots=16)))
     calls = []

@@ -13,7 +13,7 @@ import yaml
 
 from adapt.errors import SpecError
 from adapt.processors import Context, parse_spec, registry, run_processors
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.streams.snapshots import TrialBatch
 
 

@@ -26,7 +26,7 @@ from adapt.processors.base import format_value
 from adapt.processors.conventional import Conventional
 from adapt.processors.nlms import NormalisedLms
 from adapt.processors.smi import SampleMatrixInversion
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.streams.snapshots import TrialBatch
 from adapt.studies import theory
 from adapt.studies.reference import uses_reference

@@ -18,7 +18,7 @@ from adapt.numerics.linalg import mvdr
 from adapt.processors import Context, Processor, State, parse_spec, registry, run_processors
 from adapt.processors._recursive import look_blocking_matrix, mean_square_bound, mean_square_sum
 from adapt.processors.frost import look_constraints
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.streams.snapshots import TrialBatch
 
 METHODS = ("lms", "nlms", "frost", "gsc", "rls")

@@ -20,7 +20,7 @@ import pytest
 
 from adapt.errors import CorruptReferenceError, InputError, SpecError
 from adapt.io import read_npy, write_manifest, write_npy
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.reference import (
     DEFAULT_TOLERANCES,
     format_report,

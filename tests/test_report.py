@@ -19,7 +19,7 @@ from adapt.processors import parse_spec
 from adapt.processors.base import Processor, State
 from adapt.report import figures as F
 from adapt.report import html as H
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"      # PNG specification (ISO/IEC 15948), section 5.2
 

@@ -24,7 +24,7 @@ from adapt.engine import execute
 from adapt.engine.execute import part_arrays
 from adapt.errors import InputError
 from adapt.report.runfolder import MARKER, PARTIAL, RESUME_FILE
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import compare
 from adapt.studies.sizing import size
 

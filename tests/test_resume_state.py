@@ -18,7 +18,7 @@ from adapt.engine.plan import Plan, scene_mapping
 from adapt.errors import InputError
 from adapt.report import runfolder
 from adapt.report.runfolder import MARKER, PARTIAL, RESUME_FILE
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import compare
 
 QUICK = {

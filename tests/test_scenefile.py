@@ -15,7 +15,7 @@ from conftest import ROOT, SCENES
 from adapt import __version__
 from adapt.errors import InputError, SceneError, SpecError
 from adapt.scene import geometry
-from adapt.scene.files import dump_scene, load_scene, parse_scene, scene_to_mapping
+from adapt.scenefile import dump_scene, load_scene, parse_scene, scene_to_mapping
 from adapt.studies.check import (
     angle_between_deg,
     beamwidth_deg,

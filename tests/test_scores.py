@@ -9,7 +9,7 @@ from scipy.signal import windows
 
 from adapt.engine import scores
 from adapt.scene import geometry
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import compare
 
 

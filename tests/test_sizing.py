@@ -11,7 +11,7 @@ from scipy import stats
 from adapt import io
 from adapt.cli.main import main
 from adapt.errors import InputError
-from adapt.scene.files import dump_scene, parse_scene
+from adapt.scenefile import dump_scene, parse_scene
 from adapt.studies import sizing, theory
 
 N = 8

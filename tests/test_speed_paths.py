@@ -19,7 +19,7 @@ from adapt.engine.evaluate import evaluate_batch
 from adapt.errors import InputError
 from adapt.numerics import kernels as _kernels
 from adapt.processors import Context, parse_specs, run_processors
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.streams.snapshots import TrialBatch
 
 N = 4
@@ -340,7 +340,7 @@ def test_smi_fast_solve_equals_general_path(monkeypatch):
 def test_size_command_draws_covariance(tmp_path, capsys):
     # adapt size --draw covariance: recorded in sizing.json; refused (exit 2) for LMS
     from adapt.cli.main import main
-    from adapt.scene.files import dump_scene
+    from adapt.scenefile import dump_scene
     scene_file = tmp_path / "scene.yaml"
     scene_file.write_text(dump_scene(_scene(trials=40, snapshots=32)))
     out = tmp_path / "runs"

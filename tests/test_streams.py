@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from adapt.scene import geometry
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.streams.snapshots import TrialBatch, quantise
 
 

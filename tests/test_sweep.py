@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from adapt.errors import InputError
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.sweep import parse_values, prepare, sweep, write_sweep_run
 
 N = 8

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies import theory
 
 

@@ -25,7 +25,7 @@ from adapt.errors import InputError
 from adapt.processors import parse_specs
 from adapt.processors.smi import SampleMatrixInversion
 from adapt.report import runfolder
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.compare import TAIL, compare
 
 SCENE = {

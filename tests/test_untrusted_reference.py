@@ -22,7 +22,7 @@ import pytest
 
 from adapt import io as aio
 from adapt.errors import CorruptReferenceError
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.studies.reference import (
     format_report,
     load_reference,

@@ -18,7 +18,7 @@ from adapt.processors import Context, parse_spec, run_processors
 from adapt.processors._covariance import outer_sum
 from adapt.report import figures as F
 from adapt.scene import geometry
-from adapt.scene.files import parse_scene
+from adapt.scenefile import parse_scene
 from adapt.streams.snapshots import TrialBatch
 from adapt.studies.compare import render_table, summarise
 

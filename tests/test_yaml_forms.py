@@ -1,4 +1,4 @@
-"""YAML 1.1 number forms and control characters in scene files (adapt/scene/files.py).
+"""YAML 1.1 number forms and control characters in scene files (adapt/scenefile.py).
 
 YAML 1.2 core schema (yaml.org/spec/1.2.2, section 10.3.2, tag resolution): integers are
 decimal, ``0o`` octal or ``0x`` hexadecimal; ``1:30``, ``010`` with its leading zero,
@@ -10,7 +10,7 @@ from __future__ import annotations
 import pytest
 
 from adapt.errors import SceneError
-from adapt.scene.files import dump_scene, parse_scene, read_yaml
+from adapt.scenefile import dump_scene, parse_scene, read_yaml
 
 BASE = """
 name: {name}

@@ -211,7 +211,7 @@ def resume(args, kind: str, refused: dict, execution: dict, execute_run, needs=(
     the settings the command reads (InputError naming ``resume.json`` when one is
     missing)."""
     from adapt.report.runfolder import open_for_resume
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     refuse_with_resume(args, {"scene": "SCENE", "processors": "--processor", **refused,
                               "out": "--out", "chunk": "--chunk"})
     record = open_for_resume(args.resume, kind)

@@ -25,7 +25,7 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from adapt.scene.files import load_scene
+    from adapt.scenefile import load_scene
     from adapt.studies.check import check_processor_settings, summarise_scene
     bad = 0
     for i, path in enumerate(args.scenes):

@@ -76,7 +76,7 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from adapt.scene.files import load_scene
+    from adapt.scenefile import load_scene
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _resume(args, execution)

@@ -62,7 +62,7 @@ def command_line(args) -> str:
 
 
 def run(args) -> int:
-    from adapt.scene.files import load_scene, read_yaml
+    from adapt.scenefile import load_scene, read_yaml
     execution = _run.cluster_options(args)
     if args.resume is not None:
         return _run.resume(args, "sweep", dict(_OPTIONS), execution, _execute)

@@ -15,7 +15,7 @@
   (``dask.distributed.LocalCluster`` on 127.0.0.1, one thread each) or an existing
   scheduler at ``scheduler`` (``tcp://host:8786``). A worker receives plain data only
   (:class:`adapt.engine.plan.Plan`) and runs :func:`run_chunk`, which rebuilds the scene
-  and processors with :func:`adapt.scene.files.parse_scene` and
+  and processors with :func:`adapt.scenefile.parse_scene` and
   :func:`adapt.processors.parse_spec` and returns numpy arrays.
 """
 from __future__ import annotations
@@ -232,7 +232,7 @@ def run_chunk(plan: dict, first: int, count: int) -> dict[str, np.ndarray]:
     :meth:`Plan.as_dict`) and score trials ``first .. first + count - 1``. Returns
     :func:`part_arrays` plus ``"warnings"`` (the library warnings raised, as text)."""
     from adapt.processors import parse_spec
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     from adapt.streams.snapshots import STREAMS
     made = plan.get("streams", "numpy-generator")
     if made != STREAMS:           # e.g. a cluster worker of another adapt version

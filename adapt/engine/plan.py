@@ -170,7 +170,7 @@ class Plan:
 def scene_mapping(scene: Scene) -> dict:
     """The scene as plain JSON-able data (its resolved mapping), for workers and run
     folders."""
-    from adapt.scene.files import scene_to_mapping
+    from adapt.scenefile import scene_to_mapping
     m = dict(scene.resolved) if getattr(scene, "resolved", None) else scene_to_mapping(scene)
     return io.to_jsonable(m)
 

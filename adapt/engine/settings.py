@@ -95,7 +95,7 @@ def prepare_scene(scene, processors=None, trials=None, snapshots=None, seed=None
     processors. ``scene`` may be a :class:`Scene` or a scene file path; ``processors``
     a list of specs (strings, mappings) or :class:`Processor` objects, default the
     scene's own list. InputError (exit code 2 on the command line) for bad values."""
-    from adapt.scene.files import load_scene, parse_scene, scene_to_mapping
+    from adapt.scenefile import load_scene, parse_scene, scene_to_mapping
     if isinstance(scene, (str, Path)):
         scene = load_scene(scene)
     if not isinstance(scene, Scene):

@@ -272,7 +272,7 @@ CURVE_COLUMNS = ("label", "method", "snapshots", "normalized_sinr_mean", "sinr_d
 
 def write_scene_yaml(folder, scene) -> Path:
     """``scene.yaml``: the resolved scene mapping, YAML safe-dumped in key order."""
-    from adapt.scene.files import scene_to_mapping
+    from adapt.scenefile import scene_to_mapping
     mapping = scene.resolved if getattr(scene, "resolved", None) else scene_to_mapping(scene)
     header = ("# The scene exactly as run (defaults filled in). Re-run with:\n"
               "#   adapt compare scene.yaml\n")

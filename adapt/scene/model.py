@@ -1,7 +1,7 @@
 """The scene: an array, the sources around it, what the processors assume and train on.
 
 This module holds the scene's data model (plain frozen dataclasses). Reading and
-validating scene files lives in :mod:`adapt.scene.files`; generating sample streams from a
+validating scene files lives in :mod:`adapt.scenefile`; generating sample streams from a
 scene lives in :mod:`adapt.streams.snapshots`.
 
 Units: positions and spacings in wavelengths, angles in degrees, powers in dB relative

@@ -110,8 +110,8 @@ from adapt.processors import Context, Processor, parse_spec, run_processors
 from adapt.processors.base import normalised_checkpoints
 from adapt.report.junit import TestOutcome, write_junit
 from adapt.report.runfolder import StagedFolder
-from adapt.scene.files import scene_to_mapping
 from adapt.scene.model import Scene
+from adapt.scenefile import scene_to_mapping
 from adapt.streams.snapshots import Block, TrialBatch
 
 __all__ = ["DEFAULT_TOLERANCES", "METRICS", "record", "load_reference", "verify",
@@ -271,7 +271,7 @@ def _as_scene(scene) -> Scene:
     if isinstance(scene, Scene):
         return scene
     if isinstance(scene, (str, os.PathLike)):
-        from adapt.scene.files import load_scene
+        from adapt.scenefile import load_scene
         return load_scene(scene)
     raise InputError("expected a Scene or the path of a scene file", value=scene)
 
@@ -331,7 +331,7 @@ def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapsh
     outputs of cases ``first .. first + count - 1``, rebuilt from plain data (the
     resolved scene mapping and the processor spec). Each case draws from its own seed,
     so the arrays equal the matching rows of a one-batch recording bit for bit."""
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     sc = parse_scene(scene_mapping)
     proc = parse_spec(spec, "processor")
     batch = TrialBatch(sc, trials=int(count), first_trial=int(first))

@@ -593,7 +593,7 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     InputError for bad values (exit code 2 on the command line).
     """
     from adapt.engine.settings import prepare_scene
-    from adapt.scene.files import load_scene
+    from adapt.scenefile import load_scene
     t0 = time.perf_counter()
     if isinstance(scene, (str, Path)):
         scene = load_scene(scene)
@@ -728,7 +728,7 @@ def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None =
     from adapt.report.html import build_page
     from adapt.report.runfolder import RunWriter
     from adapt.report.sizing_figures import sizing_figure_png, sizing_sections
-    from adapt.scene.files import dump_scene
+    from adapt.scenefile import dump_scene
     if not isinstance(sizing, Sizing):
         raise ValueError(f"expected a Sizing, got {type(sizing).__name__}")
     rec = sizing.record

@@ -266,7 +266,7 @@ def point_scene(base_raw: dict, scene: Scene, axes: Sequence[Axis], values: Sequ
                 file: str | None) -> Scene:
     """The scene at one point (the base scene's own mapping with the scene axes' values
     set), validated by the scene loader; InputError naming the point otherwise."""
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     raw = base_raw
     for axis, value in zip(axes, values):
         if axis.kind == "scene":
@@ -395,7 +395,7 @@ def prepare(scene, vary: Sequence[str], processors: Sequence | None = None,
     from pathlib import Path
 
     from adapt.engine.settings import prepare_scene, whole_count
-    from adapt.scene.files import load_scene, read_yaml
+    from adapt.scenefile import load_scene, read_yaml
 
     if isinstance(scene, (str, Path)):
         path = Path(scene)
@@ -776,7 +776,7 @@ def write_sweep_run(result: Sweep, out_root="runs", command_line: str | None = N
     from adapt.report.html import build_page
     from adapt.report.runfolder import RunWriter
     from adapt.report.sweep_figures import sweep_figures, sweep_sections
-    from adapt.scene.files import dump_scene
+    from adapt.scenefile import dump_scene
     if not isinstance(result, Sweep):
         raise ValueError(f"expected a Sweep, got {type(result).__name__}")
     record = io.to_jsonable(result.to_json())
