@@ -2,7 +2,7 @@
 
     python benchmarks/run.py            # full sizes (about 6 minutes on 2 cores)
     python benchmarks/run.py --quick    # scaled-down smoke check (well under a minute)
-    python benchmarks/run.py --only W1  # selected workloads only (repeatable; P: processes)
+    python benchmarks/run.py --only W1  # selected workloads only (repeatable; P: processes, S: the sweep study)
     python benchmarks/run.py --threads 1  # product and floors on one thread
 
 Workloads (16-element half-wavelength line, six 40 dB noise-like jammers, wanted source
@@ -690,12 +690,63 @@ def _run_p(z: dict, out: dict, say) -> None:
     out["targets"].update(p["targets"])
 
 
+# ----------------------------------------------------------------------------- sweep
+#: the design study timed against a shell loop of ``adapt compare`` over its points
+SWEEP_STUDY = "scenes/study_jammer_walk.yaml"
+
+
+def sweep_against_loop(trials: int | None = None) -> dict:
+    """``adapt sweep`` of :data:`SWEEP_STUDY` as one process against the same points run
+    as a loop of ``adapt compare`` processes (one scene file per point, written from the
+    study's own point scenes), warm (kernels cached), fastest of two each. The loop also
+    draws every point's figures and pattern scores, which a sweep leaves out: the ratio
+    is what a user saves, not a like-for-like compute ratio."""
+    from adapt.scenefile import dump_scene
+    from adapt.studies.sweep import prepare
+    extra = [] if trials is None else ["--trials", str(trials)]
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        study = prepare(str(ROOT / SWEEP_STUDY), [], trials=trials)
+        files = []
+        for i, (_, sc, procs) in enumerate(study.points):
+            f = folder / f"point-{i:03d}.yaml"
+            f.write_text(dump_scene(sc.with_overrides(processors=[p.spec() for p in procs])))
+            files.append(f)
+        out = str(folder / "runs")
+        run_process(_adapt("sweep", SWEEP_STUDY, "--no-progress", "--out", out, *extra))
+        sweeps, loops = [], []
+        for _ in range(2):
+            sweeps.append(run_process(_adapt("sweep", SWEEP_STUDY, "--no-progress",
+                                             "--out", out, *extra)))
+            t0 = time.perf_counter()
+            for f in files:
+                r = run_process(_adapt("compare", str(f), "--no-progress", "--out", out))
+                if r["returncode"]:
+                    raise RuntimeError(f"compare {f.name} failed: {r.get('tail')}")
+            loops.append({"seconds": time.perf_counter() - t0})
+    best_sweep, best_loop = _fastest(sweeps), _fastest(loops)
+    return {"points": len(files), "sweep": best_sweep, "loop_seconds": best_loop["seconds"],
+            "ratio": best_loop["seconds"] / best_sweep["seconds"]}
+
+
+def _run_s(z: dict, out: dict, say) -> None:
+    trials = 10 if z.get("quick") else None
+    s = sweep_against_loop(trials)
+    out["sweep"] = s
+    say(f"\nS design study ({SWEEP_STUDY}, {s['points']} points): adapt sweep "
+        f"{s['sweep']['seconds']:.2f} s (peak {s['sweep']['maxrss_mb']:.0f} MB) against a "
+        f"loop of {s['points']} adapt compare processes {s['loop_seconds']:.2f} s: "
+        f"{s['ratio']:.1f}x; a sweep costs no more than the loop "
+        f"{_verdict(s['ratio'] >= 1.0)}")
+    out["targets"]["s_sweep_not_slower_than_loop"] = s["ratio"] >= 1.0
+
+
 # ----------------------------------------------------------------------------- driver
 def _verdict(ok: bool) -> str:
     return "PASS" if ok else "MISS"
 
 
-WORKLOADS = ("W1", "W2", "W3", "P")
+WORKLOADS = ("W1", "W2", "W3", "P", "S")
 #: the workloads timed inside this process (the default of :func:`run`; the command
 #: line runs P, the whole processes, too)
 IN_PROCESS = ("W1", "W2", "W3")
@@ -744,6 +795,8 @@ def run(quick: bool = False, sizes: dict | None = None, say=print,
         _run_w3(z, out, say)
     if "P" in only:
         _run_p(z, out, say)
+    if "S" in only:
+        _run_s(dict(z, quick=quick), out, say)
     say("\ntargets: " + ", ".join(f"{k} {_verdict(v)}" for k, v in out["targets"].items()))
     return out
 
@@ -878,7 +931,7 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="scaled-down smoke check")
     ap.add_argument("--json", default="runs/benchmark.json", help="where to write the figures")
     ap.add_argument("--only", action="append", choices=WORKLOADS, metavar="W",
-                    help="run only this workload (W1, W2, W3 or P; repeatable)")
+                    help="run only this workload (W1, W2, W3, P or S; repeatable)")
     ap.add_argument("--threads", type=int, default=None,
                     help="threads for the product and the floors (default: every usable core)")
     ap.add_argument("--plain-w1", type=int, default=None, metavar="TRIALS",
