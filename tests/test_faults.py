@@ -290,3 +290,14 @@ def test_missing_reference_folder(tmp_path, run_cli):
     line = _one_line(*run_cli(["verify", tmp_path / "nowhere", "--python",
                                "adapt.studies.reference:reference_implementation"]), 2)
     assert "no such reference-set folder" in line
+
+
+def test_file_too_large_names_a_place_and_the_limit():
+    # ulimit -f: numba's cache write raises EFBIG without a file name
+    import errno
+
+    from adapt.cli.main import file_system_message
+    text = file_system_message(OSError(errno.EFBIG, "File too large"))
+    assert "ulimit -f" in text and "cache" in text
+    text = file_system_message(OSError(errno.EFBIG, "File too large", "/tmp/x/metrics.json"))
+    assert text.startswith("/tmp/x/metrics.json: File too large")

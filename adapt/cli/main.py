@@ -79,7 +79,12 @@ def file_system_message(exc: OSError) -> str:
             errno.EPERM: "choose a folder you may write to",
             errno.EROFS: "choose a folder on a writable file system",
             errno.ENOTDIR: "a part of the path is a file, not a folder",
-            errno.EEXIST: "a part of the path is a file, not a folder"}.get(exc.errno)
+            errno.EEXIST: "a part of the path is a file, not a folder",
+            errno.EFBIG: "a file passed the size limit of this shell (ulimit -f)"}.get(exc.errno)
+    if not where and exc.errno == errno.EFBIG:
+        # numba's kernel cache writes without naming its file
+        import os
+        where = os.environ.get("NUMBA_CACHE_DIR") or "the compiled-kernel cache (adapt/numerics/__pycache__)"
     text = f"{where}: {reason}" if where else reason
     return text + (f" ({hint}); nothing was written under that name" if hint else
                    "; nothing was written under that name")

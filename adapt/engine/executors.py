@@ -194,7 +194,18 @@ def cluster_client(workers: int | None = None, scheduler: str | None = None,
         try:
             yield client
         finally:
-            client.close()
+            # a heartbeat caught between the client's and the cluster's closing logs a
+            # traceback through "distributed" although nothing failed: closing is quiet
+            quiet = logging.getLogger("distributed")
+            level = quiet.level
+            quiet.setLevel(logging.CRITICAL)
+            try:
+                client.close()
+                if cluster is not None:
+                    cluster.close()
+                    cluster = None
+            finally:
+                quiet.setLevel(level)
     finally:
         if cluster is not None:
             cluster.close()
