@@ -228,6 +228,13 @@ def snapshots_to_target(checkpoints, normalised: np.ndarray, target_db: float = 
     time, even if a changing scene later pushes the loss back up. Checkable fact: for
     SMI the mean reaches 3 dB near K = 2N - 3 snapshots (Reed, Mallett and Brennan 1974).
     """
+    c, mean_ok, frac_ok = _within_target(checkpoints, normalised, target_db, fraction)
+    return first_checkpoint(c, mean_ok), first_checkpoint(c, frac_ok)
+
+
+def _within_target(checkpoints, normalised, target_db: float, fraction: float):
+    """(checkpoints, mean loss within target per checkpoint, share of trials within
+    target reaching ``fraction`` per checkpoint), the inputs checked."""
     rho = np.asarray(normalised, dtype=float)
     c = np.asarray(checkpoints)
     if rho.ndim != 2 or rho.shape[1] != c.size:
@@ -238,7 +245,7 @@ def snapshots_to_target(checkpoints, normalised: np.ndarray, target_db: float = 
         per_trial = -to_db(rho)
     mean_ok = mean_loss_db(rho, axis=0) <= target_db
     frac_ok = fraction_meeting(per_trial, target_db, axis=0) >= fraction - 1e-12
-    return first_checkpoint(c, mean_ok), first_checkpoint(c, frac_ok)
+    return c, mean_ok, frac_ok
 
 
 def snapshots_staying_within(checkpoints, normalised: np.ndarray, target_db: float = 3.0,
@@ -253,16 +260,7 @@ def snapshots_staying_within(checkpoints, normalised: np.ndarray, target_db: flo
     until it meets it for good. For a stationary scene whose mean loss falls
     monotonically both agree (common practice: the settling time of a step response).
     """
-    rho = np.asarray(normalised, dtype=float)
-    c = np.asarray(checkpoints)
-    if rho.ndim != 2 or rho.shape[1] != c.size:
-        raise ValueError(f"normalised SINR must be (trials, {c.size} checkpoints), got {rho.shape}")
-    if not 0 < fraction <= 1:
-        raise ValueError(f"fraction must be in (0, 1], got {fraction}")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        per_trial = -to_db(rho)
-    mean_ok = mean_loss_db(rho, axis=0) <= target_db
-    frac_ok = fraction_meeting(per_trial, target_db, axis=0) >= fraction - 1e-12
+    c, mean_ok, frac_ok = _within_target(checkpoints, normalised, target_db, fraction)
 
     def settled(ok: np.ndarray):
         if not ok[-1]:

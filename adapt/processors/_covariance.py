@@ -340,6 +340,26 @@ def _count(k: int, noun: str) -> str:
     return f"{k} {noun}{'' if k == 1 else 's'}"
 
 
+def window_parameters() -> dict[str, Parameter]:
+    """The declared training-window parameters (growing, or sliding of ``length``)."""
+    return {
+        "window": Parameter("choice", "growing", "training window: all snapshots so far, "
+                            "or the last `length`", choices=("growing", "sliding")),
+        "length": Parameter("int", None, "sliding window length", unit="snapshots",
+                            low=1, high=10 ** 9, allow_none=True),
+    }
+
+
+def check_window(params: dict, where: str) -> None:
+    """A sliding window needs its length; a growing one takes none (SpecError)."""
+    if params["window"] == "sliding" and params["length"] is None:
+        raise SpecError("a sliding window needs length (snapshots)", path=f"{where}length",
+                        allowed="an integer >= 1 snapshots")
+    if params["window"] == "growing" and params["length"] is not None:
+        raise SpecError("length applies to window=sliding only", path=f"{where}length",
+                        value=params["length"], allowed="none, or add window=sliding")
+
+
 def loading_parameters(auto: bool) -> dict[str, Parameter]:
     """The declared loading parameters (``loading`` only when ``auto`` is offered)."""
     out = {}

@@ -26,7 +26,13 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.processors._covariance import SampleCovarianceProcessor, loading_parameters, solve_sample
+from adapt.processors._covariance import (
+    SampleCovarianceProcessor,
+    check_window,
+    loading_parameters,
+    solve_sample,
+    window_parameters,
+)
 from adapt.processors.base import Context, Parameter, State
 
 
@@ -68,20 +74,12 @@ class PowerInversion(SampleCovarianceProcessor):
         "reference_element": Parameter("int", 0, "element whose weight is held at 1",
                                        low=0, high=10 ** 6),
         **loading_parameters(auto=False),
-        "window": Parameter("choice", "growing", "training window: all snapshots so far, "
-                            "or the last `length`", choices=("growing", "sliding")),
-        "length": Parameter("int", None, "sliding window length", unit="snapshots",
-                            low=1, high=10 ** 9, allow_none=True),
+        **window_parameters(),
     }
 
     @classmethod
     def cross_check(cls, params: dict, where: str) -> None:
-        if params["window"] == "sliding" and params["length"] is None:
-            raise SpecError("a sliding window needs length (snapshots)", path=f"{where}length",
-                            allowed="an integer >= 1 snapshots")
-        if params["window"] == "growing" and params["length"] is not None:
-            raise SpecError("length applies to window=sliding only", path=f"{where}length",
-                            value=params["length"], allowed="none, or add window=sliding")
+        check_window(params, where)
 
     def check(self, context: Context) -> None:
         if self.params["reference_element"] >= context.elements:

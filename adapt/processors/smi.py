@@ -60,10 +60,12 @@ from adapt.processors._covariance import (
     SampleCovarianceProcessor,
     check_loading,
     check_smoothing,
+    check_window,
     effective_loading,
     loading_parameters,
     smoothing_parameters,
     solve_sample,
+    window_parameters,
 )
 from adapt.processors.base import Context, Parameter
 
@@ -117,10 +119,7 @@ class SampleMatrixInversion(SampleCovarianceProcessor):
     sample_mvdr = True
     parameters = {
         **loading_parameters(auto=True),
-        "window": Parameter("choice", "growing", "training window: all snapshots so far, "
-                            "or the last `length`", choices=("growing", "sliding")),
-        "length": Parameter("int", None, "sliding window length", unit="snapshots",
-                            low=1, high=10 ** 9, allow_none=True),
+        **window_parameters(),
         "interval": Parameter("int", 1, "weights recomputed every `interval` snapshots "
                               "and held in between", unit="snapshots", low=1, high=10 ** 9),
         **smoothing_parameters(),
@@ -135,12 +134,7 @@ class SampleMatrixInversion(SampleCovarianceProcessor):
 
     @classmethod
     def cross_check(cls, params: dict, where: str) -> None:
-        if params["window"] == "sliding" and params["length"] is None:
-            raise SpecError("a sliding window needs length (snapshots)", path=f"{where}length",
-                            allowed="an integer >= 1 snapshots")
-        if params["window"] == "growing" and params["length"] is not None:
-            raise SpecError("length applies to window=sliding only", path=f"{where}length",
-                            value=params["length"], allowed="none, or add window=sliding")
+        check_window(params, where)
 
     def check(self, context: Context) -> None:
         self.check_subarray(context)
