@@ -225,3 +225,16 @@ def test_api_example_runs(tmp_path, monkeypatch, capsys):
     folder = namespace["folder"]
     assert folder.parent == Path("runs") and io.check_manifest(folder) == []
     assert "Simulation only" in capsys.readouterr().out
+
+
+def test_a_scene_listed_processor_refused_by_its_own_check_names_the_file(tmp_path, run_cli):
+    # the spec parses; the processor refuses this array when the run starts
+    path = tmp_path / "small.yaml"
+    path.write_text("array: {layout: line, elements: 4, spacing: 0.5}\n"
+                    "sources:\n"
+                    "  - {name: s, role: desired, azimuth: 0, power_db: 0}\n"
+                    "  - {name: j, role: interferer, azimuth: 30, power_db: 30}\n"
+                    "trials: 2\nsnapshots: 64\nprocessors: ['eigenspace rank=9']\n")
+    code, _, err = run_cli(["compare", str(path), "--out", str(tmp_path / "runs")])
+    assert code == 2 and "Traceback" not in err
+    assert f"{path}: processors[0].rank" in err

@@ -71,11 +71,14 @@ def real_number(text, option: str) -> float:
         raise InputError("expected a number", path=option, value=text) from None
 
 
-def relocated(exc: InputError, options: dict, given_processors: bool = True) -> InputError:
+def relocated(exc: InputError, options: dict, given_processors: bool = True,
+              scene_file: str | None = None) -> InputError:
     """The library's error re-addressed to the command-line option it came from:
     ``options`` maps library argument names to option texts; ``processors[i]...``
     becomes ``--processor[i]...`` when the specs came from the command line
-    (``given_processors``), else it stays the scene file's ``processors[i]``."""
+    (``given_processors``), else it stays the scene file's ``processors[i]``, naming
+    ``scene_file`` when the error does not name a file yet (a processor's own check of
+    the scene, raised when the run starts)."""
     path = exc.path or ""
     head = path.split(".")[0].split("[")[0]
     if head in options and path == head:
@@ -84,6 +87,9 @@ def relocated(exc: InputError, options: dict, given_processors: bool = True) -> 
     if head == "processors" and given_processors and not exc.file:
         return exc.__class__(exc.message, file=exc.file, path="--processor" + path[len(head):],
                              value=exc.value, allowed=exc.allowed)
+    if head == "processors" and not given_processors and not exc.file and scene_file:
+        return exc.__class__(exc.message, file=scene_file, path=exc.path, value=exc.value,
+                             allowed=exc.allowed)
     return exc
 
 
@@ -132,7 +138,7 @@ def progress_bar(args, total: int, desc: str):
 
 
 def complete(folder: "Folder", work, write, line, options: dict, on_exit=None,
-             given_processors: bool = True) -> int:
+             given_processors: bool = True, scene_file: str | None = None) -> int:
     """Run ``work(store)`` in ``folder`` (library InputErrors re-addressed to the
     command-line ``options``; ``on_exit`` called however it ends, e.g. to close the
     progress bar), write the run with ``write(result, command_line=line, folder=path)``
@@ -141,7 +147,7 @@ def complete(folder: "Folder", work, write, line, options: dict, on_exit=None,
         try:
             return work(store)
         except InputError as exc:
-            raise relocated(exc, options, given_processors) from None
+            raise relocated(exc, options, given_processors, scene_file) from None
         finally:
             if on_exit is not None:
                 on_exit()

@@ -105,4 +105,5 @@ def _execute(args, folder, used, settings, execution, line) -> int:
 
     return _run.complete(folder, work, write_compare_run, line, _OPTIONS,
                          on_exit=bar.close if bar is not None else None,
-                         given_processors=getattr(args, "processors", None) is not None)
+                         given_processors=getattr(args, "processors", None) is not None,
+                         scene_file=used.source_file)
