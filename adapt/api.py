@@ -23,7 +23,7 @@ the command line prints.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, Sequence
 
 from adapt.engine import scores
 from adapt.engine.evaluate import Evaluation, ProcessorScores
@@ -43,15 +43,113 @@ from adapt.processors import Context, Processor, ProcessorResult, parse_spec, pa
 from adapt.processors import run_processors as _run_processors
 from adapt.report.runfolder import read_run as _read_run
 from adapt.scene.model import Scene
-from adapt.scenefile import dump_scene, load_scene, parse_scene
+from adapt.scenefile import dump_scene as _dump_scene
+from adapt.scenefile import load_scene as _load_scene
+from adapt.scenefile import parse_scene as _parse_scene
 from adapt.streams.snapshots import Block, TrialBatch
-from adapt.studies.compare import Comparison, compare, write_compare_run
+from adapt.studies.compare import TAIL, Comparison, write_compare_run
+from adapt.studies.compare import compare as _compare
 
 __all__ = ["load_scene", "parse_scene", "dump_scene", "generate", "processors", "methods",
            "run", "evaluate", "compare", "write_run", "read_run", "size", "record", "verify",
            "scores",
            "Scene", "TrialBatch", "Block", "ProcessorResult", "Evaluation",
            "ProcessorScores", "Comparison", "InputError", "SceneError", "SpecError"]
+
+
+def load_scene(path) -> Scene:
+    """Read and validate a scene file (as every command does with its SCENE argument).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The path of a UTF-8 YAML scene file (a byte-order mark is allowed), at most
+        :data:`adapt.scenefile.MAX_FILE_BYTES` bytes. The keys, their units and limits
+        are listed in :mod:`adapt.scenefile`; the scene's default name is the file name
+        without its extension.
+
+    Returns
+    -------
+    Scene
+        The validated scene, every default filled in; ``scene.resolved`` holds the
+        resolved mapping (what ``scene.yaml`` of a run folder contains).
+
+    Raises
+    ------
+    InputError
+        :class:`~adapt.errors.SceneError` when the path is not text or a path, the file is
+        missing, a directory, too large, unreadable or not UTF-8, the YAML is malformed
+        or uses refused features (object tags, duplicate keys, tab indentation), or a
+        value is out of its allowed range (the message names the file, key path and
+        value); :class:`~adapt.errors.SpecError` for a bad processor spec in the file.
+
+    References
+    ----------
+    YAML Ain't Markup Language, version 1.2 (yaml.org, 2009/2021): the file syntax, read
+    by safe loading with 1.2-style core scalars (only ``true``/``false`` are booleans).
+    """
+    return _load_scene(path)
+
+
+def parse_scene(mapping_or_text, file: str | None = None) -> Scene:
+    """Build a validated scene from YAML text or from an already-loaded mapping.
+
+    Parameters
+    ----------
+    mapping_or_text : str, bytes or dict
+        YAML text (``bytes`` are decoded as UTF-8, a byte-order mark allowed) or a
+        mapping with the scene-file keys of :mod:`adapt.scenefile`.
+    file : str, optional
+        Only names the origin in error messages and gives the default scene name (its
+        stem); default None: the name ``scene``.
+
+    Returns
+    -------
+    Scene
+        The validated scene, every default filled in (``scene.resolved`` as in
+        :func:`load_scene`).
+
+    Raises
+    ------
+    InputError
+        :class:`~adapt.errors.SceneError` for undecodable bytes, text beyond the size
+        limit, malformed YAML, an empty scene, a top level that is not a mapping or any
+        bad key or value; :class:`~adapt.errors.SpecError` for a bad processor spec.
+
+    References
+    ----------
+    YAML Ain't Markup Language, version 1.2 (yaml.org): the text syntax, read by safe
+    loading with 1.2-style core scalars.
+    """
+    return _parse_scene(mapping_or_text, file)
+
+
+def dump_scene(scene: Scene) -> str:
+    """The resolved scene as YAML text, keys in the documented order.
+
+    Parameters
+    ----------
+    scene : Scene
+        A scene (from :func:`load_scene`, :func:`parse_scene` or built in code).
+
+    Returns
+    -------
+    str
+        YAML text of the resolved mapping (:func:`adapt.scenefile.scene_to_mapping`,
+        every default filled in), which re-parses to an equal scene.
+
+    Raises
+    ------
+    InputError
+        :class:`~adapt.errors.SceneError` when ``scene`` is not a :class:`Scene`.
+
+    References
+    ----------
+    YAML Ain't Markup Language, version 1.2 (yaml.org): plain mappings, lists, text and
+    numbers written by PyYAML's safe dumper (no Python-specific tags), read back by
+    :func:`parse_scene`.
+    """
+    return _dump_scene(scene)
 
 
 def _scene(scene) -> Scene:
@@ -64,11 +162,42 @@ def _scene(scene) -> Scene:
 
 def generate(scene, trials: int | None = None, snapshots: int | None = None,
              seed: int | None = None) -> tuple[TrialBatch, Block]:
-    """Draw seeded sample streams: ``(batch, block)`` with ``block.data`` (T, K, N) the
-    array snapshots, ``block.signal`` the wanted part, ``block.training`` what the
-    processors train on, ``block.reference`` (T, K) the wanted waveform; ``batch`` gives
-    the true steering vectors and covariances (``batch.covariance()``). Trial i is the
-    same whatever ``trials`` is. Defaults come from the scene."""
+    """Draw the seeded sample streams of a scene.
+
+    Parameters
+    ----------
+    scene : Scene, str or os.PathLike
+        A scene or the path of a scene file.
+    trials : int, optional
+        Number of trials T (default: the scene's ``trials``).
+    snapshots : int, optional
+        Number of snapshots K per trial (default: the scene's ``snapshots``).
+    seed : int, optional
+        Seed of the random streams (default: the scene's ``seed``). Trial i is the same
+        whatever ``trials`` is.
+
+    Returns
+    -------
+    batch : TrialBatch
+        The trials' true steering vectors and covariances (``batch.covariance()``).
+    block : Block
+        ``block.data`` (T, K, N) complex array snapshots, ``block.signal`` (T, K, N) the
+        wanted part, ``block.training`` what the processors train on, ``block.reference``
+        (T, K) the wanted waveform. Powers are relative to the unit per-element thermal
+        noise.
+
+    Raises
+    ------
+    InputError
+        For a bad scene or path, for trials, snapshots or seed out of range, and when
+        the T x K x N samples would not fit in memory.
+
+    References
+    ----------
+    Counter-based normal streams (:mod:`adapt.streams.normals`): SplitMix64 (Steele, Lea
+    and Flood, OOPSLA 2014) and the ziggurat method (Marsaglia and Tsang, J. Stat.
+    Software 5(8), 2000), keyed by numpy's ``SeedSequence``.
+    """
     sc = _with(_scene(scene), trials, snapshots, seed)
     estimate_samples(sc.trials, sc.snapshots, sc.elements).check_fits(
         "fewer trials or snapshots, or TrialBatch(scene).blocks(...) to stream them in "
@@ -84,7 +213,34 @@ def _with(scene: Scene, trials, snapshots, seed) -> Scene:
 
 
 def processors(specs=None, scene=None) -> list[Processor]:
-    """Processor objects from specs (default: the scene's own list)."""
+    """Processor objects from specs, or from the scene's own list.
+
+    Parameters
+    ----------
+    specs : str, dict or list, optional
+        One spec as text (``"smi loading_db=10"``) or a mapping (``{"method": "smi",
+        ...}``), or a list or tuple of such specs and processor objects (passed
+        through). Default None: the ``processors`` list of ``scene``.
+    scene : Scene, str or os.PathLike, optional
+        Used only when ``specs`` is None: a scene or a scene file path.
+
+    Returns
+    -------
+    list of Processor
+        One validated processor per spec, in order.
+
+    Raises
+    ------
+    InputError
+        :class:`~adapt.errors.SpecError` for an unknown method or a bad parameter (the
+        message names ``processors[i]``) or specs of the wrong type; InputError when
+        neither specs nor a scene are given, or for a bad scene.
+
+    References
+    ----------
+    None for the parsing itself; each processor's docstring cites the method it
+    implements (e.g. Reed, Mallett and Brennan 1974 for ``smi``).
+    """
     check_specs_argument(specs)
     if specs is None:
         if scene is None:
@@ -98,7 +254,22 @@ def processors(specs=None, scene=None) -> list[Processor]:
 
 
 def methods() -> dict[str, str]:
-    """Every available method name with its one-line summary."""
+    """Every available processor method with its one-line summary.
+
+    Parameters
+    ----------
+    None.
+
+    Returns
+    -------
+    dict of str to str
+        Method name (as used in specs) to its summary, in registry order.
+
+    References
+    ----------
+    None for the listing; each summary names the method's source (the processor
+    classes in :mod:`adapt.processors` cite the papers).
+    """
     return {name: cls.summary for name, cls in registry().items()}
 
 
@@ -107,10 +278,44 @@ def run(scene, specs: Sequence | None = None, trials: int | None = None,
         outputs: bool = False) -> list[ProcessorResult]:
     """Run processors over one batch of trials and return their weights.
 
-    Each :class:`ProcessorResult` has ``weights`` (T, C, N) at ``checkpoints`` (default:
-    4 per octave up to the snapshots) and, with ``outputs=True``, the output samples
-    ``y = w^H x`` (T, K) under the held-weight convention (see
-    :mod:`adapt.processors.base`). Scores are not computed; use :func:`evaluate`.
+    Scores are not computed; use :func:`evaluate`.
+
+    Parameters
+    ----------
+    scene : Scene, str or os.PathLike
+        A scene or the path of a scene file.
+    specs : str, dict, Processor or list of them, optional
+        Processor specs (default: the scene's ``processors`` list).
+    trials : int, optional
+        Number of trials T (default: the scene's).
+    snapshots : int, optional
+        Snapshots K per trial (default: the scene's).
+    seed : int, optional
+        Seed of the random streams (default: the scene's).
+    checkpoints : list of int or str, optional
+        Snapshot counts at which weights are kept: a list, ``"1,2,4"`` text or a
+        ``"START:STOP:STEP"`` range, each in [1, K] (default: geometric, 4 per octave,
+        from 1 to K).
+    outputs : bool, default False
+        Also keep the output samples.
+
+    Returns
+    -------
+    list of ProcessorResult
+        One per processor: ``weights`` (T, C, N) complex at ``checkpoints`` (C,) and,
+        with ``outputs=True``, ``outputs`` (T, K) the samples ``y = w^H x`` under the
+        held-weight convention (see :mod:`adapt.processors.base`), else None.
+
+    Raises
+    ------
+    InputError
+        For a non-boolean ``outputs``, a bad scene, spec, count or checkpoint, or a run
+        that would not fit in memory.
+
+    References
+    ----------
+    None for the driver itself; the weights are each processor's own method (its
+    docstring cites the source, e.g. Capon 1969 / Van Trees 2002 for ``optimum``).
     """
     if not isinstance(outputs, bool):
         raise InputError("outputs must be true or false", path="outputs", value=outputs)
@@ -130,15 +335,70 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
              tail: int = 256, draw: str = "samples", block: int | None = None,
              workers: int | None = None, scheduler: str | None = None,
              threads: int | None = None) -> Evaluation:
-    """Run and score processors (the Monte Carlo engine, :func:`adapt.engine.execute.run_trials`):
-    per processor, arrays (T, C) of output SINR, normalised SINR, loss (dB), white-noise
-    gain, measured SINR, and (T, C, J) null depths, plus the optimum SINR (T, C).
-    ``draw="covariance"`` is the drawn-covariance fast path, ``block`` the snapshots per
-    block of a long stream, ``threads`` the threads of this process the trial chunks run
-    on (default: every usable core; 1: one after another), ``workers``/``scheduler`` a
-    Dask cluster instead; results never depend on ``threads``, ``workers`` or
-    ``scheduler`` (``block`` fixes the rounding of running sums). Processor ``seconds``
-    are summed over chunks: with threads, time summed over the threads, not wall time."""
+    """Run and score processors: the Monte Carlo engine
+    (:func:`adapt.engine.execute.run_trials`).
+
+    Results never depend on ``threads``, ``workers`` or ``scheduler`` (``block`` fixes
+    the rounding of running sums).
+
+    Parameters
+    ----------
+    scene : Scene, str or os.PathLike
+        A scene or the path of a scene file.
+    specs : str, dict, Processor or list of them, optional
+        Processor specs (default: the scene's ``processors`` list).
+    trials : int, optional
+        Number of trials T (default: the scene's).
+    snapshots : int, optional
+        Snapshots K per trial (default: the scene's).
+    seed : int, optional
+        Seed of the random streams (default: the scene's).
+    checkpoints : list of int or str, optional
+        Snapshot counts to score, as in :func:`run` (default: geometric, 4 per octave,
+        from 1 to K).
+    tail : int, default 256
+        Extra snapshots after the last checkpoint, used only to measure the final
+        weights' output SINR from their output samples (an integer in
+        [0, ``MAX_SNAPSHOTS``]).
+    draw : {"samples", "covariance"}, default "samples"
+        ``"covariance"``: the drawn-covariance fast path (window covariances drawn from
+        the complex-Wishart law; Gaussian stationary scenes, covariance processors).
+    block : int, optional
+        Snapshots per block of a long stream (default:
+        :func:`adapt.engine.plan.block_size`).
+    workers : int, optional
+        Run on this many local Dask worker processes.
+    scheduler : str, optional
+        Run on an existing Dask cluster, ``tcp://HOST:PORT`` or ``HOST:PORT``.
+    threads : int, optional
+        Threads of this process the trial chunks run on (default: every usable core;
+        1: one after another).
+
+    Returns
+    -------
+    Evaluation
+        ``optimum_sinr`` (T, C) linear; per processor (``evaluation.by_label(label)``)
+        arrays (T, C) of output ``sinr`` (linear), ``normalised`` SINR (SINR over the
+        optimum), ``loss_db`` (dB), ``white_noise_gain`` and ``measured_sinr`` (from the
+        output samples; NaN where there were none),
+        ``null_depth_db`` (T, C, J) toward the J interferers, ``final_weights`` (T, N).
+        Processor ``seconds`` are summed over chunks (with threads: summed over the
+        threads, not wall time).
+
+    Raises
+    ------
+    InputError
+        For a bad scene, spec, count, checkpoint, ``tail``, ``block``, ``draw`` or
+        scheduler address, or a run that would not fit in memory.
+
+    References
+    ----------
+    Output and optimum SINR: Capon (1969), Proc. IEEE 57(8); Van Trees, *Optimum Array
+    Processing* (2002), ch. 6. Normalised SINR and loss: Reed, Mallett and Brennan,
+    IEEE Trans. AES-10(6), 1974. White-noise gain: Cox, Zeskind and Kooij, IEEE Trans.
+    ASSP-35(10), 1987. Drawn covariances: the complex Wishart law (Goodman, Ann. Math.
+    Stat. 34, 1963).
+    """
     sc, procs = prepare_scene(_scene(scene), specs, trials, snapshots, seed)
     cps = checkpoints_for(checkpoints, sc.snapshots)
     tail = whole_count(tail, "tail", MAX_SNAPSHOTS, low=0)
@@ -152,9 +412,124 @@ def evaluate(scene, specs: Sequence | None = None, trials: int | None = None,
                       scheduler=scheduler, threads=threads)
 
 
+def compare(scene, processors: Sequence | None = None, trials: int | None = None,
+            snapshots: int | None = None, seed: int | None = None, checkpoints=None,
+            progress: Callable[[int], None] | None = None, *, target_db: float = 3.0,
+            fraction: float = 0.9, tail: int = TAIL, chunk: int | None = None,
+            workers: int | None = None, scheduler: str | None = None, store=None,
+            on_chunk: Callable[[int, int], None] | None = None,
+            threads: int | None = None, patterns: bool = True) -> Comparison:
+    """Run, score and summarise processors on a scene (as ``adapt compare``).
+
+    Results are bit-identical whatever the chunking, the number of threads or workers
+    or any interruption and resume.
+
+    Parameters
+    ----------
+    scene : Scene, str or os.PathLike
+        A scene or the path of a scene file.
+    processors : str, dict, Processor or list of them, optional
+        Processor specs (default: the scene's ``processors`` list; SpecError if it has
+        none).
+    trials : int, optional
+        Number of trials T (default: the scene's).
+    snapshots : int, optional
+        Snapshots K per trial (default: the scene's).
+    seed : int, optional
+        Seed of the random streams (default: the scene's).
+    checkpoints : list of int or str, optional
+        Snapshot counts to score, as in :func:`run` (default: geometric, 4 per octave).
+    progress : callable, optional
+        Called with the number of trial-snapshots done after each block (the total is
+        ``trials * (snapshots + tail)``).
+    target_db : float, default 3.0
+        The loss in dB that ``snapshots_to_3db`` and the verdict measure against.
+    fraction : float, default 0.9
+        Share of trials, in (0, 1], that must meet ``target_db`` for
+        ``snapshots_to_3db_fraction``.
+    tail : int, default 256
+        Extra snapshots after the last checkpoint, used only for the measured SINR of
+        the final weights (an integer >= 0).
+    chunk : int, optional
+        Trials per chunk (default :func:`adapt.engine.plan.chunk_size`).
+    workers : int, optional
+        Run on this many local Dask worker processes (not with ``threads``).
+    scheduler : str, optional
+        Run on an existing Dask cluster, ``tcp://HOST:PORT`` or ``HOST:PORT`` (not with
+        ``threads``).
+    store : str, os.PathLike or callable, optional
+        A folder keeping finished chunks, so an interrupted run resumes where it
+        stopped (a callable returning the folder is called once the work starts).
+    on_chunk : callable, optional
+        Called with (first trial, count) after each finished chunk.
+    threads : int, optional
+        Threads of this process the chunks run on (default: every usable core; 1: one
+        after another).
+    patterns : bool, default True
+        False leaves out the pattern scores (pointing error, peak sidelobe), the
+        costliest part of the summary.
+
+    Returns
+    -------
+    Comparison
+        ``evaluation`` (the :class:`Evaluation` of :func:`evaluate`: arrays (T, C) per
+        processor), ``metrics`` (the ``metrics.json`` mapping: means over trials in dB,
+        snapshots to the target, verdict; schema in :mod:`adapt.studies.compare`),
+        ``scene`` as run, ``processors`` and ``seconds`` (wall time); ``table()`` is
+        the terminal summary.
+
+    Raises
+    ------
+    InputError
+        For a bad scene, spec, count, checkpoint, ``tail``, ``chunk``, thread or cluster
+        option or scheduler address, or a run that would not fit in memory (before any
+        work). ValueError (not InputError) for a non-finite ``target_db`` or a
+        ``fraction`` outside (0, 1], raised by the summary after the run.
+
+    References
+    ----------
+    Optimum (clairvoyant MVDR) and output SINR: Capon (1969), Proc. IEEE 57(8); Van
+    Trees, *Optimum Array Processing* (2002), ch. 6. Loss of the mean normalised SINR
+    and snapshots to 3 dB: Reed, Mallett and Brennan, IEEE Trans. AES-10(6), 1974.
+    Bootstrap of the robustness margin: Efron and Tibshirani (1993).
+    """
+    return _compare(scene, processors, trials, snapshots, seed, checkpoints, progress,
+                    target_db=target_db, fraction=fraction, tail=tail, chunk=chunk,
+                    workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
+                    threads=threads, patterns=patterns)
+
+
 def write_run(comparison: Comparison, out="runs", command_line: str | None = None) -> Path:
-    """Write a comparison to a new run folder under ``out`` (as ``adapt compare`` does);
-    returns the folder path."""
+    """Write a comparison to a new run folder (as ``adapt compare`` does).
+
+    Every file is written atomically; an existing folder is never touched.
+
+    Parameters
+    ----------
+    comparison : Comparison
+        The result of :func:`compare`.
+    out : str or os.PathLike, default "runs"
+        The folder under which the new run folder is made.
+    command_line : str, optional
+        The command line to record with the run (default None: none).
+
+    Returns
+    -------
+    pathlib.Path
+        The new run folder, holding ``scene.yaml``, ``metrics.json``, ``curves.csv``,
+        the figures, ``report.html`` and ``manifest.json`` (versions, seed, command
+        line, sha256 of every file).
+
+    Raises
+    ------
+    InputError
+        When ``comparison`` is not a :class:`Comparison`, ``out`` is not a path or
+        ``command_line`` is not text.
+
+    References
+    ----------
+    SHA-256 of the manifest: FIPS 180-4 (NIST, 2015); JSON: RFC 8259; CSV: RFC 4180.
+    """
     if not isinstance(comparison, Comparison):
         raise InputError("write_run takes the result of compare()", path="comparison",
                          value=type(comparison).__name__)
@@ -167,17 +542,80 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
 
 
 def read_run(folder):
-    """Read a run folder written by ``compare`` (see :func:`adapt.report.runfolder.read_run`)."""
+    """Read a run folder written by :func:`write_run` or ``adapt compare``.
+
+    Parameters
+    ----------
+    folder : str or os.PathLike
+        The run folder.
+
+    Returns
+    -------
+    dict
+        ``{"metrics": dict, "manifest": dict, "curves": list of row dicts (text
+        values), "problems": list}``; ``manifest`` is empty when the folder has no
+        ``manifest.json``, ``curves`` when it has no ``curves.csv``; ``problems`` lists
+        manifest mismatches (empty: intact).
+
+    Raises
+    ------
+    InputError
+        When ``folder`` is not a path. ValueError (not InputError) when the folder has
+        no ``metrics.json``.
+
+    References
+    ----------
+    SHA-256 (FIPS 180-4) for the manifest check; JSON: RFC 8259; CSV: RFC 4180.
+    """
     if not isinstance(folder, (str, Path)):
         raise InputError("expected the path of a run folder", value=type(folder).__name__)
     return _read_run(folder)
 
 
 def size(scene, specs: Sequence | None = None, **options):
-    """Snapshot sizing sweep (as ``adapt size``): see :func:`adapt.studies.sizing.size`. Returns
-    a :class:`adapt.studies.sizing.Sizing` with per-processor points, the required snapshot
-    counts with their uncertainty, and the theory beside the simulation. ``draw`` is
-    ``auto`` unless given, as on the command line: drawn covariances where exact."""
+    """Snapshot sizing sweep (as ``adapt size``): how many training snapshots each
+    processor needs to come within a target loss (:func:`adapt.studies.sizing.size`).
+
+    Parameters
+    ----------
+    scene : Scene, str or os.PathLike
+        A scene or the path of a scene file.
+    specs : str, dict, Processor or list of them, optional
+        Processor specs (default: the scene's ``processors`` list, or unloaded and
+        10 dB-loaded SMI when it lists none).
+    **options
+        Keyword options of :func:`adapt.studies.sizing.size`: ``snapshots`` (the sweep;
+        default geometric, 8 per octave, up to the scene's snapshots), ``trials`` (at
+        least 2), ``seed``, ``target_loss_db`` (in (0, 100], default 3.0), ``fraction``
+        (in (0, 1], default 0.9), ``progress``, ``chunk``, ``workers``, ``scheduler``,
+        ``store``, ``on_chunk``, ``threads`` (as in :func:`compare`) and ``draw``:
+        ``"auto"`` here unless given, as on the command line (drawn covariances where
+        exact), ``"samples"`` or ``"covariance"``.
+
+    Returns
+    -------
+    Sizing
+        ``record`` (the ``sizing.json`` mapping: per processor and sweep point the mean
+        normalised SINR and its standard error, loss percentiles in dB, the share of
+        trials within the target, the closed-form mean where one applies; the required
+        snapshot counts in the mean and per trial with their ranges), ``evaluation``
+        (per-trial arrays (T, C), C the sweep points), ``scene``, ``processors``,
+        ``seconds``; ``table()`` is the terminal summary.
+
+    Raises
+    ------
+    InputError
+        For an unknown option (naming the allowed ones), bad specs or scheduler address,
+        fewer than 2 trials, and every bad scene or option value.
+
+    References
+    ----------
+    Reed, Mallett and Brennan, "Rapid convergence rate in adaptive arrays", IEEE Trans.
+    AES-10(6), 1974 (rho ~ Beta(K-N+2, N-1), the 3 dB criterion); bootstrap ranges:
+    Efron and Tibshirani, *An Introduction to the Bootstrap* (1993); per-trial ranges:
+    Clopper and Pearson, Biometrika 26 (1934); drawn covariances: the complex Wishart
+    law (Goodman 1963).
+    """
     import inspect
 
     from adapt.errors import did_you_mean
@@ -195,17 +633,93 @@ def size(scene, specs: Sequence | None = None, **options):
 
 def record(scene, spec, out_dir, trials: int | None = None, snapshots: int | None = None,
            checkpoints=None, tolerances=None) -> Path:
-    """Write a reference set (as ``adapt record``): see :func:`adapt.studies.reference.record`.
-    Defaults: 3 cases, the scene's snapshots, checkpoints N, 2N, 4N, ... and K."""
+    """Write a reference set of a processor's inputs and outputs (as ``adapt record``).
+
+    The set is built in a temporary sibling folder and renamed into place when complete
+    (see :func:`adapt.studies.reference.record` for its layout).
+
+    Parameters
+    ----------
+    scene : Scene, str or os.PathLike
+        A scene or the path of a scene file.
+    spec : str, dict or Processor
+        The processor to record (specs that need the true covariance are refused).
+    out_dir : str or os.PathLike
+        A new or empty folder (anything else is refused, never overwritten).
+    trials : int, optional
+        Number of cases (default 3).
+    snapshots : int, optional
+        Snapshots K per case (default: the scene's).
+    checkpoints : list of int or str, optional
+        Snapshot counts at which weights are recorded (default N, 2N, 4N, ... and K,
+        N the elements).
+    tolerances : dict or list of str, optional
+        Overrides of the default tolerances (a mapping or ``NAME=VALUE`` strings),
+        written to ``tolerances.json``.
+
+    Returns
+    -------
+    pathlib.Path
+        The reference-set folder: per case ``samples.npy`` (K, N), ``weights.npy``
+        (C, N), ``outputs.npy`` (K,), ``sinr_db.npy`` (C,), the truth, a SigMF copy
+        of the samples, and ``manifest.json``.
+
+    Raises
+    ------
+    InputError
+        For a bad scene, spec, count, checkpoint, tolerance or output folder, or a set
+        too big to keep as test vectors.
+
+    References
+    ----------
+    SigMF, the Signal Metadata Format specification 1.2 (sigmf.org) for the sample
+    copies; the expected SINR: Van Trees, *Optimum Array Processing* (2002), ch. 6.
+    """
     from adapt.studies.reference import record as _record
     return _record(_scene(scene), spec, trials, snapshots, checkpoints, out_dir,
                    tolerances=tolerances)
 
 
 def verify(reference_dir, implementation, **options):
-    """Check an implementation (a callable ``f(case) -> weights`` or a command template
-    ``'PROGRAM {case} {out}'``) against a reference set (as ``adapt verify``): see
-    :func:`adapt.studies.reference.verify`."""
+    """Check an implementation against a reference set (as ``adapt verify``).
+
+    Parameters
+    ----------
+    reference_dir : str or os.PathLike
+        A reference set written by :func:`record` (checked against its manifest).
+    implementation : callable or str
+        A callable ``f(case) -> weights (C, N)``, a ``"python:MODULE:FUNCTION"`` or
+        ``"python:file.py:FUNCTION"`` text, or a command template containing
+        ``{case}`` and ``{out}``, e.g. ``"PROGRAM {case} {out}"``.
+    **options
+        Keyword options of :func:`adapt.studies.reference.verify`: ``tolerances``
+        (overrides, mapping or ``NAME=VALUE``), ``timeout`` (seconds per case for
+        commands, default 60), ``scale_blind`` (default False: compare output samples
+        after removing the best complex scale per checkpoint) and ``on_start``
+        (called with the empty report before the first case).
+
+    Returns
+    -------
+    VerifyReport
+        One result per case (``cases``) and ``passed``: crashes, timeouts and missing
+        output are errors; wrong shapes, NaN or a metric (SINR difference, weight
+        error, output EVM, in dB) beyond tolerance are failures.
+
+    Raises
+    ------
+    InputError
+        When ``reference_dir`` is not a path; :class:`~adapt.errors.CorruptReferenceError`
+        (an InputError) when the set is missing, damaged or does not match its
+        manifest; InputError for a bad tolerance, timeout or ``scale_blind``.
+        TypeError for an option that :func:`adapt.studies.reference.verify` does not
+        take.
+
+    References
+    ----------
+    SINR on the true covariance: Van Trees, *Optimum Array Processing* (2002), ch. 6;
+    the report is what ``adapt verify`` writes as JUnit XML (the JUnit/Ant XML report
+    format, as read by CI servers).
+    """
     from adapt.studies.reference import load_reference
     from adapt.studies.reference import verify as _verify
     return _verify(load_reference(reference_dir), implementation, **options)
