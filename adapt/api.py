@@ -217,10 +217,10 @@ def processors(specs=None, scene=None) -> list[Processor]:
 
     Parameters
     ----------
-    specs : str, dict or list, optional
-        One spec as text (``"smi loading_db=10"``) or a mapping (``{"method": "smi",
-        ...}``), or a list or tuple of such specs and processor objects (passed
-        through). Default None: the ``processors`` list of ``scene``.
+    specs : str, dict, Processor or list, optional
+        One spec as text (``"smi loading_db=10"``), a mapping (``{"method": "smi",
+        ...}``) or a processor object, or a list or tuple of such specs and processor
+        objects (objects are passed through). Default None: the ``processors`` list of ``scene``.
     scene : Scene, str or os.PathLike, optional
         Used only when ``specs`` is None: a scene or a scene file path.
 
@@ -247,7 +247,7 @@ def processors(specs=None, scene=None) -> list[Processor]:
             raise InputError("give processor specs or a scene that lists them")
         sc = _scene(scene)
         return parse_specs(list(sc.processors))
-    if isinstance(specs, (str, dict)):
+    if isinstance(specs, (str, dict, Processor)):
         specs = [specs]
     return [s if isinstance(s, Processor) else parse_spec(s, f"processors[{i}]")
             for i, s in enumerate(specs)]
@@ -482,9 +482,8 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     ------
     InputError
         For a bad scene, spec, count, checkpoint, ``tail``, ``chunk``, thread or cluster
-        option or scheduler address, or a run that would not fit in memory (before any
-        work). ValueError (not InputError) for a non-finite ``target_db`` or a
-        ``fraction`` outside (0, 1], raised by the summary after the run.
+        option or scheduler address, a non-finite ``target_db``, a ``fraction`` outside
+        (0, 1], or a run that would not fit in memory (all before any work).
 
     References
     ----------
@@ -493,6 +492,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     and snapshots to 3 dB: Reed, Mallett and Brennan, IEEE Trans. AES-10(6), 1974.
     Bootstrap of the robustness margin: Efron and Tibshirani (1993).
     """
+    _check_target(target_db, fraction)
     return _compare(scene, processors, trials, snapshots, seed, checkpoints, progress,
                     target_db=target_db, fraction=fraction, tail=tail, chunk=chunk,
                     workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
@@ -541,6 +541,19 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
     return write_compare_run(comparison, out, command_line=command_line)
 
 
+def _check_target(target_db, fraction) -> None:
+    """The target loss (a finite number of dB) and the share of trials in (0, 1]."""
+    import math
+    if isinstance(target_db, bool) or not isinstance(target_db, (int, float)) \
+            or not math.isfinite(target_db):
+        raise InputError("the target loss must be a finite number of dB", path="target_db",
+                         value=target_db, allowed="a finite number, e.g. 3")
+    if isinstance(fraction, bool) or not isinstance(fraction, (int, float)) \
+            or not 0 < fraction <= 1:
+        raise InputError("the share of trials must be in (0, 1]", path="fraction",
+                         value=fraction, allowed="a number in (0, 1], e.g. 0.9")
+
+
 def read_run(folder):
     """Read a run folder written by :func:`write_run` or ``adapt compare``.
 
@@ -560,8 +573,7 @@ def read_run(folder):
     Raises
     ------
     InputError
-        When ``folder`` is not a path. ValueError (not InputError) when the folder has
-        no ``metrics.json``.
+        When ``folder`` is not a path, or not a run folder (no ``metrics.json``).
 
     References
     ----------
@@ -569,6 +581,9 @@ def read_run(folder):
     """
     if not isinstance(folder, (str, Path)):
         raise InputError("expected the path of a run folder", value=type(folder).__name__)
+    if not (Path(folder) / "metrics.json").is_file():
+        raise InputError("not a run folder (no metrics.json)", value=str(folder),
+                         allowed="a folder written by adapt compare or write_run")
     return _read_run(folder)
 
 
@@ -720,6 +735,14 @@ def verify(reference_dir, implementation, **options):
     the report is what ``adapt verify`` writes as JUnit XML (the JUnit/Ant XML report
     format, as read by CI servers).
     """
+    import inspect
+
+    from adapt.errors import did_you_mean
     from adapt.studies.reference import load_reference
     from adapt.studies.reference import verify as _verify
+    known = list(inspect.signature(_verify).parameters)[2:]
+    for name in options:
+        if name not in known:
+            raise InputError(f"verify() has no option '{name}'" + did_you_mean(name, known),
+                             allowed=", ".join(known))
     return _verify(load_reference(reference_dir), implementation, **options)

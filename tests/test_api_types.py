@@ -7,6 +7,8 @@ how to shrink them.
 """
 from __future__ import annotations
 
+from pathlib import Path
+
 import pytest
 from conftest import SCENES
 
@@ -104,3 +106,23 @@ def test_scene_processor_error_names_the_scene_not_an_option(tmp_path, run_cli):
     code, out, err = run_cli(["compare", path, "--no-progress", "--out", tmp_path])
     assert code == 2 and "--processor" not in err and "processors[0]" in err, err
     assert str(path) in err
+
+
+def test_api_edges_found_while_documenting(tmp_path):
+    # one processor object, target and share checked before any work, a folder that
+    # is not a run folder, and an option verify does not take: all InputErrors
+    import pytest as _pytest
+
+    from adapt import api
+    from adapt.errors import InputError as _InputError
+    p = api.processors("smi loading_db=10")[0]
+    assert api.processors(p) == [p]
+    scene = api.load_scene(str(Path(__file__).resolve().parents[1] / "scenes" / "single_jammer.yaml"))
+    with _pytest.raises(_InputError, match="target loss"):
+        api.compare(scene, ["conventional"], trials=1, snapshots=8, target_db=float("nan"))
+    with _pytest.raises(_InputError, match="share of trials"):
+        api.compare(scene, ["conventional"], trials=1, snapshots=8, fraction=1.5)
+    with _pytest.raises(_InputError, match="not a run folder"):
+        api.read_run(tmp_path)
+    with _pytest.raises(_InputError, match="no option"):
+        api.verify(tmp_path, "x:y", timout=5)
