@@ -228,7 +228,7 @@ def save_png(fig, dpi: int = DPI) -> bytes:
     return buf.getvalue()
 
 
-#: the name used in the brief and by the compare helper
+#: another name for save_png, kept for callers of the first release
 figure_to_png = save_png
 
 
