@@ -155,7 +155,8 @@ def test_series_colours_consistent_across_figures(stationary):
 
 def test_first_sidelobe_of_uniform_line(stationary):
     # Uniform 16-element half-wavelength line: first sidelobe -13.26 dB in the large-N
-    # limit (Balanis, Antenna Theory, ch. 6: -13.26 dB; tolerance +- 0.3 dB, common practice), and for N = 16
+    # limit (Balanis, Antenna Theory, ch. 6; tolerance +- 0.3 dB, common practice), and
+    # for N = 16
     # exactly the first sidelobe of the zero-padded DFT of scipy.signal.windows.boxcar(16).
     az = np.arange(0.0, 30.0, 0.0005)
     pat = F.mean_beam_pattern_db(stationary, "conventional", az)
