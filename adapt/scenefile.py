@@ -34,6 +34,14 @@ Scene file keys (``*`` = required)::
         gain_db_rms: dB                [0, 6]      default 0
         phase_deg_rms: degrees         [0, 45]     default 0
         position_rms: wavelengths      [0, 0.25]   default 0 (in the array's own plane)
+        channel_delay_rms: snapshots   [0, 2]      default 0: each receiver channel's delay
+                                         error (channel mismatch), clipped at 4 rms;
+                                         makes the scene wideband (see below)
+        channel_ripple_rms: 1          [0, 0.3]    default 0: each channel's filter is
+                                         [e_-1, 1, e_+1] (complex normal taps of this
+                                         rms), a gain and phase ripple across the band
+                                         of the sources (the noise stays white);
+                                         makes the scene wideband
       element: isotropic | cosine       the element pattern (default isotropic), the same
                or {pattern: cosine, exponent: q, back_db: B, normal: [x, y, z]}
                or {pattern: table, angles_deg: [...], gains_db: [...], normal: [...]}
@@ -83,7 +91,12 @@ Scene file keys (``*`` = required)::
                  k0 >= 0 (default 0), k1 > k0 (default never off), P >= 1 and
                  1 <= M <= P given together
         motion: {azimuth_rate: r, elevation_rate: r}   degrees per snapshot, [-1, 1];
-                 the elevation must stay within [-90, 90] over the run
+                 the elevation must stay within [-90, 90] over the run (not in
+                 wideband scenes)
+        bandwidth: fraction of the sample rate   [0.01, 1]  noise-like waveforms only;
+                 a flat band (default: white over the sampled band, 1)
+        offset: fraction of the sample rate      [-0.5, 0.5] the band's centre, default 0;
+                 |offset| + bandwidth/2 <= 0.5
     look: {azimuth: deg, elevation: deg}   the direction the processors assume;
                                            default: the desired source's direction
     training: interference | signal     what the adaptive processors train on: the
@@ -103,6 +116,13 @@ Scene file keys (``*`` = required)::
     receiver: {bits: b, full_scale_db: dB}  optional ADC per I and Q rail: b in 1 .. 24
                                         (null: none), clip level dB over the noise rms
                                         per element, [-20, 160], default 40
+              fractional_bandwidth: B   complex sample rate over the carrier frequency,
+                                        (0, 1]; absent: the narrowband model. A plane
+                                        wave from u reaches element n delayed by
+                                        p_n.u / f_c: at baseband frequency f (cycles
+                                        per snapshot) its phase is 2 pi p_n.u (1 + f B)
+                                        (adapt.streams.wideband). A scene with B, a
+                                        source band or a channel delay error is wideband.
     snapshots: count                    1 .. 1,000,000,000   default 1024
     trials: count                       1 .. 1,000,000       default 100
     seed: integer                       0 .. 2**63 - 1       default 0
@@ -501,9 +521,10 @@ _ELEMENT_KEYS = {"isotropic": ("pattern",),
                  "cosine": ("pattern", "exponent", "back_db", "normal"),
                  "table": ("pattern", "angles_deg", "gains_db", "normal")}
 _COUPLING_KEYS = ("coefficients", "matrix", "calibrated")
-_ERROR_KEYS = ("gain_db_rms", "phase_deg_rms", "position_rms")
+_ERROR_KEYS = ("gain_db_rms", "phase_deg_rms", "position_rms", "channel_delay_rms",
+               "channel_ripple_rms")
 _SOURCE_KEYS = ("name", "role", "azimuth", "elevation", "power_db", "waveform", "pulsing",
-                "motion")
+                "motion", "bandwidth", "offset")
 _WAVEFORM_KEYS = {
     "gaussian": ("kind",), "bpsk": ("kind",), "qpsk": ("kind",),
     "tone": ("kind", "frequency"), "chirp": ("kind", "start", "stop", "period"),
@@ -512,7 +533,7 @@ _WAVEFORM_KEYS = {
 _PULSING_KEYS = ("start", "stop", "period", "on")
 _MOTION_KEYS = ("azimuth_rate", "elevation_rate")
 _LOOK_KEYS = ("azimuth", "elevation")
-_RECEIVER_KEYS = ("bits", "full_scale_db")
+_RECEIVER_KEYS = ("bits", "full_scale_db", "fractional_bandwidth")
 
 
 def _join(path: str, key) -> str:
@@ -643,6 +664,26 @@ class _Reader:
         receiver = self.receiver(data.get("receiver"), "receiver")
         noise = self.noise(data.get("noise"), "noise", array)
         processors = self.processors(data.get("processors", []), "processors")
+        wideband = (receiver.fractional_bandwidth is not None or array.errors.channel_delay_rms
+                    or array.errors.channel_ripple_rms
+                    or any(s.bandwidth is not None for s in sources))
+        for i, src in enumerate(sources):
+            if wideband and src.motion is not None:
+                raise self.error("moving sources are not modelled in wideband scenes",
+                                 f"sources[{i}].motion", None,
+                                 "no motion with receiver.fractional_bandwidth, a source "
+                                 "bandwidth or a channel delay error")
+            if wideband and src.waveform.kind == "copy":
+                raise self.error("coherent copies are not modelled in wideband scenes",
+                                 f"sources[{i}].waveform", "copy",
+                                 "gaussian | bpsk | qpsk | tone | chirp in a wideband scene")
+        if wideband and array.coupling is not None:
+            raise self.error("mutual coupling is not modelled in wideband scenes",
+                             "array.coupling", None, "no coupling with a fractional bandwidth, "
+                             "a source bandwidth or channel errors")
+        if wideband and not noise.plain:
+            raise self.error("noise fields are not modelled in wideband scenes", "noise", None,
+                             "white noise of unit power per element in a wideband scene")
         vary, target = self.sweep(data.get("sweep"), "sweep")
         return Scene(name=name, array=array, sources=sources, look_azimuth=look_az,
                      look_elevation=look_el, training=training, receiver=receiver, noise=noise,
@@ -878,7 +919,13 @@ class _Reader:
                                       _join(path, "phase_deg_rms"), 0, 45, unit="degrees rms"),
             position_rms=self.number(value.get("position_rms", 0.0),
                                      _join(path, "position_rms"), 0, 0.25,
-                                     unit="wavelengths rms"))
+                                     unit="wavelengths rms"),
+            channel_delay_rms=self.number(value.get("channel_delay_rms", 0.0),
+                                          _join(path, "channel_delay_rms"), 0, 2,
+                                          unit="snapshots rms"),
+            channel_ripple_rms=self.number(value.get("channel_ripple_rms", 0.0),
+                                           _join(path, "channel_ripple_rms"), 0, 0.3,
+                                           unit="rms of the outer channel-filter taps"))
 
     def sources(self, value, path) -> tuple[Source, ...]:
         if not isinstance(value, list) or not value:
@@ -915,8 +962,29 @@ class _Reader:
         waveform = self.waveform(value.get("waveform", "gaussian"), p("waveform"))
         pulsing = self.pulsing(value["pulsing"], p("pulsing")) if value.get("pulsing") is not None else None
         motion = self.motion(value["motion"], p("motion")) if value.get("motion") is not None else None
+        bandwidth, offset = self.band(value, path, waveform)
         return Source(name=name, role=role, azimuth=az, elevation=el, power_db=power,
-                      waveform=waveform, pulsing=pulsing, motion=motion)
+                      waveform=waveform, pulsing=pulsing, motion=motion,
+                      bandwidth=bandwidth, offset=offset)
+
+    def band(self, value, path, waveform: Waveform) -> tuple[float | None, float]:
+        """A source's optional flat band (``bandwidth``, ``offset``), fractions of the
+        sample rate, for noise-like waveforms only, inside [-1/2, 1/2]."""
+        if "bandwidth" not in value and "offset" not in value:
+            return None, 0.0
+        p = lambda key: _join(path, key)  # noqa: E731
+        if waveform.kind not in ("gaussian", "bpsk", "qpsk"):
+            key = "bandwidth" if "bandwidth" in value else "offset"
+            raise self.error(f"a band applies to noise-like waveforms only, not {waveform.kind}",
+                             p(key), value[key], "gaussian | bpsk | qpsk waveforms")
+        bandwidth = self.number(value.get("bandwidth", 1.0), p("bandwidth"), 0.01, 1,
+                                unit="fraction of the sample rate")
+        offset = self.number(value.get("offset", 0.0), p("offset"), -0.5, 0.5,
+                             unit="fraction of the sample rate")
+        if abs(offset) + bandwidth / 2 > 0.5 + 1e-12:
+            raise self.error("the band reaches beyond the sampled band", p("offset"), offset,
+                             f"|offset| + bandwidth/2 <= 0.5 (bandwidth {bandwidth:g})")
+        return bandwidth, offset
 
     def waveform(self, value, path) -> Waveform:
         if isinstance(value, str):
@@ -1056,7 +1124,11 @@ class _Reader:
         fs = self.number(value.get("full_scale_db", Receiver().full_scale_db),
                          _join(path, "full_scale_db"), -20, 160,
                          unit="dB over the per-element noise rms")
-        return Receiver(bits=bits, full_scale_db=fs)
+        fb = value.get("fractional_bandwidth")
+        if fb is not None:
+            fb = self.number(fb, _join(path, "fractional_bandwidth"), 0, 1, low_open=True,
+                             unit="sample rate over carrier frequency")
+        return Receiver(bits=bits, full_scale_db=fs, fractional_bandwidth=fb)
 
     def noise(self, value, path, array) -> NoiseField:
         if value is None:
@@ -1134,6 +1206,10 @@ def scene_to_mapping(scene: Scene) -> dict:
                        "phase_deg_rms": float(e.phase_deg_rms),
                        "position_rms": float(e.position_rms)}
     array.update(_element_mapping(arr))
+    if e.channel_delay_rms:
+        array["errors"]["channel_delay_rms"] = float(e.channel_delay_rms)
+    if e.channel_ripple_rms:
+        array["errors"]["channel_ripple_rms"] = float(e.channel_ripple_rms)
     sources = []
     for s in scene.sources:
         wf: dict = {"kind": s.waveform.kind}
@@ -1153,18 +1229,23 @@ def scene_to_mapping(scene: Scene) -> dict:
                                "stop": None if pl.stop is None else int(pl.stop),
                                "period": None if pl.period is None else int(pl.period),
                                "on": None if pl.on is None else int(pl.on)}
+        if s.bandwidth is not None:
+            item.update(bandwidth=float(s.bandwidth), offset=float(s.offset))
         if s.motion is not None:
             item["motion"] = {"azimuth_rate": float(s.motion.azimuth_rate),
                               "elevation_rate": float(s.motion.elevation_rate)}
         sources.append(item)
+    receiver = {"bits": None if scene.receiver.bits is None else int(scene.receiver.bits),
+                "full_scale_db": float(scene.receiver.full_scale_db)}
+    if scene.receiver.fractional_bandwidth is not None:
+        receiver["fractional_bandwidth"] = float(scene.receiver.fractional_bandwidth)
     return {
         "name": scene.name,
         "array": array,
         "sources": sources,
         "look": {"azimuth": float(scene.look_azimuth), "elevation": float(scene.look_elevation)},
         "training": scene.training,
-        "receiver": {"bits": None if scene.receiver.bits is None else int(scene.receiver.bits),
-                     "full_scale_db": float(scene.receiver.full_scale_db)},
+        "receiver": receiver,
         "snapshots": int(scene.snapshots),
         "trials": int(scene.trials),
         "seed": int(scene.seed),

@@ -3,6 +3,7 @@
     python benchmarks/run.py            # full sizes (about 6 minutes on 2 cores)
     python benchmarks/run.py --quick    # scaled-down smoke check (well under a minute)
     python benchmarks/run.py --only W1  # selected workloads only (repeatable; P: processes, S: the sweep study)
+    python benchmarks/run.py --wideband # the wideband workload W4 (run_w4) alone
     python benchmarks/run.py --threads 1  # product and floors on one thread
 
 Workloads (16-element half-wavelength line, six 40 dB noise-like jammers, wanted source
@@ -926,6 +927,143 @@ def _run_w3(z: dict, out: dict, say) -> None:
                            "w3_nlms_1M_per_s": w3["target_rate_met"]})
 
 
+# ----------------------------------------------------------------------------- W4
+W4_TAPS = 5
+W4_SPECS = (f"smi taps={W4_TAPS} loading_db=10", f"nlms taps={W4_TAPS} step=0.2")
+W4_FULL = {"w4_trials": 2000, "w4_snapshots": 4096, "w4_reference_trials": 4}
+W4_QUICK = {"w4_trials": 50, "w4_snapshots": 1024, "w4_reference_trials": 2}
+W4_JAMMERS = (-35.0, 20.0, 50.0)
+W4_BANDWIDTH = 0.2
+
+
+def w4_scene(trials: int, snapshots: int):
+    """The wideband benchmark scene: 16-element line, fractional bandwidth 0.2, three
+    40 dB noise jammers filling the band."""
+    from adapt.scene.files import parse_scene
+    sources = [{"name": "wanted", "role": "desired", "azimuth": 0, "power_db": 0}]
+    sources += [{"name": f"jam-{i + 1}", "role": "interferer", "azimuth": az,
+                 "power_db": JAMMER_DB} for i, az in enumerate(W4_JAMMERS)]
+    return parse_scene({"name": "wideband benchmark",
+                        "array": {"layout": "line", "elements": N, "spacing": 0.5},
+                        "receiver": {"fractional_bandwidth": W4_BANDWIDTH},
+                        "sources": sources, "snapshots": snapshots, "trials": trials,
+                        "seed": SEED})
+
+
+def w4_product(trials: int, snapshots: int, spec: str, threads: int | None = None) -> dict:
+    """One space-time processor through adapt's evaluate, scored at 13 checkpoints."""
+    from adapt.engine.execute import run_trials as evaluate
+    from adapt.processors import parse_specs
+    sc = w4_scene(trials, snapshots)
+    cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
+    seconds, ev = _timed(evaluate, sc, parse_specs([spec]), cps, tail=0, threads=threads)
+    return {"seconds": seconds, "processor_seconds": ev.processors[0].seconds,
+            "final_mean_rho": float(np.nanmean(ev.processors[0].normalised[:, -1]))}
+
+
+def w4_floor(trials: int, snapshots: int, spec: str) -> dict:
+    """The unavoidable work with the same libraries: the wideband stream (adapt's
+    generator: the filters are the model), then for SMI one stacked covariance product
+    per trial batch and a batched solve; for NLMS the stacked recursion by adapt's
+    kernel called directly (without the engine), or a numpy loop over snapshots."""
+    from adapt.numerics import kernels as _kernels
+    from adapt.streams.snapshots import TrialBatch
+    from adapt.streams.wideband import TapLine
+    t0 = time.perf_counter()
+    batch = TrialBatch(w4_scene(trials, snapshots))
+    line, total = TapLine(W4_TAPS), None
+    look = np.zeros(N * W4_TAPS, complex)
+    look[(W4_TAPS - 1) // 2 * N:((W4_TAPS - 1) // 2 + 1) * N] = 1.0
+    wc = np.broadcast_to(np.conj(look) / N, (trials, N * W4_TAPS)).copy()
+    for block in batch.blocks(snapshots):
+        z = line(block.training if spec.startswith("smi") else block.data)
+        if spec.startswith("smi"):
+            s = np.swapaxes(z, 1, 2) @ np.conj(z)
+            total = s if total is None else total + s
+        elif _kernels.compiled():
+            marks = np.array([z.shape[1] - 1])
+            _kernels.lms_block(wc, z, marks, gain=None, desired=block.reference,
+                               step=0.2, eps=1e-6)
+        else:
+            for k in range(z.shape[1]):
+                x = z[:, k]
+                e = block.reference[:, k] - np.einsum("tn,tn->t", wc, x)
+                wc += 0.2 / (1e-6 + np.einsum("tn,tn->t", x, np.conj(x)).real)[:, None] \
+                    * x * np.conj(e)[:, None]
+    if total is not None:
+        np.linalg.solve(total / snapshots + 10 * np.eye(N * W4_TAPS), look[None, :, None])
+    return {"seconds": time.perf_counter() - t0}
+
+
+def w4_reference(trials: int, snapshots: int, spec: str) -> dict:
+    """Plain numpy, trial by trial: the same wideband model written out (each jammer a
+    white sequence through a windowed-sinc fractional delay per element), stacked
+    snapshots, then SMI (one covariance, 13 solves) or NLMS (a Python loop over
+    snapshots)."""
+    from adapt.streams.wideband import filter_taps
+    t0 = time.perf_counter()
+    n = np.arange(N)
+    cps = sorted({int(k) for k in np.geomspace(1, snapshots, 13).round()})
+    for t in range(trials):
+        rng = np.random.default_rng([SEED, 4, t])
+        x = (rng.standard_normal((snapshots, N)) + 1j * rng.standard_normal((snapshots, N))) \
+            * np.sqrt(0.5)
+        for az in W4_JAMMERS:
+            pu = 0.5 * (n - (N - 1) / 2) * np.sin(np.deg2rad(az))
+            h = filter_taps(W4_BANDWIDTH * pu, None, 0.0, 33)            # (N, 67)
+            s = (rng.standard_normal(snapshots + 66) + 1j * rng.standard_normal(snapshots + 66)) \
+                * np.sqrt(0.5 * 10 ** (JAMMER_DB / 10))
+            for e in range(N):
+                x[:, e] += np.exp(2j * np.pi * pu[e]) * np.convolve(s, h[e], mode="valid")
+        z = np.zeros((snapshots, N * W4_TAPS), complex)
+        for l_ in range(W4_TAPS):
+            z[l_:, l_ * N:(l_ + 1) * N] = x[:snapshots - l_]
+        look = np.zeros(N * W4_TAPS, complex)
+        look[2 * N:3 * N] = 1.0
+        if spec.startswith("smi"):
+            for c in cps:
+                r = z[:c].T @ z[:c].conj() / c + 10 * np.eye(N * W4_TAPS)
+                w = np.linalg.solve(r, look)
+        else:
+            w = look / N
+            d = rng.standard_normal(snapshots) + 0j
+            for k in range(snapshots):
+                u = z[k]
+                e_ = d[k] - np.vdot(w, u)
+                w = w + 0.2 / (1e-6 + np.vdot(u, u).real) * u * np.conj(e_)
+    return {"seconds": time.perf_counter() - t0, "trials": trials}
+
+
+def run_w4(quick: bool = False, say=print, threads: int | None = None) -> dict:
+    """W4, the wideband workload (16 elements, 5 taps, space-time SMI and NLMS):
+    product, floor and plain per-trial reference (scaled from a few trials); targets
+    20x the reference and within 2x of the floor."""
+    z = dict(W4_QUICK if quick else W4_FULL)
+    t4, k4, tr = z["w4_trials"], z["w4_snapshots"], z["w4_reference_trials"]
+    th = usable_cores() if threads is None else int(threads)
+    say(f"\nW4 wideband ({t4} trials x {k4} snapshots, {N} elements x {W4_TAPS} taps; "
+        f"reference on {tr} trials scaled x{t4 / tr:g})")
+    out = {"sizes": z, "processors": {}}
+    for spec in W4_SPECS:
+        prod = w4_product(t4, k4, spec, th)
+        floor = w4_floor(t4, k4, spec)
+        ref = w4_reference(tr, k4, spec)
+        ref_scaled = ref["seconds"] * t4 / tr
+        rec = {"product": prod, "floor": floor, "reference_measured": ref,
+               "reference_scaled_seconds": ref_scaled,
+               "speedup": ref_scaled / prod["seconds"],
+               "over_floor": prod["seconds"] / floor["seconds"]}
+        rec["target_speedup_met"] = rec["speedup"] >= 20
+        rec["target_floor_met"] = rec["over_floor"] <= 2
+        out["processors"][spec] = rec
+        say(f"  {spec:24s} product {prod['seconds']:8.2f} s (processor's own "
+            f"{prod['processor_seconds']:.2f} s, final rho {prod['final_mean_rho']:.3f}) | "
+            f"reference {ref_scaled:8.1f} s | speedup {rec['speedup']:5.1f}x "
+            f"{_verdict(rec['target_speedup_met'])} | floor {floor['seconds']:.2f} s, "
+            f"product/floor {rec['over_floor']:.2f} {_verdict(rec['target_floor_met'])}")
+    return out
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description="adapt speed benchmark (see module docstring)")
     ap.add_argument("--quick", action="store_true", help="scaled-down smoke check")
@@ -936,12 +1074,17 @@ def main(argv=None) -> int:
                     help="threads for the product and the floors (default: every usable core)")
     ap.add_argument("--plain-w1", type=int, default=None, metavar="TRIALS",
                     help=argparse.SUPPRESS)     # the W1 reference as a process (P)
+    ap.add_argument("--wideband", action="store_true",
+                    help="run the wideband workload W4 alone (space-time SMI and NLMS)")
     args = ap.parse_args(argv)
     if args.plain_w1 is not None:
         print(json.dumps(w1_reference(args.plain_w1)["mean_rho"]))
         return 0
-    figures = run(quick=args.quick, only=tuple(args.only) if args.only else WORKLOADS,
-                  threads=args.threads)
+    if args.wideband:
+        figures = {"w4": run_w4(quick=args.quick, threads=args.threads)}
+    else:
+        figures = run(quick=args.quick, only=tuple(args.only) if args.only else WORKLOADS,
+                      threads=args.threads)
     path = Path(args.json)
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(json.dumps(figures, indent=2, default=float))

@@ -73,6 +73,13 @@ def covariance_draw_refusal(scene: Scene, processors: Sequence[Processor]) -> st
         moving = [s.name for s in scene.sources if not s.stationary]
         return ("the scene changes over time (" + ", ".join(moving) + " pulse or move): "
                 "a drawn covariance needs a stationary scene")
+    if scene.wideband:
+        return ("the scene is wideband: its filtered sources leave neighbouring snapshots "
+                "dependent, so their sample covariance is not Wishart (draw samples)")
+    tapped = [p.label for p in processors if int(p.params.get("taps", 1)) > 1]
+    if tapped:
+        return ("these processors use tapped delay lines, whose stacked snapshots overlap "
+                "(not independent): " + ", ".join(tapped) + " (draw samples)")
     if scene.receiver.bits is not None:
         return (f"the receiver quantises to {scene.receiver.bits} bits: quantised data are "
                 "not Gaussian, so their sample covariance is not Wishart")

@@ -30,7 +30,8 @@ from adapt.errors import SpecError
 from adapt.processors import Context, Processor, run_processors
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene
-from adapt.streams.snapshots import TrialBatch
+from adapt.streams import wideband
+from adapt.streams.snapshots import Block, TrialBatch
 
 __all__ = ["ProcessorScores", "Evaluation", "evaluate_batch", "merge", "trial_chunks",
            "default_checkpoints"]
@@ -109,8 +110,20 @@ class _Measure:
         self.sig = np.zeros((count, trials, len(checkpoints)))
         self.rest = np.zeros((count, trials, len(checkpoints)))
         self.n = np.zeros((count, len(checkpoints)))
+        self.lines: dict = {}
+
+    def stacked(self, index: int, block, taps: int):
+        """The block as space-time snapshots for processor ``index`` (its own delay
+        lines, carried across blocks)."""
+        if index not in self.lines:
+            self.lines[index] = (wideband.TapLine(taps), wideband.TapLine(taps))
+        data_line, signal_line = self.lines[index]
+        return Block(block.start, block.stop, data_line(block.data),
+                     signal_line(block.signal), block.training, block.reference, None)
 
     def __call__(self, index, block, block_checkpoints, weights, held) -> None:
+        if held.shape[-1] != block.data.shape[-1]:              # space-time weights
+            block = self.stacked(index, block, held.shape[-1] // block.data.shape[-1])
         start = block.start
         edges = [0] + [int(c - start) for c in block_checkpoints] + [block.size]
         # which checkpoint's weight is in force on each span (-1: initial weight)
@@ -246,7 +259,9 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     d = sc.desired
     a_d = batch.desired_steering(moments)                         # (T, M, N)
     p_d = d.power * d.active(moments).astype(float)               # (M,)
-    if batch.same_array:       # the same for every trial: solved once (items are exact)
+    if sc.wideband:           # the dispersive model: the largest generalised eigenvalue
+        opt = _space_time_truth(batch, 1, moments)["optimum"]
+    elif batch.same_array:       # the same for every trial: solved once (items are exact)
         opt = np.broadcast_to(scores.optimum_sinr(a_d[:1], r_in[:1], p_d),
                               (batch.trials, len(moments)))
     else:
@@ -257,8 +272,25 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     if sc.stationary:
         opt = np.broadcast_to(opt, (batch.trials, len(checkpoints)))
     out = []
+    truths: dict = {}
     for i, (p, res) in enumerate(zip(processors, results)):
         w = res.weights                                            # (T, C, N)
+        taps = w.shape[-1] // batch.scene.elements      # space-time weights: N x taps
+        if sc.wideband or taps > 1:
+            if taps not in truths:
+                truths[taps] = _space_time_truth(batch, taps, moments)
+            if not drawn:       # the data covariance R_in + R_s bounds the output power
+                t_ = truths[taps]
+                r_x = t_["in"] + t_["signal"]
+                zero = np.zeros(r_x.shape[:-1], dtype=complex)
+                require_bounded(p, i, w, r_x, zero, np.zeros(r_x.shape[1]), checkpoints)
+            sinr, norm, loss, wng, nd = _space_time_scores(truths[taps], w, checkpoints)
+            out.append(ProcessorScores(
+                label=p.label, method=p.method, params=dict(p.params), spec=p.spec(),
+                checkpoints=checkpoints, sinr=sinr, normalised=norm, loss_db=loss,
+                white_noise_gain=wng, null_depth_db=nd, measured_sinr=measure.sinr(i),
+                final_weights=w[:, -1, :], seconds=res.seconds))
+            continue
         if not drawn:
             require_bounded(p, i, w, r_in, a_d, p_d, checkpoints)
         if drawn:
@@ -283,6 +315,52 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
                       checkpoints=checkpoints, optimum_sinr=np.array(opt), processors=out,
                       interferers=tuple(s.name for s in sc.interferers),
                       positions=batch.positions, element_gains=batch.element_gains)
+
+
+def _space_time_truth(batch: TrialBatch, taps: int, moments: np.ndarray) -> dict:
+    """True space-time covariances for weights of ``taps`` taps per element
+    (:mod:`adapt.streams.wideband`) at the moments scored, with the optimum SINR for
+    the same taps (the largest generalised eigenvalue), the band-averaged look
+    response's covariance and each interferer's unit-power covariance."""
+    sc = batch.scene
+    if batch.same_array and batch.trials > 1:   # every trial alike: one row, broadcast
+        one = TrialBatch(sc, trials=1, seed=batch.seed, first_trial=batch.first_trial)
+        truth = _space_time_truth(one, taps, moments)
+        return {key: ([np.broadcast_to(v, (batch.trials,) + v.shape[1:]) for v in val]
+                      if isinstance(val, list) else
+                      val if key == "steering" else
+                      np.broadcast_to(val, (batch.trials,) + val.shape[1:]))
+                for key, val in truth.items()}
+    r_in = wideband.space_time_covariance(batch, taps, moments)              # (T, M, D, D)
+    r_s = wideband.space_time_covariance(batch, taps, moments, "signal")
+    opt = scores.optimum_sinr_space_time(r_s, r_in)                          # (T, M)
+    look = wideband.direction_covariance(batch, sc.look_azimuth, sc.look_elevation, taps)
+    jam = [wideband.source_covariance(batch, i, taps, moments, unit=True)
+           for i in sc.interferer_indices]
+    return {"in": r_in, "signal": r_s, "optimum": opt, "look": look[:, None],
+            "interferers": jam, "steering": batch.look}
+
+
+def _space_time_scores(truth: dict, w: np.ndarray, checkpoints: np.ndarray):
+    """Scores of weights (T, C, N L) against :func:`_space_time_truth`: SINR, normalised
+    SINR and loss against the optimum for the same taps, white-noise gain at the band
+    centre (``|sum_l w_l^H a|^2 / w^H w``) and band-averaged null depth per interferer
+    relative to the band-averaged look response (dB)."""
+    sinr = scores.output_sinr_space_time(w, truth["signal"], truth["in"])
+    opt = np.broadcast_to(truth["optimum"], sinr.shape)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        norm = np.where(opt > 0, sinr / np.where(opt > 0, opt, 1), np.nan)
+        loss = -10 * np.log10(norm)
+    n = truth["steering"].shape[-1]
+    w_sum = w.reshape(w.shape[:-1] + (-1, n)).sum(axis=-2)
+    gain = np.abs(np.einsum("...n,n->...", np.conj(w_sum), truth["steering"])) ** 2
+    power = np.real(np.einsum("...n,...n->...", np.conj(w), w))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        wng = np.where(power > 0, gain / np.where(power > 0, power, 1.0), 0.0)
+    ref = scores.to_db(scores.band_response(w, truth["look"]))
+    nd = [scores.to_db(scores.band_response(w, rj)) - ref for rj in truth["interferers"]]
+    nd = np.stack(nd, -1) if nd else np.zeros(w.shape[:2] + (0,))
+    return sinr, norm, loss, wng, nd
 
 
 def merge(parts: Sequence[Evaluation]) -> Evaluation:

@@ -34,7 +34,8 @@ __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
            "azimuth_cut", "main_beam_peak", "pointing_error_deg", "peak_sidelobe_db",
            "parabolic_peak", "is_line_array", "plane_normal", "sphere_directions", "tangent_frame",
            "direction_response", "main_beam_peak_2d", "pointing_error_2d_deg",
-           "peak_sidelobe_2d_db"]
+           "peak_sidelobe_2d_db", "output_sinr_space_time",
+           "optimum_sinr_space_time", "band_response", "band_centre_weights"]
 
 
 def _check_shapes(w: np.ndarray, a: np.ndarray, r: np.ndarray | None = None) -> None:
@@ -81,6 +82,50 @@ def optimum_sinr(steering: np.ndarray, covariance: np.ndarray,
     a_b = np.broadcast_to(a, np.broadcast_shapes(a.shape, r.shape[:-1]))
     x = solve_hermitian(np.broadcast_to(r, a_b.shape + (a.shape[-1],)), a_b)
     return np.asarray(signal_power) * np.real(np.einsum("...n,...n->...", np.conj(a_b), x))
+
+
+def output_sinr_space_time(weights: np.ndarray, signal: np.ndarray,
+                           covariance: np.ndarray) -> np.ndarray:
+    """Output SINR ``w^H R_s w / (w^H R_in w)`` (linear) of space-time (or spatial)
+    weights against the wanted source's covariance ``R_s`` and the interference-plus-
+    noise covariance ``R_in`` (..., M, M), all broadcast; M = N L for L taps. For a rank-
+    one ``R_s = sigma_s^2 a a^H`` it is :func:`output_sinr` (Van Trees 2002, broadband
+    chapter: the SINR of a tapped-delay-line beamformer)."""
+    w = np.asarray(weights)
+    num = np.real(np.einsum("...n,...nm,...m->...", np.conj(w), signal, w))
+    den = np.real(np.einsum("...n,...nm,...m->...", np.conj(w), covariance, w))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+
+
+def optimum_sinr_space_time(signal: np.ndarray, covariance: np.ndarray) -> np.ndarray:
+    """The largest SINR any weight reaches, the largest generalised eigenvalue of
+    ``(R_s, R_in)`` (Rayleigh quotient; Van Trees 2002, ch. 6 and the broadband
+    chapter); ``sigma_s^2 a^H R_in^-1 a`` when ``R_s`` is rank one. (..., M, M) ->
+    (...)."""
+    r = np.asarray(covariance)
+    c = np.linalg.cholesky(r)
+    x = np.linalg.solve(c, np.broadcast_to(signal, r.shape))
+    y = np.linalg.solve(c, np.conj(np.swapaxes(x, -1, -2)))         # C^-1 R_s C^-H
+    y = 0.5 * (y + np.conj(np.swapaxes(y, -1, -2)))
+    return np.linalg.eigvalsh(y)[..., -1]
+
+
+def band_response(weights: np.ndarray, covariance: np.ndarray) -> np.ndarray:
+    """``w^H R w`` (real): with R a unit-power white source's space-time covariance,
+    the power response toward it averaged over the band."""
+    w = np.asarray(weights)
+    return np.real(np.einsum("...n,...nm,...m->...", np.conj(w), covariance, w))
+
+
+def band_centre_weights(weights: np.ndarray, elements: int) -> np.ndarray:
+    """Space-time weights (..., N L) folded to the N-element weight of their response at
+    the band centre (f = 0): ``sum_l w_l``; spatial weights (..., N) unchanged. Patterns
+    and pointing of a tapped processor are those of this weight."""
+    w = np.asarray(weights)
+    if w.shape[-1] == elements:
+        return w
+    return w.reshape(w.shape[:-1] + (-1, elements)).sum(axis=-2)
 
 
 def normalised_sinr(sinr: np.ndarray, optimum: np.ndarray) -> np.ndarray:

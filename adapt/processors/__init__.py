@@ -33,6 +33,7 @@ from adapt.processors.optimum import Optimum
 from adapt.processors.power_inversion import PowerInversion
 from adapt.processors.rls import RecursiveLeastSquares
 from adapt.processors.smi import SampleMatrixInversion
+from adapt.processors.subband import SubbandMvdr
 
 __all__ = ["registry", "is_clairvoyant", "parse_spec", "parse_specs", "Processor", "Parameter", "Context",
            "State", "ProcessorResult", "run_processor", "run_processors", "held_outputs",
@@ -51,6 +52,7 @@ PROCESSORS: dict[str, type[Processor]] = {
     "power_inversion": PowerInversion,
     "rls": RecursiveLeastSquares,
     "smi": SampleMatrixInversion,
+    "subband": SubbandMvdr,
 }
 
 

@@ -61,7 +61,10 @@ class Parameter:
     ``allow_none``: the value may be ``none``; ``unit``: shown in help and errors;
     ``omit_unset``: an unset (None) value is left out of the full spec (where writing
     ``none`` back would contradict another parameter, as ``loading=none`` does
-    ``loading_db``).
+    ``loading_db``); with a default other than None, the parameter is unset while at
+    its default and then left out of the processor's params altogether (so a later
+    extension such as ``taps``, default 1, leaves existing specs and results as they
+    were; read it with ``params.get(name, default)``).
     """
     kind: str
     default: Any
@@ -185,6 +188,12 @@ class Context:
     look_direction: tuple[float, float] | None = None
     data_covariance: Callable[[np.ndarray], np.ndarray] | None = None
     moments: np.ndarray | None = None
+    #: callable ``(k, taps, kind) -> (T, len(k), N taps, N taps)``: true space-time
+    #: covariance of the stacked snapshots (kind interference | training | data |
+    #: signal; adapt.streams.wideband); what tapped processors' checks use
+    space_time: Callable[[np.ndarray, int, str], np.ndarray] | None = None
+    #: the scene's fractional bandwidth (sample rate over carrier), 0 when narrowband
+    fractional_bandwidth: float = 0.0
 
     @property
     def elements(self) -> int:
@@ -200,7 +209,14 @@ class Context:
                    look_direction=(float(batch.scene.look_azimuth),
                                    float(batch.scene.look_elevation)),
                    data_covariance=lambda k: _shared_covariance(batch, k, "data"),
-                   moments=_check_moments(batch.scene))
+                   moments=_check_moments(batch.scene),
+                   space_time=lambda k, taps, kind: _space_time(batch, k, taps, kind),
+                   fractional_bandwidth=float(batch.scene.receiver.fractional_bandwidth or 0.0))
+
+
+def _space_time(batch, k, taps: int, kind: str) -> np.ndarray:
+    from adapt.streams.wideband import space_time_covariance
+    return space_time_covariance(batch, int(taps), np.atleast_1d(np.asarray(k)), kind)
 
 
 def _shared_covariance(batch, k, kind: str) -> np.ndarray:
@@ -391,6 +407,10 @@ class Processor:
                                 path=f"{where}{name}" if where else name, allowed=allowed)
             out[name] = cls.parameters[name].coerce(value, f"{where}{name}" if where else name)
         for name, p in cls.parameters.items():
+            if p.omit_unset and p.default is not None:
+                if out.get(name, p.default) == p.default:
+                    out.pop(name, None)     # unset: left out of params, spec and results
+                continue
             out.setdefault(name, p.default)
         cls.cross_check(out, where)
         return out
@@ -536,8 +556,10 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
     and the weight held when the block started (T, N); all blocks are then read.
     """
     import time
+
+    from adapt.processors._taps import stacked_data, tapped
     cps = normalised_checkpoints(checkpoints, snapshots)
-    procs = list(processors)
+    procs = [tapped(p) for p in processors]
     seconds = [0.0] * len(procs)
     states = begin_processors(procs, context, seconds)
     held, initial = [], []
@@ -566,7 +588,8 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
             if on_block is not None:
                 on_block(i, block, inside, w, held[i])
             if outputs:
-                y, held[i] = held_outputs(block.data, block.start, held[i], w, inside)
+                y, held[i] = held_outputs(stacked_data(p, states[i], block), block.start,
+                                          held[i], w, inside)
                 outs[i].append(y)
             elif inside.size:
                 held[i] = w[:, -1, :]
@@ -584,7 +607,9 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
 def check_processors(processors, context: Context) -> None:
     """Each processor's own scene checks (stability bounds, constraints) and its
     element minimum; a SpecError is located at ``processors[i]``."""
+    from adapt.processors._taps import tapped
     for i, p in enumerate(processors):
+        p = tapped(p)
         _check_elements(i, p, context)
         try:
             p.check(context)

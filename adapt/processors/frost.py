@@ -37,6 +37,14 @@ Checkable fact: the mean weight converges to the constrained optimum
 ``R^-1 C (C^H R^-1 C)^-1 f``, for the look constraint alone the MVDR weight
 ``R^-1 a / (a^H R^-1 a)`` (Frost 1972).
 
+Tapped-delay-line form (``taps=L``, Frost 1972's own broadband setting): the weights act
+on stacked snapshots ``[x_k; ...; x_{k-L+1}]`` (adapt.processors._taps) and the L
+constraints ``C = [e_0 (x) a, ..., e_{L-1} (x) a]``, ``f = response`` fix the
+look-direction response to the FIR filter ``response`` (``sum_n conj(a_n) w_{l,n} =
+response_l``: a pre-steered look direction sees exactly that filter); default a pure
+delay at the centre tap (L - 1) // 2. Checkable fact: ``C^H w = f`` to rounding at
+every checkpoint. Derivative constraints apply to one tap only.
+
 Cost per snapshot and trial: about (4 + 2M) N complex multiply-adds for M constraints.
 """
 from __future__ import annotations
@@ -52,6 +60,7 @@ from adapt.processors._recursive import (
     local_marks,
     per_snapshot,
 )
+from adapt.processors._taps import TAPS, centre_tap
 from adapt.processors.base import Context, Parameter, State
 from adapt.scene.geometry import steering_derivatives
 
@@ -96,6 +105,39 @@ def look_constraints(look: np.ndarray, positions: np.ndarray,
     return c, f
 
 
+def response_taps(text: str | None, taps: int, where: str = "response") -> np.ndarray:
+    """The look-direction FIR response (taps,) from comma-separated numbers (None: a pure
+    delay at the centre tap)."""
+    fir = np.zeros(taps, dtype=complex)
+    if text is None:
+        fir[centre_tap(taps)] = 1.0
+        return fir
+    try:
+        values = [complex(v.strip().replace("i", "j")) for v in str(text).split(",")]
+    except ValueError:
+        raise SpecError("expected comma-separated numbers", path=where, value=text,
+                        allowed=f"{taps} numbers, e.g. 0,1,0") from None
+    if len(values) != taps or not all(np.isfinite(v) for v in values):
+        raise SpecError(f"expected {taps} finite tap values, one per tap", path=where,
+                        value=text, allowed=f"{taps} comma-separated numbers")
+    fir[:] = values
+    return fir
+
+
+def delay_line_constraints(look: np.ndarray, taps: int, response: str | None
+                           ) -> tuple[np.ndarray, np.ndarray]:
+    """Frost's (1972) tapped-delay-line constraints: C (N L, L) with column l the look
+    vector a at tap l (a is read from the stacked look vector's centre tap), f the FIR
+    response."""
+    n = look.shape[0] // taps
+    c0 = centre_tap(taps)
+    a = np.asarray(look[c0 * n:(c0 + 1) * n], dtype=complex)
+    c = np.zeros((n * taps, taps), dtype=complex)
+    for l_ in range(taps):
+        c[l_ * n:(l_ + 1) * n, l_] = a
+    return c, response_taps(response, taps)
+
+
 class FrostConstrainedLms(AutoStep):
     """Frost's linearly constrained LMS: minimum output power under ``C^H w = f``.
 
@@ -106,7 +148,14 @@ class FrostConstrainedLms(AutoStep):
         ``0.1 / tr(P R P)`` per trial. Refused where the mean-square sum
         ``sum_i mu lambda_i / (2 - mu lambda_i)`` over ``P R P`` reaches 1.
     derivatives : int
-        Azimuth-derivative constraints added to the look constraint (0, 1 or 2).
+        Azimuth-derivative constraints added to the look constraint (0, 1 or 2; 0 with
+        taps > 1).
+    taps : int
+        Delay-line length L behind each element (default 1): Frost's tapped-delay-line
+        form with L look constraints (adapt.processors._taps).
+    response : str or None
+        With taps > 1, the look-direction FIR response, L comma-separated tap values
+        (default: a pure delay at the centre tap).
 
     Returns
     -------
@@ -139,12 +188,36 @@ class FrostConstrainedLms(AutoStep):
         "derivatives": Parameter("int", 0, "azimuth-derivative constraints added to the look "
                                  "constraint (1: zero slope, 2: also zero curvature)",
                                  low=0, high=2),
+        "taps": TAPS,
+        "response": Parameter("str", None, "look-direction FIR response of the delay line, "
+                              "comma-separated tap values, one per tap (default: a pure "
+                              "delay at the centre tap)", allow_none=True, omit_unset=True),
     }
 
+    @classmethod
+    def cross_check(cls, params: dict, where: str) -> None:
+        taps = params.get("taps", 1)
+        if taps > 1 and params["derivatives"]:
+            raise SpecError("derivative constraints apply to one tap only",
+                            path=f"{where}derivatives", value=params["derivatives"],
+                            allowed="0 with taps > 1")
+        if params.get("response") is not None:
+            fir = response_taps(params["response"], taps, f"{where}response")
+            if not np.any(fir):
+                raise SpecError("the look-direction response is all zero",
+                                path=f"{where}response", value=params["response"],
+                                allowed="at least one non-zero tap")
+        else:
+            params.pop("response", None)     # unset: out of params (results read as before)
+
     def _projector(self, context: Context) -> Projector:
-        c, f = look_constraints(context.look, context.positions,
-                                getattr(context, "look_direction", None),
-                                self.params["derivatives"])
+        taps = self.params.get("taps", 1)
+        if taps > 1:
+            c, f = delay_line_constraints(context.look, taps, self.params.get("response"))
+        else:
+            c, f = look_constraints(context.look, context.positions,
+                                    getattr(context, "look_direction", None),
+                                    self.params["derivatives"])
         return Projector(c, f)
 
     def _steps(self, context: Context, proj: Projector) -> np.ndarray:

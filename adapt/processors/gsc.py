@@ -39,6 +39,7 @@ from __future__ import annotations
 import numpy as np
 
 from adapt.processors._recursive import Projector, constrained_pass, local_marks, per_snapshot
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Parameter, Processor, State
 from adapt.processors.nlms import normalised_gain
 
@@ -79,6 +80,7 @@ class GeneralisedSidelobeCanceller(Processor):
                           "for 0 < mu < 2", low=0.0, high=2.0, low_open=True, high_open=True),
         "eps": Parameter("float", 1e-6, "regularisation added to z^H z",
                          unit="noise power", low=0.0, low_open=True),
+        "taps": TAPS,
     }
 
     @staticmethod

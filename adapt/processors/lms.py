@@ -44,6 +44,7 @@ from adapt.processors._recursive import (
     local_marks,
     starting_weights,
 )
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Parameter, State
 
 INITIAL_HELP = "start weight: quiescent (look vector / N, the conventional beam) or zero"
@@ -91,6 +92,7 @@ class LeastMeanSquares(AutoStep):
                           low=0.0, low_open=True, allow_none=True),
         "initial": Parameter("choice", "quiescent", INITIAL_HELP,
                              choices=("quiescent", "zero")),
+        "taps": TAPS,
     }
 
     def _steps(self, context: Context) -> np.ndarray:

@@ -28,6 +28,7 @@ import numpy as np
 from adapt.numerics import kernels as _kernels
 from adapt.numerics.kernels import normalised_gain  # noqa: F401 - re-exported
 from adapt.processors._recursive import local_marks, starting_weights
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Parameter, Processor, State
 from adapt.processors.lms import INITIAL_HELP
 
@@ -72,6 +73,7 @@ class NormalisedLms(Processor):
                          unit="noise power", low=0.0, low_open=True),
         "initial": Parameter("choice", "quiescent", INITIAL_HELP,
                              choices=("quiescent", "zero")),
+        "taps": TAPS,
     }
 
     def initial_weights(self, context: Context) -> np.ndarray:

@@ -24,6 +24,7 @@ import numpy as np
 
 from adapt.errors import SpecError
 from adapt.numerics.linalg import mvdr
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Processor, State
 
 
@@ -55,7 +56,7 @@ class Optimum(Processor):
 
     method = "optimum"
     summary = "clairvoyant MVDR from the true interference-plus-noise covariance (the bound)"
-    parameters = {}
+    parameters = {"taps": TAPS}
     clairvoyant = True
     data_free = True
     drawn_covariance = True

@@ -33,6 +33,7 @@ from adapt.processors._covariance import (
     solve_sample,
     window_parameters,
 )
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Parameter, State
 
 
@@ -75,6 +76,7 @@ class PowerInversion(SampleCovarianceProcessor):
                                        low=0, high=10 ** 6),
         **loading_parameters(auto=False),
         **window_parameters(),
+        "taps": TAPS,
     }
 
     @classmethod

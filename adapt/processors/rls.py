@@ -35,6 +35,7 @@ import numpy as np
 
 from adapt.numerics import kernels as _kernels
 from adapt.processors._recursive import local_marks, starting_weights
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Parameter, Processor, State
 from adapt.processors.lms import INITIAL_HELP
 
@@ -80,6 +81,7 @@ class RecursiveLeastSquares(Processor):
                                 unit="dB above noise", low=-100.0, high=100.0),
         "initial": Parameter("choice", "quiescent", INITIAL_HELP,
                              choices=("quiescent", "zero")),
+        "taps": TAPS,
     }
 
     def initial_weights(self, context: Context) -> np.ndarray:

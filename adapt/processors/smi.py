@@ -67,6 +67,7 @@ from adapt.processors._covariance import (
     solve_sample,
     window_parameters,
 )
+from adapt.processors._taps import TAPS
 from adapt.processors.base import Context, Parameter
 
 
@@ -123,6 +124,7 @@ class SampleMatrixInversion(SampleCovarianceProcessor):
         "interval": Parameter("int", 1, "weights recomputed every `interval` snapshots "
                               "and held in between", unit="snapshots", low=1, high=10 ** 9),
         **smoothing_parameters(),
+        "taps": TAPS,
     }
 
     @classmethod

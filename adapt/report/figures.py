@@ -55,7 +55,8 @@ __all__ = [
     "default_azimuths", "mean_beam_pattern_db", "mean_beam_patterns_db",
     "convergence_figure", "beam_pattern_figure", "null_depth_figure",
     "response_map_figure", "response_map_db", "processor_panels",
-    "standard_figures", "FIGURE_TEXT",
+    "standard_figures", "FIGURE_TEXT", "band_map_db", "band_map_figure",
+    "WIDEBAND_FIGURE_TEXT",
 ]
 
 #: Okabe & Ito (2008) colour-blind-safe palette less black, reordered so the first
@@ -521,8 +522,18 @@ def mean_beam_patterns_db(evaluation, labels: Sequence[str], azimuths,
     for label in labels:
         if label not in have:
             raise ValueError(f"no processor labelled {label!r}; the run has: {', '.join(have)}")
-    w = np.stack([np.asarray(evaluation.by_label(lb).final_weights) for lb in labels])
+    n = None if evaluation.positions is None else evaluation.positions.shape[-2]
+    w = np.stack([_band_centre(evaluation.by_label(lb).final_weights, n) for lb in labels])
     return _patterns(evaluation, w, labels, azimuths, elevation, skip_dead)
+
+
+def _band_centre(w, elements: int) -> np.ndarray:
+    """Space-time weights (..., N L) folded to their band-centre response ``sum_l w_l``
+    (N); spatial weights unchanged."""
+    w = np.asarray(w)
+    if elements is None or w.shape[-1] == elements:
+        return w
+    return w.reshape(w.shape[:-1] + (-1, elements)).sum(-2)
 
 
 def _patterns(evaluation, w: np.ndarray, labels, azimuths, elevation,
@@ -1016,15 +1027,106 @@ FIGURE_TEXT = {
         "10th-90th percentile; JNR is the per-element jammer-to-noise ratio."),
 }
 
+#: alt text and caption of the wideband scenes' extra figure (kept apart from the
+#: standard figures every run has)
+WIDEBAND_FIGURE_TEXT = {
+    "band_map": (
+        "Maps of power response in dB over azimuth and frequency, one per processor",
+        "Power response of each processor's final weights over azimuth (look elevation) "
+        "and baseband frequency across the sampled band, relative to the look direction "
+        "at the band centre, mean over trials; dashed white bars: interferers across "
+        "their band (wideband scenes only)."),
+}
+
 
 def standard_figures(evaluation, summary: dict | None = None) -> dict[str, bytes]:
     """The figures of a comparison as PNG bytes: ``{"convergence": ..,
     "beam_pattern": .., "null_depth": ..}`` and, for an array that is not a line,
-    ``"response_map"`` (keys match :data:`FIGURE_TEXT`); ``summary``: the compare
+    ``"response_map"`` (keys match :data:`FIGURE_TEXT`), and for a wideband scene
+    ``"band_map"`` (:data:`WIDEBAND_FIGURE_TEXT`); ``summary``: the compare
     summary whose statistics the convergence figure draws."""
     out = {"convergence": save_png(convergence_figure(evaluation, summary)),
            "beam_pattern": save_png(beam_pattern_figure(evaluation)),
            "null_depth": save_png(null_depth_figure(evaluation))}
     if not scores_is_line(evaluation.scene.array.positions):
         out["response_map"] = save_png(response_map_figure(evaluation))
+    if evaluation.scene.wideband:
+        out["band_map"] = save_png(band_map_figure(evaluation))
     return out
+
+
+# --------------------------------------------------------------------- band maps
+def band_map_db(evaluation, label: str, azimuths, frequencies) -> np.ndarray:
+    """(F, A) mean power response over trials of a processor's final weights at
+    baseband frequencies ``frequencies`` (cycles per snapshot) and azimuths (degrees,
+    at the look elevation), dB relative to the look-direction response at the band
+    centre. The response of space-time weights (N L) at frequency f toward u is
+    ``sum_{l,n} conj(w_{l,n}) g_n exp(j 2 pi p_n.u (1 + f B)) exp(-j 2 pi f l)`` with
+    each trial's true positions and gains (channel delay errors left out)."""
+    sc = evaluation.scene
+    w = np.asarray(evaluation.by_label(label).final_weights)               # (T, N L)
+    pos, gains = evaluation.positions, evaluation.element_gains
+    n = pos.shape[-2]
+    taps = w.shape[-1] // n
+    wl = np.conj(w).reshape(w.shape[0], taps, n)                            # (T, L, N)
+    fb = sc.receiver.fractional_bandwidth or 0.0
+    f = np.asarray(frequencies, dtype=float)
+    az = np.asarray(azimuths, dtype=float)
+
+    def power(a_deg, el):
+        u = geometry.direction_vector(a_deg, np.full_like(a_deg, el))      # (A, 3)
+        pu = np.einsum("tnc,ac->tan", pos, u)                              # (T, A, N)
+        out = np.empty((len(f), len(a_deg)))
+        for i, fi in enumerate(f):
+            a = gains[:, None, :] * np.exp(2j * np.pi * pu * (1 + fi * fb))
+            h = np.einsum("tln,tan,l->ta", wl, a, np.exp(-2j * np.pi * fi * np.arange(taps)))
+            out[i] = np.mean(np.abs(h) ** 2, axis=0)
+        return out
+
+    ref = power(np.array([sc.look_azimuth]), sc.look_elevation)
+    ref0 = ref[np.argmin(np.abs(f))][0] if len(f) else 1.0
+    with np.errstate(divide="ignore"):
+        return 10 * np.log10(np.maximum(power(az, sc.look_elevation), 1e-30) / ref0)
+
+
+def band_map_figure(evaluation, azimuths=None, frequencies=None,
+                        floor_db: float = PATTERN_FLOOR_DB) -> Figure:
+    """One panel per processor: power response (dB re the look direction at the band
+    centre) over azimuth and baseband frequency, final weights, mean over trials;
+    interferers marked by a vertical bar across their band."""
+    _check_evaluation(evaluation)
+    sc = evaluation.scene
+    az = np.linspace(-90, 90, 181) if azimuths is None else np.asarray(azimuths, float)
+    f = np.linspace(-0.5, 0.5, 41) if frequencies is None else np.asarray(frequencies, float)
+    procs = evaluation.processors
+    cols = min(3, len(procs))
+    rows = int(np.ceil(len(procs) / cols))
+    fig, axes = new_figure(rows, cols, size=(3.4 * cols + 1.2, 2.8 * rows + 0.9))
+    axes = np.atleast_1d(axes).ravel()
+    image = None
+    for ax, p in zip(axes, procs):
+        m = band_map_db(evaluation, p.label, az, f)
+        image = ax.pcolormesh(az, f, np.clip(m, floor_db, 10), shading="nearest",
+                              vmin=floor_db, vmax=10, cmap="viridis")
+        for s in sc.interferers:
+            lo, hi = -0.5, 0.5
+            if s.bandwidth is not None:
+                lo, hi = s.offset - s.bandwidth / 2, s.offset + s.bandwidth / 2
+            if s.waveform.kind == "tone":
+                lo = hi = s.waveform.frequency
+            ax.plot([s.azimuth, s.azimuth], [lo, hi], color="#ffffff", linewidth=1.0,
+                    linestyle=(0, (3, 2)))
+        ax.set_title(p.label, fontsize=TICK_SIZE + 0.5)
+        ax.tick_params(labelsize=TICK_SIZE)
+    for ax in axes[len(procs):]:
+        ax.set_visible(False)
+    for ax in axes[::cols]:
+        ax.set_ylabel("frequency, cycles/snapshot", fontsize=TICK_SIZE)
+    for ax in axes[-cols:]:
+        ax.set_xlabel("azimuth, degrees", fontsize=TICK_SIZE)
+    if image is not None:
+        cb = fig.colorbar(image, ax=list(axes[:len(procs)]), shrink=0.85)
+        cb.set_label("dB re look direction at band centre", fontsize=TICK_SIZE)
+    title, sub = run_title(evaluation, "Response over angle and frequency")
+    add_title(fig, title, sub + "; dashed: interferers across their band")
+    return fig

@@ -381,7 +381,11 @@ def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "
         notes += [f"Verdict: {line}." for line in verdict]
         if command_line:
             notes.append(f"Command: {command_line}")
-        page = builder(evaluation, summary_rows(metrics), scene_summary, pngs, notes=notes)
+        extra = getattr(figs, "WIDEBAND_FIGURE_TEXT", {}) if figs is not None else {}
+        extra = {k: v for k, v in extra.items() if k in pngs}
+        page = builder(evaluation, summary_rows(metrics), scene_summary, pngs, notes=notes,
+                       alt_texts={k: v[0] for k, v in extra.items()} or None,
+                       captions={k: v[1] for k, v in extra.items()} or None)
         writer.text("report.html", page)
         written.append("report.html")
     return written

@@ -36,10 +36,17 @@ class HardwareErrors:
     gain_db_rms: float = 0.0
     phase_deg_rms: float = 0.0
     position_rms: float = 0.0
+    #: per-channel delay error, snapshots rms (receiver channel mismatch; wideband
+    #: generation, see adapt.streams.wideband); drawn from its own per-trial stream
+    channel_delay_rms: float = 0.0
+    #: per-channel filter ripple: rms of the outer taps of a 3-tap channel filter
+    #: [e_-1, 1, e_+1] (complex, per channel and trial; wideband generation)
+    channel_ripple_rms: float = 0.0
 
     @property
     def any(self) -> bool:
-        return bool(self.gain_db_rms or self.phase_deg_rms or self.position_rms)
+        return bool(self.gain_db_rms or self.phase_deg_rms or self.position_rms
+                    or self.channel_delay_rms or self.channel_ripple_rms)
 
 
 @dataclass(frozen=True)
@@ -139,6 +146,11 @@ class Source:
     waveform: Waveform = field(default_factory=Waveform)
     pulsing: Pulsing | None = None
     motion: Motion | None = None
+    #: flat band of a noise-like source, fraction of the sample rate (None: its
+    #: waveform's own spectrum, white for gaussian/bpsk/qpsk)
+    bandwidth: float | None = None
+    #: centre of that band, fraction of the sample rate
+    offset: float = 0.0
 
     @property
     def power(self) -> float:
@@ -206,6 +218,8 @@ class Receiver:
     (clip level of each rail) ``full_scale_db`` dB above the per-element noise rms."""
     bits: int | None = None
     full_scale_db: float = 40.0
+    #: complex sample rate over carrier frequency, (0, 1]; None: narrowband model
+    fractional_bandwidth: float | None = None
 
 
 @dataclass(frozen=True)
@@ -251,6 +265,16 @@ class Scene:
     @property
     def interferer_indices(self) -> tuple[int, ...]:
         return tuple(i for i, s in enumerate(self.sources) if s.role == "interferer")
+
+    @property
+    def wideband(self) -> bool:
+        """True when the scene uses the dispersive (space-time) source model of
+        :mod:`adapt.streams.wideband`: a fractional bandwidth, a band-limited source or a
+        channel delay error is given."""
+        return (self.receiver.fractional_bandwidth is not None
+                or any(s.bandwidth is not None for s in self.sources)
+                or bool(self.array.errors.channel_delay_rms)
+                or bool(self.array.errors.channel_ripple_rms))
 
     @property
     def stationary(self) -> bool:

@@ -37,6 +37,7 @@ from adapt.numerics import kernels as _kernels
 from adapt.scene import elements, geometry
 from adapt.scene.model import Scene
 from adapt.streams import normals
+from adapt.streams import wideband as _wideband
 from adapt.streams.seeding import trial_generators
 
 __all__ = ["TrialBatch", "Block", "generate", "default_block_size", "quantise",
@@ -172,6 +173,10 @@ class TrialBatch:
             raise ValueError(f"seed must be >= 0, got {self.seed}")
         self._draw_constants()
         self._draw_noise()
+        #: (T, N) per-channel delay errors, snapshots (zeros unless the scene has them)
+        self.channel_delays = _wideband.draw_channel_delays(self)
+        #: (T, N, 3) per-channel ripple filters [e_-1, 1, e_+1], or None
+        self.channel_filters = _wideband.draw_channel_filters(self)
 
     # ------------------------------------------------------------------ constants
     @property
@@ -321,6 +326,9 @@ class TrialBatch:
         output but the wanted source's own term.
         """
         sc = self.scene
+        if sc.wideband:            # the dispersive model's spatial covariance (L = 1)
+            return _wideband.space_time_covariance(
+                self, 1, k, "training" if training else "interference")
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
         n = sc.elements
         # without hardware errors every trial has the same array: one row, repeated
@@ -429,6 +437,9 @@ class TrialBatch:
         b = default_block_size(self.trials, n, k_total) if block is None else int(block)
         if b < 1:
             raise ValueError(f"block must be >= 1 snapshot, got {b}")
+        if sc.wideband:
+            yield from self._wideband_blocks(k_total, b)
+            return
         idx = self.trial_indices
 
         def keys_for(key: int):       # normal streams of SeedSequence(seed, (i, 1, key))
@@ -529,6 +540,51 @@ class TrialBatch:
         normals.fill(keys, start * n * 2, z.reshape(t_, b * n * 2))
         mix = np.sqrt(0.5) * np.swapaxes(self.diffuse_factor, -1, -2)      # (T or 1, N, N)
         _kernels.add_sources(noise, np.sqrt(0.5), z.view(np.complex128)[..., 0], mix)
+
+    def _wideband_blocks(self, k_total: int, b: int) -> Iterator[Block]:
+        """Blocks of a wideband scene (:mod:`adapt.streams.wideband`): every source
+        dispersed across the aperture, added element by element in scene order; the
+        reference is the wanted source's envelope at the array origin (zero advance);
+        ``desired`` is None (the wanted signal is not rank one)."""
+        sc = self.scene
+        n = sc.elements
+        idx = self.trial_indices
+        noise_keys = normals.stream_keys(self.seed, idx, _STREAMS, _NOISE_KEY)
+        keys = {i: normals.stream_keys(self.seed, idx, _STREAMS, _component_key(s.name))
+                for i, s in enumerate(sc.sources)}
+        delays = {i: _wideband.element_delays(self, i) for i in range(len(sc.sources))}
+        steer = {i: self.steering(i) for i in range(len(sc.sources))}
+        d_idx = sc.desired_index
+        rx = sc.receiver
+        full_scale = 10.0 ** (rx.full_scale_db / 20.0)
+        zero = np.zeros((self.trials, 1))
+        for start in range(0, k_total, b):
+            size = min(b, k_total - start)
+            kk = np.arange(start, start + size)
+            z = np.empty((self.trials, size, n, 2))
+            normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
+            interference = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+            signal = None
+            reference = None
+            for i, src in enumerate(sc.sources):
+                gate = np.sqrt(src.power) * src.active(kk).astype(float)       # (B,)
+                part = _wideband.source_block(self, i, keys[i], start, size, delays[i],
+                                              self.channel_filters)
+                part *= steer[i][:, None, :] * gate[None, :, None]
+                if i == d_idx:
+                    signal = part
+                    ref = _wideband.source_block(self, i, keys[i], start, size, zero)
+                    reference = ref[..., 0] * gate[None, :]
+                else:
+                    interference += part
+            data = interference + signal
+            if rx.bits is not None:
+                data = quantise(data, rx.bits, full_scale)
+                training = (quantise(interference, rx.bits, full_scale)
+                            if sc.training == "interference" else data)
+            else:
+                training = interference if sc.training == "interference" else data
+            yield Block(start, start + size, data, signal, training, reference, None)
 
     def samples(self, snapshots: int | None = None) -> Block:
         """All snapshots as one :class:`Block` (materialised; use :meth:`blocks` for long

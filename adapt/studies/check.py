@@ -37,7 +37,12 @@ Warnings (each a plain sentence):
 * superdirective spacing: a diffuse noise field and neighbours closer than half a
   wavelength: the optimum against that field is superdirective (its gain toward
   endfire can approach N^2, Uzkov 1946), with a low white-noise gain and so sensitive
-  to errors (Cox, Zeskind and Owen 1987).
+  to errors (Cox, Zeskind and Owen 1987);
+* wideband scenes only: the interferers' expected significant eigenvalues (about
+  ``1 + 2 W T`` each, W the band in cycles per snapshot, T the delay spread across the
+  aperture in snapshots: Slepian 1978) add up to more than the space-time degrees of
+  freedom ``N L - 1``, L the longest delay line among the listed processors (taps, or
+  a sub-band processor's bins; 1 when none has one).
 """
 from __future__ import annotations
 
@@ -48,6 +53,7 @@ import numpy as np
 from adapt.scene import geometry
 from adapt.scene.geometry import angle_between_deg
 from adapt.scene.model import Scene, Source
+from adapt.streams import wideband
 
 __all__ = ["summarise_scene", "scene_warnings", "check_processor_settings", "main_lobe_contains", "beamwidth_deg",
            "first_null_deg", "conventional_response_db",
@@ -274,6 +280,14 @@ def scene_warnings(scene: Scene) -> list[str]:
                        f"conventional beam{at}; the conventional response there is "
                        f"{resp:.1f} dB, so nulling it costs the wanted signal about "
                        f"{cost:.2g} dB of array gain")
+    if scene.wideband:
+        taps = _longest_delay_line(scene)
+        need = sum(wideband.expected_eigenvalues(scene, s) for s in scene.interferers)
+        if need > n * taps - 1:
+            out.append(f"wideband interference: the interferers need about {need:.3g} "
+                       f"degrees of freedom (significant eigenvalues, 1 + 2 x band x "
+                       f"delay spread each) and {n} elements x {taps} taps give "
+                       f"{n * taps - 1}; add taps or bins")
     d = scene.desired
     ks = [0, scene.snapshots - 1] if not d.stationary else [0]
     worst = 0.0
@@ -363,6 +377,26 @@ def _array_lines(scene: Scene) -> list[str]:
     return out
 
 
+def _longest_delay_line(scene: Scene) -> int:
+    """Longest delay line among the listed processors: taps, or a sub-band processor's
+    bins (1 when none)."""
+    from adapt.processors import parse_specs
+    procs = parse_specs(list(scene.processors)) if scene.processors else []
+    return max([1] + [int(p.params.get("taps", p.params.get("bins", 1))) for p in procs])
+
+
+def _wideband_lines(scene: Scene) -> list[str]:
+    fb = scene.receiver.fractional_bandwidth
+    lines = [f"wideband:    fractional bandwidth {fb if fb is not None else 0:g} (sample rate "
+             f"/ carrier); aperture delay spread {wideband.delay_spread(scene):.3g} "
+             "snapshots"]
+    per = ", ".join(f"{s.name} {wideband.expected_eigenvalues(scene, s):.3g}"
+                    for s in scene.interferers)
+    lines.append("eigenvalues: expected significant per interferer (1 + 2 band x spread): "
+                 + (per or "none"))
+    return lines
+
+
 def _processor_labels(scene: Scene) -> list[str]:
     from adapt.processors import parse_specs
     return [p.label for p in parse_specs(list(scene.processors))]
@@ -398,6 +432,10 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
     if e.any:
         errors = (f"gain {e.gain_db_rms:g} dB rms, phase {e.phase_deg_rms:g} deg rms, "
                   f"position {_length(e.position_rms)} rms (drawn per trial)")
+        if e.channel_delay_rms:
+            errors += f"; channel delay {e.channel_delay_rms:g} snapshots rms"
+        if e.channel_ripple_rms:
+            errors += f"; channel ripple taps {e.channel_ripple_rms:g} rms"
     else:
         errors = "none"
     rx = scene.receiver
@@ -423,6 +461,8 @@ def summarise_scene(scene: Scene, warnings: list[str] | None = None) -> str:
         "processors:  " + (", ".join(labels) if labels else "(none listed)"),
         "sources:",
     ]
+    if scene.wideband:
+        lines[-1:-1] = _wideband_lines(scene)
     header = ("name", "role", "az", "el", "power dB", "waveform", "behaviour")
     rows = [(s.name, s.role, f"{s.azimuth:g}", f"{s.elevation:g}", f"{s.power_db:g}",
              describe_waveform(s), describe_behaviour(s)) for s in scene.sources]

@@ -240,7 +240,8 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         per_trial.append((sinr_db[:, -1], rho_stats))
         final["worst_null_db"] = _worst_null(final["null_depth_db"], on_at_end)
         if patterns:
-            final.update(_pattern_scores(evaluation, np.asarray(p.final_weights)))
+            final.update(_pattern_scores(evaluation, scores.band_centre_weights(
+                p.final_weights, evaluation.scene.elements)))
         out["processors"].append({
             "label": p.label,
             "method": p.method,

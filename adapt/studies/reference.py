@@ -414,6 +414,11 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     """
     sc = _as_scene(scene)
     proc = _as_processor(processor)
+    if sc.wideband or int(proc.params.get("taps", 1)) > 1 or proc.method == "subband":
+        raise InputError("reference sets hold spatial weights of narrowband scenes; wideband "
+                         "scenes and space-time processors (taps, subband) cannot be "
+                         "recorded yet", value=proc.label,
+                         allowed="a narrowband scene and a processor without taps")
     tol = parse_tolerances(tolerances)
     from adapt.engine.settings import MAX_SNAPSHOTS, check_scheduler_address, whole_count
     t_ = 3 if trials is None else whole_count(trials, "trials", _MAX_CASES)

@@ -677,7 +677,9 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
             rec["theory"] = None
         rec["rule_of_thumb"] = _rule_of_thumb(proc, used, facts["optimum_sinr"])
         rec["recommendation"] = recommendation(rec, target_loss_db, fraction, limit)
-        text = _disagreement_text(rec, violations) if law is not None else None
+        own = violations + [v for v in (law.violations if law is not None else ())
+                             if v not in violations]
+        text = _disagreement_text(rec, own) if law is not None else None
         rec["disagreement_summary"] = text
         if text:
             disagreements.append(text)

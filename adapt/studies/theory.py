@@ -339,6 +339,10 @@ def assumption_violations(scene: Scene) -> list[str]:
     if scene.array.coupling is not None and not scene.array.coupling.calibrated:
         out.append("uncalibrated mutual coupling: the look steering vector differs from "
                    "the true response")
+    if scene.wideband:
+        out.append("wideband scene: sources are filtered (band limits, fractional delays "
+                   "across the aperture), which leaves neighbouring snapshots slightly "
+                   "dependent")
     miss = geometry.angle_between_deg(scene.look_azimuth, scene.look_elevation, d.azimuth, d.elevation)
     if miss > 1e-6:
         out.append(f"pointing mismatch of {miss:.3g} degrees between the look direction and "
@@ -495,6 +499,8 @@ def theory_for(processor, scene_info) -> Law | None:
       on interference only -> RMB (1974);
     * unloaded ``smi`` trained with the signal present -> the signal-present law;
     * loaded ``smi`` -> None: no exact law, only Carlson's 2J rule of thumb;
+    * ``smi taps=L``: the same laws with N L in place of N, the overlap of the stacked
+      snapshots listed among the violations (the measured difference is a finding);
     * spatially smoothed ``smi`` (``subarray``) and any other method -> None.
 
     The law's ``violations`` list the assumptions the scene breaks, which explain a
@@ -513,10 +519,18 @@ def theory_for(processor, scene_info) -> Law | None:
     if mode is not None:
         return None
     params = dict(proc.params)
-    n = int(facts["elements"])
+    taps = int(params.get("taps", 1))
+    n = int(facts["elements"]) * taps
     if n < 2:
         return None
     violations = tuple(facts.get("violations", ()))
+    if taps > 1:
+        # stacked space-time snapshots: the law is applied with N L in place of N; the
+        # stacks overlap (neighbours share L - 1 snapshots), so they are not independent
+        violations += (f"stacked space-time snapshots of {n} = {facts['elements']} x {taps} "
+                       "entries overlap (neighbours share all but one snapshot per element) "
+                       "and the first ones are incomplete: the law assumes independent "
+                       "snapshots; it is applied with N L in place of N",)
     if facts["training"] == "signal":
         return Law("signal-present", SIGNAL_PRESENT_SOURCE, n, float(facts["optimum_sinr"]),
                    lambda k: training_count(params, k), violations)
