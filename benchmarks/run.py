@@ -939,7 +939,7 @@ W4_BANDWIDTH = 0.2
 def w4_scene(trials: int, snapshots: int):
     """The wideband benchmark scene: 16-element line, fractional bandwidth 0.2, three
     40 dB noise jammers filling the band."""
-    from adapt.scene.files import parse_scene
+    from adapt.scenefile import parse_scene
     sources = [{"name": "wanted", "role": "desired", "azimuth": 0, "power_db": 0}]
     sources += [{"name": f"jam-{i + 1}", "role": "interferer", "azimuth": az,
                  "power_db": JAMMER_DB} for i, az in enumerate(W4_JAMMERS)]

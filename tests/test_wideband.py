@@ -8,7 +8,7 @@ from adapt.engine import scores
 from adapt.engine.evaluate import evaluate_batch
 from adapt.errors import SceneError
 from adapt.processors import Context, parse_spec, run_processors
-from adapt.scene.files import parse_scene, scene_to_mapping
+from adapt.scenefile import parse_scene, scene_to_mapping
 from adapt.streams import wideband as wb
 from adapt.streams.snapshots import TrialBatch
 

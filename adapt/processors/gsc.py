@@ -54,6 +54,9 @@ class GeneralisedSidelobeCanceller(Processor):
         Normalised step ``mu`` of the adaptive branch, stable for ``0 < mu < 2``.
     eps : float
         Regularisation added to ``z^H z``, noise-power units, > 0.
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps).
 
     Returns
     -------

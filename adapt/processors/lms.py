@@ -61,6 +61,9 @@ class LeastMeanSquares(AutoStep):
         ``sum_i mu lambda_i / (2 - mu lambda_i)`` over ``R_xx`` reaches 1.
     initial : {"quiescent", "zero"}
         Start weight: the look vector / N (the conventional beam) or zero.
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps).
 
     Returns
     -------

@@ -45,6 +45,9 @@ class NormalisedLms(Processor):
         Regularisation added to ``x^H x``, noise-power units, > 0.
     initial : {"quiescent", "zero"}
         Start weight: the look vector / N (the conventional beam) or zero.
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps).
 
     Returns
     -------

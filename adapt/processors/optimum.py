@@ -33,7 +33,10 @@ class Optimum(Processor):
 
     Parameters
     ----------
-    None. Needs ``context.covariance`` (``clairvoyant``), known only in simulation.
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps). Needs
+        ``context.covariance`` (``clairvoyant``), known only in simulation.
 
     Returns
     -------

@@ -51,6 +51,9 @@ class PowerInversion(SampleCovarianceProcessor):
         Training window: every snapshot so far, or the last ``length``.
     length : int or None
         Sliding window length, snapshots (shorter than N needs loading).
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps).
 
     Returns
     -------

@@ -54,6 +54,9 @@ class RecursiveLeastSquares(Processor):
         in [-100, 100].
     initial : {"quiescent", "zero"}
         Start weight: the look vector / N (the conventional beam) or zero.
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps).
 
     Returns
     -------

@@ -93,6 +93,9 @@ class SampleMatrixInversion(SampleCovarianceProcessor):
         lines only); the weight is the subarray's, applied to the first subarray.
     smoothing : {"forward", "forward-backward"}
         With ``subarray``: forward, or forward-backward smoothing.
+    taps : int
+        Delay-line length L behind each element (default 1): run on stacked space-time
+        snapshots, N L weights (adapt.processors._taps).
 
     Returns
     -------
