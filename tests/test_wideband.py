@@ -174,6 +174,43 @@ def test_taps_one_leaves_specs_and_params_as_before():
     assert q.params["taps"] == 3 and q.label == "smi taps=3"
 
 
+def test_tapped_adapter_keeps_its_run_data_in_the_state_and_serves_runs_at_once():
+    from adapt.processors._taps import Tapped, tapped
+    sc = _scene(fb=0.3, elements=4)
+    proc = parse_spec("nlms taps=3 step=0.3")
+    t = tapped(proc)
+    assert isinstance(t, Tapped) and t.label == proc.label and t.params == proc.params
+    with pytest.raises(AttributeError):
+        t.lines = None                                   # settings only
+    batch = TrialBatch(sc, trials=2)
+    ctx = Context.from_batch(batch)
+    a, b = t.begin(ctx), t.begin(ctx)                    # two runs interleaved
+    assert a is not b and a.lines[0] is not b.lines[0] and a.inner is not b.inner
+    blocks = list(batch.blocks(64, block=16))
+    for blk in blocks:
+        wa = t.update(a, blk, np.array([blk.stop]))
+        wb_ = t.update(b, blk, np.array([blk.stop]))
+        assert np.array_equal(wa, wb_)
+    assert vars(t) == {"inner": proc, "taps": 3}         # nothing a run changed
+    # the same processor object in two sequential runs gives the same weights
+    runs = [run_processors([proc], TrialBatch(sc, trials=2).blocks(64, block=16), ctx,
+                           [16, 64])[0].weights for _ in range(2)]
+    assert runs[0].shape == (2, 2, 12) and np.array_equal(runs[0], runs[1])
+
+
+def test_subband_is_in_the_table_with_no_capability_flags_and_frost_response_stays_out():
+    from adapt.processors import PROCESSORS
+    cls = PROCESSORS["subband"]
+    assert cls.method == "subband"
+    assert not (cls.covariance_based or cls.reference_trained or cls.clairvoyant
+                or cls.data_free or cls.drawn_covariance or cls.sample_mvdr)
+    assert parse_spec(parse_spec("subband bins=8").spec()) == parse_spec("subband bins=8")
+    f = parse_spec("frost")
+    assert "response" not in f.params and "taps" not in f.params
+    g = parse_spec("frost taps=3 response=0,1,0")
+    assert parse_spec(g.spec()) == g and g.params["response"] == "0,1,0"
+
+
 def test_tapped_smi_equals_smi_on_stacked_snapshots_by_hand():
     sc = _scene(fb=0.3, elements=4)
     batch = TrialBatch(sc, trials=2)
