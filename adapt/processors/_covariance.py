@@ -50,18 +50,18 @@ def hermitian_part(r: np.ndarray) -> np.ndarray:
     return out
 
 
-def _check_stops(start: int, size: int, stops: np.ndarray) -> np.ndarray:
-    stops = np.asarray(stops, dtype=np.int64).reshape(-1)
-    if stops.size and (np.any(np.diff(stops) <= 0) or stops[0] <= start or stops[-1] > start + size):
-        raise ValueError(f"stops must be increasing and within ({start}, {start + size}]")
-    return stops
+def _check_stops(start: int, size: int, checkpoints: np.ndarray) -> np.ndarray:
+    checkpoints = np.asarray(checkpoints, dtype=np.int64).reshape(-1)
+    if checkpoints.size and (np.any(np.diff(checkpoints) <= 0) or checkpoints[0] <= start or checkpoints[-1] > start + size):
+        raise ValueError(f"checkpoints must be increasing and within ({start}, {start + size}]")
+    return checkpoints
 
 
 class GrowingSums:
     """Running ``S(k) = sum_{j<k} x_j x_j^H`` over all snapshots seen (growing window).
 
-    ``advance(data, start, stops)`` feeds a block (T, B, N) starting at snapshot
-    ``start`` and returns S at each snapshot count in ``stops`` (T, len(stops), N, N).
+    ``advance(data, start, checkpoints)`` feeds a block (T, B, N) starting at snapshot
+    ``start`` and returns S at each snapshot count in ``checkpoints`` (T, len(checkpoints), N, N).
     """
 
     def __init__(self, trials: int, elements: int):
@@ -74,14 +74,14 @@ class GrowingSums:
         """Snapshots in the window at snapshot counts k."""
         return np.asarray(k, dtype=np.int64)
 
-    def advance(self, data: np.ndarray, start: int, stops) -> np.ndarray:
+    def advance(self, data: np.ndarray, start: int, checkpoints) -> np.ndarray:
         if start != self.seen:
             raise ValueError(f"blocks must be contiguous: expected start {self.seen}, got {start}")
         t_, b, n = data.shape
-        stops = _check_stops(start, b, stops)
-        out = np.empty((t_, len(stops), n, n), dtype=complex)
+        checkpoints = _check_stops(start, b, checkpoints)
+        out = np.empty((t_, len(checkpoints), n, n), dtype=complex)
         lo = 0
-        for i, s in enumerate(stops):
+        for i, s in enumerate(checkpoints):
             hi = int(s - start)
             if hi > lo:
                 self.total = self.total + outer_sum(data[:, lo:hi])
@@ -123,21 +123,21 @@ class SlidingSums:
     def count(self, k: np.ndarray) -> np.ndarray:
         return np.minimum(np.asarray(k, dtype=np.int64), self.length)
 
-    def advance(self, data: np.ndarray, start: int, stops) -> np.ndarray:
+    def advance(self, data: np.ndarray, start: int, checkpoints) -> np.ndarray:
         if start != self.seen:
             raise ValueError(f"blocks must be contiguous: expected start {self.seen}, got {start}")
         t_, b, n = data.shape
-        stops = _check_stops(start, b, stops)
+        checkpoints = _check_stops(start, b, checkpoints)
         stop = start + b
         L = self.length
         rebuilds = np.arange(self.rebuilt + L, stop + 1, L)
-        cuts = np.union1d(stops, rebuilds[rebuilds > start])
+        cuts = np.union1d(checkpoints, rebuilds[rebuilds > start])
         if not cuts.size or cuts[-1] != stop:
             cuts = np.append(cuts, stop)
         history = np.concatenate([self.buffer, data], axis=1) if self.buffer.shape[1] else data
         hist_start = start - self.buffer.shape[1]
-        out = np.empty((t_, len(stops), n, n), dtype=complex)
-        wanted = {int(s): i for i, s in enumerate(stops)}
+        out = np.empty((t_, len(checkpoints), n, n), dtype=complex)
+        wanted = {int(s): i for i, s in enumerate(checkpoints)}
         lo = start
         for hi in cuts:
             hi = int(hi)
@@ -501,10 +501,10 @@ class SampleCovarianceProcessor(Processor):
                           "loading above the known noise) if the noise power is known",
                           RuntimeWarning, stacklevel=4)
 
-    def update_times(self, stops) -> np.ndarray:
+    def update_times(self, checkpoints) -> np.ndarray:
         """Update time ``u = floor(c/interval) * interval`` behind each checkpoint c."""
         every = int(self.window_settings()[2])
-        return (np.asarray(stops, dtype=np.int64) // every) * every
+        return (np.asarray(checkpoints, dtype=np.int64) // every) * every
 
     def window_start(self, times) -> np.ndarray:
         """First snapshot of the training window ending at each update time (exclusive
@@ -515,16 +515,16 @@ class SampleCovarianceProcessor(Processor):
             return np.maximum(times - int(length), 0)
         return np.zeros_like(times)
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
-        stops = np.asarray(stops, dtype=np.int64)
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
+        checkpoints = np.asarray(checkpoints, dtype=np.int64)
         every = int(self.window_settings()[2])
-        times = self.update_times(stops)
+        times = self.update_times(checkpoints)
         last = (block.stop // every) * every
         wanted = np.union1d(times[times > block.start],
                             [last] if last > block.start else []).astype(np.int64)
         sums = state.sums.advance(block.training, block.start, wanted)
         t_, n = state.context.trials, state.context.elements
-        if not stops.size:
+        if not checkpoints.size:
             if wanted.size:
                 state.held = (sums[:, -1], int(wanted[-1]))
             return np.empty((t_, 0, n), dtype=complex)
@@ -540,21 +540,21 @@ class SampleCovarianceProcessor(Processor):
                 table[:, i] = state.held[0]
         if wanted.size:
             state.held = (sums[:, -1], int(wanted[-1]))
-        return self.weights_from_sums(state, stops, distinct, table)
+        return self.weights_from_sums(state, checkpoints, distinct, table)
 
-    def weights_from_sums(self, state: State, stops, distinct: np.ndarray, table: np.ndarray,
+    def weights_from_sums(self, state: State, checkpoints, distinct: np.ndarray, table: np.ndarray,
                           rows: slice = slice(None), hermitian: bool = False) -> np.ndarray:
-        """Weights (T, len(stops), N) at checkpoints ``stops`` from the window sums
+        """Weights (T, len(checkpoints), N) at checkpoints ``checkpoints`` from the window sums
         ``table`` (T, len(distinct), N, N) at the distinct nonzero update times
         ``distinct`` (sorted) behind them; ``rows`` selects the trials of the batch the
         table holds (all by default); ``hermitian``: the caller guarantees the sums are
         exactly Hermitian, so the symmetrisation is skipped (it would change nothing).
         Shared by the streaming path and the drawn covariance path
         (:mod:`adapt.engine.drawn`)."""
-        stops = np.asarray(stops, dtype=np.int64)
-        times = self.update_times(stops)
+        checkpoints = np.asarray(checkpoints, dtype=np.int64)
+        times = self.update_times(checkpoints)
         t_, n = table.shape[0], state.context.elements
-        w = np.empty((t_, len(stops), n), dtype=complex)
+        w = np.empty((t_, len(checkpoints), n), dtype=complex)
         w[:, times == 0] = state.initial[rows][:, None, :]
         if distinct.size and self.smoothing_settings()[0] is not None:
             w[:, times > 0] = self._smoothed_weights(state, table, distinct, hermitian)[

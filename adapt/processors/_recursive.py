@@ -30,11 +30,11 @@ __all__ = ["local_marks", "per_snapshot", "lms_pass", "moments_of", "eigen_exten
            "starting_weights", "Projector", "constrained_pass"]
 
 
-def local_marks(block, stops) -> np.ndarray:
+def local_marks(block, checkpoints) -> np.ndarray:
     """0-based in-block indices of the snapshots after which the weights are recorded:
     checkpoint c (c snapshots seen, ``start < c <= stop``) is recorded right after
     in-block snapshot ``c - start - 1``."""
-    marks = np.asarray(stops, dtype=np.int64) - int(block.start) - 1
+    marks = np.asarray(checkpoints, dtype=np.int64) - int(block.start) - 1
     if marks.size and (marks[0] < 0 or marks[-1] >= block.stop - block.start
                        or np.any(np.diff(marks) <= 0)):
         raise ValueError("checkpoints must be sorted, unique and inside the block")

@@ -102,7 +102,7 @@ class Tapped:
                      reference_line=TapLine(centre_tap(self.taps) + 1),
                      initial=self.inner.initial_weights(stacked), last_data=None)
 
-    def update(self, state: State, block, stops) -> np.ndarray:
+    def update(self, state: State, block, checkpoints) -> np.ndarray:
         data_line, training_line = state.lines
         data = data_line(block.data)
         training = data if block.training is block.data else training_line(block.training)
@@ -110,8 +110,8 @@ class Tapped:
         state.last_data = data
         w = self.inner.update(state.inner,
                               Block(block.start, block.stop, data, None, training, ref, None),
-                              stops)
-        early = np.asarray(stops) < self.taps - 1
+                              checkpoints)
+        early = np.asarray(checkpoints) < self.taps - 1
         if early.any():     # incomplete stacks: a look response may be undefined there
             bad = early[None, :] & ~np.isfinite(w).all(axis=-1)
             w[bad] = np.broadcast_to(state.initial[:, None, :], w.shape)[bad]

@@ -142,6 +142,6 @@ class Conventional(Processor):
     def initial_weights(self, context: Context) -> np.ndarray:
         return self._weight(context).copy()
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         w = state.w
-        return np.broadcast_to(w[:, None, :], (w.shape[0], len(stops), w.shape[1])).copy()
+        return np.broadcast_to(w[:, None, :], (w.shape[0], len(checkpoints), w.shape[1])).copy()

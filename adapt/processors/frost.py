@@ -238,6 +238,6 @@ class FrostConstrainedLms(AutoStep):
         wc = np.conj(np.broadcast_to(proj.quiescent, (context.trials, context.elements)))
         return State(context=context, proj=proj, steps=steps, wc=wc)
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         return constrained_pass(state.wc, per_snapshot(block.training),
-                                local_marks(block, stops), state.steps, state.proj)
+                                local_marks(block, checkpoints), state.steps, state.proj)

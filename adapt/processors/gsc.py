@@ -100,8 +100,8 @@ class GeneralisedSidelobeCanceller(Processor):
         wc = np.conj(np.broadcast_to(proj.quiescent, (context.trials, context.elements)))
         return State(context=context, proj=proj, wc=wc)
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         x = per_snapshot(block.training)                      # (B, T, N)
         px = state.proj.project(x)                            # B B^H x = P x
         gain = normalised_gain(px, self.params["step"], self.params["eps"])
-        return constrained_pass(state.wc, x, local_marks(block, stops), gain, state.proj, px)
+        return constrained_pass(state.wc, x, local_marks(block, checkpoints), gain, state.proj, px)

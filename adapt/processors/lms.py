@@ -113,7 +113,7 @@ class LeastMeanSquares(AutoStep):
         return State(context=context, steps=self._steps(context),
                      wc=np.conj(self.initial_weights(context)))
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
-        marks = local_marks(block, stops)
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
+        marks = local_marks(block, checkpoints)
         return _kernels.lms_block(state.wc, block.data, marks, gain=state.steps,
                                   desired=block.reference)

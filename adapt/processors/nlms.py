@@ -85,8 +85,8 @@ class NormalisedLms(Processor):
     def begin(self, context: Context) -> State:
         return State(context=context, wc=np.conj(self.initial_weights(context)))
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
-        marks = local_marks(block, stops)
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
+        marks = local_marks(block, checkpoints)
         return _kernels.lms_block(state.wc, block.data, marks, gain=None,
                                   desired=block.reference, step=self.params["step"],
                                   eps=self.params["eps"])

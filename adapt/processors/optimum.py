@@ -86,13 +86,13 @@ class Optimum(Processor):
         r = context.covariance(np.array([0]))[:, 0]
         return mvdr(r, context.look)
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         t_, n = state.context.trials, state.context.elements
-        stops = np.asarray(stops, dtype=np.int64)
-        if not stops.size:
+        checkpoints = np.asarray(checkpoints, dtype=np.int64)
+        if not checkpoints.size:
             return np.empty((t_, 0, n), dtype=complex)
-        r = state.context.covariance(stops)                     # (T, C, N, N)
+        r = state.context.covariance(checkpoints)                     # (T, C, N, N)
         if np.all(r == r[:, :1]):
             w = self._solve(state, r[:, 0])
-            return np.repeat(w[:, None, :], len(stops), axis=1)
+            return np.repeat(w[:, None, :], len(checkpoints), axis=1)
         return mvdr(r, state.context.look)

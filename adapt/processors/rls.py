@@ -97,7 +97,7 @@ class RecursiveLeastSquares(Processor):
         p[:, np.arange(n), np.arange(n)] = 1.0 / delta
         return State(context=context, p=p, wc=np.conj(self.initial_weights(context)))
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         return _kernels.rls_block(state.p, state.wc, block.data, block.reference,
                                   float(self.params["forgetting"]), block.start,
-                                  local_marks(block, stops))
+                                  local_marks(block, checkpoints))

@@ -159,12 +159,12 @@ class SubbandMvdr(Processor):
         w = x / np.conj(np.einsum("...n,...n->...", np.conj(a), x))[..., None]
         return self._fir(w)
 
-    def update(self, state: State, block, stops: np.ndarray) -> np.ndarray:
+    def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         f = self.params["bins"]
         t_ = state.context.trials
         buf = np.concatenate([state.left, block.training], axis=1)
         count = buf.shape[1] // f
-        wanted = {int(s) // f for s in np.asarray(stops, dtype=np.int64)}
+        wanted = {int(s) // f for s in np.asarray(checkpoints, dtype=np.int64)}
         kept = {state.frames: state.sums.copy()}
         if count:
             frames = buf[:, :count * f].reshape(t_, count, f, -1) * state.win[:, None]
@@ -176,8 +176,8 @@ class SubbandMvdr(Processor):
                 if state.frames in wanted:
                     kept[state.frames] = state.sums.copy()
         state.left = buf[:, count * f:].copy()
-        out = np.empty((t_, len(stops), f * state.context.elements), dtype=complex)
-        for i, s in enumerate(np.asarray(stops, dtype=np.int64)):
+        out = np.empty((t_, len(checkpoints), f * state.context.elements), dtype=complex)
+        for i, s in enumerate(np.asarray(checkpoints, dtype=np.int64)):
             done = int(s) // f
             out[:, i] = self._weights(state, kept[done], done)
         return out
