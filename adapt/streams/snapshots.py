@@ -148,6 +148,19 @@ class Block:
         return self.data - self.signal
 
 
+
+def _received(scene, data: np.ndarray, interference: np.ndarray, full_scale):
+    """(data, training) as the receiver delivers them: through the ADC model when the
+    scene has one; training is the interference alone or the data, as the scene says."""
+    bits = scene.receiver.bits
+    if bits is not None:
+        data = quantise(data, bits, full_scale)
+        training = (quantise(interference, bits, full_scale)
+                    if scene.training == "interference" else data)
+    else:
+        training = interference if scene.training == "interference" else data
+    return data, training
+
 class TrialBatch:
     """Trials ``first_trial`` .. ``first_trial + trials - 1`` of a scene.
 
@@ -516,12 +529,7 @@ class TrialBatch:
                 else:
                     signal = reference[..., None] * self.steering(d_idx, kk)
                     data = signal + interference
-            if rx.bits is not None:
-                data = quantise(data, rx.bits, full_scale)
-                training = (quantise(interference, rx.bits, full_scale)
-                            if sc.training == "interference" else data)
-            else:
-                training = interference if sc.training == "interference" else data
+            data, training = _received(sc, data, interference, full_scale)
             yield Block(start, start + size, data, signal, training, reference, desired_a)
 
     def _noise_field(self, noise: np.ndarray, keys, start: int, take) -> None:
@@ -578,12 +586,7 @@ class TrialBatch:
                 else:
                     interference += part
             data = interference + signal
-            if rx.bits is not None:
-                data = quantise(data, rx.bits, full_scale)
-                training = (quantise(interference, rx.bits, full_scale)
-                            if sc.training == "interference" else data)
-            else:
-                training = interference if sc.training == "interference" else data
+            data, training = _received(sc, data, interference, full_scale)
             yield Block(start, start + size, data, signal, training, reference, None)
 
     def samples(self, snapshots: int | None = None) -> Block:
