@@ -492,7 +492,6 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     and snapshots to 3 dB: Reed, Mallett and Brennan, IEEE Trans. AES-10(6), 1974.
     Bootstrap of the robustness margin: Efron and Tibshirani (1993).
     """
-    _check_target(target_db, fraction)
     return _compare(scene, processors, trials, snapshots, seed, checkpoints, progress,
                     target_db=target_db, fraction=fraction, tail=tail, chunk=chunk,
                     workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
@@ -539,19 +538,6 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
         raise InputError("command_line is text", path="command_line",
                          value=type(command_line).__name__)
     return write_compare_run(comparison, out, command_line=command_line)
-
-
-def _check_target(target_db, fraction) -> None:
-    """The target loss (a finite number of dB) and the share of trials in (0, 1]."""
-    import math
-    if isinstance(target_db, bool) or not isinstance(target_db, (int, float)) \
-            or not math.isfinite(target_db):
-        raise InputError("the target loss must be a finite number of dB", path="target_db",
-                         value=target_db, allowed="a finite number, e.g. 3")
-    if isinstance(fraction, bool) or not isinstance(fraction, (int, float)) \
-            or not 0 < fraction <= 1:
-        raise InputError("the share of trials must be in (0, 1]", path="fraction",
-                         value=fraction, allowed="a number in (0, 1], e.g. 0.9")
 
 
 def read_run(folder):

@@ -54,6 +54,7 @@ from adapt.engine.settings import (
     prepare_scene,
     whole_count,
 )
+from adapt.errors import InputError
 from adapt.numerics.units import power_db as _db
 from adapt.processors import is_clairvoyant
 from adapt.report.numbers import format_number
@@ -567,6 +568,20 @@ class Comparison:
         return self.table()
 
 
+def check_target(target_db, fraction) -> None:
+    """The target loss (a finite number of dB) and the share of trials in (0, 1]:
+    InputError before any work."""
+    import math
+    if isinstance(target_db, bool) or not isinstance(target_db, (int, float)) \
+            or not math.isfinite(target_db):
+        raise InputError("the target loss must be a finite number of dB", path="target_db",
+                         value=target_db, allowed="a finite number, e.g. 3")
+    if isinstance(fraction, bool) or not isinstance(fraction, (int, float)) \
+            or not 0 < fraction <= 1:
+        raise InputError("the share of trials must be in (0, 1]", path="fraction",
+                         value=fraction, allowed="a number in (0, 1], e.g. 0.9")
+
+
 def compare(scene, processors: Sequence | None = None, trials: int | None = None,
             snapshots: int | None = None, seed: int | None = None, checkpoints=None,
             progress: Callable[[int], None] | None = None, *, target_db: float = 3.0,
@@ -591,6 +606,7 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     scores (pointing error, peak sidelobe), the costliest part of the summary. Results are bit-identical whatever the
     chunking, the number of threads or workers or any interruption and resume.
     """
+    check_target(target_db, fraction)
     used, procs = prepare_scene(scene, processors, trials, snapshots, seed)
     checkpoints = checkpoints_for(checkpoints, used.snapshots)
     tail = whole_count(tail, "tail", MAX_SNAPSHOTS, low=0)
