@@ -388,11 +388,23 @@ def test_drawn_covariances_are_refused_for_wideband_scenes_and_taps():
     assert covariance_draw_refusal(_scene(fb=None), [parse_spec("smi")]) is None
 
 
-def test_record_refuses_space_time_weights_with_one_message(tmp_path):
-    from adapt.errors import InputError
-    from adapt.studies.reference import record
-    with pytest.raises(InputError, match="cannot be recorded yet"):
-        record(_scene(fb=None), "smi taps=2", 1, 32, [8, 32], tmp_path / "set")
+def test_subband_output_samples_apply_its_filters_to_the_stacked_snapshots():
+    # held-weight outputs of the sub-band processor (N F weights of an N-element stream):
+    # y_k = w^H z_k over z_k = [x_k; ...; x_{k-F+1}], whatever the block size
+    sc = _scene(fb=0.3, elements=4)
+    batch = TrialBatch(sc, trials=2)
+    f, cps = 4, [40, 120]
+    runs = [run_processors([parse_spec(f"subband bins={f}")], batch.blocks(160, block=b),
+                           Context.from_batch(batch), cps, outputs=True)[0]
+            for b in (13, 160)]
+    assert np.allclose(runs[0].outputs, runs[1].outputs, rtol=1e-12, atol=1e-13)
+    res = runs[1]
+    z = wb.TapLine(f)(batch.samples(160).data)
+    for i, (lo, hi) in enumerate(((40, 120), (120, 160))):
+        direct = np.einsum("tn,tkn->tk", np.conj(res.weights[:, i]), z[:, lo:hi])
+        assert np.allclose(res.outputs[:, lo:hi], direct, rtol=1e-12, atol=1e-12)
+    early = np.einsum("tn,tkn->tk", np.conj(res.initial), z[:, :40])
+    assert np.allclose(res.outputs[:, :40], early, rtol=1e-12, atol=1e-12)
 
 
 def test_filter_bank_compiled_equals_numpy(monkeypatch):

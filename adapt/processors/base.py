@@ -548,7 +548,8 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
 
     The stream is drawn once and every processor sees every block. Returns one
     :class:`ProcessorResult` per processor: weights (T, C, N), and output samples (T, K)
-    under the held-weight convention when ``outputs`` is True. Reading stops after the
+    under the held-weight convention when ``outputs`` is True (space-time weights of
+    N L entries apply to the stacked snapshots ``[x_k; ...; x_{k-L+1}]``). Reading stops after the
     last checkpoint unless outputs are wanted. ``seconds`` is each processor's own time.
 
     ``on_block(index, block, inside, weights, held)``, if given, is called for every
@@ -558,6 +559,7 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
     import time
 
     from adapt.processors._taps import stacked_data, tapped
+    from adapt.streams.wideband import TapLine
     cps = normalised_checkpoints(checkpoints, snapshots)
     procs = [tapped(p) for p in processors]
     seconds = [0.0] * len(procs)
@@ -571,6 +573,7 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
         initial.append(w0.copy())
     found: list[list[np.ndarray]] = [[] for _ in procs]
     outs: list[list[np.ndarray]] = [[] for _ in procs]
+    lines: dict = {}
     seen = 0
     for block in blocks:
         if block.start != seen:
@@ -588,8 +591,12 @@ def run_processors(processors, blocks: Iterable, context: Context, checkpoints,
             if on_block is not None:
                 on_block(i, block, inside, w, held[i])
             if outputs:
-                y, held[i] = held_outputs(stacked_data(p, states[i], block), block.start,
-                                          held[i], w, inside)
+                data = stacked_data(p, states[i], block)
+                if held[i].shape[-1] != data.shape[-1]:   # N L weights of an N-element
+                    # processor (the sub-band FIR): its own delay line, across blocks
+                    data = lines.setdefault(i, TapLine(held[i].shape[-1]
+                                                       // data.shape[-1]))(data)
+                y, held[i] = held_outputs(data, block.start, held[i], w, inside)
                 outs[i].append(y)
             elif inside.size:
                 held[i] = w[:, -1, :]
