@@ -663,7 +663,10 @@ def record(scene, spec, out_dir, trials: int | None = None, snapshots: int | Non
     pathlib.Path
         The reference-set folder: per case ``samples.npy`` (K, N), ``weights.npy``
         (C, N), ``outputs.npy`` (K,), ``sinr_db.npy`` (C,), the truth, a SigMF copy
-        of the samples, and ``manifest.json``.
+        of the samples, and ``manifest.json``. A wideband scene, ``taps=L`` or
+        ``subband`` makes a space-time set: ``weights.npy`` (C, N L), column ``l N +
+        n`` for element n delayed by l snapshots (tap 0 the newest), the shape in the
+        ``weights`` mapping of ``reference.json`` and ``case.json``.
 
     Raises
     ------
@@ -674,7 +677,8 @@ def record(scene, spec, out_dir, trials: int | None = None, snapshots: int | Non
     References
     ----------
     SigMF, the Signal Metadata Format specification 1.2 (sigmf.org) for the sample
-    copies; the expected SINR: Van Trees, *Optimum Array Processing* (2002), ch. 6.
+    copies; the expected SINR: Van Trees, *Optimum Array Processing* (2002), ch. 6
+    (space-time weights: the broadband chapter).
     """
     from adapt.studies.reference import record as _record
     return _record(_scene(scene), spec, trials, snapshots, checkpoints, out_dir,
@@ -689,9 +693,10 @@ def verify(reference_dir, implementation, **options):
     reference_dir : str or os.PathLike
         A reference set written by :func:`record` (checked against its manifest).
     implementation : callable or str
-        A callable ``f(case) -> weights (C, N)``, a ``"python:MODULE:FUNCTION"`` or
-        ``"python:file.py:FUNCTION"`` text, or a command template containing
-        ``{case}`` and ``{out}``, e.g. ``"PROGRAM {case} {out}"``.
+        A callable ``f(case) -> weights (C, N)`` ((C, N L) in a space-time set), a
+        ``"python:MODULE:FUNCTION"`` or ``"python:file.py:FUNCTION"`` text, or a
+        command template containing ``{case}`` and ``{out}``, e.g. ``"PROGRAM {case}
+        {out}"``.
     **options
         Keyword options of :func:`adapt.studies.reference.verify`: ``tolerances``
         (overrides, mapping or ``NAME=VALUE``), ``timeout`` (seconds per case for
@@ -703,16 +708,17 @@ def verify(reference_dir, implementation, **options):
     -------
     VerifyReport
         One result per case (``cases``) and ``passed``: crashes, timeouts and missing
-        output are errors; wrong shapes, NaN or a metric (SINR difference, weight
-        error, output EVM, in dB) beyond tolerance are failures.
+        output are errors; NaN or a metric (SINR difference, weight error, output
+        EVM, in dB) beyond tolerance are failures.
 
     Raises
     ------
     InputError
         When ``reference_dir`` is not a path; :class:`~adapt.errors.CorruptReferenceError`
         (an InputError) when the set is missing, damaged or does not match its
-        manifest; InputError for a bad tolerance, timeout or ``scale_blind``.
-        TypeError for an option that :func:`adapt.studies.reference.verify` does not
+        manifest; InputError for a bad tolerance, timeout or ``scale_blind``;
+        :class:`~adapt.studies.reference.WeightShapeError` (an InputError) at the first
+        case whose weights have the wrong shape (its ``report`` says which). TypeError for an option that :func:`adapt.studies.reference.verify` does not
         take.
 
     References

@@ -236,7 +236,7 @@ def test_bad_returns_are_per_case_failures(smi_ref, tmp_path):
             raise ZeroDivisionError("boom")
         w = reference_implementation(case)
         if case.name == "case-0001":
-            return w.T[:, :5]                       # wrong shape
+            return np.array(["not", "numbers"])     # no numeric weights
         w[2, 1] = np.nan
         return w
 
@@ -245,7 +245,7 @@ def test_bad_returns_are_per_case_failures(smi_ref, tmp_path):
     kinds = [c.kind for c in rep.cases]
     assert kinds == ["error", "failure", "failure"]
     assert "ZeroDivisionError" in rep.cases[0].message
-    assert "shape" in rep.cases[1].message and "NaN" in rep.cases[2].message
+    assert "numeric" in rep.cases[1].message and "NaN" in rep.cases[2].message
     path = write_report_junit(rep, tmp_path / "junit.xml")
     root = ET.parse(path).getroot()
     suite = root.find("testsuite")
@@ -253,7 +253,7 @@ def test_bad_returns_are_per_case_failures(smi_ref, tmp_path):
     cases = suite.findall("testcase")
     assert [c.get("name") for c in cases] == ["case-0000", "case-0001", "case-0002"]
     assert cases[0].find("error") is not None and cases[1].find("failure") is not None
-    assert "shape" in cases[1].find("failure").get("message")
+    assert "numeric" in cases[1].find("failure").get("message")
 
 
 # ---------------------------------------------------------------------------- verify (command)
@@ -368,3 +368,214 @@ def test_sigmf_round_trip_with_sigmf_library(smi_ref, tmp_path):
     assert mine == lib
     back = sigmffile.fromfile(str(meta))
     assert np.array_equal(back.read_samples(), got)
+
+
+# ---------------------------------------------------------------------------- space-time
+# A wideband scene (fractional bandwidth 0.4: a 25 dB white jammer and a 20 dB band-
+# limited one) and a pulsing narrowband one; weights of N L entries, column l N + n.
+WIDE = {
+    "name": "reference test wideband",
+    "array": {"layout": "line", "elements": 4, "spacing": 0.5},
+    "receiver": {"fractional_bandwidth": 0.4},
+    "sources": [
+        {"name": "wanted", "role": "desired", "azimuth": 10, "power_db": 0, "waveform": "qpsk"},
+        {"name": "jam-a", "role": "interferer", "azimuth": -40, "power_db": 25},
+        {"name": "jam-b", "role": "interferer", "azimuth": 50, "power_db": 20,
+         "bandwidth": 0.5, "offset": 0.1},
+    ],
+    "snapshots": 96, "trials": 2, "seed": 3,
+}
+PULSED = json.loads(json.dumps(SCENE))
+PULSED["sources"][1]["pulsing"] = {"start": 0, "period": 40, "on": 20}
+# name -> (scene, spec, taps of the weights, checkpoints)
+SPACE_TIME = {
+    "smi": (WIDE, "smi taps=3 loading_db=3", 3, None),
+    "nlms": (PULSED, "nlms taps=2 step=0.2", 2, [10, 30, 60, 96]),
+    "frost": (WIDE, "frost taps=3 step=2e-5", 3, None),
+    "subband": (WIDE, "subband bins=8", 8, [8, 24, 40, 96]),
+    "spatial": (WIDE, "smi loading_db=3", 1, None),      # a wideband scene, one tap
+}
+
+
+@pytest.fixture(scope="module")
+def space_time_sets(tmp_path_factory):
+    root = tmp_path_factory.mktemp("space-time")
+    return {name: record(parse_scene(scene), spec, 2, 96, cps, root / name)
+            for name, (scene, spec, _, cps) in SPACE_TIME.items()}
+
+
+@pytest.mark.parametrize("name", list(SPACE_TIME))
+def test_space_time_set_layout_truth_and_round_trip(space_time_sets, name):
+    from scipy.linalg import eigh
+
+    from adapt.engine.evaluate import evaluate_batch
+    from adapt.engine.scores import to_db
+    from adapt.processors import parse_spec
+    from adapt.streams.snapshots import TrialBatch
+    from adapt.studies.reference import SPACE_TIME_METRICS
+    scene, spec, taps, _ = SPACE_TIME[name]
+    n = scene["array"]["elements"]
+    m = n * taps
+    folder = space_time_sets[name]
+    ref = load_reference(folder)
+    info = ref.info
+    c = len(info["checkpoints"])
+    # the shape metadata a candidate in any language reads (format version 2)
+    assert info["format_version"] == 2
+    assert info["weights"]["shape"] == [c, m] and info["weights"]["elements"] == n
+    assert info["weights"]["taps"] == taps and info["weights"]["column"] == "l*N + n"
+    assert ("bins" in info["weights"]) == (name == "subband")
+    wide = "receiver" in scene
+    assert info["fractional_bandwidth"] == (0.4 if wide else 0.0)
+    case_json = json.loads((folder / "case-0000" / "case.json").read_text())
+    assert case_json["weights"] == info["weights"]
+    assert json.loads((folder / "tolerances.json").read_text())["metrics"] == SPACE_TIME_METRICS
+    c0 = ref.cases[0]
+    assert (folder / "case-0000" / "truth_signal_covariance.npy").is_file()
+    assert c0.samples.shape == (96, n) and c0.weights.shape == (c, m)
+    truth = (m, m) if wide else (c, m, m)            # the pulsing scene: per checkpoint
+    assert c0.truth_covariance.shape == truth and c0.signal_covariance.shape == truth
+    # outputs are y_k = w^H z_k on stacked snapshots written out independently
+    z = cand.stacked(c0.samples, taps)
+    cps = c0.checkpoints
+    j = int(cps[1]) + 1                              # held weight: checkpoint 1
+    assert c0.outputs[j] == pytest.approx(np.vdot(c0.weights[1], z[j]), rel=1e-10)
+    # SINR on the truth below the optimum for the same taps, the largest generalised
+    # eigenvalue of (R_s, R_in) (Van Trees 2002, broadband chapter; scipy.linalg.eigh)
+    rs = c0.signal_covariance if wide else c0.signal_covariance[-1]
+    rin = c0.truth_covariance if wide else c0.truth_covariance[-1]
+    best = 10 * np.log10(eigh(rs, rin, eigvals_only=True)[-1])
+    assert c0.sinr_db[-1] <= best + 1e-9
+    # the recorded SINR is the engine's score of the same processor on the same trials
+    sc = parse_scene(scene)
+    ev = evaluate_batch(TrialBatch(sc, trials=2), [parse_spec(spec)], cps, 96)
+    got = np.array([case.sinr_db for case in ref.cases])
+    assert np.allclose(to_db(ev.processors[0].sinr), got, rtol=0, atol=1e-6)
+    # the candidate-style re-computation from the stored samples reproduces the weights
+    rep = verify(ref, reference_implementation)
+    assert rep.passed, format_report(rep)
+    assert all(np.nanmax(r.weight_error_db) < -200 for r in rep.cases)
+
+
+def test_independent_space_time_candidates_pass_and_a_misread_tap_order_fails(
+        space_time_sets):
+    # written from the documented layout alone: stacked SMI with the look at the centre
+    # tap (Frost 1972; Compton 1988, ch. 7) and the sub-band recipe of the set
+    rep = verify(space_time_sets["smi"], cand.space_time_smi)
+    assert rep.passed, format_report(rep)
+    rep = verify(space_time_sets["subband"], cand.subband_mvdr)
+    assert rep.passed, format_report(rep)
+    wrong = verify(space_time_sets["smi"], lambda c: cand.space_time_smi(c, oldest_first=True))
+    assert not wrong.passed
+    assert all("weight_error_db" in r.message for r in wrong.cases)
+
+
+def test_scaled_weight_error_definition():
+    from adapt.studies.reference import scaled_weight_error_db
+    rng = np.random.default_rng(4)
+    w = rng.standard_normal(12) + 1j * rng.standard_normal(12)
+    assert scaled_weight_error_db((0.2 - 3j) * w, w) == pytest.approx(-300.0)
+    # an error e orthogonal to w: the best scale leaves ||e|| / sqrt(||w||^2 + ||e||^2)
+    e = rng.standard_normal(12) + 1j * rng.standard_normal(12)
+    e -= w * np.vdot(w, e) / np.vdot(w, w)
+    e *= 0.01 * np.linalg.norm(w) / np.linalg.norm(e)
+    want = 20 * np.log10(0.01 / np.sqrt(1 + 1e-4))
+    assert scaled_weight_error_db(w + e, w) == pytest.approx(want, abs=1e-9)
+    assert scaled_weight_error_db(np.zeros(12), w) == pytest.approx(0.0)
+
+
+def test_perturbed_space_time_weight_fails_naming_the_case(space_time_sets, tmp_path):
+    ref = load_reference(space_time_sets["frost"])
+    cps = ref.cases[1].checkpoints
+
+    def perturbed(case):
+        w = reference_implementation(case)
+        if case.name == "case-0001":
+            i = 2 * 4 + 1                           # tap 2, element 1 (column l N + n)
+            w[2, i] += 0.05 * np.linalg.norm(w[2])  # about -26 dB at checkpoint index 2
+        return w
+
+    rep = verify(ref, perturbed)
+    assert [r.kind for r in rep.cases] == ["pass", "failure"]
+    bad = rep.cases[1]
+    assert "weight_error_db = " in bad.message and f"at checkpoint {cps[2]}" in bad.message
+    assert bad.weight_error_db[2] == pytest.approx(20 * np.log10(0.05), abs=0.5)
+    root = ET.parse(write_report_junit(rep, tmp_path / "j.xml")).getroot()
+    cases = root.find("testsuite").findall("testcase")
+    assert cases[0].find("failure") is None and cases[1].find("failure") is not None
+    assert "weight_error_db" in cases[1].find("failure").get("message")
+
+
+def test_wrong_weight_shape_is_refused_with_exit_2(run_cli, space_time_sets, smi_set,
+                                                   tmp_path, write_file):
+    spatial = write_file("spatial.py", "import numpy as np\n"
+                         "def f(case):\n"
+                         "    return np.zeros((len(case.checkpoints), case.samples.shape[1]),"
+                         " complex)\n")
+    folder = space_time_sets["smi"]
+    c = len(load_reference(folder).cases[0].checkpoints)
+    junit = tmp_path / "j.xml"
+    code, out, err = run_cli(["verify", folder, "--python", f"{spatial}:f", "--junit", junit])
+    assert code == 2, out + err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    assert f"shape ({c}, 4), expected ({c}, 12)" in err and "case-0000" in err
+    assert "N x L = 4 x 3" in err
+    cases = ET.parse(junit).getroot().find("testsuite").findall("testcase")
+    assert "expected" in cases[0].find("error").get("message")
+    assert "not run" in cases[1].find("error").get("message")
+    # a command writing spatial weights is refused the same way
+    good = f"{sys.executable} {CANDIDATE} good {{case}} {{out}}"
+    code, out, err = run_cli(["verify", folder, "--command", good])
+    assert code == 2 and f"expected ({c}, 12)" in err
+    # and a narrowband set refuses a wrong shape too
+    code, out, err = run_cli(["verify", smi_set, "--python", f"{spatial}:f"])
+    assert code == 1 and "FAIL" in out, out + err   # (C, N) is its shape: compared
+    short = write_file("short.py", "from adapt.studies.reference import "
+                       "reference_implementation as r\n"
+                       "def f(case):\n    return r(case)[:, :5]\n")
+    code, out, err = run_cli(["verify", smi_set, "--python", f"{short}:f"])
+    assert code == 2 and "shape (6, 5), expected (6, 6)" in err
+    with pytest.raises(InputError, match="expected"):
+        verify(smi_set, lambda case: reference_implementation(case)[:, :5])
+
+
+def test_narrowband_sets_keep_the_version_1_layout(smi_set, smi_ref):
+    from adapt.studies.reference import METRICS
+    info = json.loads((smi_set / "reference.json").read_text())
+    assert info["format_version"] == 1
+    assert set(info) == {"format", "format_version", "scene", "scene_file", "seed",
+                         "processor", "method", "label", "trials", "snapshots", "elements",
+                         "checkpoints", "cases", "uses_reference", "versions",
+                         "scene_mapping"}
+    meta = json.loads((smi_set / "case-0000" / "case.json").read_text())
+    assert set(meta) == {"case", "trial", "method", "spec", "label", "params",
+                         "uses_reference", "stream", "noise_power", "elements", "snapshots",
+                         "checkpoints", "look_direction", "positions"}
+    truth = json.loads((smi_set / "case-0000" / "truth.json").read_text())
+    assert "sinr" not in truth
+    assert json.loads((smi_set / "tolerances.json").read_text())["metrics"] == METRICS
+    assert not (smi_set / "case-0000" / "truth_signal_covariance.npy").exists()
+    assert all(c.signal_covariance is None and c.taps == 1 for c in smi_ref.cases)
+
+
+def test_space_time_sets_too_big_are_refused(tmp_path, monkeypatch):
+    from adapt.studies import reference as refmod
+    scene = parse_scene(WIDE)
+    monkeypatch.setattr(refmod, "_MAX_STACKED", 2 * 96 * 4 * 3 - 1)
+    with pytest.raises(InputError, match="stacked snapshots"):
+        record(scene, "smi taps=3 loading_db=3", 2, 96, None, tmp_path / "a")
+    monkeypatch.setattr(refmod, "_MAX_STACKED", 1 << 26)
+    monkeypatch.setattr(refmod, "_MAX_TRUTH_VALUES", 2 * 2 * 12 * 12 - 1)
+    with pytest.raises(InputError, match="space-time truth"):
+        record(scene, "smi taps=3 loading_db=3", 2, 96, None, tmp_path / "b")
+    assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+
+
+def test_recorded_frost_weights_hold_the_fir_look_constraint_per_tap(space_time_sets):
+    # Frost (1972): C^H w = f with C = [e_0 (x) a, ..., e_{L-1} (x) a]; the default f is
+    # a pure delay at the centre tap (L-1)//2 = 1, so reading the columns as l N + n
+    # gives sum_n conj(a_n) w[l, n] = (0, 1, 0) at every checkpoint
+    for case in load_reference(space_time_sets["frost"]).cases:
+        w = case.weights.reshape(len(case.checkpoints), 3, 4)
+        resp = np.einsum("cln,n->cl", w, np.conj(case.steering))
+        assert np.allclose(resp, [0, 1, 0], atol=1e-10)

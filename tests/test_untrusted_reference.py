@@ -358,3 +358,69 @@ def test_scale_hint_and_scale_blind_option(genuine, run_cli):
     # complex scale: said with its phase
     rep = verify(genuine, lambda case: reference_implementation(case) * 2j)
     assert "at -90.0 degrees" in rep.cases[0].message or "at 90.0 degrees" in rep.cases[0].message
+
+
+# ---------------------------------------------------------------------- space-time sets
+@pytest.fixture(scope="module")
+def genuine_space_time(tmp_path_factory):
+    out = tmp_path_factory.mktemp("untrusted-st") / "set"
+    return record(parse_scene(SCENE), "smi taps=2 loading_db=10", 2, 32, [4, 8, 32], out)
+
+
+def _edit_json(folder: Path, rel: str, change) -> None:
+    path = folder / rel
+    doc = json.loads(path.read_text())
+    change(doc)
+    path.write_text(json.dumps(doc))
+    reseal(folder)                                # listed and matching: only the content lies
+
+
+def _set_weights(key, value):
+    def change(doc):
+        doc["weights"][key] = value
+    return change
+
+
+@pytest.mark.parametrize("change, words", [
+    (_set_weights("taps", 10 ** 12), "'weights' must give shape"),
+    (_set_weights("taps", "2"), "'weights' must give shape"),
+    (_set_weights("taps", -1), "'weights' must give shape"),
+    (_set_weights("taps", 2.0), "'weights' must give shape"),
+    (_set_weights("elements", 3), "'weights' must give shape"),
+    (_set_weights("shape", [3, 2 ** 40]), "'weights' must give shape"),
+    (_set_weights("shape", "3 x 8"), "'weights' must give shape"),
+    (_set_weights("column", "n*L + l"), "column order"),
+    (lambda doc: doc.update(weights=[3, 8]), "'weights' must give shape"),
+    (lambda doc: doc.pop("weights"), "'weights' must give shape"),
+    (lambda doc: doc.update(format_version=1), "version 1 set holds spatial weights"),
+    (lambda doc: doc.update(format_version=99), "format_version '99' is not one"),
+    (lambda doc: doc.update(fractional_bandwidth="wide"), "fractional_bandwidth"),
+])
+def test_bogus_shape_header_refused(genuine_space_time, tmp_path, run_cli, change, words):
+    bad = tmp_path / "set"
+    shutil.copytree(genuine_space_time, bad)
+    _edit_json(bad, "reference.json", change)
+    with pytest.raises(CorruptReferenceError, match="reference.json"):
+        load_reference(bad)
+    refused(run_cli, bad, words)
+
+
+def test_case_shape_header_and_arrays_must_agree(genuine_space_time, genuine, tmp_path,
+                                                 run_cli):
+    bad = tmp_path / "case"
+    shutil.copytree(genuine_space_time, bad)
+    _edit_json(bad, "case-0001/case.json", _set_weights("taps", 3))
+    refused(run_cli, bad, "case-0001/case.json: its weights mapping must equal")
+    # weights of the spatial shape in a space-time set
+    bad = tmp_path / "arrays"
+    shutil.copytree(genuine_space_time, bad)
+    aio.write_npy(bad / "case-0000" / "weights.npy", np.ones((3, 4), complex))
+    reseal(bad)
+    refused(run_cli, bad, "has shape (3, 4), expected (3, 8)")
+    # a spatial set claiming space-time weights: the truth of R_s is missing
+    bad = tmp_path / "claim"
+    shutil.copytree(genuine, bad)
+    _edit_json(bad, "reference.json", lambda doc: doc.update(
+        format_version=2, fractional_bandwidth=0.0,
+        weights={"shape": [3, 4], "elements": 4, "taps": 1, "column": "l*N + n"}))
+    refused(run_cli, bad, "truth_signal_covariance.npy: missing")

@@ -22,7 +22,9 @@ def register(subparsers) -> None:
                     "the look steering vector, the reference waveform (LMS-type methods), "
                     "the checkpoints, the expected weights, outputs and SINR curve, and the "
                     "truth to score SINR; plus tolerances, a description and a sha256 "
-                    "manifest. Check other implementations against it with 'adapt verify'.")
+                    "manifest. Wideband scenes, taps=L and subband give space-time weights "
+                    "(checkpoints x N L, column l*N + n). Check other implementations "
+                    "against it with 'adapt verify'.")
     p.add_argument("scene", metavar="SCENE", help="scene YAML file")
     p.add_argument("--processor", required=True, metavar="SPEC",
                    help="processor spec, e.g. 'smi loading_db=10' (quote it)")
@@ -85,6 +87,13 @@ def run(args) -> int:
     print(f"  scene      {info['scene']} (seed {info['seed']}): {info['trials']} cases x "
           f"{info['snapshots']} snapshots x {info['elements']} elements")
     print(f"  checkpoints {', '.join(str(c) for c in info['checkpoints'])}")
+    if "weights" in info:             # a space-time set (format version 2)
+        lay = info["weights"]
+        print(f"  weights    {lay['shape'][0]} x {lay['shape'][1]} per case: "
+              f"{lay['elements']} elements x {lay['taps']} taps, column l*N + n "
+              f"(element n delayed by l snapshots)"
+              + (f"; fractional bandwidth {info['fractional_bandwidth']:g}"
+                 if info["fractional_bandwidth"] else ""))
     print(f"  SINR at the last checkpoint: {', '.join(f'{v:.2f}' for v in last)} dB")
     print("  tolerances " + ", ".join(f"{k} {v:g} dB" for k, v in ref.tolerances.items()))
     return 0

@@ -2,7 +2,9 @@
 check another implementation against a reference set.
 
 Delegates to :func:`adapt.studies.reference.verify`. Exit codes: 0 every case passes, 1 any case
-fails or errors, 2 bad usage or a corrupt reference set (manifest mismatch, NaN).
+fails or errors, 2 bad usage, a corrupt reference set (manifest mismatch, NaN) or a
+candidate returning weights of the wrong shape (verify stops there; the JUnit file marks
+that case an error and the later ones "not run").
 """
 from __future__ import annotations
 
@@ -22,12 +24,12 @@ def register(subparsers) -> None:
     p.add_argument("folder", metavar="DIR", help="reference-set folder")
     how = p.add_mutually_exclusive_group(required=True)
     how.add_argument("--python", metavar="MODULE:FUNCTION",
-                     help="a Python function f(case) -> weights (C, N); MODULE may be a "
-                          "path/to/file.py")
+                     help="a Python function f(case) -> weights (C, N), or (C, N L) in a "
+                          "space-time set; MODULE may be a path/to/file.py")
     how.add_argument("--command", metavar="TEMPLATE",
                      help="a program run per case, e.g. 'python mine.py {case} {out}': "
                           "{case} is a folder with the input .npy files and case.json, "
-                          "{out} the .npy file of weights (C, N) to write")
+                          "{out} the .npy file of weights (C, N), or (C, N L), to write")
     p.add_argument("--tolerance", action="extend", nargs="+", default=[], metavar="NAME=VALUE",
                    help="override the set's tolerances: sinr_db, weight_error_db, "
                         "output_evm_db (dB)")
@@ -45,6 +47,7 @@ def register(subparsers) -> None:
 
 def run(args) -> int:
     from adapt.studies.reference import (
+        WeightShapeError,
         format_report,
         load_reference,
         not_run_report,
@@ -67,8 +70,13 @@ def run(args) -> int:
             except OSError as exc:      # reported after the verdict is printed
                 early.append(exc)
 
-    report = verify(ref, impl, tolerances=args.tolerance, timeout=args.timeout,
-                    scale_blind=args.scale_blind, on_start=on_start)
+    try:
+        report = verify(ref, impl, tolerances=args.tolerance, timeout=args.timeout,
+                        scale_blind=args.scale_blind, on_start=on_start)
+    except WeightShapeError as exc:     # refused (exit 2): the JUnit file says which case
+        if args.junit and exc.report is not None:
+            write_report_junit(exc.report, args.junit)
+        raise
     print(format_report(report))
     if args.junit:
         write_report_junit(report, args.junit)

@@ -22,16 +22,47 @@ Reference-set layout (``record`` writes it, ``load_reference`` reads and checks 
                                 look direction, sizes
         samples.sigmf-data      samples.npy as SigMF: cf32_le, N channels interleaved
         samples.sigmf-meta      per snapshot, sample rate 1 (one sample per snapshot)
-        weights.npy             (C, N) expected weights, applied as y = w^H x
+        weights.npy             (C, N) expected weights, applied as y = w^H x; a
+                                space-time set: (C, N L), see "Space-time weights"
         outputs.npy             (K,) expected outputs y = w^H x over samples.npy under
                                 the held-weight convention
         sinr_db.npy             (C,) output SINR of the expected weights on the truth
         truth_covariance.npy    true interference-plus-noise covariance: (N, N) for a
                                 stationary scene, else (C, N, N) at snapshot index c
+                                (a space-time set: M = N L in place of N)
+        truth_signal_covariance.npy  space-time sets only: the wanted source's true
+                                space-time covariance R_s (power and gate included),
+                                (M, M) stationary, else (C, M, M)
         truth_steering.npy      true wanted steering (hardware errors of the trial):
                                 (N,) stationary, else (C, N) at snapshot index c
         truth.json              wanted-source power (linear, dB) and, per checkpoint,
                                 the power in force (0 while a pulsed source is off)
+
+Space-time weights (``format_version`` 2; a narrowband scene with spatial weights keeps
+version 1 and exactly the files above): a wideband scene (``receiver:
+fractional_bandwidth``), a processor with ``taps=L`` > 1, or the sub-band processor
+``subband`` (whose weights are its synthesis filters, L = F = ``bins``). ``weights.npy``
+is (C, N L), complex128, and ``reference.json`` and every ``case.json`` carry the same
+``weights`` mapping: ``shape`` [C, N L], ``elements`` N, ``taps`` L, ``column``
+``"l*N + n"`` and the order in words. Column ``l N + n`` multiplies element n delayed by
+l snapshots: reshaped C-order to (C, L, N) it reads ``w[c, l, n]``; tap l = 0 is the
+newest snapshot, l = L - 1 the oldest. The output at snapshot k is ``y_k = w^H z_k``
+with ``z_k = [x_k; x_{k-1}; ...; x_{k-L+1}]`` (rows of ``samples.npy``, zeros before
+snapshot 0); :func:`stack_snapshots` builds z. A wideband scene with a spatial
+processor has L = 1 (weights (C, N)) but is still a space-time set: its SINR needs the
+wanted source's covariance. ``case.json`` then also gives ``fractional_bandwidth`` B
+(what a wideband processor's look vector needs: element n's look phase at baseband
+frequency f is ``2 pi p_n.u (1 + f B)``). SINR uses ``w^H R_s w / (w^H R_in w)`` with
+``truth_signal_covariance.npy`` and ``truth_covariance.npy`` (M x M, entries in the
+same order), as the engine scores space-time weights (Van Trees 2002, broadband
+chapter). For ``subband`` the mapping adds ``bins`` F and ``synthesis``: the per-bin
+MVDR weights ``w_b`` (F x N, FFT order: bin b at ``fftfreq(F)[b]`` cycles per snapshot,
+b = 0 .. F - 1) become the stacked weights ``w[l, n] = conj(h_n[l])`` with ``h_n =
+ifft_b(conj(w_b[n]) exp(-j 2 pi nu_b c))``, c = F // 2 (a pure look delay of c
+snapshots); back: ``w_b[n] = conj(fft_l(conj(w[l, n]))[b]) exp(-j 2 pi nu_b c)`` (numpy's
+``fft``/``ifft`` conventions). :data:`SUBBAND_RECIPE` (also written into the mapping)
+gives the whole recipe a candidate reproduces: frames, window, loading, the look vector
+per bin.
 
 Which stream: blind and constrained methods (smi, gsc, frost, eigenspace, ...) adapt on
 the *training* stream (interference plus noise, or the received data when the scene
@@ -58,12 +89,16 @@ below its tolerance):
   magnitude of the output samples); none for a checkpoint at the last snapshot;
   default -40 dB.
 
-Verify modes: a Python callable ``f(case) -> (C, N) weights`` (:class:`CaseInputs`), or a
+Verify modes: a Python callable ``f(case) -> (C, N) weights`` ((C, N L) in a space-time
+set; :class:`CaseInputs`), or a
 command template with ``{case}`` (a folder with the input ``.npy`` files and
 ``case.json``) and ``{out}`` (the ``.npy`` file to write), run with a timeout (killed with its process
 group when it runs over). A Python callable runs in-process without a time limit.
-Per case, a crash, timeout, nonzero exit or missing output is an *error*; a wrong shape,
-NaN/inf or a metric beyond tolerance is a *failure*; both fail the run (exit 1).
+Per case, a crash, timeout, nonzero exit or missing output is an *error*; NaN/inf or a
+metric beyond tolerance is a *failure*; both fail the run (exit 1). Weights of the wrong
+shape (not (C, N), or (C, N L) in a space-time set) mean the candidate reads the set
+wrongly: verify stops there with :class:`WeightShapeError` (exit 2), naming the
+expected and the returned shape.
 
 Note on the output EVM: on interference-only training data the reference output is
 nulled down to the noise, so a weight error leaks the jammers into the output and the
@@ -89,14 +124,14 @@ import tempfile
 import time
 import traceback
 import types
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
 
 from adapt import __version__
-from adapt.engine.scores import output_sinr, to_db
+from adapt.engine.scores import output_sinr, output_sinr_space_time, to_db
 from adapt.errors import CorruptReferenceError, InputError, SpecError, did_you_mean
 from adapt.io import (
     atomic_write_bytes,
@@ -107,19 +142,24 @@ from adapt.io import (
     write_npy,
 )
 from adapt.processors import Context, Processor, parse_spec, run_processors
+from adapt.processors._taps import tapped
 from adapt.processors.base import normalised_checkpoints
 from adapt.report.junit import TestOutcome, write_junit
 from adapt.report.runfolder import StagedFolder
 from adapt.scene.model import Scene
 from adapt.scenefile import scene_to_mapping
+from adapt.streams import wideband
 from adapt.streams.snapshots import Block, TrialBatch
+from adapt.streams.wideband import TapLine
 
 __all__ = ["DEFAULT_TOLERANCES", "METRICS", "record", "load_reference", "verify",
            "ReferenceSet", "ReferenceCase", "CaseInputs", "CaseResult", "VerifyReport",
            "not_run_report", "run_bounded", "parse_npy", "CandidateLoadError",
            "reference_implementation", "load_implementation", "parse_tolerances",
            "format_report", "write_report_junit", "weight_error_db", "output_evm_db",
-           "sinr_difference_db", "write_sigmf", "uses_reference"]
+           "sinr_difference_db", "write_sigmf", "uses_reference", "scaled_weight_error_db",
+           "stack_snapshots", "weight_layout", "WeightShapeError", "SPACE_TIME_ORDER",
+           "SUBBAND_RECIPE", "SPACE_TIME_METRICS"]
 
 FORMAT = "adapt reference set"
 FORMAT_VERSION = 1
@@ -133,8 +173,52 @@ METRICS = {
     "output_evm_db": "20 log10(||y_c - y_r|| / ||y_r||) over the output samples y = w^H x "
                      "each checkpoint's weight is held for (held-weight convention)",
 }
+#: the metrics of a space-time set (weights of N L entries; written to its tolerances.json)
+SPACE_TIME_METRICS = {
+    "sinr_db": "absolute difference in dB between the output SINR w^H R_s w / (w^H R_in w) "
+               "the candidate's weights achieve on the true space-time covariances and the "
+               "reference weights' SINR",
+    "weight_error_db": "spatial weights (taps 1): as in a narrowband set, 20 log10(||w_c - "
+                       "w_r|| / ||w_r||) after scaling both to w^H a = 1; space-time weights "
+                       "(taps > 1): 20 log10(min_g ||g w_c - w_r|| / ||w_r||), the best "
+                       "complex scale g removed by least squares",
+    "output_evm_db": "20 log10(||y_c - y_r|| / ||y_r||) over the output samples y = w^H z "
+                     "(z the stacked snapshots [x_k; ...; x_(k-L+1)]) each checkpoint's "
+                     "weight is held for (held-weight convention)",
+}
 #: default tolerances (common practice: double-precision rewrites land far below these)
 DEFAULT_TOLERANCES = {"sinr_db": 0.1, "weight_error_db": -40.0, "output_evm_db": -40.0}
+
+#: the format version of a space-time set (wideband scene, taps > 1 or subband: see
+#: the module docstring); sets of spatial weights of a narrowband scene keep FORMAT_VERSION
+SPACE_TIME_FORMAT_VERSION = 2
+#: column order of space-time weights, as written into a set's ``weights`` mapping
+SPACE_TIME_ORDER = ("column l*N + n multiplies element n (0 .. N-1) delayed by l snapshots "
+                    "(tap l = 0 .. L-1): reshaped C-order to (C, L, N) a row reads w[l, n]; "
+                    "tap 0 is the newest snapshot x_k, tap L-1 the oldest x_(k-L+1); the "
+                    "output is y_k = w^H z_k, z_k = [x_k; x_(k-1); ...; x_(k-L+1)] (rows of "
+                    "samples.npy, zeros before snapshot 0)")
+#: how the sub-band processor's per-bin weights are made and folded into its weights
+SUBBAND_RECIPE = (
+    "F = bins; frame j holds snapshots jF .. jF+F-1 of samples.npy; the weight after c "
+    "snapshots uses the m = floor(c / F) complete frames (m = 0: w_b = a_b / N). Per frame "
+    "X_b = sum_t win[t] x_(jF+t) exp(-j 2 pi b t / F) (numpy fft over t), win[t] = 0.5 - "
+    "0.5 cos(2 pi t / F) for window hann (numpy hanning(F+1)[:F]), 1 for rectangular. Bin "
+    "b (FFT order, b = 0 .. F-1) is at nu_b = fftfreq(F)[b] cycles per snapshot. R_b = "
+    "(1/m) sum_j X_b X_b^H / sum_t win[t]^2 + delta I, delta = 10^(loading_db/10) (0 when "
+    "loading_db is null). Look vector per bin a_b[n] = a[n] exp(j 2 pi (p_n.u) nu_b B): a "
+    "= steering.npy, p_n = positions[n], u = (sin az cos el, cos az cos el, sin el) of "
+    "look_direction, B = fractional_bandwidth (a_b = a when narrowband). w_b = R_b^-1 a_b "
+    "/ (a_b^H R_b^-1 a_b), with the minimum-norm (pseudo-inverse) solution where R_b is "
+    "singular (fewer than N frames without loading). Synthesis with c = F // 2: h_n = ifft over b of conj(w_b[n]) "
+    "exp(-j 2 pi nu_b c) (numpy ifft); the weights are w[l, n] = conj(h_n[l]), column l*N "
+    "+ n (a look-direction response that is a pure delay of c snapshots at every bin "
+    "frequency). Back to bins: w_b[n] = conj(fft over l of conj(w[l, n]))[b] exp(-j 2 pi "
+    "nu_b c).")
+_MAX_TAPS = 256                  # taps (or sub-band bins) of a set's weights
+_MAX_WIDTH = 16384               # N L entries of a set's space-time weights
+_MAX_TRUTH_VALUES = 1 << 25      # complex values of a set's space-time truth (512 MiB)
+_MAX_STACKED = 1 << 26           # trials x snapshots x N L values of the stacked snapshots
 
 INPUT_FILES = ("samples.npy", "steering.npy", "reference.npy", "checkpoints.npy", "case.json")
 #: every file of a case folder the recorder writes (plus reference.npy when it uses one)
@@ -232,6 +316,56 @@ def output_evm_db(candidate: np.ndarray, reference: np.ndarray) -> float:
     return float(_db20(np.linalg.norm(yc - yr), np.linalg.norm(yr)))
 
 
+def scaled_weight_error_db(candidate: np.ndarray, reference: np.ndarray) -> np.ndarray:
+    """Weight error in dB of space-time weights (..., M) after removing the best complex
+    scale: ``20 log10(min_g ||g w_c - w_r|| / ||w_r||)``, g by least squares (``g =
+    w_c^H w_r / w_c^H w_c``), the sine of the angle between the two weights.
+
+    Space-time weights have no one look response every processor fixes (Frost's FIR
+    response may be zero at any tap; the sub-band synthesis fixes a delay of F // 2), so
+    the scale is taken from the weights themselves. Checkable fact: ``w_c = g w_r`` gives
+    -300 dB (exact match); an error e orthogonal to both gives ``20 log10(||e|| /
+    sqrt(||w_r||^2 + ||e||^2))``; a zero candidate gives 0 dB.
+    """
+    wc, wr = np.asarray(candidate), np.asarray(reference)
+    if wc.shape != wr.shape:
+        raise ValueError(f"weight shapes differ: {wc.shape}, {wr.shape}")
+    num = np.einsum("...m,...m->...", np.conj(wc), wr)
+    den = np.real(np.einsum("...m,...m->...", np.conj(wc), wc))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        g = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+    return _db20(np.linalg.norm(g[..., None] * wc - wr, axis=-1), np.linalg.norm(wr, axis=-1))
+
+
+def stack_snapshots(samples: np.ndarray, taps: int) -> np.ndarray:
+    """Space-time snapshots of a stream: (..., K, N) -> (..., K, N L) with row k
+    ``z_k = [x_k; x_{k-1}; ...; x_{k-L+1}]`` (entry ``l N + n`` is element n delayed by
+    l snapshots, zeros before snapshot 0): what space-time weights of a set apply to,
+    ``y_k = w^H z_k``. The engine's own delay line (:class:`adapt.streams.wideband.TapLine`)
+    over the whole stream."""
+    x = np.asarray(samples)
+    if x.ndim < 2:
+        raise ValueError(f"samples must be (..., snapshots, elements), got {x.shape}")
+    if int(taps) < 1:
+        raise ValueError(f"taps must be at least 1, got {taps}")
+    lead = x.shape[:-2]
+    flat = x.reshape((-1,) + x.shape[-2:])
+    return TapLine(int(taps))(flat).reshape(lead + (x.shape[-2], x.shape[-1] * int(taps)))
+
+
+def weight_layout(checkpoints: int, elements: int, taps: int, method: str = "",
+                  bins: int | None = None) -> dict:
+    """The ``weights`` mapping of a space-time set (reference.json and case.json): shape,
+    elements, taps, the column order in words and, for the sub-band processor, its bins
+    and synthesis recipe (:data:`SUBBAND_RECIPE`)."""
+    out = {"shape": [int(checkpoints), int(elements) * int(taps)],
+           "elements": int(elements), "taps": int(taps), "column": "l*N + n",
+           "order": SPACE_TIME_ORDER}
+    if bins is not None:
+        out.update({"bins": int(bins), "synthesis": SUBBAND_RECIPE})
+    return out
+
+
 def _held_segments(checkpoints: np.ndarray, snapshots: int) -> list[tuple[int, int]]:
     """[c_i, c_(i+1)) snapshot ranges each checkpoint's weight is held for (held-weight
     convention); the last runs to the end of the stream (empty when c = K)."""
@@ -247,14 +381,16 @@ def uses_reference(processor: Processor) -> bool:
 
 
 def _candidate_context(look, positions, trials: int, noise_power: float, has_reference: bool,
-                       look_direction) -> Context:
-    """The context a candidate could know: geometry and noise level, no true covariance."""
+                       look_direction, fractional_bandwidth: float = 0.0) -> Context:
+    """The context a candidate could know: geometry, noise level and the scene's
+    fractional bandwidth, no true covariance."""
     return Context(look=np.asarray(look, dtype=complex), positions=np.asarray(positions, float),
                    trials=int(trials), noise_power=float(noise_power), covariance=None,
                    training_covariance=None, has_reference=bool(has_reference),
                    look_direction=None if look_direction is None else
                    (float(look_direction[0]), float(look_direction[1])),
-                   data_covariance=None, moments=None)
+                   data_covariance=None, moments=None,
+                   fractional_bandwidth=float(fractional_bandwidth))
 
 
 def _run_on_stream(proc: Processor, samples: np.ndarray, reference: np.ndarray | None,
@@ -301,6 +437,14 @@ def _as_processor(processor) -> Processor:
     return parse_spec(processor, "processor")
 
 
+def _weight_taps(proc: Processor) -> int:
+    """L of the weights ``proc`` reports (N L entries): its ``taps``, or the sub-band
+    processor's ``bins`` (its weights are its F-tap synthesis filters)."""
+    if proc.method == "subband":
+        return int(proc.params["bins"])
+    return int(proc.params.get("taps", 1))
+
+
 def _prepare_out_dir(out_dir) -> Path:
     if out_dir is None:
         raise InputError("an output folder is required", allowed="--out DIR")
@@ -339,7 +483,8 @@ def _record_chunk(scene_mapping: dict, spec: str, first: int, count: int, snapsh
     samples = np.ascontiguousarray(blk.data if with_ref else blk.training, dtype=complex)
     reference = np.ascontiguousarray(blk.reference, dtype=complex) if with_ref else None
     look_dir = (float(sc.look_azimuth), float(sc.look_elevation))
-    ctx = _candidate_context(batch.look, sc.array.positions, int(count), 1.0, with_ref, look_dir)
+    ctx = _candidate_context(batch.look, sc.array.positions, int(count), 1.0, with_ref, look_dir,
+                             float(sc.receiver.fractional_bandwidth or 0.0))
     res = _run_on_stream(proc, samples, reference, ctx, np.asarray(checkpoints, dtype=np.int64),
                          outputs=True)
     return {"weights": res.weights, "outputs": res.outputs}
@@ -366,7 +511,8 @@ def _record_on_cluster(sc: Scene, proc: Processor, trials: int, snapshots: int, 
 
 def _record_on_threads(proc: Processor, samples: np.ndarray, reference: np.ndarray | None,
                        look, positions, with_ref: bool, look_dir, cps,
-                       threads: int) -> tuple[np.ndarray, np.ndarray]:
+                       threads: int, fractional_bandwidth: float = 0.0
+                       ) -> tuple[np.ndarray, np.ndarray]:
     """The expected weights and outputs with the cases split over ``threads`` threads
     (:func:`adapt.engine.execute.run_on_threads`), all sharing ``proc`` (immutable). Every
     computation runs along the case axis with no sums across cases, so the arrays equal
@@ -378,7 +524,8 @@ def _record_on_threads(proc: Processor, samples: np.ndarray, reference: np.ndarr
     def work(key, check):
         first, count = key
         rows = slice(first, first + count)
-        ctx = _candidate_context(look, positions, count, 1.0, with_ref, look_dir)
+        ctx = _candidate_context(look, positions, count, 1.0, with_ref, look_dir,
+                                 fractional_bandwidth)
         res = _run_on_stream(proc, samples[rows],
                              None if reference is None else reference[rows], ctx, cps,
                              outputs=True)
@@ -410,15 +557,12 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     The set is built in a temporary sibling folder and renamed into place when complete.
     The expected weights are produced by the processor fed the stored samples alone
     (the context a candidate has: no true covariance), so
-    :func:`reference_implementation` reproduces them. Returns the folder.
+    :func:`reference_implementation` reproduces them. A wideband scene, ``taps=L`` > 1
+    or ``subband`` makes a space-time set (weights (C, N L), format version 2; see the
+    module docstring). Returns the folder.
     """
     sc = _as_scene(scene)
     proc = _as_processor(processor)
-    if sc.wideband or int(proc.params.get("taps", 1)) > 1 or proc.method == "subband":
-        raise InputError("reference sets hold spatial weights of narrowband scenes; wideband "
-                         "scenes and space-time processors (taps, subband) cannot be "
-                         "recorded yet", value=proc.label,
-                         allowed="a narrowband scene and a processor without taps")
     tol = parse_tolerances(tolerances)
     from adapt.engine.settings import MAX_SNAPSHOTS, check_scheduler_address, whole_count
     t_ = 3 if trials is None else whole_count(trials, "trials", _MAX_CASES)
@@ -429,6 +573,12 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
         raise InputError(f"a reference set of {t_} cases x {k} snapshots x {n} elements is too "
                          f"big to keep as test vectors (limit {_MAX_VALUES} values)",
                          allowed="fewer trials or snapshots")
+    taps = _weight_taps(proc)
+    if t_ * k * n * taps > _MAX_STACKED:
+        raise InputError(f"a space-time reference set of {t_} cases x {k} snapshots x {n} "
+                         f"elements x {taps} taps is too big to record (the stacked snapshots "
+                         f"hold {t_ * k * n * taps} values; limit {_MAX_STACKED})",
+                         allowed="fewer trials, snapshots, taps or bins")
     try:
         cps = (default_reference_checkpoints(k, n) if checkpoints is None
                else normalised_checkpoints(checkpoints, k))
@@ -446,10 +596,11 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
     reference = np.ascontiguousarray(blk.reference, dtype=complex) if with_ref else None
 
     # 1) the spec must make sense for the true scene (stability bounds etc.)
-    _rebuild(proc.method, proc.params).check(Context.from_batch(batch))
+    tapped(_rebuild(proc.method, proc.params)).check(Context.from_batch(batch))
     # 2) the expected weights: the processor fed only what a candidate gets
     look_dir = (float(sc.look_azimuth), float(sc.look_elevation))
-    ctx = _candidate_context(batch.look, sc.array.positions, t_, 1.0, with_ref, look_dir)
+    fb = float(sc.receiver.fractional_bandwidth or 0.0)
+    ctx = _candidate_context(batch.look, sc.array.positions, t_, 1.0, with_ref, look_dir, fb)
     try:
         if workers is None and scheduler is None and (pool == 1 or t_ == 1):
             result = _run_on_stream(proc, samples, reference, ctx, cps, outputs=True)
@@ -457,7 +608,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
         elif workers is None and scheduler is None:
             weights, outputs = _record_on_threads(proc, samples, reference, batch.look,
                                                   sc.array.positions, with_ref, look_dir,
-                                                  cps, pool)
+                                                  cps, pool, fb)
         else:
             weights, outputs = _record_on_cluster(sc, proc, t_, k, cps, with_ref, workers,
                                                   scheduler)
@@ -471,17 +622,38 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
                         "written", path="processor", value=proc.spec(defaults=False, label=False))
 
     # truth: scored at snapshot index c, the first snapshot each weight is applied to
-    if sc.stationary:
+    m = weights.shape[-1]
+    if m != n * taps:
+        raise ValueError(f"{proc.method} returned weights of {m} entries, not {n} x {taps}")
+    space_time = bool(sc.wideband) or taps > 1
+    src = sc.desired
+    power = src.power * src.active(cps).astype(float)    # (C,)
+    signal = layout = None
+    if space_time:
+        moments = np.zeros(1, dtype=np.int64) if sc.stationary else cps
+        size = 2 * t_ * len(moments) * m * m
+        if size > _MAX_TRUTH_VALUES:
+            raise InputError(f"the space-time truth of {t_} cases ({len(moments)} x 2 "
+                             f"matrices of {m} x {m} per case) is too big to keep as test "
+                             f"vectors (limit {_MAX_TRUTH_VALUES} values)",
+                             allowed="fewer trials, taps, bins or checkpoints")
+        cov = wideband.space_time_covariance(batch, taps, moments)             # (T, Mo, M, M)
+        signal = wideband.space_time_covariance(batch, taps, moments, "signal")
+        sinr_db = to_db(output_sinr_space_time(weights, signal, cov))           # (T, C)
+        if sc.stationary:
+            cov, signal = cov[:, 0], signal[:, 0]
+        steer = batch.desired_steering() if sc.stationary else batch.desired_steering(cps)
+        layout = weight_layout(len(cps), n, taps, proc.method,
+                               proc.params.get("bins") if proc.method == "subband" else None)
+    elif sc.stationary:
         cov = batch.covariance()                         # (T, N, N)
         steer = batch.desired_steering()                 # (T, N)
-        cov_b, steer_b = cov[:, None], steer[:, None]
+        sinr_db = to_db(output_sinr(weights, steer[:, None], cov[:, None], power[None, :]))
     else:
         cov = batch.covariance(cps)                      # (T, C, N, N)
         steer = batch.desired_steering(cps)              # (T, C, N)
-        cov_b, steer_b = cov, steer
-    src = sc.desired
-    power = src.power * src.active(cps).astype(float)    # (C,)
-    sinr_db = to_db(output_sinr(weights, steer_b, cov_b, power[None, :]))   # (T, C)
+        sinr_db = to_db(output_sinr(weights, steer, cov, power[None, :]))      # (T, C)
+    version = SPACE_TIME_FORMAT_VERSION if space_time else FORMAT_VERSION
 
     versions = library_versions()
     stage = StagedFolder(out)            # the shared run-folder life cycle
@@ -496,7 +668,7 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             if with_ref:
                 write_npy(folder / "reference.npy", reference[i])
             write_npy(folder / "checkpoints.npy", cps.astype(np.int64))
-            write_json(folder / "case.json", {
+            meta = {
                 "case": i, "trial": int(batch.first_trial + i), "method": proc.method,
                 "spec": proc.spec(defaults=False, label=False), "label": proc.label, "params": proc.params,
                 "uses_reference": with_ref,
@@ -504,7 +676,10 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
                 "noise_power": 1.0, "elements": n, "snapshots": k,
                 "checkpoints": cps.tolist(), "look_direction": list(look_dir),
                 "positions": sc.array.positions.tolist(),
-            })
+            }
+            if space_time:
+                meta.update({"fractional_bandwidth": fb, "weights": layout})
+            write_json(folder / "case.json", meta)
             write_sigmf(folder / "samples", samples[i], cps, description=(
                 f"adapt reference case {i} of scene '{sc.name}' (seed {sc.seed}, trial "
                 f"{batch.first_trial + i}): the {n}-element {'received' if with_ref else 'training'}"
@@ -514,24 +689,33 @@ def record(scene, processor, trials, snapshots, checkpoints, out_dir,
             write_npy(folder / "outputs.npy", outputs[i])
             write_npy(folder / "sinr_db.npy", sinr_db[i])
             write_npy(folder / "truth_covariance.npy", cov[i])
+            if space_time:
+                write_npy(folder / "truth_signal_covariance.npy", signal[i])
             write_npy(folder / "truth_steering.npy", steer[i])
-            write_json(folder / "truth.json", {
+            truth = {
                 "signal_power": src.power, "signal_power_db": src.power_db,
                 "signal_power_at_checkpoints": power.tolist(),
                 "moments": "stationary" if sc.stationary else "snapshot index c of each checkpoint",
                 "noise_power": 1.0,
-            })
-        write_json(tmp / "tolerances.json", {"tolerances": tol, "metrics": METRICS})
+            }
+            if space_time:
+                truth["sinr"] = ("w^H R_s w / (w^H R_in w): R_s truth_signal_covariance.npy, "
+                                 "R_in truth_covariance.npy, entries in the weights' order")
+            write_json(folder / "truth.json", truth)
+        write_json(tmp / "tolerances.json", {"tolerances": tol, "metrics":
+                                             SPACE_TIME_METRICS if space_time else METRICS})
         info = {
-            "format": FORMAT, "format_version": FORMAT_VERSION, "scene": sc.name,
+            "format": FORMAT, "format_version": version, "scene": sc.name,
             "scene_file": sc.source_file, "seed": int(sc.seed), "processor": proc.spec(defaults=False, label=False),
             "method": proc.method, "label": proc.label, "trials": t_, "snapshots": k,
             "elements": n, "checkpoints": cps.tolist(), "cases": names,
             "uses_reference": with_ref, "versions": versions,
             "scene_mapping": sc.resolved or scene_to_mapping(sc),
         }
+        if space_time:
+            info.update({"fractional_bandwidth": fb, "weights": layout})
         write_json(tmp / "reference.json", info)
-        write_manifest(tmp, {"format": FORMAT, "format_version": FORMAT_VERSION,
+        write_manifest(tmp, {"format": FORMAT, "format_version": version,
                              "versions": versions})
         stage.commit()                    # replaces an empty folder, refuses a non-empty one
     except BaseException:
@@ -621,8 +805,11 @@ class CaseInputs:
     checkpoints: (C,) int64 snapshot counts; noise_power: float; params: the processor's
     parameters (read-only mapping); method, spec: the processor; positions: (N, 3)
     nominal element positions in wavelengths; look_direction: (azimuth, elevation) deg;
-    name: the case folder name. Return weights (C, N), row i after checkpoints[i]
-    snapshots, applied as y = w^H x.
+    name: the case folder name; taps: L, the taps per element of the expected weights (1:
+    spatial; the sub-band processor's bins F); fractional_bandwidth: the scene's B (0
+    when narrowband). Return weights (C, N L), row i after checkpoints[i] snapshots,
+    applied as y = w^H z (column l N + n: element n delayed by l snapshots, tap 0 the
+    newest; z from :func:`stack_snapshots`; for L = 1 simply (C, N) and y = w^H x).
     """
     name: str
     samples: np.ndarray
@@ -635,6 +822,8 @@ class CaseInputs:
     spec: str
     positions: np.ndarray
     look_direction: tuple
+    taps: int = 1
+    fractional_bandwidth: float = 0.0
 
 
 @dataclass
@@ -653,6 +842,16 @@ class ReferenceCase:
     truth_covariance: np.ndarray
     truth_steering: np.ndarray
     signal_power: np.ndarray
+    #: space-time sets: the wanted source's true space-time covariance R_s (M, M) or
+    #: (C, M, M); None for a set of spatial weights of a narrowband scene
+    signal_covariance: np.ndarray | None = None
+    #: taps L of the expected weights (weights (C, N L))
+    taps: int = 1
+
+    @property
+    def space_time(self) -> bool:
+        """True for a space-time set (SINR from the space-time covariances)."""
+        return self.signal_covariance is not None
 
     def inputs(self) -> CaseInputs:
         """Read-only inputs for a candidate (fresh read-only copies each call)."""
@@ -671,7 +870,9 @@ class ReferenceCase:
                           method=str(self.info.get("method", "")),
                           spec=str(self.info.get("spec", "")),
                           positions=ro(np.asarray(self.info.get("positions", []), float)),
-                          look_direction=tuple(look))
+                          look_direction=tuple(look), taps=int(self.taps),
+                          fractional_bandwidth=float(self.info.get("fractional_bandwidth",
+                                                                   0.0)))
 
 
 @dataclass
@@ -687,10 +888,12 @@ def _corrupt(message: str, file=None) -> CorruptReferenceError:
     return CorruptReferenceError(message, file=None if file is None else str(file))
 
 
-def case_files(with_reference: bool) -> tuple[str, ...]:
+def case_files(with_reference: bool, space_time: bool = False) -> tuple[str, ...]:
     """The files of one recorder-made case folder (``reference.npy`` only for methods
-    that train on the reference waveform)."""
-    return _CASE_FILES + (("reference.npy",) if with_reference else ())
+    that train on the reference waveform, ``truth_signal_covariance.npy`` only in a
+    space-time set)."""
+    return (_CASE_FILES + (("reference.npy",) if with_reference else ())
+            + (("truth_signal_covariance.npy",) if space_time else ()))
 
 
 def _read_regular(path: Path, limit: int) -> bytes:
@@ -950,6 +1153,56 @@ def _case_names(names, path: Path) -> list[str]:
     return list(names)
 
 
+def _checked_layout(layout, path: Path) -> dict:
+    """A space-time set's ``weights`` mapping, checked: whole numbers ``elements`` N (1 ..
+    4096) and ``taps`` L (1 .. 256, ``bins`` equal to it when given), N L at most
+    16384, ``shape`` [C, N L] with C >= 1, ``column`` ``"l*N + n"``."""
+    def whole(value, low, high):
+        return type(value) is int and low <= value <= high
+
+    shape = layout.get("shape") if isinstance(layout, dict) else None
+    if not (isinstance(layout, dict) and whole(layout.get("elements"), 1, 4096)
+            and whole(layout.get("taps"), 1, _MAX_TAPS)
+            and layout["elements"] * layout["taps"] <= _MAX_WIDTH
+            and isinstance(shape, list) and len(shape) == 2
+            and whole(shape[0], 1, _MAX_VALUES)
+            and whole(shape[1], 1, _MAX_WIDTH)
+            and shape[1] == layout["elements"] * layout["taps"]):
+        got = _show_text(json.dumps(layout)[:200] if isinstance(layout, (dict, list)) else layout)
+        raise _corrupt("the space-time weights mapping 'weights' must give shape [C, N L], "
+                       "elements N (1 .. 4096) and taps L (1 .. 256) as whole numbers, "
+                       f"N L at most {_MAX_WIDTH} (got {got})", path)
+    if "bins" in layout and layout["bins"] != layout["taps"]:
+        raise _corrupt("weights: bins must equal taps (the sub-band synthesis has one tap "
+                       "per bin)", path)
+    if layout.get("column") != "l*N + n":
+        raise _corrupt(f"weights: column order {_show_text(layout.get('column'))} is not "
+                       "'l*N + n', the one this version reads", path)
+    return layout
+
+
+def _set_layout(info: dict, path: Path) -> dict | None:
+    """The checked ``weights`` mapping of a space-time set (format version 2); None for
+    a set of spatial weights of a narrowband scene (version 1, no such mapping)."""
+    version = info.get("format_version")
+    if type(version) is not int or version not in (FORMAT_VERSION, SPACE_TIME_FORMAT_VERSION):
+        raise _corrupt(f"format_version {_show_text(version)} is not one this version reads "
+                       f"({FORMAT_VERSION}: spatial weights, {SPACE_TIME_FORMAT_VERSION}: "
+                       "space-time weights)", path)
+    if version == FORMAT_VERSION:
+        if "weights" in info or "fractional_bandwidth" in info:
+            raise _corrupt("a version 1 set holds spatial weights of a narrowband scene: no "
+                           "'weights' or 'fractional_bandwidth' (space-time sets are version "
+                           f"{SPACE_TIME_FORMAT_VERSION})", path)
+        return None
+    layout = _checked_layout(info.get("weights"), path)
+    fb = info.get("fractional_bandwidth")
+    if isinstance(fb, bool) or not isinstance(fb, (int, float)) or not 0 <= fb <= 1:
+        raise _corrupt("fractional_bandwidth must be a number in [0, 1] in a space-time set",
+                       path)
+    return layout
+
+
 def load_reference(folder) -> ReferenceSet:
     """Read and check a reference set written by :func:`record`.
 
@@ -983,9 +1236,12 @@ def load_reference(folder) -> ReferenceSet:
     with_ref = info.get("uses_reference")
     if not isinstance(with_ref, bool):
         raise _corrupt("uses_reference must be true or false", root / "reference.json")
+    layout = _set_layout(info, root / "reference.json")
     files.require_exactly({"reference.json", "tolerances.json"}
-                          | {f"{name}/{f}" for name in names for f in case_files(with_ref)})
-    cases = [_load_case(files, name, with_ref) for name in names]
+                          | {f"{name}/{f}" for name in names
+                             for f in case_files(with_ref, layout is not None)})
+    cases = [_load_case(files, name, with_ref, layout, info.get("fractional_bandwidth"))
+             for name in names]
     files.check_rest()
     return ReferenceSet(folder=root, info=info, tolerances=tolerances, cases=cases)
 
@@ -1000,7 +1256,8 @@ def _finite_numbers(value, shape, what: str, path: Path) -> np.ndarray:
     return a
 
 
-def _load_case(files: _SetFiles, name: str, with_ref: bool) -> ReferenceCase:
+def _load_case(files: _SetFiles, name: str, with_ref: bool, layout: dict | None = None,
+               fractional_bandwidth=None) -> ReferenceCase:
     folder = files.root / name
     meta = _read_json(files, f"{name}/case.json")
     try:
@@ -1035,6 +1292,18 @@ def _load_case(files: _SetFiles, name: str, with_ref: bool) -> ReferenceCase:
     if len(cps) != len(cps_raw) or np.any(cps != cps_raw):
         raise _corrupt("checkpoints must be sorted and distinct", folder / "checkpoints.npy")
     c = len(cps)
+    m = n
+    if layout is not None:          # a space-time set: the same mapping in every case
+        if meta.get("weights") != layout or layout["elements"] != n or layout["shape"][0] != c:
+            raise _corrupt("its weights mapping must equal reference.json's and match the "
+                           f"case's {n} elements and {c} checkpoints", folder / "case.json")
+        if meta.get("fractional_bandwidth") != fractional_bandwidth:
+            raise _corrupt("fractional_bandwidth differs from reference.json",
+                           folder / "case.json")
+        m = layout["shape"][1]
+    elif "weights" in meta or "fractional_bandwidth" in meta:
+        raise _corrupt("a version 1 set holds spatial weights: no weights mapping or "
+                       "fractional_bandwidth", folder / "case.json")
     truth = _read_json(files, f"{name}/truth.json")
     power = _finite_numbers(truth.get("signal_power_at_checkpoints"), (c,),
                             "signal_power_at_checkpoints", folder / "truth.json")
@@ -1049,12 +1318,15 @@ def _load_case(files: _SetFiles, name: str, with_ref: bool) -> ReferenceCase:
         steering=arr("steering.npy", (n,)),
         reference=arr("reference.npy", (k,)) if with_ref else None,
         checkpoints=cps,
-        weights=arr("weights.npy", (c, n)),
+        weights=arr("weights.npy", (c, m)),
         outputs=arr("outputs.npy", (k,)),
         sinr_db=arr("sinr_db.npy", (c,), complex_=False).astype(float),
-        truth_covariance=arr("truth_covariance.npy", (n, n) if stationary else (c, n, n)),
+        truth_covariance=arr("truth_covariance.npy", (m, m) if stationary else (c, m, m)),
         truth_steering=arr("truth_steering.npy", (n,) if stationary else (c, n)),
         signal_power=power,
+        signal_covariance=None if layout is None else
+        arr("truth_signal_covariance.npy", (m, m) if stationary else (c, m, m)),
+        taps=1 if layout is None else layout["taps"],
     )
 
 
@@ -1065,14 +1337,17 @@ def reference_implementation(case: CaseInputs) -> np.ndarray:
 
     This is also the worked example of the Python interface: ``adapt verify DIR
     --python adapt.studies.reference:reference_implementation`` passes on any set recorded by
-    this version (the expected weights were produced exactly this way).
+    this version (the expected weights were produced exactly this way), space-time sets
+    included (``case.params`` holds ``taps``; the sub-band processor is rebuilt from its
+    ``bins``; ``case.fractional_bandwidth`` gives a wideband look vector).
     """
     proc = _rebuild(case.method, case.params)
     x = np.asarray(case.samples, dtype=complex)[None]
     ref = None if case.reference is None else np.asarray(case.reference, dtype=complex)[None]
     ctx = _candidate_context(case.steering, case.positions, 1, case.noise_power,
                              ref is not None, case.look_direction
-                             if None not in tuple(case.look_direction) else None)
+                             if None not in tuple(case.look_direction) else None,
+                             case.fractional_bandwidth)
     return _run_on_stream(proc, x, ref, ctx, np.asarray(case.checkpoints), False).weights[0]
 
 
@@ -1219,7 +1494,24 @@ class _CaseFailure(Exception):
         self.kind, self.message, self.details = kind, message, details
 
 
-def _check_weights(raw: Any, c: int, n: int) -> np.ndarray:
+def _shape_text(case: ReferenceCase) -> tuple[tuple[int, int], str]:
+    """The expected weight shape of ``case`` and what its axes are, in words."""
+    c, n, taps = len(case.checkpoints), case.samples.shape[1], int(case.taps)
+    if taps == 1:
+        return (c, n), f"one row per checkpoint ({c}), one column per element ({n})"
+    return (c, n * taps), (f"one row per checkpoint ({c}), N x L = {n} x {taps} = {n * taps} "
+                           "columns, column l*N + n for element n delayed by l snapshots "
+                           "(tap 0 the newest; see 'weights' in case.json)")
+
+
+class WeightShapeError(InputError):
+    """A candidate returned weights of the wrong shape: verify stops there (exit 2).
+    ``report`` holds the cases run so far, this one an error and the rest "not run"."""
+    report = None
+
+
+def _check_weights(raw: Any, case: ReferenceCase) -> np.ndarray:
+    (c, n), axes = _shape_text(case)
     try:
         w = np.array(raw, copy=True)
         kind = w.dtype.kind
@@ -1230,14 +1522,30 @@ def _check_weights(raw: Any, c: int, n: int) -> np.ndarray:
         raise _CaseFailure("failure", f"returned {type(raw).__name__} of {w.dtype}, not "
                            f"numeric weights of shape ({c}, {n})")
     if w.shape != (c, n):
-        raise _CaseFailure("failure", f"weights have shape {w.shape}, expected ({c}, {n}): "
-                           "one row per checkpoint, one column per element")
+        got = str(w.shape) if len(w.shape) <= 8 else f"({w.ndim} dimensions)"
+        raise _CaseFailure("shape", f"{case.name}: the candidate's weights have shape {got}, "
+                           f"expected {(c, n)}: {axes}")
     bad = ~np.all(np.isfinite(w), axis=1)
     if bad.any():
         rows = np.flatnonzero(bad)
         raise _CaseFailure("failure", f"weights hold NaN or infinity at {bad.sum()} "
                            f"checkpoint(s), first at row {rows[0]}")
     return w.astype(complex)
+
+
+def _space_time_outputs(w: np.ndarray, samples: np.ndarray, taps: int, lo: int,
+                        hi: int) -> np.ndarray:
+    """``y_k = w^H z_k`` for snapshots lo <= k < hi of a stream (K, N) and space-time
+    weights (N L,) (:func:`stack_snapshots` order), as ``sum_l w_l^H x_{k-l}`` with zeros
+    before snapshot 0, without building the stacked snapshots."""
+    n = samples.shape[1]
+    wl = np.conj(w).reshape(taps, n)
+    y = np.zeros(hi - lo, dtype=complex)
+    for l_ in range(taps):
+        first = max(lo - l_, 0)
+        if hi - l_ > first:
+            y[first - (lo - l_):] += samples[first:hi - l_] @ wl[l_]
+    return y
 
 
 def _best_scale(yc: np.ndarray, yr: np.ndarray) -> complex:
@@ -1261,15 +1569,24 @@ def _compare(case: ReferenceCase, w: np.ndarray, tol: dict, scale_blind: bool = 
              ) -> CaseResult:
     cps = case.checkpoints
     k = case.samples.shape[0]
-    sinr = sinr_difference_db(w, case.truth_steering, case.truth_covariance,
-                              case.signal_power, case.sinr_db)
-    werr = weight_error_db(w, case.weights, case.steering)
+    if case.space_time:
+        sinr = np.abs(to_db(output_sinr_space_time(w, case.signal_covariance,
+                                                   case.truth_covariance))
+                      - np.asarray(case.sinr_db, float))
+    else:
+        sinr = sinr_difference_db(w, case.truth_steering, case.truth_covariance,
+                                  case.signal_power, case.sinr_db)
+    if case.taps > 1:
+        werr = scaled_weight_error_db(w, case.weights)
+    else:
+        werr = weight_error_db(w, case.weights, case.steering)
     evm = np.full(len(cps), np.nan)
     raw_evm = np.full(len(cps), np.nan)
     scales = []
     for i, (lo, hi) in enumerate(_held_segments(cps, k)):
         if hi > lo:
-            yc = np.conj(w[i]) @ case.samples[lo:hi].T
+            yc = (np.conj(w[i]) @ case.samples[lo:hi].T if case.taps == 1 else
+                  _space_time_outputs(w[i], case.samples, case.taps, lo, hi))
             yr = case.outputs[lo:hi]
             g = _best_scale(yc, yr)
             blind = output_evm_db(yc / g, yr) if g != 0 else float(raw_evm[i])
@@ -1513,9 +1830,9 @@ def _run_command(args: list[str], case: ReferenceCase, timeout: float) -> Any:
         if code != 0:
             last = tail.splitlines()[-1] if tail else "(no error output)"
             raise _CaseFailure("error", f"exited with code {code}: {last}", tail)
-        c, n = len(case.checkpoints), case.samples.shape[1]
+        (c, m), _ = _shape_text(case)
         try:
-            data = _read_regular(out, c * n * 16 + 65536)
+            data = _read_regular(out, 4 * c * m * 16 + 65536)   # room to name a wrong shape
         except FileNotFoundError:
             raise _CaseFailure("error", f"wrote no weights file ({{out}} = {out.name})",
                                tail) from None
@@ -1553,8 +1870,15 @@ def verify(reference_set, implementation, tolerances=None, timeout=None,
     -------
     VerifyReport
         Per case: crashes (any exception, ``SystemExit`` and ``KeyboardInterrupt``
-        included), timeouts and missing output are errors; wrong shapes, NaN or a
-        metric beyond tolerance are failures; see the module docstring for the metrics.
+        included), timeouts and missing output are errors; NaN or a metric beyond
+        tolerance are failures; see the module docstring for the metrics.
+
+    Raises
+    ------
+    WeightShapeError
+        (an InputError, exit 2) at the first case whose weights have the wrong shape:
+        (C, N), or (C, N L) in a space-time set; its ``report`` marks that case an error
+        and the later ones "not run".
     """
     ref = reference_set if isinstance(reference_set, ReferenceSet) else load_reference(reference_set)
     tol = parse_tolerances(tolerances, base=ref.tolerances)
@@ -1599,9 +1923,18 @@ def verify(reference_set, implementation, tolerances=None, timeout=None,
             if load_failure is not None:
                 raise _CaseFailure("error", load_failure)
             raw = run(case)
-            w = _check_weights(raw, len(case.checkpoints), case.samples.shape[1])
+            w = _check_weights(raw, case)
             res = _compare(case, w, tol, scale_blind=bool(scale_blind))
         except _CaseFailure as exc:
+            if exc.kind == "shape":     # the candidate reads the set wrongly: stop here
+                refused = WeightShapeError(_printable(exc.message))
+                res = CaseResult(case.name, "error", _printable(exc.message),
+                                 seconds=time.perf_counter() - t0)
+                rest = [CaseResult(other.name, "error", f"not run: verify stopped at "
+                                   f"{case.name} (weights of the wrong shape)")
+                        for other in ref.cases[len(report.cases) + 1:]]
+                refused.report = replace(report, cases=report.cases + [res] + rest)
+                raise refused from None
             res = CaseResult(case.name, exc.kind, _printable(exc.message),
                              _printable(exc.details or exc.message))
         res.seconds = time.perf_counter() - t0
@@ -1650,7 +1983,6 @@ def format_report(report: VerifyReport) -> str:
 def not_run_report(report: VerifyReport, ref: ReferenceSet) -> VerifyReport:
     """A copy of ``report`` with every case of ``ref`` an error "not run" (what the JUnit
     file says until verify finishes)."""
-    from dataclasses import replace
     return replace(report, cases=[CaseResult(c.name, "error", "not run: verify did not "
                                              "finish (the candidate may have ended the "
                                              "process)") for c in ref.cases])
