@@ -81,19 +81,21 @@ Metrics, per case and checkpoint (all in dB; a case passes when every value is a
 below its tolerance):
 
 * ``sinr_db``: ``|SINR(w_c) - SINR(w_r)|``, both ``P |w^H a_true|^2 / (w^H R_in w)`` on
-  the true covariance and steering (Van Trees 2002, ch. 6); default 0.1 dB.
+  the true covariance and steering (Van Trees 2002, ch. 6); a space-time set: ``w^H R_s
+  w / (w^H R_in w)`` on the true space-time covariances; default 0.1 dB.
 * ``weight_error_db``: ``20 log10(||w_c - w_r|| / ||w_r||)`` after scaling both to unit
-  look response ``w^H a = 1`` (removes the arbitrary complex scale); default -40 dB.
+  look response ``w^H a = 1`` (removes the arbitrary complex scale); for taps > 1
+  (:func:`scaled_weight_error_db`) after removing the best complex scale by least
+  squares; default -40 dB.
 * ``output_evm_db``: ``20 log10(||y_c - y_r|| / ||y_r||)`` over the snapshots
   ``c_i <= j < c_(i+1)`` the checkpoint's weight is held for (the error vector
-  magnitude of the output samples); none for a checkpoint at the last snapshot;
-  default -40 dB.
+  magnitude of the output samples; ``y = w^H z`` on stacked snapshots for taps > 1);
+  none for a checkpoint at the last snapshot; default -40 dB.
 
 Verify modes: a Python callable ``f(case) -> (C, N) weights`` ((C, N L) in a space-time
-set; :class:`CaseInputs`), or a
-command template with ``{case}`` (a folder with the input ``.npy`` files and
-``case.json``) and ``{out}`` (the ``.npy`` file to write), run with a timeout (killed with its process
-group when it runs over). A Python callable runs in-process without a time limit.
+set; :class:`CaseInputs`), or a command template with ``{case}`` (a folder with the
+input ``.npy`` files and ``case.json``) and ``{out}`` (the ``.npy`` file to write), run
+with a timeout (killed with its process group when it runs over). A Python callable runs in-process without a time limit.
 Per case, a crash, timeout, nonzero exit or missing output is an *error*; NaN/inf or a
 metric beyond tolerance is a *failure*; both fail the run (exit 1). Weights of the wrong
 shape (not (C, N), or (C, N L) in a space-time set) mean the candidate reads the set
