@@ -145,9 +145,9 @@ def test_unreachable_scheduler_is_an_input_error():
 def test_record_on_a_cluster_writes_the_same_set(scheduler, tmp_path):
     from adapt.studies.reference import load_reference, record
     scene = parse_scene(SCENE)
-    for spec in ("smi loading_db=10", "rls"):
-        here = record(scene, spec, 5, 64, None, tmp_path / f"here-{spec[:3]}")
-        there = record(scene, spec, 5, 64, None, tmp_path / f"there-{spec[:3]}",
+    for i, spec in enumerate(("smi loading_db=10", "rls", "subband bins=4")):
+        here = record(scene, spec, 5, 64, None, tmp_path / f"here-{i}")
+        there = record(scene, spec, 5, 64, None, tmp_path / f"there-{i}",
                        scheduler=scheduler)
         a, b = load_reference(here), load_reference(there)
         assert len(a.cases) == len(b.cases) == 5

@@ -198,10 +198,11 @@ def test_bad_thread_counts_are_input_errors(scene):
 
 def test_record_on_threads_writes_the_same_set(scene, tmp_path):
     from adapt.studies.reference import load_reference, record
-    for spec in ("smi loading_db=10", "nlms"):
-        one = load_reference(record(scene, spec, 5, 64, None, tmp_path / f"1-{spec[:3]}",
+    for i, spec in enumerate(("smi loading_db=10", "nlms", "smi taps=2 loading_db=10",
+                              "subband bins=4")):          # spatial and space-time sets
+        one = load_reference(record(scene, spec, 5, 64, None, tmp_path / f"1-{i}",
                                     threads=1))
-        three = load_reference(record(scene, spec, 5, 64, None, tmp_path / f"3-{spec[:3]}",
+        three = load_reference(record(scene, spec, 5, 64, None, tmp_path / f"3-{i}",
                                       threads=3))
         assert len(one.cases) == len(three.cases) == 5
         for a, b in zip(one.cases, three.cases):
