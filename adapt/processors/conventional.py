@@ -3,7 +3,8 @@
 Source: the phase-steered array with amplitude taper; Dolph (1946) for the
 Chebyshev taper (equal sidelobes at the requested level), Taylor (1955) for the
 Taylor taper (``nbar`` near-in sidelobes near the requested level, decaying beyond).
-Taper weights come from ``scipy.signal.windows.chebwin`` and ``scipy.signal.windows.taylor``.
+Taper weights come from :mod:`adapt.numerics.tapers` (Dolph-Chebyshev and Taylor, equal
+to ``scipy.signal.windows.chebwin`` and ``.taylor`` to the last bit, without the import cost).
 
 Checkable fact: untapered on a uniform half-wavelength line its first sidelobe is
 -13.26 dB; with ``taper=chebyshev sidelobe_db=30`` every sidelobe is -30 dB.
@@ -14,17 +15,11 @@ multiply-adds for the output; none for the weights.
 """
 from __future__ import annotations
 
-import threading
-import warnings
-
 import numpy as np
 
 from adapt.errors import SpecError
+from adapt.numerics.tapers import chebyshev_taper, taylor_taper
 from adapt.processors.base import Context, Parameter, Processor, State
-
-# processors start in the executor's worker threads, and the warnings state is process
-# wide: two overlapping catch_warnings blocks can leave a filter behind, so ours take turns
-_QUIET = threading.Lock()
 
 
 def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: int,
@@ -32,8 +27,7 @@ def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: i
     """Real amplitude taper (N,) for a line (along x) or a grid (x-z plane, separable).
 
     Raises ValueError for other layouts, where no standard taper applies.
-    ``layout_only``: check the layout only and return ones (the windows' library,
-    scipy.signal, is slow to import and not needed for the check).
+    ``layout_only``: check the layout only and return ones.
     """
     pos = np.asarray(positions, float)
     n = len(pos)
@@ -50,13 +44,10 @@ def taper_weights(positions: np.ndarray, taper: str, sidelobe_db: float, nbar: i
             raise ValueError("a taper needs uniformly spaced elements along each axis")
         if layout_only:
             return np.ones(len(coord))
-        from scipy.signal import windows  # imported when a taper is computed
         if taper == "chebyshev":
-            with _QUIET, warnings.catch_warnings():   # scipy: spectral-analysis use only
-                warnings.simplefilter("ignore", UserWarning)
-                w = windows.chebwin(m, at=sidelobe_db, sym=True)
+            w = chebyshev_taper(m, sidelobe_db)
         else:
-            w = windows.taylor(m, nbar=nbar, sll=sidelobe_db, norm=False, sym=True)
+            w = taylor_taper(m, nbar, sidelobe_db)
         return w[index]
 
     spread = np.ptp(pos, axis=0) > 1e-12
@@ -128,7 +119,7 @@ class Conventional(Processor):
                             allowed="none for this array") from None
 
     def check(self, context: Context, layout_only: bool = True) -> None:
-        self._taper(context, layout_only=layout_only)   # the layout only: no scipy window
+        self._taper(context, layout_only=layout_only)   # the layout only
 
     def _weight(self, context: Context) -> np.ndarray:
         """(T, N) read-only view of the one weight (the taper of this context's array)."""
