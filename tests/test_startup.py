@@ -127,3 +127,34 @@ def test_a_numba_that_fails_to_import_counts_as_absent():
     done = _run(code)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "True (2, 1, 4)"
+
+
+def test_a_command_sets_one_blas_thread_unless_the_user_chose():
+    from adapt.cli.main import one_blas_thread_per_engine_thread
+    env = {}
+    assert one_blas_thread_per_engine_thread(env)
+    assert env["OPENBLAS_NUM_THREADS"] == "1" and env["MKL_NUM_THREADS"] == "1"
+    for chosen in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        env = {chosen: "4"}
+        assert not one_blas_thread_per_engine_thread(env)
+        assert env == {chosen: "4"}
+
+
+_COMPARE_MODULES = """
+import json, sys, tempfile
+from adapt.cli.main import main
+with tempfile.TemporaryDirectory() as out:
+    code = main(["compare", "scenes/jammer_rich.yaml", "--trials", "3", "--snapshots",
+                 "64", "--out", out, "--no-progress"])
+    heavy = [m for m in ("scipy.signal", "scipy.stats") if m in sys.modules]
+sys.stderr.write(json.dumps([code, heavy]))
+"""
+
+
+def test_compare_imports_neither_scipy_signal_nor_stats():
+    # the tapers are computed in numpy (adapt.numerics.tapers): scipy.signal alone costs
+    # most of a second of import
+    done = _run(_COMPARE_MODULES)
+    assert done.returncode == 0, done.stderr
+    code, heavy = json.loads(done.stderr.strip().splitlines()[-1])
+    assert code == 0 and heavy == []

@@ -155,6 +155,9 @@ def complete(folder: "Folder", work, write, line, options: dict, on_exit=None,
     def finish(result, path):
         return write(result, command_line=line, folder=path)
 
+    from adapt.report.figures import load_drawing_library_in_background
+    load_drawing_library_in_background()     # while the trials run
+
     return print_outcome(*execute(folder, guarded, finish))
 
 

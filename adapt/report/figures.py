@@ -144,6 +144,26 @@ def run_styles(evaluation) -> dict[str, dict]:
     return series_styles([p.label for p in procs], [p.method for p in procs])
 
 
+def load_drawing_library_in_background():
+    """Start importing the drawing library (matplotlib's figure, Agg canvas and font
+    list; a third of a second) on a daemon thread, so a command that will draw its
+    figures after the trials pays for it while they run. Returns the thread. Safe to
+    call more than once; an import that fails here fails again, with its message, when
+    a figure is drawn."""
+    import threading
+
+    def load():
+        try:
+            from matplotlib.backends import backend_agg  # noqa: F401
+            from matplotlib.figure import Figure  # noqa: F401
+        except Exception:           # reported when a figure is drawn
+            pass
+
+    t = threading.Thread(target=load, name="adapt-load-figures", daemon=True)
+    t.start()
+    return t
+
+
 def new_figure(rows: int = 1, columns: int = 1, size: tuple[float, float] | None = None,
                height_ratios: Sequence[float] | None = None, sharex: bool = False):
     """A fresh ``Figure`` on its own Agg canvas and its axes (a single Axes when

@@ -84,7 +84,15 @@ def _first(x) -> float:
     return float(np.asarray(x).ravel()[0])
 
 
-def _pattern_scores(evaluation: Evaluation, weights: np.ndarray) -> dict:
+def quiescent_beamwidth_deg(scene) -> float:
+    """Half-power beamwidth of the scene's uniform beam at its look direction (degrees;
+    the yardstick of the pattern scores; the same for every processor of a run)."""
+    return geometry.half_power_beamwidth_deg(scene.array.positions, scene.look_azimuth,
+                                             scene.look_elevation, resolution_deg=0.01)
+
+
+def _pattern_scores(evaluation: Evaluation, weights: np.ndarray, bw: float) -> dict:
+    """``bw``: :func:`quiescent_beamwidth_deg` of the evaluation's scene."""
     sc = evaluation.scene
     pos = evaluation.positions
     gains = evaluation.element_gains
@@ -98,8 +106,6 @@ def _pattern_scores(evaluation: Evaluation, weights: np.ndarray) -> dict:
     use = int(max(1, min(t_, _PATTERN_BUDGET // max(1, points * n))))
     w = weights[:use]
     g = None if gains is None or np.all(gains[:use] == 1) else gains[:use]
-    bw = geometry.half_power_beamwidth_deg(sc.array.positions, sc.look_azimuth,
-                                           sc.look_elevation, resolution_deg=0.01)
     if not scores.is_line_array(sc.array.positions):
         return _pattern_scores_2d(evaluation, weights, pos, gains, ap, bw)
     args = dict(positions=pos[:use], look_azimuth=float(sc.look_azimuth),
@@ -196,6 +202,7 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
     if seconds is not None:
         out["seconds"] = float(seconds)
     free_db = _interference_free_db(evaluation)                          # (T,) or None
+    beamwidth = None                                # computed once, when first needed
     if free_db is not None:
         out["interference_free_sinr_db"] = _nanmean(free_db)
         out["interference_cost_db"] = _nanmean(free_db - opt_db[:, -1])
@@ -241,8 +248,10 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         per_trial.append((sinr_db[:, -1], rho_stats))
         final["worst_null_db"] = _worst_null(final["null_depth_db"], on_at_end)
         if patterns:
+            if beamwidth is None:
+                beamwidth = quiescent_beamwidth_deg(sc)
             final.update(_pattern_scores(evaluation, scores.band_centre_weights(
-                p.final_weights, evaluation.scene.elements)))
+                p.final_weights, evaluation.scene.elements), beamwidth))
         out["processors"].append({
             "label": p.label,
             "method": p.method,
