@@ -133,6 +133,9 @@ def progress_bar(args, total: int, desc: str):
     if args.no_progress:
         return None
     from tqdm import tqdm
+    # no monitor thread (it only tunes the refresh of stalled bars): a command keeps
+    # one thread after its trials, so its figures can be drawn in a forked process
+    tqdm.monitor_interval = 0
     return tqdm(total=total, unit=" trial-snapshots", unit_scale=True, file=sys.stderr,
                 disable=None, leave=False, desc=desc)
 
@@ -155,7 +158,9 @@ def complete(folder: "Folder", work, write, line, options: dict, on_exit=None,
     def finish(result, path):
         return write(result, command_line=line, folder=path)
 
+    from adapt.numerics.kernels import warm_up_in_background
     from adapt.report.figures import load_drawing_library_in_background
+    warm_up_in_background()                  # while the scene is planned
     load_drawing_library_in_background()     # while the trials run
 
     return print_outcome(*execute(folder, guarded, finish))
