@@ -210,6 +210,49 @@ def test_blocks_concatenate_bit_identically(kind):
 
 
 @pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
+@pytest.mark.parametrize("threads", [2, 3])
+def test_blocks_made_ahead_on_threads_are_the_blocks(kind, threads):
+    # alternate blocks made by several threads: the same blocks, in order, bit for bit
+    scene = rich_scene(trials=2, snapshots=301, **kind)
+    for size in (7, 100, 400):
+        plain = list(TrialBatch(scene).blocks(block=size))
+        ahead = list(TrialBatch(scene).blocks_on_threads(block=size, threads=threads))
+        assert [(b.start, b.stop) for b in ahead] == [(b.start, b.stop) for b in plain]
+        for b, a in zip(plain, ahead):
+            for name in ("data", "signal", "training", "reference"):
+                assert np.array_equal(getattr(b, name), getattr(a, name)), (size, name)
+
+
+def test_blocks_made_ahead_stop_with_their_consumer():
+    import threading
+    scene = rich_scene(trials=2, snapshots=5000)
+    before = threading.active_count()
+    it = TrialBatch(scene).blocks_on_threads(block=10, threads=2)
+    next(it)
+    next(it)
+    it.close()                                  # the producers end, none left waiting
+    assert threading.active_count() == before
+
+
+def test_a_generation_error_reaches_the_consumer(monkeypatch):
+    scene = rich_scene(trials=2, snapshots=300)
+    batch = TrialBatch(scene)
+    real = TrialBatch.blocks
+
+    def failing(self, *args, first=0, every=1, **kw):
+        for blk in real(self, *args, first=first, every=every, **kw):
+            if blk.start >= 150:
+                raise RuntimeError("generator broke")
+            yield blk
+
+    monkeypatch.setattr(TrialBatch, "blocks", failing)
+    with pytest.raises(RuntimeError, match="generator broke"):
+        list(batch.blocks_on_threads(block=50, threads=2))
+    with pytest.raises(ValueError, match="first < every"):
+        next(TrialBatch(scene).blocks(first=2, every=2))
+
+
+@pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
 def test_compiled_and_numpy_streams_agree(kind, monkeypatch):
     # the one-pass compiled formation (fixed sources) and the step-by-step path (moving)
     # against the pure numpy path: the same numbers to rounding, and the parts add up

@@ -220,7 +220,7 @@ def require_bounded(processor: Processor, index: int, w: np.ndarray, r_in: np.nd
 def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoints,
                    snapshots: int, tail: int = 0, block: int | None = None,
                    progress: Callable[[int], None] | None = None,
-                   draw: str = "samples") -> Evaluation:
+                   draw: str = "samples", producers: int = 1) -> Evaluation:
     """Score ``processors`` on one :class:`TrialBatch` (all its trials at once).
 
     The stream runs to ``snapshots + tail``; the tail only serves the measured SINR of
@@ -228,6 +228,9 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     covariances directly (:mod:`adapt.engine.drawn`; Gaussian stationary scenes and
     covariance-based processors only, InputError otherwise): statistically the same
     scores at a cost independent of ``snapshots``, no samples, measured SINR NaN.
+    ``producers`` > 1: the samples are generated ahead on that many threads
+    (:meth:`TrialBatch.blocks_on_threads`; the same values), for a batch that is the
+    whole run and cannot use the cores by its trials alone.
     """
     sc = batch.scene
     checkpoints = normalised_checkpoints(checkpoints, snapshots)
@@ -235,7 +238,9 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
     measure = _Measure(len(processors), batch.trials, checkpoints)
 
     def fed() -> Iterator:
-        for b in batch.blocks(snapshots + tail, block, recycle=True):
+        source = batch.blocks(snapshots + tail, block, recycle=True) if producers <= 1 \
+            else batch.blocks_on_threads(snapshots + tail, block, threads=producers)
+        for b in source:
             yield b
             if progress is not None:
                 progress(b.size * batch.trials)

@@ -149,10 +149,14 @@ def run_chunks(scene: Scene, processors: Sequence[Processor], checkpoints, *,
                       progress=progress, keep_arrays=chunks_store is not None,
                       finished=finished)
     elif todo and not remote:
+        # one chunk cannot fill the threads with its trials: its samples are generated
+        # ahead on them instead (the same values)
+        ahead = {"producers": pool_threads} if pool_threads > 1 and len(todo) == 1 \
+            and draw == "samples" else {}
         for first, count in todo:
             ev = evaluate_batch(TrialBatch(scene, trials=count, seed=seed, first_trial=first),
                                 processors, checkpoints, snapshots, tail=tail, block=blk,
-                                progress=progress, **draw_option(draw))
+                                progress=progress, **draw_option(draw), **ahead)
             finished((first, count), ev, part_arrays(ev) if chunks_store is not None else None)
     elif todo:
         from dask.distributed import as_completed

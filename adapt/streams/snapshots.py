@@ -432,7 +432,7 @@ class TrialBatch:
         return np.exp(1j * (2 * np.pi * cyc[None, :] + phi0))
 
     def blocks(self, snapshots: int | None = None, block: int | None = None,
-               recycle: bool = False) -> Iterator[Block]:
+               recycle: bool = False, first: int = 0, every: int = 1) -> Iterator[Block]:
         """Yield :class:`Block` s covering snapshots 0 .. snapshots-1 of every trial.
 
         Each call starts the streams afresh, so two calls yield identical data.
@@ -440,7 +440,10 @@ class TrialBatch:
         data arrays) are overwritten by the next block, for a consumer that is done with
         each block before asking for the next (the engine): no fresh large arrays per
         block, whose page faults cost much on virtual machines and serialise threads.
-        The values are the same either way.
+        The values are the same either way. ``first``, ``every``: only blocks number
+        ``first``, ``first + every``, ... (numbered from 0; each starts at its number
+        times ``block``), for :meth:`blocks_on_threads`; every snapshot is a function
+        of its index alone, so those blocks are the same as in the whole sequence.
         """
         sc = self.scene
         k_total = int(sc.snapshots if snapshots is None else snapshots)
@@ -450,7 +453,13 @@ class TrialBatch:
         b = default_block_size(self.trials, n, k_total) if block is None else int(block)
         if b < 1:
             raise ValueError(f"block must be >= 1 snapshot, got {b}")
+        if int(every) < 1 or not 0 <= int(first) < int(every):
+            raise ValueError(f"need 0 <= first < every, got first={first}, every={every}")
+        starts = range(int(first) * b, k_total, int(every) * b)
         if sc.wideband:
+            if int(every) != 1:
+                raise ValueError("wideband streams carry filter state from block to block: "
+                                 "they run in one sequence (every=1)")
             yield from self._wideband_blocks(k_total, b)
             return
         idx = self.trial_indices
@@ -492,7 +501,7 @@ class TrialBatch:
         noise_scale = np.sqrt(0.5) if sc.noise.plain else 1.0
         diffuse_keys = keys_for(_DIFFUSE_KEY) if sc.noise.diffuse else None
 
-        for start in range(0, k_total, b):
+        for start in starts:
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
             if fixed:
@@ -531,6 +540,71 @@ class TrialBatch:
                     data = signal + interference
             data, training = _received(sc, data, interference, full_scale)
             yield Block(start, start + size, data, signal, training, reference, desired_a)
+
+    def blocks_on_threads(self, snapshots: int | None = None, block: int | None = None,
+                          threads: int = 2) -> Iterator[Block]:
+        """The blocks of :meth:`blocks` (same values, same order), generated ahead by
+        ``threads`` threads taking alternate blocks (thread i makes blocks i, i +
+        threads, ...; the heavy parts, the random fills and source mixing, release the
+        interpreter lock), so a run of few trials, whose trials cannot fill the cores,
+        still uses them. At most two blocks per thread are held in memory. A
+        generation error is raised here; closing the iterator early stops the threads.
+        Wideband scenes (filter state carried across blocks) and ``threads=1`` fall
+        back to :meth:`blocks`."""
+        import queue
+        import threading
+        k_total = int(self.scene.snapshots if snapshots is None else snapshots)
+        if k_total < 1:
+            raise ValueError(f"snapshots must be >= 1, got {k_total}")
+        b = default_block_size(self.trials, self.scene.elements, k_total) if block is None \
+            else int(block)
+        count = -(-k_total // max(b, 1))
+        threads = int(threads)
+        if threads <= 1 or self.scene.wideband or count < 2:
+            yield from self.blocks(k_total, b, recycle=True)
+            return
+        threads = min(threads, count)
+        stop = threading.Event()
+        lanes = [queue.Queue(maxsize=1) for _ in range(threads)]
+
+        def make(i: int) -> None:
+            try:
+                for blk in self.blocks(k_total, b, first=i, every=threads):
+                    while not stop.is_set():
+                        try:
+                            lanes[i].put(("block", blk), timeout=0.1)
+                            break
+                        except queue.Full:
+                            continue
+                    if stop.is_set():
+                        return
+            except BaseException as exc:        # handed to the consumer
+                while not stop.is_set():
+                    try:
+                        lanes[i].put(("error", exc), timeout=0.1)
+                        return
+                    except queue.Full:
+                        continue
+
+        workers = [threading.Thread(target=make, args=(i,), daemon=True,
+                                    name=f"adapt-blocks-{i}") for i in range(threads)]
+        for w in workers:
+            w.start()
+        try:
+            for n in range(count):
+                kind, item = lanes[n % threads].get()
+                if kind == "error":
+                    raise item
+                yield item
+        finally:
+            stop.set()
+            for lane in lanes:              # unblock a producer waiting to put
+                try:
+                    lane.get_nowait()
+                except queue.Empty:
+                    pass
+            for w in workers:
+                w.join()
 
     def _noise_field(self, noise: np.ndarray, keys, start: int, take) -> None:
         """Turn unit-variance complex normals ``noise`` (T, B, N) (before the sqrt(1/2)
