@@ -567,24 +567,23 @@ class TrialBatch:
         stop = threading.Event()
         lanes = [queue.Queue(maxsize=1) for _ in range(threads)]
 
+        def hand_over(i: int, item) -> bool:
+            # wait for room in lane i unless the consumer has gone; True when handed over
+            while not stop.is_set():
+                try:
+                    lanes[i].put(item, timeout=0.1)
+                    return True
+                except queue.Full:
+                    continue
+            return False
+
         def make(i: int) -> None:
             try:
                 for blk in self.blocks(k_total, b, first=i, every=threads):
-                    while not stop.is_set():
-                        try:
-                            lanes[i].put(("block", blk), timeout=0.1)
-                            break
-                        except queue.Full:
-                            continue
-                    if stop.is_set():
+                    if not hand_over(i, ("block", blk)):
                         return
             except BaseException as exc:        # handed to the consumer
-                while not stop.is_set():
-                    try:
-                        lanes[i].put(("error", exc), timeout=0.1)
-                        return
-                    except queue.Full:
-                        continue
+                hand_over(i, ("error", exc))
 
         workers = [threading.Thread(target=make, args=(i,), daemon=True,
                                     name=f"adapt-blocks-{i}") for i in range(threads)]
