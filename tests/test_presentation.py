@@ -55,13 +55,13 @@ def test_formatter_never_hides_a_nonzero_value():
             assert float(shown) != 0 and math.isclose(float(shown), sign * v, rel_tol=6e-3)
 
 
-def test_tiny_loss_range_in_the_html_table_keeps_its_exponent():
-    metrics = {"fraction": 0.9, "processors": [{
-        "label": "optimum", "snapshots_to_3db": 1, "snapshots_to_3db_fraction": 1,
-        "seconds": 0.1, "final": {"sinr_db_mean": 10.0, "loss_db_mean": 5.0e-10,
-                                  "loss_db_p10": 5.0117e-10, "loss_db_p90": 5.0117e-10,
-                                  "null_depth_db": {}, "white_noise_gain_db": 7.0}}]}
-    row = summary_rows(metrics)[0]
+def test_tiny_loss_range_in_the_html_table_keeps_its_exponent(result):
+    from dataclasses import replace
+    first = result.summary.processors[0]
+    final = replace(first.final, loss_db_mean=5.0e-10, loss_db_p10=5.0117e-10,
+                    loss_db_p90=5.0117e-10)
+    summary = replace(result.summary, processors=(replace(first, final=final),))
+    row = summary_rows(summary)[0]
     assert row["loss dB p10-p90"] == "5.01e-10 to 5.01e-10"
     html = table([row])
     assert "5.00e-10" in html and "5.0117" not in html
@@ -142,7 +142,7 @@ def test_long_labels_are_never_cut(result):
 
 def test_scene_block_wraps_instead_of_scrolling(result):
     summary = "warning: " + "a very long line " * 40
-    page = compare_report(result.evaluation, summary_rows(result.metrics), summary, {})
+    page = compare_report(result.evaluation, summary_rows(result.summary), summary, {})
     assert '<pre class="wrap">' in page and "pre.wrap { white-space: pre-wrap;" in page
 
 
@@ -151,19 +151,31 @@ def test_convergence_figure_draws_the_summary_statistics(result):
     from dataclasses import replace
 
     from adapt.report import figures as F
-    ev = result.evaluation
-    plain = F.convergence_figure(ev)
-    drawn = F.convergence_figure(ev, result.metrics)
-    for a, b in zip(plain.axes[0].lines + plain.axes[1].lines,
-                    drawn.axes[0].lines + drawn.axes[1].lines):
+    ev, summary = result.evaluation, result.summary
+    drawn = F.convergence_figure(ev, summary)
+    # each curve is the summary's, number for number (mean SINR above, mean loss below)
+    for p in summary.processors:
+        if p.method == "optimum":
+            continue
+        top = next(ln for ln in drawn.axes[0].lines if ln.get_label() == p.label)
+        np.testing.assert_array_equal(top.get_ydata(), p.curve.sinr_db_mean)
+        losses = [ln.get_ydata() for ln in drawn.axes[1].lines
+                  if np.array_equal(ln.get_ydata(), p.curve.loss_db_mean)]
+        assert losses, p.label
+    # the figure reads its numbers there, not from the trials
+    spoilt = replace(ev, processors=[replace(p, sinr=p.sinr * 0 + 1.0, loss_db=p.loss_db * 0)
+                                     for p in ev.processors])
+    again = F.convergence_figure(spoilt, summary)
+    for a, b in zip(drawn.axes[0].lines + drawn.axes[1].lines,
+                    again.axes[0].lines + again.axes[1].lines):
         np.testing.assert_array_equal(a.get_ydata(), b.get_ydata())
-    # with a summary the figure reads its numbers there, not from the trials
-    spoilt = replace(ev, processors=[replace(p, sinr=p.sinr * 0 + 1.0) for p in ev.processors])
-    again = F.convergence_figure(spoilt, result.metrics)
-    for a, b in zip(drawn.axes[0].lines, again.axes[0].lines):
-        np.testing.assert_array_equal(a.get_ydata(), b.get_ydata())
-    curve = result.metrics["processors"][2]["curve"]
-    assert len(curve["sinr_db_p10"]) == len(curve["snapshots"]) == len(curve["sinr_db_p90"])
+    curve = summary.processors[2].curve
+    assert len(curve.sinr_db_p10) == len(curve.snapshots) == len(curve.sinr_db_p90)
+    # the summary is required: the figure never computes statistics of its own
+    with pytest.raises(TypeError):
+        F.convergence_figure(ev)
+    with pytest.raises(ValueError, match="summary"):
+        F.convergence_figure(ev, result.metrics)
 
 
 def test_the_scene_is_parsed_once_per_compare(tmp_path, monkeypatch):

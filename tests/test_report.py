@@ -20,6 +20,7 @@ from adapt.processors.base import Processor, State
 from adapt.report import figures as F
 from adapt.report import html as H
 from adapt.scenefile import parse_scene
+from adapt.studies.compare import NULL_FLOOR_DB, summarise
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"      # PNG specification (ISO/IEC 15948), section 5.2
 
@@ -118,8 +119,19 @@ def check_png(data: bytes, width_in: float) -> None:
     assert 5_000 < len(data) < 2_000_000
 
 
-FIGURES = [(F.convergence_figure, 8.0), (F.beam_pattern_figure, 8.6),
-           (F.null_depth_figure, 8.0)]
+_SUMMARIES: dict = {}
+
+
+def summary_of(evaluation):
+    """The comparison summary the figures read (made once per evaluation)."""
+    if id(evaluation) not in _SUMMARIES:
+        _SUMMARIES[id(evaluation)] = (evaluation, summarise(evaluation, patterns=False))
+    return _SUMMARIES[id(evaluation)][1]
+
+
+FIGURES = [(lambda ev: F.convergence_figure(ev, summary_of(ev)), 8.0),
+           (F.beam_pattern_figure, 8.6),
+           (lambda ev: F.null_depth_figure(ev, summary_of(ev)), 8.0)]
 
 
 @pytest.mark.parametrize("case", ["stationary", "nonstationary", "ring"])
@@ -135,13 +147,13 @@ def test_series_colours_consistent_across_figures(stationary):
     styles = F.run_styles(stationary)
     assert len({s["color"] for s in styles.values()}) == 2
     assert len({(s["color"], s["linestyle"]) for s in styles.values()}) == 3
-    conv = F.convergence_figure(stationary)
+    conv = F.convergence_figure(stationary, summary_of(stationary))
     beam = F.beam_pattern_figure(stationary)
     for fig in (conv, beam):
         lines = {ln.get_label(): ln.get_color() for ln in fig.axes[0].get_lines()}
         for label, st in styles.items():
             assert lines[label] == st["color"]
-    bars = F.null_depth_figure(stationary).axes[0].containers
+    bars = F.null_depth_figure(stationary, summary_of(stationary)).axes[0].containers
     colours = [tuple(np.round(b.patches[0].get_facecolor()[:3], 3)) for b in bars
                if hasattr(b, "patches")]
     from matplotlib.colors import to_rgb
@@ -227,7 +239,7 @@ def test_pattern_matches_engine_null_depths(stationary):
 
 
 def test_nonstationary_optimum_is_a_curve(nonstationary):
-    fig = F.convergence_figure(nonstationary)
+    fig = F.convergence_figure(nonstationary, summary_of(nonstationary))
     opt = [ln for ln in fig.axes[0].get_lines() if ln.get_label().startswith("optimum")]
     assert len(opt) == 1
     y = np.asarray(opt[0].get_ydata(), float)
@@ -237,7 +249,7 @@ def test_nonstationary_optimum_is_a_curve(nonstationary):
 
 
 def test_null_depth_figure_annotates_jnr(stationary):
-    fig = F.null_depth_figure(stationary)
+    fig = F.null_depth_figure(stationary, summary_of(stationary))
     ticks = [t.get_text() for t in fig.axes[0].get_xticklabels()]
     assert any("jam-a" in t and "JNR 30 dB" in t for t in ticks)
     assert any("jam-b" in t and "JNR 40 dB" in t for t in ticks)
@@ -245,7 +257,7 @@ def test_null_depth_figure_annotates_jnr(stationary):
     for bars in fig.axes[0].containers:
         if hasattr(bars, "patches"):
             for b in bars.patches:
-                assert F.NULL_FLOOR_DB - 1e-9 <= b.get_height() <= 5
+                assert NULL_FLOOR_DB - 1e-9 <= b.get_height() <= 5
 
 
 def test_null_depth_figure_without_interferers():
@@ -253,17 +265,18 @@ def test_null_depth_figure_without_interferers():
                       "sources": [{"name": "w", "role": "desired", "azimuth": 0,
                                    "power_db": 0}]})
     ev = evaluate(sc, [parse_spec("conventional")], trials=2, snapshots=16)
-    check_png(F.figure_to_png(F.null_depth_figure(ev)), 8.0)
+    check_png(F.figure_to_png(F.null_depth_figure(ev, summary_of(ev))), 8.0)
 
 
 def test_png_is_deterministic_and_threads_work(stationary):
-    a = F.figure_to_png(F.null_depth_figure(stationary))
-    b = F.figure_to_png(F.null_depth_figure(stationary))
+    a = F.figure_to_png(F.null_depth_figure(stationary, summary_of(stationary)))
+    b = F.figure_to_png(F.null_depth_figure(stationary, summary_of(stationary)))
     assert a == b
     out = {}
+    summary = summary_of(stationary)
 
     def work(i):
-        out[i] = F.figure_to_png(F.convergence_figure(stationary))
+        out[i] = F.figure_to_png(F.convergence_figure(stationary, summary))
 
     threads = [threading.Thread(target=work, args=(i,)) for i in range(2)]
     for t in threads:
@@ -346,7 +359,7 @@ def parse(page: str) -> StrictCollector:
 
 @pytest.fixture(scope="module")
 def report(stationary):
-    figs = F.standard_figures(stationary)
+    figs = F.standard_figures(stationary, summary_of(stationary))
     rows = [{"processor": p.label, "final loss, dB": float(np.mean(p.loss_db[:, -1])),
              "note": "<b>bold?</b> & more"} for p in stationary.processors]
     rows[0]["final loss, dB"] = float("nan")

@@ -110,18 +110,19 @@ def test_compare_scores_planar_arrays_over_all_directions():
     ev = evaluate(sc, [parse_spec("conventional"), parse_spec("smi loading_db=10")],
                   trials=3, snapshots=64, seed=2)
     m = summarise(ev)
-    conv = m["processors"][0]["final"]
-    assert conv["pattern_scope"] == "all directions"
+    conv = m.processors[0].final.patterns
+    assert conv.scope == "all directions"
     want = _uniform_line_first_sidelobe_db(6)          # not the cut's -12.80 dB
-    assert abs(conv["peak_sidelobe_db_mean"] - want) < 0.05
-    assert conv["pointing_error_deg_mean"] < 0.05
-    assert abs(conv["peak_over_look_db_mean"]) < 1e-3
+    assert abs(conv.peak_sidelobe_db_mean - want) < 0.05
+    assert conv.pointing_error_deg_mean < 0.05
+    assert abs(conv.peak_over_look_db_mean) < 1e-3
     # a line keeps the cut (no scope key: its results are unchanged)
     line = parse_scene({"name": "l", "array": {"layout": "line", "elements": 8},
                         "sources": [{"name": "w", "role": "desired", "azimuth": 0,
                                      "power_db": 0}]})
     ml = summarise(evaluate(line, [parse_spec("conventional")], trials=2, snapshots=16))
-    assert "pattern_scope" not in ml["processors"][0]["final"]
+    assert "pattern_scope" not in ml.to_json()["processors"][0]["final"]
+    assert ml.processors[0].final.patterns.scope is None
 
 
 # ------------------------------------------------------------------ nonstationary
@@ -150,19 +151,19 @@ def pulsed():
 
 def test_worst_null_counts_only_interferers_that_are_on(pulsed):
     m = summarise(pulsed, patterns=False)
-    assert m["interferers_on_at_end"] == ["steady"]
-    for p in m["processors"]:
-        f = p["final"]
-        assert f["worst_null_db"] == f["null_depth_db"]["steady"]
+    assert m.interferers_on_at_end == ("steady",)
+    for p in m.processors:
+        f = p.final
+        assert f.worst_null_db == f.null_depth_db["steady"]
     # the growing-window SMI still nulls the burst that is over; the optimum of the
     # moment does not need to, and its worst null is the steady jammer's
-    opt = m["processors"][1]["final"]
-    assert opt["null_depth_db"]["burst"] > opt["null_depth_db"]["steady"]
+    opt = m.processors[1].final
+    assert opt.null_depth_db["burst"] > opt.null_depth_db["steady"]
     table = render_table(m)
     assert "off then: burst" in table
     row = next(line for line in table.splitlines()
                if line.split()[:1] == ["optimum"] and "SINR" not in line)
-    assert f"{opt['worst_null_db']:.1f}" in row
+    assert f"{opt.worst_null_db:.1f}" in row
 
 
 def test_checkpoint_ranges():
@@ -175,7 +176,7 @@ def test_checkpoint_ranges():
 
 
 def test_nonstationary_convergence_has_a_linear_time_axis(pulsed):
-    fig = F.convergence_figure(pulsed)
+    fig = F.convergence_figure(pulsed, summarise(pulsed, patterns=False))
     assert all(ax.get_xscale() == "linear" for ax in fig.axes)
     labels = [t.get_text() for t in fig.axes[-1].get_yticklabels()]
     assert labels == ["burst on"]
@@ -185,7 +186,7 @@ def test_nonstationary_convergence_has_a_linear_time_axis(pulsed):
                               "sources": [{"name": "w", "role": "desired", "azimuth": 0,
                                            "power_db": 0}]})
     ev = evaluate(stationary, [parse_spec("conventional")], trials=2, snapshots=64)
-    assert F.convergence_figure(ev).axes[0].get_xscale() == "log"
+    assert F.convergence_figure(ev, summarise(ev)).axes[0].get_xscale() == "log"
 
 
 # ------------------------------------------------------------------ many processors
@@ -225,7 +226,7 @@ def crowded():
 
 
 def test_convergence_legend_names_each_curve_once(crowded):
-    fig = F.convergence_figure(crowded)
+    fig = F.convergence_figure(crowded, summarise(crowded, patterns=False))
     texts = [t.get_text() for ax in fig.axes if ax.get_legend() is not None
              for t in ax.get_legend().get_texts()]
     assert sum(t.startswith("optimum") for t in texts) == 1
@@ -252,7 +253,7 @@ def _overlaps(texts, renderer) -> bool:
 
 
 def test_null_depth_labels_fit_and_show_elevation(crowded):
-    fig = F.null_depth_figure(crowded)
+    fig = F.null_depth_figure(crowded, summarise(crowded, patterns=False))
     fig.canvas.draw()
     ax = fig.axes[0]
     ticks = ax.get_xticklabels()
@@ -264,7 +265,7 @@ def test_null_depth_labels_fit_and_show_elevation(crowded):
     # few processors: grouped bars, labels still apart
     few = evaluate(crowded.scene, [parse_spec("conventional"), parse_spec("optimum")],
                    trials=2, snapshots=48, seed=1)
-    fig = F.null_depth_figure(few)
+    fig = F.null_depth_figure(few, summarise(few, patterns=False))
     fig.canvas.draw()
     assert not _overlaps(fig.axes[0].get_xticklabels(), fig.canvas.get_renderer())
 
@@ -291,10 +292,11 @@ def test_planar_beam_patterns_cut_through_each_jammer(planar):
 
 
 def test_response_map_marks_every_source(planar):
-    pngs = F.standard_figures(planar)
+    summary = summarise(planar, patterns=False)
+    pngs = F.standard_figures(planar, summary)
     assert set(pngs) == {"convergence", "beam_pattern", "null_depth", "response_map"}
     assert set(F.FIGURE_TEXT) >= set(pngs)
-    fig = F.response_map_figure(planar)
+    fig = F.response_map_figure(planar, summary)
     maps = [ax for ax in fig.axes if ax.get_images()]
     assert len(maps) == 2
     marks = {(round(x, 6), round(y, 6)) for ax in maps[:1] for ln in ax.get_lines()

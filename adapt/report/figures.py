@@ -17,7 +17,12 @@ Style helpers shared with the other report modules (sizing figures reuse them):
 * :func:`new_figure`, :func:`style_axes`, :func:`add_title`, :func:`legend_outside` and
   :func:`save_png` (PNG bytes at :data:`DPI` dots per inch).
 
-Figures of a run (:class:`adapt.engine.evaluate.Evaluation`):
+Figures of a run: an :class:`adapt.engine.evaluate.Evaluation` (the scene, the run facts,
+every trial's final weights and true array) and its comparison summary
+(``adapt.studies.summaries.CompareSummary``, read by its attributes: this layer sits below
+the studies). Statistics over trials are computed once, in the summary, and read from it:
+the convergence curves, the optimum curve and the floored null depths; only what the
+summary does not hold (patterns over angle and frequency) comes from the weights.
 
 * :func:`convergence_figure` - output SINR against snapshots (log axis), mean over trials
   of the SINR in dB with the 10th-90th percentile band, the optimum (clairvoyant MVDR)
@@ -26,7 +31,8 @@ Figures of a run (:class:`adapt.engine.evaluate.Evaluation`):
   weights on the azimuth cut at the look elevation, computed with each trial's TRUE array
   (:func:`mean_beam_pattern_db`, :func:`mean_beam_patterns_db`), every source marked;
 * :func:`null_depth_figure` - grouped bars of the response toward each interferer
-  relative to the look direction at the final checkpoint, with each interferer's JNR.
+  relative to the look direction at the final checkpoint, with each interferer's JNR
+  (the summary's floored null depths, :func:`null_depth_statistics`).
 
 Checkable fact (tested): the uniform phase-steered sum on a 16-element half-wavelength
 line has its first sidelobe at -13.26 dB (the sin(Nx)/(N sin x) pattern; antenna
@@ -40,7 +46,6 @@ from typing import TYPE_CHECKING, Iterable, Sequence
 
 import numpy as np
 
-from adapt.numerics.units import power_db as _db
 from adapt.processors import is_clairvoyant
 from adapt.scene import geometry
 
@@ -49,11 +54,11 @@ if TYPE_CHECKING:                      # matplotlib is imported when a figure is
 
 __all__ = [
     "PALETTE", "LINE_STYLES", "MARKERS", "DPI", "FIGURE_SIZE", "FONT_SIZE",
-    "HATCHES", "PATTERN_FLOOR_DB", "NULL_FLOOR_DB",
+    "HATCHES", "PATTERN_FLOOR_DB",
     "series_styles", "run_styles", "new_figure", "style_axes", "label_axes", "add_title", "legend_outside",
     "save_png", "figure_to_png", "is_png", "run_title",
     "default_azimuths", "mean_beam_pattern_db", "mean_beam_patterns_db",
-    "convergence_figure", "beam_pattern_figure", "null_depth_figure",
+    "convergence_figure", "beam_pattern_figure", "null_depth_figure", "null_depth_statistics",
     "response_map_figure", "response_map_db", "processor_panels",
     "standard_figures", "FIGURE_TEXT", "band_map_db", "band_map_figure",
     "WIDEBAND_FIGURE_TEXT",
@@ -90,9 +95,6 @@ FONT_SIZE = 9.0                   # points, axis labels and legends
 TITLE_SIZE = 10.5
 TICK_SIZE = 8.0
 PATTERN_FLOOR_DB = -80.0
-#: null depths below this are drawn (and averaged) at it: deeper values only measure
-#: floating-point round-off, no hardware reaches them (common practice)
-NULL_FLOOR_DB = -100.0
 
 
 # ---------------------------------------------------------------------------- style
@@ -274,31 +276,48 @@ def _check_evaluation(evaluation) -> None:
         raise ValueError("the evaluation has no processors to draw")
 
 
-def _nan_stats(x: np.ndarray, axis: int = 0):
-    """nanmean, nan-10th and nan-90th percentile along ``axis`` (all-NaN columns: NaN)."""
-    import warnings
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return (np.nanmean(x, axis=axis), np.nanpercentile(x, 10, axis=axis),
-                np.nanpercentile(x, 90, axis=axis))
+def _check_summary(summary, evaluation) -> None:
+    """``summary`` is the comparison summary of ``evaluation`` (a
+    ``adapt.studies.summaries.CompareSummary``, read by its attributes: the report
+    layer sits below the studies): the same processors, in the same order."""
+    if not hasattr(summary, "processors") or not hasattr(summary, "optimum_curve"):
+        raise ValueError("expected the comparison summary (CompareSummary) of the run, got "
+                         f"{type(summary).__name__}")
+    have = [p.label for p in summary.processors]
+    want = [p.label for p in evaluation.processors]
+    if have != want:
+        raise ValueError(f"the summary's processors {have} are not the run's {want}")
 
 
 # ---------------------------------------------------------------------- convergence
 def _summary_curves(summary) -> dict:
     """Per label ``(mean, p10, p90)`` of the output SINR in dB and the mean loss per
-    checkpoint, read from a compare summary (the ``metrics.json`` dictionary), so the
-    figure shows the statistics the table and CSV show, computed once; empty without
-    a summary."""
-    if not summary:
-        return {}
-    out = {}
-    for p in summary.get("processors", ()):
-        c = p.get("curve", {})
-        if all(k in c for k in ("sinr_db_mean", "sinr_db_p10", "sinr_db_p90", "loss_db_mean")):
-            out[p["label"]] = tuple(np.array(c[k], dtype=float) for k in
-                                    ("sinr_db_mean", "sinr_db_p10", "sinr_db_p90",
-                                     "loss_db_mean"))
-    return out
+    checkpoint, read from a comparison summary, so the figure shows the statistics the
+    table and CSV show, computed once."""
+    return {p.label: tuple(np.array(getattr(p.curve, k), dtype=float) for k in
+                           ("sinr_db_mean", "sinr_db_p10", "sinr_db_p90", "loss_db_mean"))
+            for p in summary.processors}
+
+
+def null_depth_statistics(summary, labels: Sequence[str] | None = None
+                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """The floored null-depth statistics of a comparison summary as arrays (P, J):
+    mean, 10th and 90th percentile over trials, dB re the look direction, one row per
+    processor (``labels``, default all) and one column per interferer of
+    ``summary.interferers``, and the floor they were taken at. ValueError for a
+    summary without them (written before they were kept)."""
+    floor = getattr(summary, "null_depth_floor_db", None)
+    procs = summary.processors if labels is None else [summary.processor(lb) for lb in labels]
+    if floor is None or any(p.null_depths is None for p in procs):
+        raise ValueError("the summary holds no floored null depths (null_depth_floored_db); "
+                         "it was written before they were kept")
+    names = list(summary.interferers)
+    out = np.full((3, len(procs), len(names)), np.nan)
+    for i, p in enumerate(procs):
+        for j, name in enumerate(names):
+            d = p.null_depths[name]
+            out[:, i, j] = [np.nan if v is None else v for v in (d.mean, d.p10, d.p90)]
+    return out[0], out[1], out[2], float(floor)
 
 
 #: processor families drawn together when a run has too many curves for one panel
@@ -344,7 +363,7 @@ def _time_axis_linear(scene) -> bool:
     return not scene.stationary
 
 
-def convergence_figure(evaluation, summary: dict | None = None) -> Figure:
+def convergence_figure(evaluation, summary) -> Figure:
     """Output SINR (dB) against snapshots seen, one line per processor.
 
     Top panel: the mean over trials of the output SINR in dB (solid line), the band
@@ -358,10 +377,11 @@ def convergence_figure(evaluation, summary: dict | None = None) -> Figure:
     optimum. The snapshot axis is logarithmic for a stationary scene and linear when a
     source pulses or moves (the times when pulsing interferers are on are shaded
     under the axis). Checkpoints where the SINR is undefined (wanted source off) are gaps.
-    ``summary``: the compare summary whose statistics are drawn (computed from the
-    evaluation only when it is not given).
+    ``summary``: the comparison summary of the run (``CompareSummary``), whose curves
+    are drawn; the evaluation gives the scene and the run facts.
     """
     _check_evaluation(evaluation)
+    _check_summary(summary, evaluation)
     curves = _summary_curves(summary)
     cps = np.asarray(evaluation.checkpoints, dtype=float)
     styles = run_styles(evaluation)
@@ -380,19 +400,12 @@ def convergence_figure(evaluation, summary: dict | None = None) -> Figure:
                                height_ratios=[2.3] * rows + strip, sharex=True)
         tops, bottom = list(axes[:rows, 0]), None
     on_axes = axes[-1, 0] if strip else None
-    if summary and "optimum_curve" in summary:
-        opt_mean = np.array(summary["optimum_curve"]["sinr_db_mean"], dtype=float)
-    else:
-        opt_mean, _, _ = _nan_stats(_db(evaluation.optimum_sinr))
+    opt_mean = np.array(summary.optimum_curve.sinr_db_mean, dtype=float)
     lows, highs = [], []
     for ax, (group, procs) in zip(tops, panels):
         for p in procs:
             st = styles[p.label]
-            if p.label in curves:
-                mean, lo, hi, loss_mean = curves[p.label]
-            else:
-                mean, lo, hi = _nan_stats(_db(p.sinr))
-                loss_mean, _, _ = _nan_stats(np.asarray(p.loss_db, dtype=float))
+            mean, lo, hi, loss_mean = curves[p.label]
             kw = dict(color=st["color"], linestyle=st["linestyle"], linewidth=1.6)
             if single or len(cps) <= 12:
                 kw.update(marker=st["marker"], markersize=3.5)
@@ -796,14 +809,16 @@ def response_map_db(evaluation, labels: Sequence[str], azimuths, elevations) -> 
     return np.stack(rows, axis=1)
 
 
-def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
+def response_map_figure(evaluation, summary, floor_db: float = -60.0) -> Figure:
     """The whole sky: one map per processor of the trial-averaged response of its
     final weights (dB re the look direction, :func:`response_map_db`) over azimuth x
     elevation, every source marked at its direction at the final checkpoint (wanted
-    source: star; interferers: crosses, named in the first map; look direction:
-    plus). Meant for arrays that are not a line, whose azimuth cut misses sources at
-    other elevations. Values below ``floor_db`` show at the floor."""
+    source: star; interferers: crosses, named in the first map, each with its null
+    depth read from the comparison ``summary``; look direction: plus). Meant for
+    arrays that are not a line, whose azimuth cut misses sources at other elevations.
+    Values below ``floor_db`` show at the floor."""
     _check_evaluation(evaluation)
+    _check_summary(summary, evaluation)
     if not floor_db < 0:
         raise ValueError(f"floor_db must be negative, got {floor_db}")
     sc = evaluation.scene
@@ -826,6 +841,8 @@ def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
     finite = maps[np.isfinite(maps)]
     top = float(np.clip(np.ceil(finite.max()) if finite.size else 0.0, 0.0, 30.0))
     k = int(evaluation.checkpoints[-1]) - 1
+    depths, _, _, null_floor = null_depth_statistics(summary)              # (P, J)
+    names = list(summary.interferers)
     img = None
     for i, (ax, p) in enumerate(zip(axes, procs)):
         ax.grid(False)
@@ -844,13 +861,10 @@ def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
             text = ""
             if i == 0:
                 text = s.name if len(s.name) <= 12 else s.name[:11] + "..."
-            if not desired and s.name in evaluation.interferers:
+            if not desired and s.name in names:
                 # the null is a point of the sky, narrower than the map's cells: its depth
-                j = list(evaluation.interferers).index(s.name)
-                nd = np.asarray(p.null_depth_db, dtype=float)[:, -1, j]
-                depth = _nan_stats(np.where(np.isfinite(nd), np.maximum(nd, NULL_FLOOR_DB),
-                                            np.nan))[0]
-                text = (text + " " if text else "") + _depth_text(float(depth))
+                depth = depths[i, names.index(s.name)]
+                text = (text + " " if text else "") + _depth_text(float(depth), null_floor)
             if text:
                 ax.annotate(text, (sa, se), xytext=(4, 3), textcoords="offset points",
                             fontsize=TICK_SIZE - 1.5, color="white",
@@ -883,15 +897,21 @@ def response_map_figure(evaluation, floor_db: float = -60.0) -> Figure:
 
 
 # --------------------------------------------------------------------- null depths
-def null_depth_figure(evaluation) -> Figure:
+def null_depth_figure(evaluation, summary) -> Figure:
     """Grouped bars: the response toward each interferer relative to the look
     direction (the null depth, dB, negative = suppressed; mean over trials of the dB
-    value at the final checkpoint, each trial's value floored at :data:`NULL_FLOOR_DB`),
-    one bar per processor in each interferer's group, with the 10th-90th percentile over
-    trials as a whisker and the mean written on the bar when there is room. Each group is labelled with
-    the interferer's name, azimuth and JNR (per-element jammer-to-noise ratio, dB)."""
+    value at the final checkpoint, each trial's value floored at the summary's
+    ``null_depth_floor_db``), one bar per processor in each interferer's group, with the
+    10th-90th percentile over trials as a whisker and the mean written on the bar when
+    there is room. Each group is labelled with the interferer's name, azimuth and JNR
+    (per-element jammer-to-noise ratio, dB).
+
+    The statistics are read from the comparison ``summary`` (``CompareSummary``: its
+    processors' ``null_depths``, :func:`null_depth_statistics`), never recomputed from
+    the trials; the evaluation gives the scene (labels) and the run facts."""
     _check_evaluation(evaluation)
-    names = list(evaluation.interferers)
+    _check_summary(summary, evaluation)
+    names = list(summary.interferers)
     fig, ax = new_figure(size=(8.0, 4.6))
     title, sub = run_title(evaluation, "Null depth toward each interferer")
     if not names:
@@ -901,25 +921,24 @@ def null_depth_figure(evaluation) -> Figure:
         ax.set_yticks([])
         add_title(fig, title, sub)
         return fig
-    procs = evaluation.processors
+    procs = summary.processors
     labels = _interferer_labels(evaluation)
+    means, lows, highs, floor = null_depth_statistics(summary)           # (P, J) each
     if len(procs) * len(names) > BAR_LIMIT:
-        return _null_depth_map(evaluation, fig, ax, labels, title, sub)
+        return _null_depth_map(evaluation, summary, fig, ax, labels, title, sub)
     styles = run_styles(evaluation)
     count = len(procs)
     width = 0.8 / count
     x0 = np.arange(len(names), dtype=float)
     lowest = 0.0
     for i, p in enumerate(procs):
-        nd = np.asarray(p.null_depth_db, dtype=float)[:, -1, :]       # (T, J)
-        nd = np.where(np.isfinite(nd), np.maximum(nd, NULL_FLOOR_DB), np.nan)
-        mean, lo, hi = _nan_stats(nd)
+        mean, lo, hi = means[i], lows[i], highs[i]
         x = x0 - 0.4 + width * (i + 0.5)
         st = styles[p.label]
         bars = ax.bar(x, mean, width=width * 0.92, color=st["color"], label=p.label,
                       edgecolor="white", linewidth=0.4, hatch=st["hatch"] or None)
         if count * len(names) <= 24:
-            for text in ax.bar_label(bars, labels=[_depth_text(v) for v in mean],
+            for text in ax.bar_label(bars, labels=[_depth_text(v, floor) for v in mean],
                                      label_type="center", fontsize=TICK_SIZE - 1,
                                      color="#202020"):
                 text.set_bbox({"boxstyle": "round,pad=0.15", "facecolor": "white",
@@ -940,7 +959,7 @@ def null_depth_figure(evaluation) -> Figure:
     ax.set_xlim(-0.6, len(names) - 0.4)
     ax.set_ylim(min(lowest * 1.1 - 4.0, -10.0), 5.0)
     label_axes(ax, ylabel="response re look direction, dB\n"
-                          f"(mean over trials of dB, floor {NULL_FLOOR_DB:g})")
+                          f"(mean over trials of dB, floor {floor:g})")
     legend_outside(ax, title="processor")
     add_title(fig, title, sub + f"; weights after {int(evaluation.checkpoints[-1])} snapshots")
     return fig
@@ -976,22 +995,19 @@ def _interferer_labels(evaluation) -> list[str]:
     return out
 
 
-def _null_depth_map(evaluation, fig, ax, labels, title, sub) -> Figure:
+def _null_depth_map(evaluation, summary, fig, ax, labels, title, sub) -> Figure:
     """Null depths of many processors toward many interferers as a table of coloured
-    cells (rows: processors, columns: interferers), the mean written in each cell."""
-    procs = evaluation.processors
-    table = np.full((len(procs), len(labels)), np.nan)
-    for i, p in enumerate(procs):
-        nd = np.asarray(p.null_depth_db, dtype=float)[:, -1, :]
-        nd = np.where(np.isfinite(nd), np.maximum(nd, NULL_FLOOR_DB), np.nan)
-        table[i] = _nan_stats(nd)[0]
+    cells (rows: processors, columns: interferers), the mean (read from the summary)
+    written in each cell."""
+    procs = summary.processors
+    table, _, _, floor = null_depth_statistics(summary)
     height = max(3.6, min(9.0, 1.9 + 0.32 * len(procs)))
     fig.set_size_inches(FIGURE_SIZE[0], height)
-    img = ax.imshow(table, cmap="viridis", vmin=NULL_FLOOR_DB, vmax=0.0, aspect="auto",
+    img = ax.imshow(table, cmap="viridis", vmin=floor, vmax=0.0, aspect="auto",
                     interpolation="nearest")
     ax.grid(False)
     for (i, j), v in np.ndenumerate(table):
-        ax.text(j, i, _depth_text(v), ha="center", va="center", fontsize=TICK_SIZE - 1,
+        ax.text(j, i, _depth_text(v, floor), ha="center", va="center", fontsize=TICK_SIZE - 1,
                 color="white" if v < -45 else "black")
     ax.set_yticks(range(len(procs)))
     ax.set_yticklabels([p.label if len(p.label) <= 32 else p.label[:31] + "..." for p in procs],
@@ -1004,17 +1020,18 @@ def _null_depth_map(evaluation, fig, ax, labels, title, sub) -> Figure:
     ax.tick_params(length=0)
     bar = fig.colorbar(img, ax=ax, shrink=0.9, pad=0.02)
     bar.set_label("response re look direction, dB\n"
-                  f"(mean over trials of dB, floor {NULL_FLOOR_DB:g})", fontsize=FONT_SIZE)
+                  f"(mean over trials of dB, floor {floor:g})", fontsize=FONT_SIZE)
     bar.ax.tick_params(labelsize=TICK_SIZE)
     add_title(fig, title, sub + f"; weights after {int(evaluation.checkpoints[-1])} snapshots")
     return fig
 
 
-def _depth_text(v: float) -> str:
+def _depth_text(v: float, floor: float) -> str:
+    """A null depth as written on a bar or a cell: whole dB, ``<=floor`` at the floor."""
     if not np.isfinite(v):
         return ""
-    if v <= NULL_FLOOR_DB + 1e-9:
-        return f"<={NULL_FLOOR_DB:g}"
+    if v <= floor + 1e-9:
+        return f"<={floor:g}"
     return f"{v:.0f}"
 
 
@@ -1059,18 +1076,20 @@ WIDEBAND_FIGURE_TEXT = {
 }
 
 
-def standard_figures(evaluation, summary: dict | None = None) -> dict[str, bytes]:
+def standard_figures(evaluation, summary) -> dict[str, bytes]:
     """The figures of a comparison as PNG bytes: ``{"convergence": ..,
     "beam_pattern": .., "null_depth": ..}`` and, for an array that is not a line,
     ``"response_map"`` (keys match :data:`FIGURE_TEXT`), and for a wideband scene
-    ``"band_map"`` (:data:`WIDEBAND_FIGURE_TEXT`); ``summary``: the compare
-    summary whose statistics the convergence figure draws."""
+    ``"band_map"`` (:data:`WIDEBAND_FIGURE_TEXT`); ``summary``: the comparison
+    summary (``CompareSummary``) whose statistics the convergence, null-depth and
+    response-map figures draw (the beam patterns and band maps, curves over angle and
+    frequency, are not in the summary and come from the final weights)."""
     from adapt.report.render import render_all
     jobs = {"convergence": lambda: save_png(convergence_figure(evaluation, summary)),
             "beam_pattern": lambda: save_png(beam_pattern_figure(evaluation)),
-            "null_depth": lambda: save_png(null_depth_figure(evaluation))}
+            "null_depth": lambda: save_png(null_depth_figure(evaluation, summary))}
     if not scores_is_line(evaluation.scene.array.positions):
-        jobs["response_map"] = lambda: save_png(response_map_figure(evaluation))
+        jobs["response_map"] = lambda: save_png(response_map_figure(evaluation, summary))
     if evaluation.scene.wideband:
         jobs["band_map"] = lambda: save_png(band_map_figure(evaluation))
     # relative drawing costs (measured: the convergence panels and maps take longest)

@@ -5,7 +5,8 @@ A run folder (``runs/YYYYmmdd-HHMMSS-scene-name/``, made by
 
 * ``scene.yaml`` - the scene exactly as run (defaults filled in; trials, snapshots, seed
   and processor specs as used), re-loadable with ``adapt compare scene.yaml``;
-* ``metrics.json`` - the summary (schema in README and :mod:`adapt.studies.compare`);
+* ``metrics.json`` - the summary (schema in README and :mod:`adapt.studies.compare`;
+  ``CompareSummary.to_json()`` of :mod:`adapt.studies.summaries`);
 * ``curves.csv`` - one row per processor and checkpoint;
 * ``summary.txt`` - the terminal table;
 * ``convergence.png``, ``beam_pattern.png``, ``null_depth.png`` and ``report.html`` -
@@ -52,7 +53,8 @@ from adapt.report.numbers import format_number, format_range
 __all__ = ["RunWriter", "StagedFolder", "start_run_folder", "open_for_resume", "finish_seal",
            "remove_if_empty", "RESUME_FILE", "MARKER", "PARTIAL", "RESUME_STATE", "write_run",
            "write_scene_yaml", "write_curves_csv", "curves_rows",
-           "CURVE_COLUMNS", "write_report_files", "summary_rows", "read_run", "RUN_FILES"]
+           "CURVE_COLUMNS", "write_report_files", "summary_rows", "read_run", "RUN_FILES",
+           "SUMMARY_FILES"]
 
 #: the resume state of an unfinished run folder
 RESUME_FILE = "resume.json"
@@ -261,6 +263,8 @@ class StagedFolder:
         shutil.rmtree(self.path, ignore_errors=True)
 
 
+#: the summary file of each kind of run folder :func:`read_run` reads -> its key there
+SUMMARY_FILES = {"metrics.json": "metrics", "sizing.json": "sizing"}
 #: files every run folder has (figures and report.html in addition when available)
 RUN_FILES = ("scene.yaml", "metrics.json", "curves.csv", "summary.txt", "manifest.json")
 
@@ -288,35 +292,48 @@ def _num(v) -> str:
     return format_number(v, significant=10)
 
 
-def curves_rows(metrics: dict) -> list[dict]:
-    """Rows of ``curves.csv`` (dicts keyed by :data:`CURVE_COLUMNS`)."""
-    opt = metrics["optimum_curve"]["sinr_db_mean"]
+def _check_summary(summary) -> None:
+    """A comparison summary (``adapt.studies.summaries.CompareSummary``, read by its
+    attributes: the report layer sits below the studies), not a mapping."""
+    for name in ("processors", "optimum_curve", "optimum_sinr_db", "target_db"):
+        if not hasattr(summary, name):
+            raise ValueError("expected a comparison summary (CompareSummary; "
+                             "CompareSummary.from_mapping reads a metrics.json mapping), "
+                             f"got {type(summary).__name__}")
+
+
+def curves_rows(summary) -> list[dict]:
+    """Rows of ``curves.csv`` (dicts keyed by :data:`CURVE_COLUMNS`) from a comparison
+    summary's per-checkpoint curves."""
+    _check_summary(summary)
+    opt = summary.optimum_curve.sinr_db_mean
     rows = []
-    for p in metrics["processors"]:
-        c = p["curve"]
-        for i, k in enumerate(c["snapshots"]):
+    for p in summary.processors:
+        c = p.curve
+        for i, k in enumerate(c.snapshots):
             rows.append({
-                "label": p["label"], "method": p["method"], "snapshots": int(k),
-                "normalized_sinr_mean": c["normalized_sinr_mean"][i],
-                "sinr_db_mean": c["sinr_db_mean"][i],
-                "loss_db_p10": c["loss_db_p10"][i],
-                "loss_db_median": c["loss_db_median"][i],
-                "loss_db_p90": c["loss_db_p90"][i],
-                "loss_db_of_mean": c["loss_db_of_mean"][i],
-                "fraction_meeting_target": c["fraction_meeting_target"][i],
+                "label": p.label, "method": p.method, "snapshots": int(k),
+                "normalized_sinr_mean": c.normalised_sinr_mean[i],
+                "sinr_db_mean": c.sinr_db_mean[i],
+                "loss_db_p10": c.loss_db_p10[i],
+                "loss_db_median": c.loss_db_median[i],
+                "loss_db_p90": c.loss_db_p90[i],
+                "loss_db_of_mean": c.loss_db_of_mean[i],
+                "fraction_meeting_target": c.fraction_meeting_target[i],
                 "optimum_sinr_db_mean": opt[i],
-                "measured_sinr_db_mean": c["measured_sinr_db_mean"][i],
+                "measured_sinr_db_mean": c.measured_sinr_db_mean[i],
             })
     return rows
 
 
-def write_curves_csv(folder, metrics: dict) -> Path:
+def write_curves_csv(folder, summary) -> Path:
     """``curves.csv``: header :data:`CURVE_COLUMNS`, one row per processor and
-    checkpoint; numbers with 10 significant digits, empty where undefined."""
+    checkpoint of a comparison summary; numbers with 10 significant digits, empty where
+    undefined."""
     buf = _io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(CURVE_COLUMNS)
-    for row in curves_rows(metrics):
+    for row in curves_rows(summary):
         w.writerow([row[c] if c in ("label", "method", "snapshots") else _num(row[c])
                     for c in CURVE_COLUMNS])
     return io.atomic_write_text(Path(folder) / "curves.csv", buf.getvalue())
@@ -327,39 +344,43 @@ def _module(name: str):
     return importlib.import_module(f"adapt.report.{name}")
 
 
-def summary_rows(metrics: dict) -> list[dict]:
-    """One row per processor for the HTML score table (numbers; None where undefined)."""
+def summary_rows(summary) -> list[dict]:
+    """One row per processor of a comparison summary for the HTML score table
+    (numbers; None where undefined)."""
+    _check_summary(summary)
     rows = []
-    for p in metrics["processors"]:
-        f = p["final"]
-        nulls = [v for v in f["null_depth_db"].values() if v is not None]
+    for p in summary.processors:
+        f = p.final
         rows.append({
-            "processor": p["label"],
-            "SINR dB (final)": f["sinr_db_mean"],
-            "loss dB vs optimum": f["loss_db_mean"],
-            "loss dB p10-p90": (format_range(f["loss_db_p10"], f["loss_db_p90"])
-                                if f["loss_db_p10"] is not None else None),
-            "snapshots to 3 dB (mean)": p["snapshots_to_3db"] if p["snapshots_to_3db"] is not None
+            "processor": p.label,
+            "SINR dB (final)": f.sinr_db_mean,
+            "loss dB vs optimum": f.loss_db_mean,
+            "loss dB p10-p90": (format_range(f.loss_db_p10, f.loss_db_p90)
+                                if f.loss_db_p10 is not None else None),
+            "snapshots to 3 dB (mean)": p.snapshots_to_3db if p.snapshots_to_3db is not None
             else "never",
-            f"snapshots to 3 dB ({metrics.get('fraction', 0.9) * 100:.0f}% of trials)":
-                p["snapshots_to_3db_fraction"] if p["snapshots_to_3db_fraction"] is not None
+            f"snapshots to 3 dB ({summary.fraction * 100:.0f}% of trials)":
+                p.snapshots_to_3db_fraction if p.snapshots_to_3db_fraction is not None
                 else "never",
-            "snapshots to stay within 3 dB (mean)":
-                p.get("snapshots_to_stay_within_3db", p["snapshots_to_3db"]) or "never",
-            "worst null dB": f.get("worst_null_db", max(nulls) if nulls else None),
-            "white-noise gain dB": f["white_noise_gain_db"],
-            "pointing error deg (rms)": f.get("pointing_error_deg_rms"),
-            "peak sidelobe dB": f.get("peak_sidelobe_db_mean"),
-            "time s": p["seconds"],
+            "snapshots to stay within 3 dB (mean)": p.snapshots_to_stay_within_3db or "never",
+            "worst null dB": f.worst_null_db,
+            "white-noise gain dB": f.white_noise_gain_db,
+            "pointing error deg (rms)": (f.patterns.pointing_error_deg_rms
+                                         if f.patterns is not None else None),
+            "peak sidelobe dB": (f.patterns.peak_sidelobe_db_mean
+                                 if f.patterns is not None else None),
+            "time s": p.seconds,
         })
     return rows
 
 
-def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "",
+def write_report_files(folder, evaluation, summary, scene_summary: str = "",
                        command_line: str | None = None, writer: "RunWriter | None" = None,
                        verdict: Sequence[str] = ()) -> list[str]:
     """Write the figures (``<name>.png``) and ``report.html`` with :mod:`adapt.report`;
-    returns the file names written (none when the report modules are absent).
+    returns the file names written (none when the report modules are absent). The
+    figures and the score table read the comparison ``summary``; the ``evaluation``
+    gives the scene, the trials' weights (beam patterns) and the run facts.
     ``scene_summary``: the text of the scene block (what ``adapt check`` prints);
     ``verdict``: sentences shown under the score table."""
     writer = writer if writer is not None else RunWriter(folder)
@@ -367,23 +388,23 @@ def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "
     figs = _module("figures")
     pngs: dict[str, bytes] = {}
     if figs is not None:
-        pngs = figs.standard_figures(evaluation, metrics)
+        pngs = figs.standard_figures(evaluation, summary)
         for name, data in pngs.items():
             writer.bytes(f"{name}.png", data)
             written.append(f"{name}.png")
     html = _module("html")
     builder = getattr(html, "compare_report", None) if html is not None else None
     if builder is not None:
-        notes = [f"Optimum (clairvoyant MVDR) SINR: {format_number(metrics['optimum_sinr_db'])} dB, "
+        notes = [f"Optimum (clairvoyant MVDR) SINR: {format_number(summary.optimum_sinr_db)} dB, "
                  "mean over trials. Loss = optimum minus output SINR, mean over trials of dB. "
                  f"'Snapshots to 3 dB' = first checkpoint where the loss of the mean "
-                 f"normalised SINR is within {metrics.get('target_db', 3):g} dB."]
+                 f"normalised SINR is within {summary.target_db:g} dB."]
         notes += [f"Verdict: {line}." for line in verdict]
         if command_line:
             notes.append(f"Command: {command_line}")
         extra = getattr(figs, "WIDEBAND_FIGURE_TEXT", {}) if figs is not None else {}
         extra = {k: v for k, v in extra.items() if k in pngs}
-        page = builder(evaluation, summary_rows(metrics), scene_summary, pngs, notes=notes,
+        page = builder(evaluation, summary_rows(summary), scene_summary, pngs, notes=notes,
                        alt_texts={k: v[0] for k, v in extra.items()} or None,
                        captions={k: v[1] for k, v in extra.items()} or None)
         writer.text("report.html", page)
@@ -391,10 +412,11 @@ def write_report_files(folder, evaluation, metrics: dict, scene_summary: str = "
     return written
 
 
-def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: str | None = None,
+def write_run(scene, evaluation, summary, out_root="runs", command_line: str | None = None,
               kind: str = "compare", figures: bool = True, table: str | None = None,
               folder=None, scene_summary: str = "", verdict: Sequence[str] = ()) -> Path:
-    """Write a complete run folder (see the module docstring) and return its path.
+    """Write a complete run folder (see the module docstring) and return its path: the
+    JSON, CSV, figures and report of the comparison ``summary`` (a ``CompareSummary``).
 
     A new folder is created under ``out_root`` (timestamp + scene name, suffixed when
     taken); nothing outside it is touched. ``manifest.json`` is written last, so a
@@ -403,21 +425,22 @@ def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: s
     (:meth:`RunWriter.seal`). ``scene_summary``, ``verdict``: the scene block and the
     verdict sentences of ``report.html``.
     """
+    _check_summary(summary)
     writer = RunWriter(folder, out_root, scene.name)
     write_scene_yaml(writer.folder, scene)
-    writer.json("metrics.json", metrics)
-    write_curves_csv(writer.folder, metrics)
+    mapping = summary.to_json()
+    writer.json("metrics.json", mapping)
+    write_curves_csv(writer.folder, summary)
     if table is not None:
         writer.text("summary.txt", table + "\n")
     else:
-        writer.text("summary.txt", json.dumps(io.to_jsonable(metrics)) + "\n")
+        writer.text("summary.txt", json.dumps(io.to_jsonable(mapping)) + "\n")
     extra = []
     if figures:
-        extra = write_report_files(writer.folder, evaluation, metrics, scene_summary,
+        extra = write_report_files(writer.folder, evaluation, summary, scene_summary,
                                    command_line, writer=writer, verdict=verdict)
-    info = {"kind": kind, "scene": scene.name, "seed": int(metrics.get("seed", scene.seed)),
-            "trials": int(metrics.get("trials", scene.trials)),
-            "snapshots": int(metrics.get("snapshots", scene.snapshots)),
+    info = {"kind": kind, "scene": scene.name, "seed": int(summary.seed),
+            "trials": int(summary.trials), "snapshots": int(summary.snapshots),
             "command_line": command_line,
             "created": _dt.datetime.now().astimezone().isoformat(timespec="seconds"),
             "report": "report.html" in extra}
@@ -425,19 +448,28 @@ def write_run(scene, evaluation, metrics: dict, out_root="runs", command_line: s
 
 
 def read_run(folder) -> dict:
-    """Read a run folder back: ``{"metrics": dict, "manifest": dict, "curves": list of
-    row dicts, "problems": [...]}``; ``problems`` lists manifest mismatches (empty:
-    intact). ValueError if the folder has no metrics.json."""
+    """Read a run folder back as plain data.
+
+    A compare folder gives ``{"metrics": dict, "manifest": dict, "curves": list of row
+    dicts, "problems": [...]}``, a size folder ``{"sizing": dict, "manifest": dict,
+    "problems": [...]}``; ``problems`` lists manifest mismatches (empty: intact).
+    ValueError if the folder has neither metrics.json nor sizing.json.
+    (:func:`adapt.api.read_run` adds the typed summary.)"""
     folder = Path(folder)
-    if not (folder / "metrics.json").is_file():
-        raise ValueError(f"{folder} is not a run folder (no metrics.json)")
-    metrics = json.loads((folder / "metrics.json").read_text(encoding="utf-8"))
+    found = [(name, kind) for name, kind in SUMMARY_FILES.items() if (folder / name).is_file()]
+    if not found:
+        raise ValueError(f"{folder} is not a run folder (no metrics.json or sizing.json)")
+    name, kind = found[0]
+    out = {kind: json.loads((folder / name).read_text(encoding="utf-8"))}
     manifest = {}
     if (folder / "manifest.json").is_file():
         manifest = json.loads((folder / "manifest.json").read_text(encoding="utf-8"))
-    curves = []
-    if (folder / "curves.csv").is_file():
-        with open(folder / "curves.csv", newline="", encoding="utf-8") as fh:
-            curves = list(csv.DictReader(fh))
-    return {"metrics": metrics, "manifest": manifest, "curves": curves,
-            "problems": io.check_manifest(folder)}
+    out["manifest"] = manifest
+    if kind == "metrics":
+        curves = []
+        if (folder / "curves.csv").is_file():
+            with open(folder / "curves.csv", newline="", encoding="utf-8") as fh:
+                curves = list(csv.DictReader(fh))
+        out["curves"] = curves
+    out["problems"] = io.check_manifest(folder)
+    return out

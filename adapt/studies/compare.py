@@ -1,10 +1,12 @@
 """Compare processors on one scene: Monte Carlo scores, a summary table, a run folder.
 
-``compare(scene, processors)`` runs :func:`adapt.engine.execute.run_trials` and condenses it into
-plain dictionaries (``Comparison.metrics``, the ``metrics.json`` schema below);
-``Comparison.table()`` renders the terminal summary; :func:`write_compare_run` writes a
-new run folder (``scene.yaml``, ``metrics.json``, ``curves.csv``, figures,
-``report.html``, ``manifest.json``). The command ``adapt compare`` is a thin wrapper.
+``compare(scene, processors)`` runs :func:`adapt.engine.execute.run_trials` and condenses it,
+once, into a typed summary (:func:`summarise` -> ``Comparison.summary``, a
+:class:`adapt.studies.summaries.CompareSummary`, whose ``to_json()`` is ``metrics.json``);
+``Comparison.table()`` renders the terminal summary from it; :func:`write_compare_run`
+writes a new run folder (``scene.yaml``, ``metrics.json``, ``curves.csv``, figures,
+``report.html``, ``manifest.json``), every file read from the same summary. The command
+``adapt compare`` is a thin wrapper.
 
 Conventions of the summary (all "mean" values are over Monte Carlo trials):
 
@@ -19,7 +21,10 @@ Conventions of the summary (all "mean" values are over Monte Carlo trials):
   Mallett and Brennan 1974), is at most 3 dB; ``snapshots_to_3db_fraction`` the first
   checkpoint at which at least 90 % of the trials are within 3 dB; null if never;
 * null depths and white-noise gain are means over trials of dB values at the final
-  checkpoint, pointing error and peak sidelobe come from the final weights on each
+  checkpoint; ``null_depth_floored_db`` gives per interferer the mean, 10th and 90th
+  percentile over trials with each trial's value floored at ``null_depth_floor_db``
+  (:data:`NULL_FLOOR_DB`, -100 dB: deeper only measures round-off), the statistics
+  the null-depth figures draw; pointing error and peak sidelobe come from the final weights on each
   trial's true array: on the azimuth cut for a line (:func:`adapt.engine.scores.pointing_error_deg`,
   :func:`adapt.engine.scores.peak_sidelobe_db`), over all directions for any other
   array (``pattern_scope: "all directions"``; the pointing error is then the angle between the
@@ -36,9 +41,9 @@ from __future__ import annotations
 import math
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -60,9 +65,21 @@ from adapt.processors import is_clairvoyant
 from adapt.report.numbers import format_number
 from adapt.scene import geometry
 from adapt.scene.model import Scene
+from adapt.studies.summaries import (
+    CompareSummary,
+    Curve,
+    FinalScores,
+    NullDepth,
+    OptimumCurve,
+    PatternScores,
+    ProcessorSummary,
+    Ranking,
+    Verdict,
+)
 
-__all__ = ["Comparison", "compare", "summarise", "write_compare_run", "verdict", "verdict_lines",
-           "CAUTION", "TAIL"]
+__all__ = ["Comparison", "CompareSummary", "ProcessorSummary", "compare", "summarise",
+           "floored_null_depths", "write_compare_run", "verdict", "verdict_lines",
+           "render_table", "as_summary", "CAUTION", "TAIL", "NULL_FLOOR_DB"]
 
 #: printed under every summary table
 CAUTION = ("Simulation only: scores come from a modelled scene; validate against measured "
@@ -71,6 +88,10 @@ CAUTION = ("Simulation only: scores come from a modelled scene; validate against
 TAIL = 256
 #: trial x direction x element budget of the pattern scores (pointing, sidelobes)
 _PATTERN_BUDGET = 50_000_000
+#: null depths below this are floored (per trial) before their statistics are taken and
+#: drawn: deeper values only measure floating-point round-off, no hardware reaches them
+#: (common practice); written to metrics.json as ``null_depth_floor_db``
+NULL_FLOOR_DB = -100.0
 
 
 # --------------------------------------------------------------------------- summary
@@ -91,7 +112,7 @@ def quiescent_beamwidth_deg(scene) -> float:
                                              scene.look_elevation, resolution_deg=0.01)
 
 
-def _pattern_scores(evaluation: Evaluation, weights: np.ndarray, bw: float) -> dict:
+def _pattern_scores(evaluation: Evaluation, weights: np.ndarray, bw: float) -> PatternScores:
     """``bw``: :func:`quiescent_beamwidth_deg` of the evaluation's scene."""
     sc = evaluation.scene
     pos = evaluation.positions
@@ -114,14 +135,13 @@ def _pattern_scores(evaluation: Evaluation, weights: np.ndarray, bw: float) -> d
     with np.errstate(all="ignore"):
         pe = scores.pointing_error_deg(w, **args)
         psl = scores.peak_sidelobe_db(w, step_deg=step, **args)
-    return {"pointing_error_deg_mean": _nanmean(pe),
-            "pointing_error_deg_rms": float(np.sqrt(_nanmean(pe ** 2))),
-            "peak_sidelobe_db_mean": _nanmean(psl),
-            "pattern_trials": use}
+    return PatternScores(pointing_error_deg_mean=float(_nanmean(pe)),
+                         pointing_error_deg_rms=float(np.sqrt(_nanmean(pe ** 2))),
+                         peak_sidelobe_db_mean=float(_nanmean(psl)), trials=use)
 
 
 def _pattern_scores_2d(evaluation: Evaluation, weights: np.ndarray, pos, gains,
-                       aperture: float, bw: float) -> dict:
+                       aperture: float, bw: float) -> PatternScores:
     """Pointing error (angle between the main-beam peak and the look direction) and
     peak sidelobe searched over the sphere, for arrays that are not a line."""
     sc = evaluation.scene
@@ -150,14 +170,14 @@ def _pattern_scores_2d(evaluation: Evaluation, weights: np.ndarray, pos, gains,
         az = np.rad2deg(np.arctan2(u[:, 0], u[:, 1]))
         el = np.rad2deg(np.arcsin(np.clip(u[:, 2], -1.0, 1.0)))
         look_db = scores.to_db(scores.direction_response(w, pos[:use], look[None], g))[:, 0]
-    return {"pointing_error_deg_mean": _nanmean(pe),
-            "pointing_error_deg_rms": float(np.sqrt(_nanmean(pe ** 2))),
-            "peak_sidelobe_db_mean": _nanmean(psl),
-            "pattern_trials": use,
-            "pattern_scope": "all directions",
-            "peak_azimuth_error_deg_mean": _nanmean((az - sc.look_azimuth + 180.0) % 360.0 - 180.0),
-            "peak_elevation_error_deg_mean": _nanmean(el - sc.look_elevation),
-            "peak_over_look_db_mean": _nanmean(peak[1] - look_db)}
+    return PatternScores(
+        pointing_error_deg_mean=float(_nanmean(pe)),
+        pointing_error_deg_rms=float(np.sqrt(_nanmean(pe ** 2))),
+        peak_sidelobe_db_mean=float(_nanmean(psl)), trials=use, scope="all directions",
+        peak_azimuth_error_deg_mean=float(_nanmean((az - sc.look_azimuth + 180.0) % 360.0
+                                                   - 180.0)),
+        peak_elevation_error_deg_mean=float(_nanmean(el - sc.look_elevation)),
+        peak_over_look_db_mean=float(_nanmean(peak[1] - look_db)))
 
 
 def _worst_null(depths: dict, on: list) -> float | None:
@@ -166,10 +186,32 @@ def _worst_null(depths: dict, on: list) -> float | None:
     return max(vals) if vals else None
 
 
+def floored_null_depths(null_depth_db, names: Sequence[str],
+                        floor_db: float = NULL_FLOOR_DB) -> dict[str, NullDepth]:
+    """Statistics over trials of the null depths at the final checkpoint, each trial's
+    value floored at ``floor_db`` first: ``{name: NullDepth(mean, p10, p90)}``.
+
+    null_depth_db: (T, C, J) dB of one processor (:attr:`ProcessorScores.null_depth_db`);
+    names: the J interferers. Non-finite values are left out; an interferer with none
+    finite gets NaN."""
+    nd = np.asarray(null_depth_db, dtype=float)[:, -1, :]                 # (T, J)
+    if nd.shape[1] != len(names):
+        raise ValueError(f"{nd.shape[1]} null depths per trial but {len(names)} interferers")
+    nd = np.where(np.isfinite(nd), np.maximum(nd, floor_db), np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        mean = np.nanmean(nd, axis=0)
+        lo = np.nanpercentile(nd, 10, axis=0)
+        hi = np.nanpercentile(nd, 90, axis=0)
+    return {name: NullDepth(mean=float(mean[j]), p10=float(lo[j]), p90=float(hi[j]))
+            for j, name in enumerate(names)}
+
+
 def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 0.9,
-              seconds: float | None = None, patterns: bool = True) -> dict:
-    """The ``metrics.json`` dictionary of an evaluation (see the module docstring and
-    README for the schema and the meaning of each mean)."""
+              seconds: float | None = None, patterns: bool = True) -> CompareSummary:
+    """The summary of an evaluation, every statistic computed once (its ``to_json()``
+    is ``metrics.json``; see the module docstring and README for the meaning of each
+    mean)."""
     if not isinstance(evaluation, Evaluation):
         raise ValueError(f"expected an Evaluation, got {type(evaluation).__name__}")
     if not np.isfinite(target_db):
@@ -178,35 +220,14 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         raise ValueError(f"fraction must be in (0, 1], got {fraction}")
     sc = evaluation.scene
     checkpoints = np.asarray(evaluation.checkpoints)
+    counts = tuple(int(c) for c in checkpoints)
+    names = list(evaluation.interferers)
     opt_db = _db(evaluation.optimum_sinr)                               # (T, C)
-    out = {
-        "scene": sc.name,
-        "elements": int(sc.elements),
-        "trials": int(evaluation.trials),
-        "snapshots": int(evaluation.snapshots),
-        "seed": int(evaluation.seed),
-        "optimum_sinr_db": _nanmean(opt_db[:, -1]),
-        "stationary": bool(sc.stationary),
-        "interferers": list(evaluation.interferers),
-        "target_db": float(target_db),
-        "fraction": float(fraction),
-        "checkpoints": [int(c) for c in checkpoints],
-        "optimum_curve": {"snapshots": [int(c) for c in checkpoints],
-                          "sinr_db_mean": _nanmean(opt_db, axis=0).tolist()},
-        "processors": [],
-    }
     # interferers transmitting at the moment the final weights are scored (snapshot c)
     on_at_end = [s.name for s in sc.interferers if bool(s.active(int(checkpoints[-1])))]
-    if not sc.stationary:
-        out["interferers_on_at_end"] = on_at_end
-    if seconds is not None:
-        out["seconds"] = float(seconds)
     free_db = _interference_free_db(evaluation)                          # (T,) or None
     beamwidth = None                                # computed once, when first needed
-    if free_db is not None:
-        out["interference_free_sinr_db"] = _nanmean(free_db)
-        out["interference_cost_db"] = _nanmean(free_db - opt_db[:, -1])
-    per_trial = []
+    per_trial, entries = [], []
     for p in evaluation.processors:
         sinr_db = _db(p.sinr)
         with np.errstate(all="ignore"):
@@ -226,60 +247,64 @@ def summarise(evaluation: Evaluation, target_db: float = 3.0, fraction: float = 
         measured_db = _db(p.measured_sinr)
         wng_db = _db(p.white_noise_gain)
         nd = np.asarray(p.null_depth_db, dtype=float)
-        final = {
-            "sinr_db_mean": _first(sinr_stats["mean"][-1]),
-            "sinr_db_p10": _first(sinr_stats["p10"][-1]),
-            "sinr_db_p90": _first(sinr_stats["p90"][-1]),
-            "loss_db_mean": _first(loss_stats["mean"][-1]),
-            "loss_db_median": _first(loss_stats["median"][-1]),
-            "loss_db_p10": _first(loss_stats["p10"][-1]),
-            "loss_db_p90": _first(loss_stats["p90"][-1]),
-            "loss_db_of_mean": _first(loss_of_mean[-1]),
-            "normalized_sinr_mean": _first(rho_stats["mean"][-1]),
-            "normalized_sinr_sem": _first(rho_stats["sem"][-1]),
-            "white_noise_gain_db": _first(_nanmean(wng_db[:, -1])),
-            "null_depth_db": {name: _first(_nanmean(nd[:, -1, j]))
-                              for j, name in enumerate(evaluation.interferers)},
-            "measured_sinr_db_mean": _first(_nanmean(measured_db[:, -1])),
-        }
-        final["sinr_db_sem"] = _first(sinr_stats["sem"][-1])
-        if free_db is not None:
-            final["loss_db_vs_interference_free"] = _first(_nanmean(free_db - sinr_db[:, -1]))
+        depths = {name: _first(_nanmean(nd[:, -1, j])) for j, name in enumerate(names)}
+        if patterns and beamwidth is None:
+            beamwidth = quiescent_beamwidth_deg(sc)
+        final = FinalScores(
+            sinr_db_mean=_first(sinr_stats["mean"][-1]),
+            sinr_db_p10=_first(sinr_stats["p10"][-1]),
+            sinr_db_p90=_first(sinr_stats["p90"][-1]),
+            loss_db_mean=_first(loss_stats["mean"][-1]),
+            loss_db_median=_first(loss_stats["median"][-1]),
+            loss_db_p10=_first(loss_stats["p10"][-1]),
+            loss_db_p90=_first(loss_stats["p90"][-1]),
+            loss_db_of_mean=_first(loss_of_mean[-1]),
+            normalised_sinr_mean=_first(rho_stats["mean"][-1]),
+            normalised_sinr_sem=_first(rho_stats["sem"][-1]),
+            white_noise_gain_db=_first(_nanmean(wng_db[:, -1])),
+            null_depth_db=depths,
+            measured_sinr_db_mean=_first(_nanmean(measured_db[:, -1])),
+            sinr_db_sem=_first(sinr_stats["sem"][-1]),
+            loss_db_vs_interference_free=(None if free_db is None else
+                                          _first(_nanmean(free_db - sinr_db[:, -1]))),
+            worst_null_db=_worst_null(depths, on_at_end),
+            patterns=(_pattern_scores(evaluation, scores.band_centre_weights(
+                p.final_weights, evaluation.scene.elements), beamwidth) if patterns else None))
         per_trial.append((sinr_db[:, -1], rho_stats))
-        final["worst_null_db"] = _worst_null(final["null_depth_db"], on_at_end)
-        if patterns:
-            if beamwidth is None:
-                beamwidth = quiescent_beamwidth_deg(sc)
-            final.update(_pattern_scores(evaluation, scores.band_centre_weights(
-                p.final_weights, evaluation.scene.elements), beamwidth))
-        out["processors"].append({
-            "label": p.label,
-            "method": p.method,
-            "params": dict(p.params),
-            "spec": p.spec,
-            "final": final,
-            "snapshots_to_3db": to_mean,
-            "snapshots_to_3db_fraction": to_frac,
-            "snapshots_to_stay_within_3db": stay_mean,
-            "snapshots_to_stay_within_3db_fraction": stay_frac,
-            "seconds": float(p.seconds),
-            "curve": {
-                "snapshots": [int(c) for c in checkpoints],
-                "normalized_sinr_mean": rho_stats["mean"].tolist(),
-                "sinr_db_mean": sinr_stats["mean"].tolist(),
-                "sinr_db_p10": sinr_stats["p10"].tolist(),
-                "sinr_db_p90": sinr_stats["p90"].tolist(),
-                "loss_db_mean": loss_stats["mean"].tolist(),
-                "loss_db_of_mean": loss_of_mean.tolist(),
-                "loss_db_p10": loss_stats["p10"].tolist(),
-                "loss_db_median": loss_stats["median"].tolist(),
-                "loss_db_p90": loss_stats["p90"].tolist(),
-                "fraction_meeting_target": frac.tolist(),
-                "measured_sinr_db_mean": _nanmean(measured_db, axis=0).tolist(),
-            },
-        })
-    out["verdict"] = verdict(out, per_trial, target_db, int(evaluation.seed))
-    return out
+        entries.append(ProcessorSummary(
+            label=p.label, method=p.method, params=dict(p.params), spec=p.spec, final=final,
+            snapshots_to_3db=to_mean, snapshots_to_3db_fraction=to_frac,
+            snapshots_to_stay_within_3db=stay_mean,
+            snapshots_to_stay_within_3db_fraction=stay_frac,
+            seconds=float(p.seconds),
+            curve=Curve(snapshots=counts,
+                        normalised_sinr_mean=tuple(rho_stats["mean"].tolist()),
+                        sinr_db_mean=tuple(sinr_stats["mean"].tolist()),
+                        sinr_db_p10=tuple(sinr_stats["p10"].tolist()),
+                        sinr_db_p90=tuple(sinr_stats["p90"].tolist()),
+                        loss_db_mean=tuple(loss_stats["mean"].tolist()),
+                        loss_db_of_mean=tuple(loss_of_mean.tolist()),
+                        loss_db_p10=tuple(loss_stats["p10"].tolist()),
+                        loss_db_median=tuple(loss_stats["median"].tolist()),
+                        loss_db_p90=tuple(loss_stats["p90"].tolist()),
+                        fraction_meeting_target=tuple(frac.tolist()),
+                        measured_sinr_db_mean=tuple(_nanmean(measured_db, axis=0).tolist())),
+            null_depths=floored_null_depths(nd, names)))
+    summary = CompareSummary(
+        scene=sc.name, elements=int(sc.elements), trials=int(evaluation.trials),
+        snapshots=int(evaluation.snapshots), seed=int(evaluation.seed),
+        optimum_sinr_db=float(_nanmean(opt_db[:, -1])), stationary=bool(sc.stationary),
+        interferers=tuple(names), target_db=float(target_db), fraction=float(fraction),
+        checkpoints=counts,
+        optimum_curve=OptimumCurve(snapshots=counts,
+                                   sinr_db_mean=tuple(_nanmean(opt_db, axis=0).tolist())),
+        processors=tuple(entries), null_depth_floor_db=NULL_FLOOR_DB,
+        interferers_on_at_end=None if sc.stationary else tuple(on_at_end),
+        interference_free_sinr_db=None if free_db is None else float(_nanmean(free_db)),
+        interference_cost_db=(None if free_db is None
+                              else float(_nanmean(free_db - opt_db[:, -1]))),
+        seconds=None if seconds is None else float(seconds))
+    return replace(summary, verdict=verdict(summary, per_trial, target_db, int(evaluation.seed)))
 
 
 def _interference_free_db(evaluation: Evaluation):
@@ -304,16 +329,16 @@ def _interference_free_db(evaluation: Evaluation):
 VERDICT_RESAMPLES = 200
 
 
-def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict:
+def verdict(summary: CompareSummary, per_trial: list, target_db: float, seed: int) -> Verdict:
     """The ranked verdict under the compare table: best final SINR, fastest to the
     target loss, most robust across trials; each with its margin over the next and
     whether the margin is larger than its Monte Carlo uncertainty.
 
     Parameters
     ----------
-    metrics : dict
-        The summary built so far (``processors`` entries with ``final`` and
-        ``snapshots_to_3db``).
+    summary : CompareSummary
+        The summary built so far (its ``checkpoints`` and ``processors``, each with
+        ``final`` and ``snapshots_to_3db``; the verdict itself is not read).
     per_trial : list of (ndarray, dict)
         Per processor: final SINR in dB per trial, and the across-trial statistics of
         the normalised SINR per checkpoint (:func:`adapt.engine.scores.trial_summary`).
@@ -324,10 +349,10 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
 
     Returns
     -------
-    dict
-        ``final_sinr``, ``to_target`` and ``robust``: each ``{"ranking": [labels],
-        "best", "next", "margin", "uncertainty", "clear"}`` (``clear``: the margin is
-        larger than the uncertainty; None when it cannot be told).
+    Verdict
+        ``final_sinr``, ``to_target`` and ``robust``: each a :class:`Ranking` (labels
+        ranked, ``best``, ``runner_up``, ``margin``, ``uncertainty``, ``clear``: the
+        margin is larger than the uncertainty; None when it cannot be told).
 
     Notes
     -----
@@ -339,24 +364,25 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
     target, even at its mean normalised SINR minus two standard errors, at an earlier
     checkpoint than the next reaches it at plus two standard errors.
     """
-    labels = [p["label"] for p in metrics["processors"]]
+    procs = summary.processors
+    labels = [p.label for p in procs]
     # the clairvoyant bound is what the others are measured against, not a contender
-    contenders = [i for i, p in enumerate(metrics["processors"]) if not is_clairvoyant(p["method"])]
-    checkpoints = np.asarray(metrics["checkpoints"])
+    contenders = [i for i, p in enumerate(procs) if not is_clairvoyant(p.method)]
+    checkpoints = np.asarray(summary.checkpoints)
     finals = [np.asarray(x, float) for x, _ in per_trial]
 
     def entry(order, margin, uncertainty, clear, unit):
-        ranking = [labels[i] for i in order]
-        return {"ranking": ranking, "best": ranking[0] if ranking else None,
-                "next": ranking[1] if len(ranking) > 1 else None,
-                "margin": margin, "uncertainty": uncertainty, "clear": clear, "unit": unit}
+        ranking = tuple(labels[i] for i in order)
+        return Ranking(ranking=ranking, best=ranking[0] if ranking else None,
+                       runner_up=ranking[1] if len(ranking) > 1 else None, margin=margin,
+                       uncertainty=uncertainty, clear=clear, unit=unit)
 
     def paired(i, j, stat):
         ok = np.isfinite(finals[i]) & np.isfinite(finals[j])
         return finals[i][ok], finals[j][ok]
 
     # best final SINR: mean over trials of dB
-    means = [metrics["processors"][i]["final"]["sinr_db_mean"] for i in range(len(labels))]
+    means = [p.final.sinr_db_mean for p in procs]
     order = sorted((i for i in contenders if _finite(means[i])), key=lambda i: -means[i])
     margin = unc = clear = None
     if len(order) > 1:
@@ -366,7 +392,7 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
             margin = float(np.mean(diff))
             unc = float(2 * np.std(diff, ddof=1) / math.sqrt(len(diff)))
             clear = bool(margin > unc)
-    out = {"final_sinr": entry(order, margin, unc, clear, "dB")}
+    final_sinr = entry(order, margin, unc, clear, "dB")
 
     # fastest to the target: first checkpoint where the mean normalised SINR is within
     # target_db of the optimum; its range from the mean +- 2 standard errors
@@ -379,7 +405,7 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
     reach = []
     for i, (_, stats) in enumerate(per_trial):
         mean, sem = np.asarray(stats["mean"], float), np.nan_to_num(stats["sem"], nan=0.0)
-        reach.append((metrics["processors"][i]["snapshots_to_3db"],
+        reach.append((procs[i].snapshots_to_3db,
                       first(mean + 2 * sem), first(mean - 2 * sem)))
     order = sorted((i for i in contenders if reach[i][0] is not None), key=lambda i: reach[i][0])
     order += [i for i in contenders if reach[i][0] is None]
@@ -388,10 +414,10 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
         best, nxt = reach[order[0]], reach[order[1]]
         margin = None if nxt[0] is None else float(nxt[0] - best[0])
         clear = bool(best[2] is not None and (nxt[1] is None or best[2] < nxt[1]))
-    out["to_target"] = entry(order, margin, unc, clear, "snapshots")
+    to_target = entry(order, margin, unc, clear, "snapshots")
 
     # most robust: the highest 10th percentile of the final SINR over trials
-    p10 = [metrics["processors"][i]["final"]["sinr_db_p10"] for i in range(len(labels))]
+    p10 = [p.final.sinr_db_p10 for p in procs]
     order = sorted((i for i in contenders if _finite(p10[i])), key=lambda i: -p10[i])
     margin = unc = clear = None
     if len(order) > 1:
@@ -403,59 +429,71 @@ def verdict(metrics: dict, per_trial: list, target_db: float, seed: int) -> dict
             diffs = np.percentile(a[pick], 10, axis=1) - np.percentile(b[pick], 10, axis=1)
             unc = float(2 * np.std(diffs, ddof=1))
             clear = bool(margin > unc)
-    out["robust"] = entry(order, margin, unc, clear, "dB")
-    return out
+    return Verdict(final_sinr=final_sinr, to_target=to_target,
+                   robust=entry(order, margin, unc, clear, "dB"))
 
 
 def _finite(v) -> bool:
     return v is not None and math.isfinite(float(v))
 
 
-def verdict_lines(metrics: dict) -> list[str]:
+def as_summary(summary) -> CompareSummary:
+    """A :class:`CompareSummary` as it is, or the one of a ``metrics.json`` mapping."""
+    if isinstance(summary, CompareSummary):
+        return summary
+    if isinstance(summary, Mapping):
+        return CompareSummary.from_mapping(summary)
+    raise ValueError(f"expected a CompareSummary or a metrics.json mapping, got "
+                     f"{type(summary).__name__}")
+
+
+def verdict_lines(summary: CompareSummary | Mapping) -> list[str]:
     """The verdict of :func:`verdict` and the interference cost as short sentences (for
-    the table and report.html); empty for a summary without them."""
-    v = metrics.get("verdict")
-    if not v:
+    the table and report.html); empty for a summary without them. ``summary``: a
+    :class:`CompareSummary` or a ``metrics.json`` mapping."""
+    summary = as_summary(summary)
+    v = summary.verdict
+    if v is None:
         return []
     lines = []
 
-    def said(e, what, unit_word):
-        if e["best"] is None:
+    def said(e: Ranking, what, unit_word):
+        if e.best is None:
             return None
-        if e["next"] is None:
-            return f"{what}: {e['best']}"
-        if e["margin"] is None:
-            return f"{what}: {e['best']} ({e['next']} never gets there)" \
-                if e["unit"] == "snapshots" else f"{what}: {e['best']}"
-        digits = 0 if e["unit"] == "snapshots" else 2
-        if e["margin"] == 0:
-            return f"{what}: {e['best']} and {e['next']} tie"
-        text = f"{what}: {e['best']}, {format_number(e['margin'], digits)} {unit_word} " \
-               f"ahead of {e['next']}"
-        if e["clear"] is None:
+        if e.runner_up is None:
+            return f"{what}: {e.best}"
+        if e.margin is None:
+            return f"{what}: {e.best} ({e.runner_up} never gets there)" \
+                if e.unit == "snapshots" else f"{what}: {e.best}"
+        digits = 0 if e.unit == "snapshots" else 2
+        if e.margin == 0:
+            return f"{what}: {e.best} and {e.runner_up} tie"
+        text = f"{what}: {e.best}, {format_number(e.margin, digits)} {unit_word} " \
+               f"ahead of {e.runner_up}"
+        if e.clear is None:
             return text
-        if e["uncertainty"] is not None:
-            text += f" (Monte Carlo uncertainty {format_number(e['uncertainty'], digits)} " \
-                    f"{unit_word}: {'clear' if e['clear'] else 'not clear'})"
+        if e.uncertainty is not None:
+            text += f" (Monte Carlo uncertainty {format_number(e.uncertainty, digits)} " \
+                    f"{unit_word}: {'clear' if e.clear else 'not clear'})"
         else:
-            text += " (" + ("clear beyond" if e["clear"] else "within") + \
+            text += " (" + ("clear beyond" if e.clear else "within") + \
                     " the Monte Carlo uncertainty)"
         return text
 
-    for key, what, unit_word in (("final_sinr", "best final SINR", "dB"),
-                                 ("to_target", f"fastest to {metrics.get('target_db', 3):g} dB",
-                                  "snapshots"),
-                                 ("robust", "most robust (highest SINR of the worst 10 % of "
-                                  "trials)", "dB")):
-        text = said(v[key], what, unit_word)
+    for entry, what, unit_word in ((v.final_sinr, "best final SINR", "dB"),
+                                   (v.to_target, f"fastest to {summary.target_db:g} dB",
+                                    "snapshots"),
+                                   (v.robust, "most robust (highest SINR of the worst 10 % of "
+                                    "trials)", "dB")):
+        text = said(entry, what, unit_word)
         if text:
             lines.append(text)
-    cost = metrics.get("interference_cost_db")
+    cost = summary.interference_cost_db
     if _finite(cost):
         lines.append(f"interference cost even at the optimum: {format_number(cost)} dB "
                      f"(interference-free array "
-                     f"{format_number(metrics['interference_free_sinr_db'])} dB SINR, optimum "
-                     f"{format_number(metrics['optimum_sinr_db'])} dB)")
+                     f"{format_number(summary.interference_free_sinr_db)} dB SINR, optimum "
+                     f"{format_number(summary.optimum_sinr_db)} dB)")
     return lines
 
 
@@ -464,32 +502,32 @@ def _cell(v, decimals: int = 2, none: str = "n/a") -> str:
     return format_number(v, decimals, none=none)
 
 
-def render_table(metrics: dict, width: int = 100) -> str:
-    """Plain-text summary of a ``metrics`` dictionary, aligned, at most ``width``
-    columns wide (a label too long for its column is written whole on a line of its
-    own, its numbers on the next)."""
+def render_table(summary: CompareSummary | Mapping, width: int = 100) -> str:
+    """Plain-text summary of a comparison (a :class:`CompareSummary` or a
+    ``metrics.json`` mapping), aligned, at most ``width`` columns wide (a label too
+    long for its column is written whole on a line of its own, its numbers on the
+    next)."""
+    summary = as_summary(summary)
     heads = [("SINR dB", "final"), ("loss dB", "vs opt"), ("to 3 dB", "mean"),
-             ("to 3 dB", f"{metrics.get('fraction', 0.9) * 100:.0f}% trials"),
+             ("to 3 dB", f"{summary.fraction * 100:.0f}% trials"),
              ("worst null", "dB"), ("WNG", "dB"), ("time", "s")]
     # "stays within" differs from "first reached" when the loss comes back (the scene
     # changes, or the mean wanders): then both are shown
-    stays = any(p.get("snapshots_to_stay_within_3db", p["snapshots_to_3db"])
-                != p["snapshots_to_3db"] for p in metrics["processors"])
+    stays = any(p.snapshots_to_stay_within_3db != p.snapshots_to_3db
+                for p in summary.processors)
     if stays:
         heads.insert(4, ("stays 3 dB", "mean from"))
     rows = []
-    for p in metrics["processors"]:
-        f = p["final"]
-        nulls = [v for v in f["null_depth_db"].values() if v is not None]
-        worst = f["worst_null_db"] if "worst_null_db" in f else (max(nulls) if nulls else None)
-        rows.append([p["label"],
-                     _cell(f["sinr_db_mean"]), _cell(f["loss_db_mean"]),
-                     _cell(p["snapshots_to_3db"], 0, "never"),
-                     _cell(p["snapshots_to_3db_fraction"], 0, "never"),
-                     _cell(worst, 1),
-                     _cell(f["white_noise_gain_db"]), _cell(p["seconds"], 2)])
+    for p in summary.processors:
+        f = p.final
+        rows.append([p.label,
+                     _cell(f.sinr_db_mean), _cell(f.loss_db_mean),
+                     _cell(p.snapshots_to_3db, 0, "never"),
+                     _cell(p.snapshots_to_3db_fraction, 0, "never"),
+                     _cell(f.worst_null_db, 1),
+                     _cell(f.white_noise_gain_db), _cell(p.seconds, 2)])
         if stays:
-            rows[-1].insert(5, _cell(p.get("snapshots_to_stay_within_3db"), 0, "never"))
+            rows[-1].insert(5, _cell(p.snapshots_to_stay_within_3db, 0, "never"))
     numw = [max(len(h[0]), len(h[1]), *(len(r[i + 1]) for r in rows)) for i, h in enumerate(heads)]
     fixed = sum(numw) + 2 * len(numw)
     labw = max(9, min(max([len(r[0]) for r in rows] + [9]), max(9, width - fixed)))
@@ -501,36 +539,36 @@ def render_table(metrics: dict, width: int = 100) -> str:
         text = (first.ljust(labw) + "".join("  " + c.rjust(w) for c, w in zip(cells[1:], numw))).rstrip()
         return text if len(cells[0]) <= labw else cells[0] + "\n" + text
 
-    k = metrics["snapshots"]
-    what = (f"{metrics['scene']}: {metrics['elements']} elements, {metrics['trials']} trials, "
-            f"{k} snapshots, seed {metrics['seed']}")
-    opt = (f"optimum SINR (clairvoyant MVDR): {_cell(metrics['optimum_sinr_db'])} dB, mean over "
-           f"trials" + ("" if metrics.get("stationary", True) else " at the last snapshot"))
+    k = summary.snapshots
+    what = (f"{summary.scene}: {summary.elements} elements, {summary.trials} trials, "
+            f"{k} snapshots, seed {summary.seed}")
+    opt = (f"optimum SINR (clairvoyant MVDR): {_cell(summary.optimum_sinr_db)} dB, mean over "
+           f"trials" + ("" if summary.stationary else " at the last snapshot"))
     out = [what, opt, "",
            line(["processor"] + [h[0] for h in heads]),
            line([""] + [h[1] for h in heads]),
            "-" * min(width, labw + fixed)]
     out += [line(r) for r in rows]
-    off = [name for name in metrics.get("interferers", [])
-           if "interferers_on_at_end" in metrics and name not in metrics["interferers_on_at_end"]]
+    on = summary.interferers_on_at_end
+    off = [name for name in summary.interferers if on is not None and name not in on]
     if off:
         out += ["", "worst null: interferers on at the last checkpoint only (off then: "
                 + ", ".join(off) + ")"]
-    said = verdict_lines(metrics)
+    said = verdict_lines(summary)
     if said:
         import textwrap
         out += ["", "verdict (margins paired over the same trials):"]
         out += [textwrap.fill(t, width, initial_indent="  ", subsequent_indent="    ")
                 for t in said]
-    total = metrics.get("seconds")
+    total = summary.seconds
     out += ["", f"loss = optimum minus output SINR, mean over trials of dB; 'to 3 dB' = snapshots "
-                f"until the loss is first within {metrics.get('target_db', 3):g} dB ('never': not within "
+                f"until the loss is first within {summary.target_db:g} dB ('never': not within "
                 f"{k})" + ("; 'stays 3 dB' = snapshots from which the mean loss stays within "
                            "it to the end (first reached and lost again counts only here)"
                            if stays else "")
             + "; time = each processor's own compute time, summed over threads"
             + (f" (whole comparison {total:.1f} s of wall time)" if total is not None else "")]
-    if any("n/a" in r[1:] for r in rows) or _cell(metrics["optimum_sinr_db"]) == "n/a":
+    if any("n/a" in r[1:] for r in rows) or _cell(summary.optimum_sinr_db) == "n/a":
         out += ["n/a = undefined: no finite value in any trial (e.g. the wanted source is off "
                 "at the last checkpoint, so the optimum SINR is 0 and ratios to it are "
                 "undefined; metrics.json holds null)"]
@@ -550,28 +588,32 @@ def _wrap(text: str, width: int) -> str:
 @dataclass
 class Comparison:
     """Result of :func:`compare`: the scored :class:`Evaluation` (numpy arrays per
-    processor, checkpoint and trial), the summary ``metrics`` (the ``metrics.json``
-    dictionary), the scene as run and the processors."""
+    processor, checkpoint and trial), its :class:`CompareSummary` (``summary``: every
+    statistic the table, CSV, figures and report show), the scene as run and the
+    processors. ``metrics`` is the summary as the ``metrics.json`` mapping."""
     evaluation: Evaluation
-    metrics: dict
+    summary: CompareSummary
     scene: Scene
     processors: list = field(default_factory=list)
     seconds: float = 0.0
 
+    @property
+    def metrics(self) -> dict:
+        """The ``metrics.json`` mapping (``summary.to_json()``; a new dict each time)."""
+        return self.summary.to_json()
+
     def table(self, width: int = 100) -> str:
         """The terminal summary table (plain text)."""
-        return render_table(self.metrics, width)
+        return render_table(self.summary, width)
 
     def processor(self, label: str) -> dict:
-        """The metrics entry of one processor, by label."""
-        for p in self.metrics["processors"]:
-            if p["label"] == label:
-                return p
-        raise KeyError(label)
+        """The ``metrics.json`` entry of one processor, by label (KeyError if none;
+        ``summary.processor(label)`` is the typed entry)."""
+        return self.summary.processor(label).to_json()
 
     @property
     def labels(self) -> list[str]:
-        return [p["label"] for p in self.metrics["processors"]]
+        return self.summary.labels
 
     def __str__(self) -> str:
         return self.table()
@@ -631,11 +673,10 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     ev = run_trials(used, procs, checkpoints, chunk=chunk, tail=tail, progress=progress,
                   workers=workers, scheduler=scheduler, store=store, on_chunk=on_chunk,
                   threads=threads)
-    metrics = summarise(ev, target_db, fraction, patterns=patterns)
+    summary = summarise(ev, target_db, fraction, patterns=patterns)
     seconds = time.perf_counter() - t0
-    metrics["seconds"] = seconds
-    return Comparison(evaluation=ev, metrics=metrics, scene=used, processors=procs,
-                      seconds=seconds)
+    return Comparison(evaluation=ev, summary=replace(summary, seconds=seconds), scene=used,
+                      processors=procs, seconds=seconds)
 
 
 def write_compare_run(comparison: Comparison, out_root="runs",
@@ -654,8 +695,8 @@ def write_compare_run(comparison: Comparison, out_root="runs",
     from adapt.studies.check import summarise_scene
     if not isinstance(comparison, Comparison):
         raise ValueError(f"expected a Comparison, got {type(comparison).__name__}")
-    return runs.write_run(comparison.scene, comparison.evaluation, comparison.metrics,
+    return runs.write_run(comparison.scene, comparison.evaluation, comparison.summary,
                           out_root=out_root, command_line=command_line, kind="compare",
                           figures=figures, table=comparison.table(), folder=folder,
                           scene_summary=summarise_scene(comparison.scene) if figures else "",
-                          verdict=verdict_lines(comparison.metrics))
+                          verdict=verdict_lines(comparison.summary))
