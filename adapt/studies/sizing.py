@@ -45,9 +45,9 @@ import functools
 import math
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -58,10 +58,19 @@ from adapt.processors import Processor
 from adapt.processors._covariance import effective_loading
 from adapt.scene.model import Scene
 from adapt.studies import theory
+from adapt.studies.summaries import (
+    Disagreement,
+    RuleOfThumb,
+    RulesOfThumb,
+    SizedProcessor,
+    SizingPoint,
+    SizingSummary,
+    TheoryAnswer,
+)
 
-__all__ = ["Sizing", "size", "sweep_points", "stays_met", "bootstrap_required",
-           "clopper_pearson", "analyse_processor", "recommendation", "render_table",
-           "write_sizing_run", "DEFAULT_PROCESSORS", "PER_OCTAVE", "BOOTSTRAP_RESAMPLES",
+__all__ = ["Sizing", "SizingSummary", "size", "sweep_points", "stays_met",
+           "bootstrap_required", "clopper_pearson", "analyse_processor", "recommendation",
+           "render_table", "as_summary", "write_sizing_run", "DEFAULT_PROCESSORS", "PER_OCTAVE", "BOOTSTRAP_RESAMPLES",
            "CONFIDENCE", "DISAGREE_SEM"]
 
 #: processors sized when none are given: the two with theory or a rule of thumb
@@ -280,9 +289,12 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
                       fraction: float, seed: int, law: theory.Law | None = None) -> dict:
     """Per-point statistics and the two sizing answers for one processor.
 
-    rho: (T, C) normalised SINR at the sweep ``points`` (C,). Returns the JSON-ready
-    mapping described in the module docstring (points, required counts, ranges, theory
-    columns and disagreements).
+    rho: (T, C) normalised SINR at the sweep ``points`` (C,). Returns the answers as a
+    mapping of :class:`adapt.studies.summaries.SizedProcessor` fields (``points``: one
+    :class:`SizingPoint` per count; the required counts and their ranges;
+    ``met_at_first_point``; ``disagreements``: :class:`Disagreement` entries) plus the
+    closed form's own answers ``theory_required_snapshots`` and
+    ``theory_required_snapshots_fraction`` (None without ``law``).
     """
     rho = np.asarray(rho, dtype=float)
     points = np.asarray(points, dtype=np.int64)
@@ -323,44 +335,45 @@ def analyse_processor(rho: np.ndarray, points: np.ndarray, target_loss_db: float
     disagreements = []
     for c, k in enumerate(points):
         th = float(th_mean[c])
-        rows.append({
-            "snapshots": int(k),
-            "normalized_sinr_mean": float(mean[c]),
-            "normalized_sinr_sem": float(sem[c]),
-            "loss_db_mean": float(_pct_loss(np.array([mean[c]]))[0]),
-            "loss_db_median": float(loss_med[c]),
-            "loss_db_p10": float(loss_p10[c]),
-            "loss_db_p90": float(loss_p90[c]),
-            "fraction_meeting_target": float(frac[c]),
-            "fraction_interval": [float(cp_lo[c]), float(cp_hi[c])],
-            "theory_fraction_meeting_target": (float(th_share[c]) if math.isfinite(th_share[c])
-                                               else None),
-            "theory_normalized_sinr_mean": th if math.isfinite(th) else None,
-            "theory_loss_db_p10": float(_pct_loss(th_q[0, c:c + 1])[0]) if math.isfinite(th) else None,
-            "theory_loss_db_p90": float(_pct_loss(th_q[1, c:c + 1])[0]) if math.isfinite(th) else None,
-            "trials_defined": int(n[c]),
-        })
+        rows.append(SizingPoint(
+            snapshots=int(k),
+            normalised_sinr_mean=float(mean[c]),
+            normalised_sinr_sem=float(sem[c]),
+            loss_db_mean=float(_pct_loss(np.array([mean[c]]))[0]),
+            loss_db_median=float(loss_med[c]),
+            loss_db_p10=float(loss_p10[c]),
+            loss_db_p90=float(loss_p90[c]),
+            fraction_meeting_target=float(frac[c]),
+            fraction_interval=(float(cp_lo[c]), float(cp_hi[c])),
+            theory_fraction_meeting_target=(float(th_share[c]) if math.isfinite(th_share[c])
+                                            else None),
+            theory_normalised_sinr_mean=th if math.isfinite(th) else None,
+            theory_loss_db_p10=(float(_pct_loss(th_q[0, c:c + 1])[0]) if math.isfinite(th)
+                                else None),
+            theory_loss_db_p90=(float(_pct_loss(th_q[1, c:c + 1])[0]) if math.isfinite(th)
+                                else None),
+            trials_defined=int(n[c])))
         if math.isfinite(th) and np.isfinite(sem[c]) and sem[c] > 0:
             z = (mean[c] - th) / sem[c]
             if abs(z) > DISAGREE_SEM:
-                disagreements.append({"snapshots": int(k), "simulated": float(mean[c]),
-                                      "theory": th, "sem": float(sem[c]),
-                                      "standard_errors": float(z)})
+                disagreements.append(Disagreement(snapshots=int(k), simulated=float(mean[c]),
+                                                  theory=th, sem=float(sem[c]),
+                                                  standard_errors=float(z)))
     limit = int(points[-1])
     return {
-        "points": rows,
+        "points": tuple(rows),
         "required_snapshots_mean": _count_at(points, i_mean),
-        "required_snapshots_mean_range": [_count_at(points, b_lo), _count_at(points, b_hi)],
+        "required_snapshots_mean_range": (_count_at(points, b_lo), _count_at(points, b_hi)),
         "required_snapshots_fraction": _count_at(points, i_frac),
-        "required_snapshots_fraction_range": [_count_at(points, i_frac_early),
-                                              _count_at(points, i_frac_late)],
+        "required_snapshots_fraction_range": (_count_at(points, i_frac_early),
+                                              _count_at(points, i_frac_late)),
         "met_at_first_point": bool((i_mean == 0 or i_frac == 0) and points[0] > 1),
         "theory_required_snapshots": (law.required_snapshots(target, limit)
                                       if law is not None else None),
         "theory_required_snapshots_fraction": (law.required_snapshots_share(target, fraction,
                                                                             limit)
                                                if law is not None else None),
-        "disagreements": disagreements,
+        "disagreements": tuple(disagreements),
     }
 
 
@@ -369,7 +382,7 @@ def _unloaded_smi(proc: Processor) -> bool:
 
 
 # --------------------------------------------------------------------------- rules of thumb
-def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | None:
+def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> RuleOfThumb | None:
     """The rule of thumb for one processor, or None (methods other than smi, and
     spatially smoothed smi)."""
     if not proc.sample_mvdr or proc.params.get("subarray") is not None:
@@ -381,24 +394,28 @@ def _rule_of_thumb(proc: Processor, scene: Scene, sinr_opt: float) -> dict | Non
         # the training data the loaded weight also partly cancels the signal and no rule
         # of thumb is known (the unloaded signal-present law is the no-loading limit)
         k = max(n, int(round((n - 1) * (2.0 + sinr_opt) - 1)))
-        return {"snapshots": None, "strong_interferers": None,
-                "text": "none applies: Carlson's 2J rule holds for training without the "
-                        "wanted signal, and loaded SMI trained with it present has no rule "
-                        "of thumb; without loading the signal-present law would need about "
-                        f"(N-1)(2+SINR_opt)-1 = {k} (Boroson 1980)"}
+        return RuleOfThumb(
+            snapshots=None, strong_interferers=None,
+            text="none applies: Carlson's 2J rule holds for training without the wanted "
+                 "signal, and loaded SMI trained with it present has no rule of thumb; "
+                 "without loading the signal-present law would need about "
+                 f"(N-1)(2+SINR_opt)-1 = {k} (Boroson 1980)")
     if mode is not None:
         j = theory.strong_interferers(scene, db)
-        return {"snapshots": theory.loaded_rule_of_thumb(j), "strong_interferers": j,
-                "text": f"about 2J = {2 * j} (J = {j} interferer eigenvalue(s) above the "
-                        f"{db:g} dB load; {theory.CARLSON_SOURCE})"}
+        return RuleOfThumb(
+            snapshots=theory.loaded_rule_of_thumb(j), strong_interferers=j,
+            text=f"about 2J = {2 * j} (J = {j} interferer eigenvalue(s) above the "
+                 f"{db:g} dB load; {theory.CARLSON_SOURCE})")
     if scene.training == "signal":
         k = max(n, int(round((n - 1) * (2.0 + sinr_opt) - 1)))
-        return {"snapshots": k, "strong_interferers": None,
-                "text": f"about (N-1)(2+SINR_opt)-1 = {k} with the signal in the training "
-                        "data (derived in adapt.studies.theory; Boroson 1980)"}
-    return {"snapshots": theory.unloaded_rule_of_thumb(n), "strong_interferers": None,
-            "text": f"about 2N = {2 * n} (3 dB in the mean at exactly 2N-3 = "
-                    f"{theory.rmb_three_db_snapshots(n)}; {theory.RMB_SOURCE})"}
+        return RuleOfThumb(
+            snapshots=k, strong_interferers=None,
+            text=f"about (N-1)(2+SINR_opt)-1 = {k} with the signal in the training data "
+                 "(derived in adapt.studies.theory; Boroson 1980)")
+    return RuleOfThumb(
+        snapshots=theory.unloaded_rule_of_thumb(n), strong_interferers=None,
+        text=f"about 2N = {2 * n} (3 dB in the mean at exactly 2N-3 = "
+             f"{theory.rmb_three_db_snapshots(n)}; {theory.RMB_SOURCE})")
 
 
 # --------------------------------------------------------------------------- text
@@ -417,54 +434,65 @@ def _snaps(k: int) -> str:
     return f"{k} snapshot" + ("" if k == 1 else "s")
 
 
-def recommendation(proc: dict, target_loss_db: float, fraction: float, limit: int) -> str:
-    """One plain-language line for one processor record of sizing.json."""
+def _entry(proc) -> SizedProcessor:
+    if isinstance(proc, SizedProcessor):
+        return proc
+    if isinstance(proc, Mapping):
+        return SizedProcessor.from_mapping(proc)
+    raise ValueError(f"expected a SizedProcessor or a processor mapping of sizing.json, got "
+                     f"{type(proc).__name__}")
+
+
+def recommendation(proc: SizedProcessor | Mapping, target_loss_db: float, fraction: float,
+                   limit: int) -> str:
+    """One plain-language line for one processor of a sizing summary (a
+    :class:`SizedProcessor`, or its mapping in sizing.json)."""
+    proc = _entry(proc)
     t = f"{target_loss_db:g} dB"
-    m = proc["required_snapshots_mean"]
-    f = proc["required_snapshots_fraction"]
+    m = proc.required_snapshots_mean
+    f = proc.required_snapshots_fraction
     pct = f"{100 * fraction:g} %"
     lvl = f"{100 * CONFIDENCE:g} %"
     if m is None:
-        head = f"{proc['label']}: the mean loss stays above {t} up to {limit} snapshots"
+        head = f"{proc.label}: the mean loss stays above {t} up to {limit} snapshots"
     else:
-        head = (f"{proc['label']}: {t} in the mean after {_snaps(m)} (bootstrap {lvl} range "
-                f"{_range(proc['required_snapshots_mean_range'], limit)})")
+        head = (f"{proc.label}: {t} in the mean after {_snaps(m)} (bootstrap {lvl} range "
+                f"{_range(proc.required_snapshots_mean_range, limit)})")
     if f is None:
         tail = f"fewer than {pct} of trials within {t} by {limit}"
     else:
         tail = (f"{pct} of trials by {f} "
-                f"({_range(proc['required_snapshots_fraction_range'], limit)})")
+                f"({_range(proc.required_snapshots_fraction_range, limit)})")
     out = f"{head}; {tail}"
-    th = proc.get("theory")
-    if th:
-        k = th.get("required_snapshots")
-        out += (f"; {th['title']} says {k}" if k is not None
-                else f"; {th['title']} says more than {limit}")
-        if "required_snapshots_fraction" in th:
-            kf = th["required_snapshots_fraction"]
-            out += (f" ({pct} of trials by {kf}, Beta law)" if kf is not None
-                    else f" ({pct} of trials beyond {limit}, Beta law)")
-    rule = proc.get("rule_of_thumb")
-    if rule and not th:
-        out += f"; rule of thumb {rule['text']}"
-    if proc.get("met_at_first_point"):
+    th = proc.theory
+    if th is not None:
+        k = th.required_snapshots
+        out += (f"; {th.title} says {k}" if k is not None
+                else f"; {th.title} says more than {limit}")
+        kf = th.required_snapshots_fraction
+        out += (f" ({pct} of trials by {kf}, Beta law)" if kf is not None
+                else f" ({pct} of trials beyond {limit}, Beta law)")
+    rule = proc.rule_of_thumb
+    if rule is not None and th is None:
+        out += f"; rule of thumb {rule.text}"
+    if proc.met_at_first_point:
         out += ("; met already at the first sweep point: fewer snapshots may do (extend "
                 "the sweep downwards)")
     return out
 
 
-def _disagreement_text(proc: dict, violations: Sequence[str]) -> str | None:
-    d = proc["disagreements"]
+def _disagreement_text(proc: SizedProcessor, violations: Sequence[str]) -> str | None:
+    d = proc.disagreements
     if not d:
         return None
-    worst = max(d, key=lambda x: abs(x["standard_errors"]))
-    th = proc["theory"]["title"]
-    text = (f"{proc['label']}: simulation departs from {th} by more than "
+    worst = max(d, key=lambda x: abs(x.standard_errors))
+    th = proc.theory.title
+    text = (f"{proc.label}: simulation departs from {th} by more than "
             f"{DISAGREE_SEM:g} standard errors at {len(d)} of "
-            f"{sum(p['theory_normalized_sinr_mean'] is not None for p in proc['points'])} "
-            f"points (worst at {worst['snapshots']} snapshots: mean normalised SINR "
-            f"{worst['simulated']:.4f} against {worst['theory']:.4f}, "
-            f"{worst['standard_errors']:+.1f} standard errors)")
+            f"{sum(p.theory_normalised_sinr_mean is not None for p in proc.points)} "
+            f"points (worst at {worst.snapshots} snapshots: mean normalised SINR "
+            f"{worst.simulated:.4f} against {worst.theory:.4f}, "
+            f"{worst.standard_errors:+.1f} standard errors)")
     if violations:
         text += "; likely reason: the scene breaks the law's assumptions: " + "; ".join(violations)
     else:
@@ -478,38 +506,51 @@ def _f(v, fmt="{:.3f}") -> str:
     return "-" if v is None or (isinstance(v, float) and not math.isfinite(v)) else fmt.format(v)
 
 
-def render_table(record: dict) -> str:
-    """The terminal report: one table per processor, recommendations, disagreements."""
-    lines = [f"Snapshot sizing - {record['scene']}: {record['elements']} elements, "
-             f"{record['trials']} trials, seed {record['seed']}, optimum SINR "
-             f"{_f(record['optimum_sinr_db'], '{:.1f}')} dB, target loss "
-             f"{record['target_loss_db']:g} dB (normalised SINR >= "
-             f"{record['target_normalized_sinr']:.4f})"]
+def as_summary(summary) -> SizingSummary:
+    """A :class:`SizingSummary` as it is, or the one of a ``sizing.json`` mapping."""
+    if isinstance(summary, SizingSummary):
+        return summary
+    if isinstance(summary, Mapping):
+        return SizingSummary.from_mapping(summary)
+    raise ValueError(f"expected a SizingSummary or a sizing.json mapping, got "
+                     f"{type(summary).__name__}")
+
+
+def render_table(summary: SizingSummary | Mapping) -> str:
+    """The terminal report of a sizing summary (or its sizing.json mapping): one table
+    per processor, recommendations, disagreements."""
+    s = as_summary(summary)
+    lines = [f"Snapshot sizing - {s.scene}: {s.elements} elements, "
+             f"{s.trials} trials, seed {s.seed}, optimum SINR "
+             f"{_f(s.optimum_sinr_db, '{:.1f}')} dB, target loss "
+             f"{s.target_loss_db:g} dB (normalised SINR >= "
+             f"{s.target_normalised_sinr:.4f})"]
     head = (f"{'snapshots':>9} {'mean rho':>9} {'sem':>7} {'loss(mean)':>10} {'median':>7} "
             f"{'p10':>6} {'p90':>6} {'within':>7} {'theory':>8}")
-    for p in record["processors"]:
-        name = p["label"] if p["label"] == p["spec"] else f"{p['label']}  ({p['spec']})"
+    for p in s.processors:
+        name = p.label if p.label == p.spec else f"{p.label}  ({p.spec})"
         lines += ["", name, head]
-        for r in p["points"]:
+        for r in p.points:
+            within = r.fraction_meeting_target
             lines.append(
-                f"{r['snapshots']:>9} {_f(r['normalized_sinr_mean'], '{:.4f}'):>9} "
-                f"{_f(r['normalized_sinr_sem'], '{:.4f}'):>7} {_f(r['loss_db_mean'], '{:.2f}'):>10} "
-                f"{_f(r['loss_db_median'], '{:.2f}'):>7} {_f(r['loss_db_p10'], '{:.2f}'):>6} "
-                f"{_f(r['loss_db_p90'], '{:.2f}'):>6} "
-                f"{_f(100 * r['fraction_meeting_target'], '{:.0f} %') if r['fraction_meeting_target'] is not None else '-':>7} "
-                f"{_f(r['theory_normalized_sinr_mean'], '{:.4f}'):>8}")
-    if record.get("draw_reason"):
-        lines += ["", f"training data: {record['draw']} ({record['draw_reason']})"]
+                f"{r.snapshots:>9} {_f(r.normalised_sinr_mean, '{:.4f}'):>9} "
+                f"{_f(r.normalised_sinr_sem, '{:.4f}'):>7} {_f(r.loss_db_mean, '{:.2f}'):>10} "
+                f"{_f(r.loss_db_median, '{:.2f}'):>7} {_f(r.loss_db_p10, '{:.2f}'):>6} "
+                f"{_f(r.loss_db_p90, '{:.2f}'):>6} "
+                f"{_f(100 * within, '{:.0f} %') if within is not None else '-':>7} "
+                f"{_f(r.theory_normalised_sinr_mean, '{:.4f}'):>8}")
+    if s.draw_reason:
+        lines += ["", f"training data: {s.draw} ({s.draw_reason})"]
     lines += ["", "loss in dB; p10 = best 10 % of trials, p90 = worst 10 %; 'within' = "
-              f"trials within {record['target_loss_db']:g} dB; theory = closed-form mean "
+              f"trials within {s.target_loss_db:g} dB; theory = closed-form mean "
               "normalised SINR", "", "Recommendations:"]
-    lines += [f"  {p['recommendation']}" for p in record["processors"]]
-    if record["assumption_violations"]:
+    lines += [f"  {p.recommendation}" for p in s.processors]
+    if s.assumption_violations:
         lines += ["", "Assumptions of the closed forms this scene breaks:"]
-        lines += [f"  {v}" for v in record["assumption_violations"]]
-    if record["disagreements"]:
+        lines += [f"  {v}" for v in s.assumption_violations]
+    if s.disagreements:
         lines += ["", "Simulation against theory:"]
-        lines += [f"  {t}" for t in record["disagreements"]]
+        lines += [f"  {t}" for t in s.disagreements]
     lines += ["", CAUTION]
     return "\n".join(lines)
 
@@ -521,16 +562,23 @@ CAUTION = ("Simulation only: sizes come from a modelled scene; real data (non-Ga
 # --------------------------------------------------------------------------- the run
 @dataclass
 class Sizing:
-    """Result of :func:`size`: the sizing.json mapping (``record``), the evaluation it
-    came from (per-trial arrays), the scene as run and its processors."""
-    record: dict
+    """Result of :func:`size`: its :class:`SizingSummary` (``summary``: what the table,
+    figure, report and sizing.json read), the evaluation it came from (per-trial
+    arrays), the scene as run and its processors. ``record`` is the summary as the
+    ``sizing.json`` mapping."""
+    summary: SizingSummary
     evaluation: Evaluation
     scene: Scene
     processors: list = field(default_factory=list)
     seconds: float = 0.0
 
+    @property
+    def record(self) -> dict:
+        """The ``sizing.json`` mapping (``summary.to_json()``; a new dict each time)."""
+        return self.summary.to_json()
+
     def table(self) -> str:
-        return render_table(self.record)
+        return render_table(self.summary)
 
     def __str__(self) -> str:
         return self.table()
@@ -669,68 +717,55 @@ def size(scene, processors: Sequence | None = None, snapshots=None, trials: int 
     violations = list(facts["violations"])
     target = 10.0 ** (-target_loss_db / 10.0)
     limit = int(points[-1])
-    records, disagreements = [], []
+    entries, disagreements = [], []
     for proc, scores in zip(procs, ev.processors):
         law = theory.theory_for(proc, facts)
-        rec = {"label": proc.label, "method": proc.method, "params": dict(proc.params),
-               "spec": proc.spec(defaults=False)}
-        rec.update(analyse_processor(scores.normalised, points, target_loss_db, fraction,
-                                     used.seed, law))
+        answers = analyse_processor(scores.normalised, points, target_loss_db, fraction,
+                                    used.seed, law)
+        law_needs = answers.pop("theory_required_snapshots")
+        law_needs_share = answers.pop("theory_required_snapshots_fraction")
+        answer = None
         if law is not None:
-            title = "RMB theory" if law.name == "rmb" else "signal-present theory"
-            rec["theory"] = {"name": law.name, "title": title, "source": law.source,
-                             "required_snapshots": rec.pop("theory_required_snapshots"),
-                             "required_snapshots_fraction":
-                                 rec.pop("theory_required_snapshots_fraction"),
-                             "half_power_snapshots": law.three_db_snapshots(),
-                             "optimum_sinr": law.sinr_opt if law.name != "rmb" else None,
-                             "violations": list(law.violations)}
-        else:
-            rec.pop("theory_required_snapshots")
-            rec.pop("theory_required_snapshots_fraction")
-            rec["theory"] = None
-        rec["rule_of_thumb"] = _rule_of_thumb(proc, used, facts["optimum_sinr"])
-        rec["recommendation"] = recommendation(rec, target_loss_db, fraction, limit)
+            answer = TheoryAnswer(
+                name=law.name, title="RMB theory" if law.name == "rmb" else "signal-present theory",
+                source=law.source, required_snapshots=law_needs,
+                required_snapshots_fraction=law_needs_share,
+                half_power_snapshots=law.three_db_snapshots(),
+                optimum_sinr=law.sinr_opt if law.name != "rmb" else None,
+                violations=tuple(law.violations))
+        entry = SizedProcessor(label=proc.label, method=proc.method, params=dict(proc.params),
+                               spec=proc.spec(defaults=False), **answers, theory=answer,
+                               rule_of_thumb=_rule_of_thumb(proc, used, facts["optimum_sinr"]))
         own = violations + [v for v in (law.violations if law is not None else ())
-                             if v not in violations]
-        text = _disagreement_text(rec, own) if law is not None else None
-        rec["disagreement_summary"] = text
+                            if v not in violations]
+        text = _disagreement_text(entry, own) if law is not None else None
+        entries.append(replace(entry, disagreement_summary=text,
+                               recommendation=recommendation(entry, target_loss_db, fraction,
+                                                             limit)))
         if text:
             disagreements.append(text)
-        records.append(rec)
-    record = {
-        "scene": used.name,
-        "elements": n,
-        "trials": used.trials,
-        "seed": used.seed,
-        "draw": draw,
-        "draw_reason": draw_reason,
-        "training": used.training,
-        "optimum_sinr_db": 10 * math.log10(opt_mean) if opt_mean > 0 else None,
-        "target_loss_db": target_loss_db,
-        "target_normalized_sinr": target,
-        "fraction": fraction,
-        "confidence": CONFIDENCE,
-        "bootstrap_resamples": BOOTSTRAP_RESAMPLES,
-        "snapshots": [int(k) for k in points],
-        "rules_of_thumb": {
-            "unloaded_2n": theory.unloaded_rule_of_thumb(n) if n >= 2 else None,
-            "rmb_half_power": theory.rmb_three_db_snapshots(n) if n >= 2 else None,
-            "strong_interferers": facts["strong_interferers"],
-            "strong_definition": "interference eigenvalues above the load (10 dB over the "
-                                 "noise when unloaded); a lone interferer counts when N x "
-                                 "its per-element INR exceeds the load",
+    summary = SizingSummary(
+        scene=used.name, elements=n, trials=used.trials, seed=used.seed, draw=draw,
+        draw_reason=draw_reason, training=used.training,
+        optimum_sinr_db=10 * math.log10(opt_mean) if opt_mean > 0 else None,
+        target_loss_db=target_loss_db, target_normalised_sinr=target, fraction=fraction,
+        confidence=CONFIDENCE, bootstrap_resamples=BOOTSTRAP_RESAMPLES,
+        snapshots=tuple(int(k) for k in points),
+        rules_of_thumb=RulesOfThumb(
+            unloaded_2n=theory.unloaded_rule_of_thumb(n) if n >= 2 else None,
+            rmb_half_power=theory.rmb_three_db_snapshots(n) if n >= 2 else None,
+            strong_interferers=facts["strong_interferers"],
+            strong_definition="interference eigenvalues above the load (10 dB over the "
+                              "noise when unloaded); a lone interferer counts when N x "
+                              "its per-element INR exceeds the load",
             # Carlson's rule assumes training without the wanted signal
-            "loaded_2j": facts["loaded_rule"] if used.training != "signal" else None,
-        },
-        "interference_eigenvalues_db": facts["interference_eigenvalues_db"],
-        "assumption_violations": violations,
-        "disagreements": disagreements,
-        "processors": records,
-    }
+            loaded_2j=facts["loaded_rule"] if used.training != "signal" else None),
+        interference_eigenvalues_db=tuple(facts["interference_eigenvalues_db"]),
+        assumption_violations=tuple(violations), disagreements=tuple(disagreements),
+        processors=tuple(entries))
     seconds = time.perf_counter() - t0
-    record["seconds"] = seconds
-    return Sizing(record=record, evaluation=ev, scene=used, processors=procs, seconds=seconds)
+    return Sizing(summary=replace(summary, seconds=seconds), evaluation=ev, scene=used,
+                  processors=procs, seconds=seconds)
 
 
 # --------------------------------------------------------------------------- run folder
@@ -747,18 +782,18 @@ def write_sizing_run(sizing: Sizing, out_root="runs", command_line: str | None =
     from adapt.scenefile import dump_scene
     if not isinstance(sizing, Sizing):
         raise ValueError(f"expected a Sizing, got {type(sizing).__name__}")
-    rec = sizing.record
+    summary = sizing.summary
     writer = RunWriter(folder, out_root, f"size-{sizing.scene.name}")
     writer.text("scene.yaml",
                 "# The scene exactly as sized (defaults filled in; trials, seed and "
                 "the largest\n# snapshot count as run). Re-run with: adapt size "
                 "scene.yaml\n" + dump_scene(sizing.scene))
-    writer.json("sizing.json", rec)
-    png = sizing_figure_png(rec)
+    writer.json("sizing.json", summary.to_json())
+    png = sizing_figure_png(summary)
     writer.bytes("sizing.png", png)
-    page = build_page(f"Snapshot sizing: {rec['scene']}", sizing_sections(rec, png),
-                      footer=f"adapt size, seed {rec['seed']}, {rec['trials']} trials")
+    page = build_page(f"Snapshot sizing: {summary.scene}", sizing_sections(summary, png),
+                      footer=f"adapt size, seed {summary.seed}, {summary.trials} trials")
     writer.text("report.html", page)
-    return writer.seal({"kind": "size", "scene": rec["scene"], "seed": rec["seed"],
-                        "trials": rec["trials"], "command_line": command_line,
+    return writer.seal({"kind": "size", "scene": summary.scene, "seed": summary.seed,
+                        "trials": summary.trials, "command_line": command_line,
                         "seconds": sizing.seconds})
