@@ -58,23 +58,24 @@ def test_optimum_follows_the_closed_form_as_a_jammer_walks_into_the_main_lobe():
     p = 10 ** (20 / 10)
     a = steering(0.0)
     for point in result.points:
-        v = steering(point["values"]["sources[jam-1].azimuth"])
+        v = steering(point.values["sources[jam-1].azimuth"])
         closed = N - p * abs(np.vdot(a, v)) ** 2 / (1 + N * p)
         r = np.eye(N) + p * np.outer(v, v.conj())
         direct = np.real(np.vdot(a, np.linalg.solve(r, a)))
         assert closed == pytest.approx(direct, rel=1e-10)
-        assert point["optimum_sinr_db"] == pytest.approx(10 * np.log10(closed), abs=1e-9)
-    first = result.points[0]["optimum_sinr_db"]
+        assert point.optimum_sinr_db == pytest.approx(10 * np.log10(closed), abs=1e-9)
+    first = result.points[0].optimum_sinr_db
     assert first == pytest.approx(10 * np.log10(N / (1 + N * p)), abs=1e-9)
-    assert result.points[-1]["optimum_sinr_db"] > first + 15      # out of the main lobe
+    assert result.points[-1].optimum_sinr_db > first + 15      # out of the main lobe
 
 
 def test_the_same_value_twice_gives_bit_identical_points():
     scene = parse_scene(line_scene(processors=["smi loading_db=10", "lms", "rls"]))
     result = sweep(scene, ["sources[jam-1].power_db=25,25"])
     a, b = result.points
-    assert a["processors"] == b["processors"]
-    assert a["optimum_sinr_db"] == b["optimum_sinr_db"]
+    assert a.to_json()["processors"] == b.to_json()["processors"]
+    assert [p.curve for p in a.processors] == [p.curve for p in b.processors]
+    assert a.optimum_sinr_db == b.optimum_sinr_db
     for label in result.labels:
         assert np.array_equal(result.losses[label][0], result.losses[label][1], equal_nan=True)
 
@@ -99,19 +100,19 @@ def test_loading_study_has_the_known_shape():
     scene = parse_scene(line_scene(processors=["smi", "conventional"], trials=400,
                                    snapshots=2 * N))
     result = sweep(scene, ["smi.loading_db=none,10,70"])
-    loss = {p["values"]["smi.loading_db"]: next(q for q in p["processors"]
-                                                if q["method"] == "smi")["final"]
+    loss = {p.values["smi.loading_db"]: next(q for q in p.processors
+                                             if q.method == "smi").final
             for p in result.points}
     rmb = -10 * np.log10((2 * N - N + 2) / (2 * N + 1))
     rho = 10 ** (-np.asarray(result.losses["smi loading_db=varied"][0]) / 10)
     unloaded = -10 * np.log10(rho.mean())
     se_db = 10 / np.log(10) * rho.std(ddof=1) / rho.mean() / math.sqrt(rho.size)
     assert unloaded == pytest.approx(rmb, abs=4 * se_db)           # about 0.04 dB each
-    assert loss[10]["loss_db_mean"] < loss["none"]["loss_db_mean"] - 1.0
-    conv = result.points[0]["processors"][1]["final"]["null_depth_db"]["jam-1"]
-    heavy = loss[70]["null_depth_db"]["jam-1"]
+    assert loss[10].loss_db_mean < loss["none"].loss_db_mean - 1.0
+    conv = result.points[0].processors[1].final.null_depth_db["jam-1"]
+    heavy = loss[70].null_depth_db["jam-1"]
     assert heavy == pytest.approx(conv, abs=1.0)
-    assert loss[10]["null_depth_db"]["jam-1"] < heavy - 20
+    assert loss[10].null_depth_db["jam-1"] < heavy - 20
     best = next(r for r in result.recommendations if r["kind"] == "best_setting")
     assert best["best"] == 10
 
@@ -120,9 +121,8 @@ def test_a_scene_axis_reports_where_each_processor_holds():
     scene = parse_scene(line_scene(trials=30))
     result = sweep(scene, ["sources[jam-1].azimuth=0:30:5"])
     conv = next(r for r in result.recommendations if r["processor"] == "conventional")
-    loss = [next(q for q in p["processors"] if q["label"] == "conventional")["final"]
-            ["loss_db_mean"] for p in result.points]
-    values = [p["values"]["sources[jam-1].azimuth"] for p in result.points]
+    loss = [p.processor("conventional").final.loss_db_mean for p in result.points]
+    values = [p.values["sources[jam-1].azimuth"] for p in result.points]
     # the words follow the numbers: every value inside a reported span is within 3 dB,
     # every value outside is not, and the worst point is the largest loss
     inside = set()
@@ -161,7 +161,7 @@ def test_threads_and_resume_give_identical_results(tmp_path):
     again = sweep(scene, ["sources[jam-1].azimuth=10,30"], threads=2, chunk=7,
                   store=tmp_path / "partial")                      # every chunk kept
     for r in (two, again):
-        assert [p["processors"] for p in r.points] == [p["processors"] for p in one.points]
+        assert [p.to_json() for p in r.points] == [p.to_json() for p in one.points]
     assert sorted(p.name for p in (tmp_path / "partial").iterdir()) == ["point-0000",
                                                                         "point-0001"]
 
@@ -245,4 +245,4 @@ def test_local_workers_give_the_same_study():
     scene = parse_scene(line_scene(processors=["smi loading_db=10", "nlms"], trials=12))
     one = sweep(scene, ["sources[jam-1].azimuth=10,30"], threads=1)
     many = sweep(scene, ["sources[jam-1].azimuth=10,30"], workers=2, chunk=5)
-    assert [p["processors"] for p in many.points] == [p["processors"] for p in one.points]
+    assert [p.to_json() for p in many.points] == [p.to_json() for p in one.points]

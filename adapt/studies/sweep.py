@@ -49,8 +49,9 @@ import numpy as np
 from adapt.errors import InputError, SpecError, did_you_mean
 from adapt.processors import Processor, is_clairvoyant, parse_spec, registry
 from adapt.scene.model import Scene
+from adapt.studies.summaries import ProcessorSummary
 
-__all__ = ["Axis", "Sweep", "parse_axis", "sweep", "recommendations", "MAX_POINTS",
+__all__ = ["Axis", "Sweep", "SweepPoint", "parse_axis", "sweep", "recommendations", "MAX_POINTS",
            "WITHIN_DB"]
 
 #: points (product of the axes' lengths) allowed without ``max_points``
@@ -328,15 +329,41 @@ def point_processors(processors: Sequence[Processor], axes: Sequence[Axis],
 
 
 # --------------------------------------------------------------------------- study
+@dataclass(frozen=True)
+class SweepPoint:
+    """One point of a study: the axes' values (key -> value), the mean optimum SINR in
+    dB at the last checkpoint and the comparison summary entry of every processor
+    (:class:`adapt.studies.summaries.ProcessorSummary`, without pattern scores)."""
+    values: dict
+    optimum_sinr_db: float
+    processors: tuple
+
+    def processor(self, label: str) -> ProcessorSummary:
+        """The entry of one processor, by its study label (KeyError if none)."""
+        for p in self.processors:
+            if p.label == label:
+                return p
+        raise KeyError(label)
+
+    def to_json(self) -> dict:
+        """The point as ``sweep.json`` writes it: of each processor, the label, method,
+        parameters, ``final`` scores (as in metrics.json) and the snapshots to the
+        target."""
+        return {"values": dict(self.values), "optimum_sinr_db": self.optimum_sinr_db,
+                "processors": [{"label": p.label, "method": p.method, "params": p.params,
+                                "final": p.final.to_json(),
+                                "snapshots_to_3db": p.snapshots_to_3db,
+                                "snapshots_to_3db_fraction": p.snapshots_to_3db_fraction}
+                               for p in self.processors]}
+
+
 @dataclass
 class Sweep:
     """Result of :func:`sweep`.
 
-    axes: the varied settings; points: one dict per point in row-major order of the
-    axes (``values``: key -> value, ``optimum_sinr_db``, ``processors``: the compare
-    summary entries with ``final`` as in metrics.json); losses: label -> (points, trials)
-    final loss in dB per trial (for paired differences); recommendations: sentences,
-    each with the numbers behind it."""
+    axes: the varied settings; points: one :class:`SweepPoint` per point in row-major
+    order of the axes; losses: label -> (points, trials) final loss in dB per trial (for
+    paired differences); recommendations: sentences, each with the numbers behind it."""
     scene: Scene
     axes: list
     points: list
@@ -365,7 +392,7 @@ class Sweep:
                 "seed": self.seed, "target_loss_db": self.target_db,
                 "axes": [{"key": a.key, "kind": a.kind, "values": list(a.values),
                           "spacing": a.spacing} for a in self.axes],
-                "points": self.points,
+                "points": [p.to_json() for p in self.points],
                 "recommendations": self.recommendations,
                 "seconds": self.seconds}
 
@@ -515,19 +542,15 @@ def sweep(scene, vary: Sequence[str], processors: Sequence | None = None,
             comparison = compare(sc, pp, target_db=target_db, progress=progress, chunk=chunk,
                                  threads=threads, workers=workers, scheduler=scheduler,
                                  store=point_store, tail=TAIL, patterns=False)
-            m = comparison.metrics
-            entry = {"values": dict(zip(keys, values)),
-                     "optimum_sinr_db": m["optimum_sinr_db"], "processors": []}
-            for p, scored in zip(m["processors"], comparison.evaluation.processors):
-                entry["processors"].append({
-                    "label": p["label"], "method": p["method"], "params": p["params"],
-                    "final": p["final"], "snapshots_to_3db": p["snapshots_to_3db"],
-                    "snapshots_to_3db_fraction": p["snapshots_to_3db_fraction"]})
+            summary = comparison.summary
+            for p, scored in zip(summary.processors, comparison.evaluation.processors):
                 with np.errstate(all="ignore"):
                     loss = np.where(np.isnan(scored.normalised[:, -1]), np.nan,
                                     np.asarray(scored.loss_db[:, -1], float))
-                losses[p["label"]].append(loss)
-            points.append(entry)
+                losses[p.label].append(loss)
+            points.append(SweepPoint(values=dict(zip(keys, values)),
+                                     optimum_sinr_db=summary.optimum_sinr_db,
+                                     processors=summary.processors))
 
     if workers is not None:
         # one local cluster for the whole study, every point sent to its scheduler
@@ -584,8 +607,7 @@ def _spans_text(runs) -> str:
 def _mean_losses(result: Sweep, label: str) -> np.ndarray:
     out = []
     for point in result.points:
-        entry = next(p for p in point["processors"] if p["label"] == label)
-        v = entry["final"]["loss_db_mean"]
+        v = point.processor(label).final.loss_db_mean
         out.append(math.nan if v is None else float(v))
     return np.asarray(out)
 
@@ -673,8 +695,7 @@ def recommendations(result: Sweep) -> list[dict]:
 def _adaptive(result: Sweep) -> list[str]:
     """Labels of the processors a recommendation is about: all but the clairvoyant
     optimum, which is the yardstick (its loss is zero by definition)."""
-    first = result.points[0]["processors"]
-    return [p["label"] for p in first if not is_clairvoyant(p["method"])]
+    return [p.label for p in result.points[0].processors if not is_clairvoyant(p.method)]
 
 
 def _label_matches(result: Sweep, label: str, owner: str) -> bool:
@@ -694,11 +715,10 @@ def render_table(result: Sweep, width: int = 100) -> str:
     cols = ["point"] + ["optimum SINR dB"] + labels
     rows = []
     for point in result.points:
-        cells = [", ".join(_fmt(point["values"][k]) for k in keys),
-                 _num(point["optimum_sinr_db"])]
+        cells = [", ".join(_fmt(point.values[k]) for k in keys),
+                 _num(point.optimum_sinr_db)]
         for label in labels:
-            entry = next(p for p in point["processors"] if p["label"] == label)
-            cells.append(_num(entry["final"]["loss_db_mean"]))
+            cells.append(_num(point.processor(label).final.loss_db_mean))
         rows.append(cells)
     widths = [max(len(c[i]) for c in [cols] + rows) for i in range(len(cols))]
     widths = [min(w, 24) for w in widths]
@@ -746,12 +766,11 @@ def csv_text(record: dict) -> str:
     for point in record["points"]:
         for p in point["processors"]:
             f = p["final"]
-            nulls = [v for v in f["null_depth_db"].values() if v is not None]
+            # worst_null_db as in the summary: interferers on at the last checkpoint only
             row = {"label": p["label"], "method": p["method"],
                    "optimum_sinr_db": point["optimum_sinr_db"],
                    "snapshots_to_3db": p["snapshots_to_3db"],
                    "snapshots_to_3db_fraction": p["snapshots_to_3db_fraction"],
-                   "worst_null_db": max(nulls) if nulls else None,
                    **{k: f.get(k) for k in CSV_COLUMNS if k in f}}
             w.writerow([*(point["values"][k] for k in keys),
                         *("" if row.get(c) is None else _csv_num(row.get(c))
