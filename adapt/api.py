@@ -1,22 +1,28 @@
 """The notebook-facing API: everything the commands do, from Python, in the same words.
 
-    from adapt.api import load_scene, generate, run, evaluate, compare, write_run
+    from adapt.api import load_scene, generate, run, evaluate, compare, write_run, read_run
     scene = load_scene("scenes/single_jammer.yaml")
     batch, block = generate(scene, trials=4, snapshots=256)      # block.data: (4, 256, 8)
     results = run(scene, ["conventional", "smi loading_db=10"], trials=4, snapshots=256)
     results[1].weights.shape                                      # (4, checkpoints, 8)
     result = compare(scene, ["conventional", "smi loading_db=10"], trials=20)
     print(result.table())                                         # the terminal table
+    result.summary.processor("smi loading_db=10").final.loss_db_mean   # a typed summary
     result.evaluation.by_label("smi loading_db=10").loss_db       # (20, C) numpy array
     folder = write_run(result, "runs")                            # a new run folder
+    read_run(folder)["summary"]                                   # the summary read back
 
 Every function accepts a :class:`~adapt.scene.model.Scene` or a scene file path, and processor
 specs as text (``"smi loading_db=10"``), mappings (``{"method": "smi", ...}``) or
 processor objects. Results are plain objects holding numpy arrays:
 :class:`~adapt.streams.snapshots.TrialBatch` / :class:`~adapt.streams.snapshots.Block` (samples),
 :class:`~adapt.processors.ProcessorResult` (weights, outputs),
-:class:`~adapt.engine.evaluate.Evaluation` (scores per processor, checkpoint and trial) and
-:class:`~adapt.studies.compare.Comparison` (evaluation + summary metrics + table). Bad input
+:class:`~adapt.engine.evaluate.Evaluation` (scores per processor, checkpoint and trial),
+:class:`~adapt.studies.compare.Comparison` (evaluation + its typed summary
+:class:`~adapt.studies.summaries.CompareSummary` + table) and
+:class:`~adapt.studies.sizing.Sizing` (with :class:`~adapt.studies.summaries.SizingSummary`);
+a summary's ``to_json()`` is the run folder's ``metrics.json`` / ``sizing.json`` and
+``from_mapping()`` reads it back. Bad input
 raises :class:`adapt.errors.InputError` (SceneError, SpecError) with the same message
 the command line prints.
 """
@@ -49,12 +55,14 @@ from adapt.scenefile import parse_scene as _parse_scene
 from adapt.streams.snapshots import Block, TrialBatch
 from adapt.studies.compare import TAIL, Comparison, write_compare_run
 from adapt.studies.compare import compare as _compare
+from adapt.studies.summaries import CompareSummary, SizingSummary
 
 __all__ = ["load_scene", "parse_scene", "dump_scene", "generate", "processors", "methods",
            "run", "evaluate", "compare", "write_run", "read_run", "size", "record", "verify",
            "scores",
            "Scene", "TrialBatch", "Block", "ProcessorResult", "Evaluation",
-           "ProcessorScores", "Comparison", "InputError", "SceneError", "SpecError"]
+           "ProcessorScores", "Comparison", "CompareSummary", "SizingSummary", "InputError",
+           "SceneError", "SpecError"]
 
 
 def load_scene(path) -> Scene:
@@ -473,8 +481,11 @@ def compare(scene, processors: Sequence | None = None, trials: int | None = None
     -------
     Comparison
         ``evaluation`` (the :class:`Evaluation` of :func:`evaluate`: arrays (T, C) per
-        processor), ``metrics`` (the ``metrics.json`` mapping: means over trials in dB,
-        snapshots to the target, verdict; schema in :mod:`adapt.studies.compare`),
+        processor), ``summary`` (a :class:`CompareSummary`, every statistic the table,
+        CSV, figures and report show: run facts, one entry per processor with its
+        final statistics, per-checkpoint curve and floored null depths, the verdict;
+        ``summary.processor(label)`` one entry), ``metrics`` (``summary.to_json()``,
+        the ``metrics.json`` mapping; schema in :mod:`adapt.studies.compare`),
         ``scene`` as run, ``processors`` and ``seconds`` (wall time); ``table()`` is
         the terminal summary.
 
@@ -541,7 +552,7 @@ def write_run(comparison: Comparison, out="runs", command_line: str | None = Non
 
 
 def read_run(folder):
-    """Read a run folder written by :func:`write_run` or ``adapt compare``.
+    """Read a run folder written by :func:`write_run`, ``adapt compare`` or ``adapt size``.
 
     Parameters
     ----------
@@ -551,15 +562,21 @@ def read_run(folder):
     Returns
     -------
     dict
-        ``{"metrics": dict, "manifest": dict, "curves": list of row dicts (text
-        values), "problems": list}``; ``manifest`` is empty when the folder has no
-        ``manifest.json``, ``curves`` when it has no ``curves.csv``; ``problems`` lists
-        manifest mismatches (empty: intact).
+        A comparison: ``{"summary": CompareSummary, "metrics": dict, "manifest": dict,
+        "curves": list of row dicts (text values), "problems": list}``; a sizing run:
+        ``{"summary": SizingSummary, "sizing": dict, "manifest": dict, "problems":
+        list}``. ``summary`` is the typed summary read back from ``metrics.json`` /
+        ``sizing.json`` (its ``to_json()`` gives the file's mapping again; undefined
+        values, ``null`` in the file, read as None), ``metrics`` / ``sizing`` that
+        mapping; ``manifest`` is empty when the folder has no ``manifest.json``,
+        ``curves`` when it has no ``curves.csv``; ``problems`` lists manifest mismatches
+        (empty: intact).
 
     Raises
     ------
     InputError
-        When ``folder`` is not a path, or not a run folder (no ``metrics.json``).
+        When ``folder`` is not a path, not a run folder (neither ``metrics.json`` nor
+        ``sizing.json``), or its summary is unreadable or lacks a key.
 
     References
     ----------
@@ -567,10 +584,20 @@ def read_run(folder):
     """
     if not isinstance(folder, (str, Path)):
         raise InputError("expected the path of a run folder", value=type(folder).__name__)
-    if not (Path(folder) / "metrics.json").is_file():
-        raise InputError("not a run folder (no metrics.json)", value=str(folder),
-                         allowed="a folder written by adapt compare or write_run")
-    return _read_run(folder)
+    if not any((Path(folder) / name).is_file() for name in ("metrics.json", "sizing.json")):
+        raise InputError("not a run folder (no metrics.json or sizing.json)", value=str(folder),
+                         allowed="a folder written by adapt compare, adapt size or write_run")
+    try:
+        out = _read_run(folder)
+        if "metrics" in out:
+            summary = CompareSummary.from_mapping(out["metrics"])
+        else:
+            summary = SizingSummary.from_mapping(out["sizing"])
+    except (ValueError, UnicodeDecodeError) as exc:
+        # json.JSONDecodeError is a ValueError; so is a summary lacking a key
+        raise InputError(f"the run folder's summary is unreadable ({exc})",
+                         file=str(folder)) from None
+    return {"summary": summary, **out}
 
 
 def size(scene, specs: Sequence | None = None, **options):
@@ -596,12 +623,13 @@ def size(scene, specs: Sequence | None = None, **options):
     Returns
     -------
     Sizing
-        ``record`` (the ``sizing.json`` mapping: per processor and sweep point the mean
+        ``summary`` (a :class:`SizingSummary`: per processor and sweep point the mean
         normalised SINR and its standard error, loss percentiles in dB, the share of
         trials within the target, the closed-form mean where one applies; the required
-        snapshot counts in the mean and per trial with their ranges), ``evaluation``
-        (per-trial arrays (T, C), C the sweep points), ``scene``, ``processors``,
-        ``seconds``; ``table()`` is the terminal summary.
+        snapshot counts in the mean and per trial with their ranges), ``record``
+        (``summary.to_json()``, the ``sizing.json`` mapping), ``evaluation`` (per-trial
+        arrays (T, C), C the sweep points), ``scene``, ``processors``, ``seconds``;
+        ``table()`` is the terminal summary.
 
     Raises
     ------
