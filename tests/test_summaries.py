@@ -257,3 +257,17 @@ def test_summary_types_are_frozen(jammed):
     entry: ProcessorSummary = jammed.summary.processors[0]
     with pytest.raises(AttributeError):
         entry.label = "x"
+
+
+def test_results_given_a_mapping_read_it_into_their_summary(jammed, sized):
+    # the first release built Comparison(evaluation, metrics, ...) and Sizing(record, ...)
+    from adapt.studies.compare import Comparison
+    from adapt.studies.sizing import Sizing
+    again = Comparison(jammed.evaluation, jammed.metrics, jammed.scene)
+    assert isinstance(again.summary, CompareSummary)
+    assert _bytes(again.metrics) == _bytes(jammed.metrics) and again.table() == jammed.table()
+    result, _ = sized
+    back = Sizing(result.record, result.evaluation, result.scene)
+    assert isinstance(back.summary, SizingSummary) and back.table() == result.table()
+    with pytest.raises(ValueError, match="CompareSummary"):
+        Comparison(jammed.evaluation, "metrics", jammed.scene)

@@ -597,6 +597,11 @@ class Comparison:
     processors: list = field(default_factory=list)
     seconds: float = 0.0
 
+    def __post_init__(self):
+        # a metrics.json mapping given in the summary's place (as the first release's
+        # Comparison(evaluation, metrics, ...) did) is read into its summary
+        self.summary = as_summary(self.summary)
+
     @property
     def metrics(self) -> dict:
         """The ``metrics.json`` mapping (``summary.to_json()``; a new dict each time)."""

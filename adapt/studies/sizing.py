@@ -572,6 +572,11 @@ class Sizing:
     processors: list = field(default_factory=list)
     seconds: float = 0.0
 
+    def __post_init__(self):
+        # a sizing.json mapping given in the summary's place (as the first release's
+        # Sizing(record, ...) did) is read into its summary
+        self.summary = as_summary(self.summary)
+
     @property
     def record(self) -> dict:
         """The ``sizing.json`` mapping (``summary.to_json()``; a new dict each time)."""
