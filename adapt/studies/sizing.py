@@ -70,8 +70,8 @@ from adapt.studies.summaries import (
 
 __all__ = ["Sizing", "SizingSummary", "size", "sweep_points", "stays_met",
            "bootstrap_required", "clopper_pearson", "analyse_processor", "recommendation",
-           "render_table", "as_summary", "write_sizing_run", "DEFAULT_PROCESSORS", "PER_OCTAVE", "BOOTSTRAP_RESAMPLES",
-           "CONFIDENCE", "DISAGREE_SEM"]
+           "render_table", "as_summary", "write_sizing_run", "DEFAULT_PROCESSORS",
+           "PER_OCTAVE", "BOOTSTRAP_RESAMPLES", "CONFIDENCE", "DISAGREE_SEM"]
 
 #: processors sized when none are given: the two with theory or a rule of thumb
 DEFAULT_PROCESSORS = ("smi", "smi loading_db=10")
