@@ -191,6 +191,9 @@ _MAX_ELEMENTS = 1024
 #: aperture underflows: beamwidths divide by it)
 _MIN_APERTURE = 1e-6
 _MAX_SOURCES = 256
+#: largest |delay| of a coherent copy, snapshots (beyond a few filter lengths a delayed
+#: copy is uncorrelated with its origin anyway)
+MAX_COPY_DELAY = 100_000
 
 
 # --------------------------------------------------------------------------- YAML
@@ -528,7 +531,7 @@ _SOURCE_KEYS = ("name", "role", "azimuth", "elevation", "power_db", "waveform", 
 _WAVEFORM_KEYS = {
     "gaussian": ("kind",), "bpsk": ("kind",), "qpsk": ("kind",),
     "tone": ("kind", "frequency"), "chirp": ("kind", "start", "stop", "period"),
-    COPY: ("kind", "of", "phase_deg"),
+    COPY: ("kind", "of", "phase_deg", "delay"),
 }
 _PULSING_KEYS = ("start", "stop", "period", "on")
 _MOTION_KEYS = ("azimuth_rate", "elevation_rate")
@@ -668,22 +671,11 @@ class _Reader:
                     or array.errors.channel_ripple_rms
                     or any(s.bandwidth is not None for s in sources))
         for i, src in enumerate(sources):
-            if wideband and src.motion is not None:
-                raise self.error("moving sources are not modelled in wideband scenes",
-                                 f"sources[{i}].motion", None,
-                                 "no motion with receiver.fractional_bandwidth, a source "
-                                 "bandwidth or a channel delay error")
-            if wideband and src.waveform.kind == "copy":
-                raise self.error("coherent copies are not modelled in wideband scenes",
-                                 f"sources[{i}].waveform", "copy",
-                                 "gaussian | bpsk | qpsk | tone | chirp in a wideband scene")
-        if wideband and array.coupling is not None:
-            raise self.error("mutual coupling is not modelled in wideband scenes",
-                             "array.coupling", None, "no coupling with a fractional bandwidth, "
-                             "a source bandwidth or channel errors")
-        if wideband and not noise.plain:
-            raise self.error("noise fields are not modelled in wideband scenes", "noise", None,
-                             "white noise of unit power per element in a wideband scene")
+            if not wideband and src.waveform.kind == COPY and src.waveform.delay:
+                raise self.error("a copy's delay needs the wideband model",
+                                 f"sources[{i}].waveform.delay", src.waveform.delay,
+                                 "0 in a narrowband scene (add receiver.fractional_bandwidth "
+                                 "for a delayed copy)")
         vary, target = self.sweep(data.get("sweep"), "sweep")
         return Scene(name=name, array=array, sources=sources, look_azimuth=look_az,
                      look_elevation=look_el, training=training, receiver=receiver, noise=noise,
@@ -1023,7 +1015,9 @@ class _Reader:
             of = self.text(value["of"], p("of"), "the name of another source")
             phase = self.number(value.get("phase_deg", 0.0), p("phase_deg"), -360, 360,
                                 unit="degrees")
-            return Waveform(kind=kind, of=of, phase_deg=phase)
+            delay = self.number(value.get("delay", 0.0), p("delay"), -MAX_COPY_DELAY,
+                                MAX_COPY_DELAY, unit="snapshots")
+            return Waveform(kind=kind, of=of, phase_deg=phase, delay=delay)
         return Waveform(kind=kind)
 
     def copies(self, sources, path) -> None:
@@ -1220,6 +1214,8 @@ def scene_to_mapping(scene: Scene) -> dict:
                       period=int(s.waveform.period))
         elif s.waveform.kind == COPY:
             wf.update(of=s.waveform.of, phase_deg=float(s.waveform.phase_deg))
+            if s.waveform.delay:
+                wf["delay"] = float(s.waveform.delay)
         item = {"name": s.name, "role": s.role, "azimuth": float(s.azimuth),
                 "elevation": float(s.elevation), "power_db": float(s.power_db),
                 "waveform": wf}

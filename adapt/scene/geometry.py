@@ -24,7 +24,7 @@ __all__ = [
     "steering_vector", "array_response", "beam_pattern_db", "half_power_beamwidth_deg",
     "rotate_about_z",
     "grating_lobe_free_spacing", "has_grating_lobe", "aperture", "angle_between_deg",
-    "steering_derivatives",
+    "steering_derivatives", "diffuse_coherence",
 ]
 
 
@@ -257,3 +257,22 @@ def grating_lobe_free_spacing(max_scan_deg: float) -> float:
     ``max_scan_deg`` from broadside: ``d < 1 / (1 + |sin theta|)`` (antenna handbook
     rule)."""
     return 1.0 / (1.0 + abs(np.sin(np.deg2rad(max_scan_deg))))
+
+
+def diffuse_coherence(positions: np.ndarray, field: str) -> np.ndarray:
+    """Coherence (..., N, N) of diffuse noise between elements at ``positions``
+    (..., N, 3) in wavelengths: ``sin(k d) / (k d)`` for a spherically isotropic field,
+    ``J0(k d_xy)`` for a cylindrically isotropic one (arrivals spread evenly over
+    azimuth in the x-y plane; d_xy the separation projected on that plane), the
+    identity for ``white``; ``k = 2 pi``. Cox, "Spatial correlation in arbitrary noise
+    fields with application to ambient sea noise", JASA 54, 1973."""
+    p = np.asarray(positions, float)
+    diff = p[..., :, None, :] - p[..., None, :, :]
+    if field == "isotropic":
+        return np.sinc(2.0 * np.linalg.norm(diff, axis=-1))      # sin(2 pi d) / (2 pi d)
+    if field == "cylindrical":
+        from scipy.special import j0
+        return j0(2.0 * np.pi * np.linalg.norm(diff[..., :2], axis=-1))
+    if field == "white":
+        return np.broadcast_to(np.eye(p.shape[-2]), diff.shape[:-1]).copy()
+    raise ValueError(f"unknown noise field {field!r}")

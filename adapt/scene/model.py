@@ -96,7 +96,9 @@ class Waveform:
     cycles per snapshot over ``period`` snapshots, repeating; random start phase), or
     ``copy``: the waveform of the source named ``of``, rotated by ``phase_deg`` degrees
     (a coherent arrival: multipath of that source, or a repeater), scaled to this
-    source's own power and gated by its own pulsing.
+    source's own power and gated by its own pulsing; in a wideband scene also delayed by
+    ``delay`` snapshots (any real number, through the same fractional-delay filters as
+    the aperture's delays; :mod:`adapt.streams.wideband`).
     """
     kind: str = "gaussian"
     frequency: float = 0.0
@@ -107,6 +109,8 @@ class Waveform:
     of: str | None = None
     #: copy: rotation of the repeated waveform, degrees
     phase_deg: float = 0.0
+    #: copy: delay of the repeated waveform, snapshots (wideband scenes; 0 otherwise)
+    delay: float = 0.0
 
 
 @dataclass(frozen=True)

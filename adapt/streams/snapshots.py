@@ -35,6 +35,7 @@ import numpy as np
 
 from adapt.numerics import kernels as _kernels
 from adapt.scene import elements, geometry
+from adapt.scene.geometry import diffuse_coherence
 from adapt.scene.model import Scene
 from adapt.streams import normals
 from adapt.streams import wideband as _wideband
@@ -77,25 +78,6 @@ def scratch_array(store: dict | None, name: str, shape: tuple, dtype=float) -> n
     if buf is None or buf.size < count or buf.dtype != np.dtype(dtype):
         buf = store[name] = np.empty(count, dtype=dtype)
     return buf[:count].reshape(shape)
-
-
-def diffuse_coherence(positions: np.ndarray, field: str) -> np.ndarray:
-    """Coherence (..., N, N) of diffuse noise between elements at ``positions``
-    (..., N, 3) in wavelengths: ``sin(k d) / (k d)`` for a spherically isotropic field,
-    ``J0(k d_xy)`` for a cylindrically isotropic one (arrivals spread evenly over
-    azimuth in the x-y plane; d_xy the separation projected on that plane), the
-    identity for ``white``; ``k = 2 pi``. Cox, "Spatial correlation in arbitrary noise
-    fields with application to ambient sea noise", JASA 54, 1973."""
-    p = np.asarray(positions, float)
-    diff = p[..., :, None, :] - p[..., None, :, :]
-    if field == "isotropic":
-        return np.sinc(2.0 * np.linalg.norm(diff, axis=-1))      # sin(2 pi d) / (2 pi d)
-    if field == "cylindrical":
-        from scipy.special import j0
-        return j0(2.0 * np.pi * np.linalg.norm(diff[..., :2], axis=-1))
-    if field == "white":
-        return np.broadcast_to(np.eye(p.shape[-2]), diff.shape[:-1]).copy()
-    raise ValueError(f"unknown noise field {field!r}")
 
 
 def quantise(x: np.ndarray, bits: int, full_scale: float) -> np.ndarray:
@@ -231,17 +213,26 @@ class TrialBatch:
         channel's thermal noise power (1 without a spread; 10^(g/10), g Gaussian with the
         scene's dB rms, from the stream SeedSequence(seed, (i, 0, _SPREAD_KEY))), and
         ``diffuse_factor`` (T or 1, N, N) C with ``C C^H`` the diffuse noise covariance
-        (None without one)."""
+        (None without one). A wideband scene's isotropic or cylindrical field is
+        dispersive instead: ``diffuse_taps`` (T or 1, N, N, 2H+1), its space-time filter
+        (:func:`adapt.streams.wideband.diffuse_filters`; one for every trial unless
+        positions have errors), the element gains applied after it."""
         nf = self.scene.noise
         n = self.scene.elements
         self.channel_noise = np.ones((self.trials, n))
         self.diffuse_factor = None
+        #: (T or 1, N, N, 2H+1) a wideband scene's dispersive diffuse field, or None
+        self.diffuse_taps = None
         if nf.spread:
             g = np.empty((self.trials, n))
             normals.fill(normals.stream_keys(self.seed, self.trial_indices, _CONSTANTS,
                                              _SPREAD_KEY), 0, g)
             self.channel_noise = 10.0 ** (nf.element_noise_db_rms * g / 10.0)
-        if nf.diffuse:
+        if nf.diffuse and self.scene.wideband and nf.field != "white":
+            pos = self.positions if self.scene.array.errors.position_rms else self.positions[:1]
+            self.diffuse_taps = _wideband.diffuse_filters(
+                pos, nf.field, self.scene.receiver.fractional_bandwidth or 0.0)
+        elif nf.diffuse:
             pos = self.positions[:1] if not self.scene.array.errors.any else self.positions
             gains = self.element_gains[:len(pos)]
             coherence = diffuse_coherence(pos, nf.field)                    # (T or 1, N, N)
@@ -269,17 +260,19 @@ class TrialBatch:
         """Assumed look steering vector (N,): nominal positions, no errors."""
         return self.scene.look_steering()
 
-    def steering(self, source: int, k=None) -> np.ndarray:
+    def steering(self, source: int, k=None, coupled: bool = True) -> np.ndarray:
         """True steering vector of source ``source`` (index into scene.sources).
 
         ``k`` None: at snapshot 0, shape (T, N). ``k`` an array of snapshot indices:
-        shape (T, len(k), N).
+        shape (T, len(k), N). ``coupled`` False: without the mutual coupling (the
+        element outputs before C mixes them; what the wideband streams delay).
         """
         if self.same_array and self.trials > 1:        # one row, the same for every trial
-            return np.repeat(self._steering(source, k, slice(0, 1)), self.trials, axis=0)
-        return self._steering(source, k, slice(None))
+            return np.repeat(self._steering(source, k, slice(0, 1), coupled), self.trials,
+                             axis=0)
+        return self._steering(source, k, slice(None), coupled)
 
-    def _steering(self, source: int, k, rows: slice) -> np.ndarray:
+    def _steering(self, source: int, k, rows: slice, coupled: bool = True) -> np.ndarray:
         src = self.scene.sources[source]
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
         u = geometry.direction_vector(*src.direction(kk))                    # (M, 3)
@@ -287,27 +280,30 @@ class TrialBatch:
         phase = 2 * np.pi * (self.positions[rows, None, :, :] * u[None, :, None, :]).sum(-1)
         a = self.element_gains[rows, None, :] * np.exp(1j * phase)
         if self.scene.array.patterned:
-            a = self._element_effects(a, u)
+            a = self._element_effects(a, u, coupled)
         return a[:, 0, :] if k is None else a
 
-    def _element_effects(self, a: np.ndarray, u: np.ndarray) -> np.ndarray:
-        """Element pattern and mutual coupling on plane-wave responses a (..., M, N)
-        toward unit vectors u (M, 3) (:mod:`adapt.scene.elements`)."""
+    def _element_effects(self, a: np.ndarray, u: np.ndarray,
+                         coupled: bool = True) -> np.ndarray:
+        """Element pattern and (``coupled``) mutual coupling on plane-wave responses a
+        (..., M, N) toward unit vectors u (M, 3) (:mod:`adapt.scene.elements`)."""
         arr = self.scene.array
         a = a * elements.pattern_gain(arr.element, u)[:, None]
-        if arr.coupling is not None:
+        if arr.coupling is not None and coupled:
             a = elements.apply_coupling(elements.coupling_matrix(arr.coupling, a.shape[-1]), a)
         return a
 
-    def steering_toward(self, azimuth_deg: float, elevation_deg: float = 0.0) -> np.ndarray:
+    def steering_toward(self, azimuth_deg: float, elevation_deg: float = 0.0,
+                        coupled: bool = True) -> np.ndarray:
         """True array response (T, N) toward a fixed direction (hardware errors
-        included): what a plane wave from there actually produces at the elements."""
+        included): what a plane wave from there actually produces at the elements
+        (``coupled`` False: before the mutual coupling)."""
         u = geometry.direction_vector(azimuth_deg, elevation_deg)
         rows = slice(0, 1) if self.same_array else slice(None)
         phase = 2 * np.pi * (self.positions[rows] * u).sum(-1)
         a = self.element_gains[rows] * np.exp(1j * phase)
         if self.scene.array.patterned:
-            a = self._element_effects(a[:, None, :], u[None, :])[:, 0, :]
+            a = self._element_effects(a[:, None, :], u[None, :], coupled)[:, 0, :]
         return np.repeat(a, self.trials, axis=0) if len(a) < self.trials else a
 
     def desired_steering(self, k=None) -> np.ndarray:
@@ -624,9 +620,12 @@ class TrialBatch:
 
     def _wideband_blocks(self, k_total: int, b: int) -> Iterator[Block]:
         """Blocks of a wideband scene (:mod:`adapt.streams.wideband`): every source
-        dispersed across the aperture, added element by element in scene order; the
-        reference is the wanted source's envelope at the array origin (zero advance);
-        ``desired`` is None (the wanted signal is not rank one)."""
+        dispersed across the aperture (fixed filters, or the polynomial filters for
+        moving, copied and copy sources), coupled when the array is (``C`` on each
+        source's element outputs), added element by element in scene order to the
+        noise (thermal, a white field, or a dispersive diffuse field); the reference is
+        the wanted source's envelope at the array origin (zero advance); ``desired`` is
+        None (the wanted signal is not rank one)."""
         sc = self.scene
         n = sc.elements
         idx = self.trial_indices
@@ -634,28 +633,58 @@ class TrialBatch:
         keys = {i: normals.stream_keys(self.seed, idx, _STREAMS, _component_key(s.name))
                 for i, s in enumerate(sc.sources)}
         delays = {i: _wideband.element_delays(self, i) for i in range(len(sc.sources))}
-        steer = {i: self.steering(i) for i in range(len(sc.sources))}
+        steer = {i: self.steering(i, coupled=False) for i in range(len(sc.sources))}
+        varying = {i: _wideband.uses_polynomial_filters(sc, i)
+                   for i in range(len(sc.sources))}
+        coupling = elements.coupling_matrix(sc.array.coupling, n)
+        diffuse_keys = normals.stream_keys(self.seed, idx, _STREAMS, _DIFFUSE_KEY) \
+            if sc.noise.diffuse else None
         d_idx = sc.desired_index
         rx = sc.receiver
         full_scale = 10.0 ** (rx.full_scale_db / 20.0)
         zero = np.zeros((self.trials, 1))
+
+        def fresh(name, shape, dtype):
+            return np.empty(shape, dtype)
+
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
             z = np.empty((self.trials, size, n, 2))
             normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
-            interference = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+            if sc.noise.plain:
+                interference = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+            else:
+                interference = z.view(np.complex128)[..., 0]
+                self._noise_field(interference, diffuse_keys, start, fresh)
+                if self.diffuse_taps is not None:
+                    interference += _wideband.diffuse_block(self, diffuse_keys, start, size)
             signal = None
             reference = None
             for i, src in enumerate(sc.sources):
                 gate = np.sqrt(src.power) * src.active(kk).astype(float)       # (B,)
-                part = _wideband.source_block(self, i, keys[i], start, size, delays[i],
-                                              self.channel_filters)
-                part *= steer[i][:, None, :] * gate[None, :, None]
+                origin = sc.origin_index(i)
+                if varying[i]:
+                    part = _wideband.polynomial_block(self, i, keys[origin], start, size,
+                                                      self.channel_filters)
+                    part *= gate[None, :, None]
+                    if src.waveform.kind == "copy":
+                        part *= np.exp(1j * np.deg2rad(src.waveform.phase_deg))
+                else:
+                    part = _wideband.source_block(self, i, keys[i], start, size, delays[i],
+                                                  self.channel_filters)
+                    part *= steer[i][:, None, :] * gate[None, :, None]
+                if coupling is not None:
+                    part = elements.apply_coupling(coupling, part)
                 if i == d_idx:
                     signal = part
-                    ref = _wideband.source_block(self, i, keys[i], start, size, zero)
-                    reference = ref[..., 0] * gate[None, :]
+                    if varying[i]:
+                        ref = _wideband.polynomial_block(self, i, keys[i], start, size,
+                                                         reference=True)
+                        reference = ref * gate[None, :]
+                    else:
+                        ref = _wideband.source_block(self, i, keys[i], start, size, zero)
+                        reference = ref[..., 0] * gate[None, :]
                 else:
                     interference += part
             data = interference + signal

@@ -50,18 +50,25 @@ delay", IEEE Signal Processing Magazine (1996).
 """
 from __future__ import annotations
 
+import dataclasses
+import functools
 import math
 
 import numpy as np
 
 from adapt.numerics.fir import filter_bank
-from adapt.scene import geometry
+from adapt.scene import elements, geometry
+from adapt.scene.geometry import diffuse_coherence
+from adapt.scene.model import COPY
 from adapt.streams import normals
 from adapt.streams.seeding import trial_generators
 
-__all__ = ["HALF", "KAISER_BETA", "half_length", "reach", "element_delays", "filter_taps",
-           "draw_channel_delays", "draw_channel_filters", "source_block", "space_time_covariance",
-           "direction_covariance", "TapLine", "delay_spread", "expected_eigenvalues"]
+__all__ = ["HALF", "KAISER_BETA", "DEGREE", "DIFFUSE_GRID", "half_length", "reach",
+           "element_delays", "filter_taps", "draw_channel_delays", "draw_channel_filters",
+           "source_block", "space_time_covariance", "direction_covariance", "TapLine",
+           "delay_spread", "expected_eigenvalues", "uses_polynomial_filters",
+           "polynomial_coefficients", "polynomial_block", "stream_offset",
+           "diffuse_filters", "diffuse_block", "noise_space_time", "source_covariance"]
 
 #: half-length in taps of the full-band filter's window (a band b uses HALF / b)
 HALF = 32
@@ -71,6 +78,15 @@ KAISER_BETA = 7.0
 CHANNEL_KEY = 2
 RIPPLE_KEY = 3
 _NOISE_LIKE = ("gaussian", "bpsk", "qpsk")
+#: degree, in the fractional delay, of the polynomial each filter segment is for the
+#: sources whose delays change (moving) or that share a waveform (copies and their
+#: origins): a Farrow structure; the segments match the windowed sinc to about 1e-13
+DEGREE = 13
+#: frequencies of the grid on which a dispersive diffuse noise field's filter is
+#: designed (its taps are the grid's inverse transform, windowed)
+DIFFUSE_GRID = 256
+#: values of one temporary array of the truth's polynomial path (chunked over moments)
+_TRUTH_VALUES = 1 << 22
 
 
 def half_length(bandwidth: float | None) -> int:
@@ -204,6 +220,13 @@ def _chirp_phase(wf, t: np.ndarray) -> np.ndarray:
     return 2 * np.pi * (wf.start * m + 0.5 * (wf.stop - wf.start) * m * m / wf.period)
 
 
+def _deterministic(wf, tt: np.ndarray, phi0) -> np.ndarray:
+    """A tone's or chirp's unit envelope at the (fractional) times ``tt``."""
+    if wf.kind == "tone":
+        return np.exp(1j * (2 * np.pi * wf.frequency * tt + phi0))
+    return np.exp(1j * (_chirp_phase(wf, tt) + phi0))
+
+
 def source_block(batch, source: int, keys, start: int, size: int,
                  delays: np.ndarray, channels: np.ndarray | None = None) -> np.ndarray:
     """(T, B, D) unit-power envelopes ``s(k + d)`` of ``source`` for snapshots
@@ -233,9 +256,7 @@ def source_block(batch, source: int, keys, start: int, size: int,
     t = k[None, :, None] + delays[:, None, :]
 
     def at(tt):
-        if wf.kind == "tone":
-            return np.exp(1j * (2 * np.pi * wf.frequency * tt + phi0))
-        return np.exp(1j * (_chirp_phase(wf, tt) + phi0))
+        return _deterministic(wf, tt, phi0)
 
     if channels is None:
         return at(t)
@@ -301,15 +322,34 @@ def _steered(kernel: np.ndarray, a: np.ndarray, taps: int) -> np.ndarray:
     return kernel * st[..., :, None] * np.conj(st[..., None, :])
 
 
+def _couple(batch, r: np.ndarray, taps: int) -> np.ndarray:
+    """``(I_L kron C) r (I_L kron C)^H`` for space-time covariances r (..., NL, NL): the
+    frequency-flat mutual coupling C (``array.coupling``) mixing the element outputs;
+    r itself without coupling."""
+    sc = batch.scene
+    if sc.array.coupling is None:
+        return r
+    n = sc.elements
+    c = elements.coupling_matrix(sc.array.coupling, n)
+    shape = r.shape
+    x = r.reshape(shape[:-2] + (taps, n, taps, n))
+    x = np.einsum("ab,...lbmc->...lamc", c, x)
+    x = np.einsum("...lamc,dc->...lamd", x, np.conj(c))
+    return x.reshape(shape)
+
+
 def source_covariance(batch, source: int, taps: int, kk: np.ndarray,
                       unit: bool = False) -> np.ndarray:
     """(T, M, NL, NL) space-time covariance of one source (power and gate included;
-    ``unit``: unit power, always on) at snapshot indices kk."""
+    ``unit``: unit power, always on) at snapshot indices kk, through the coupling."""
     sc = batch.scene
+    if uses_polynomial_filters(sc, source):
+        return _group_covariance(batch, [source], taps, kk, unit)
     src = sc.sources[source]
-    a = batch.steering(source, kk)                                          # (T, M, N)
+    a = batch.steering(source, kk, coupled=False)                           # (T, M, N)
     d = element_delays(batch, source, kk)                                   # (T, M, N)
     r = _steered(_kernel(src, d, taps, sc, batch.channel_filters), a, taps)
+    r = _couple(batch, r, taps)
     if unit:
         return r
     p = src.power * src.active(kk).astype(float)
@@ -331,6 +371,14 @@ def space_time_covariance(batch, taps: int, k=None, kind: str = "interference") 
     Returns
     -------
     (T, M, NL, NL) complex, or (T, NL, NL) for ``k`` None.
+
+    Notes
+    -----
+    Coherent copies follow the narrowband convention (README): sources sharing one
+    waveform add as one group, cross terms included; the wanted source's copies are
+    one interference group without it, and ``signal`` is the wanted source's own term.
+    The noise (:func:`noise_space_time`) and every source pass through the coupling as
+    the streams do (sources coupled, noise not).
     """
     sc = batch.scene
     kk = np.atleast_1d(np.asarray(0 if k is None else k))
@@ -338,9 +386,22 @@ def space_time_covariance(batch, taps: int, k=None, kind: str = "interference") 
     dim = n * taps
     r = np.zeros((batch.trials, len(kk), dim, dim), dtype=complex)
     if kind != "signal":
-        r += np.eye(dim)
+        if sc.noise.plain:
+            r += np.eye(dim)
+        else:
+            r += noise_space_time(batch, taps)[:, None]
+    signal = kind == "signal" or kind == "data" or (kind == "training"
+                                                    and sc.training == "signal")
+    if sc.coherent:
+        groups = [[sc.desired_index]] if kind == "signal" else batch.coherent_groups(signal)
+        for group in groups:
+            if len(group) == 1:
+                r += source_covariance(batch, group[0], taps, kk)
+            else:
+                r += _group_covariance(batch, group, taps, kk)
+        return r[:, 0] if k is None else r
     members = [] if kind == "signal" else list(sc.interferer_indices)
-    if kind == "signal" or kind == "data" or (kind == "training" and sc.training == "signal"):
+    if signal:
         members.append(sc.desired_index)
     for i in members:
         r += source_covariance(batch, i, taps, kk)
@@ -349,8 +410,8 @@ def space_time_covariance(batch, taps: int, k=None, kind: str = "interference") 
 
 def direction_covariance(batch, azimuth: float, elevation: float, taps: int) -> np.ndarray:
     """(T, NL, NL) space-time covariance of a unit-power source, white over the whole
-    band, from a fixed direction (the true array): the reference for band-averaged
-    responses (``w^H R w`` is the response averaged over the band)."""
+    band, from a fixed direction (the true array, coupling included): the reference for
+    band-averaged responses (``w^H R w`` is the response averaged over the band)."""
     from adapt.scene.model import Source
     sc = batch.scene
     src = Source(name="", role="interferer", azimuth=azimuth, elevation=elevation,
@@ -358,8 +419,401 @@ def direction_covariance(batch, azimuth: float, elevation: float, taps: int) -> 
     u = geometry.direction_vector(azimuth, elevation)
     fb = sc.receiver.fractional_bandwidth or 0.0
     d = fb * (batch.positions * u).sum(-1) + batch.channel_delays             # (T, N)
-    a = batch.steering_toward(azimuth, elevation)
-    return _steered(_kernel(src, d, taps, sc, batch.channel_filters), a, taps)
+    a = batch.steering_toward(azimuth, elevation, coupled=False)
+    return _couple(batch, _steered(_kernel(src, d, taps, sc, batch.channel_filters), a,
+                                   taps), taps)
+
+
+# ------------------------------------------------------- varying delays, shared waveforms
+def uses_polynomial_filters(scene, i: int) -> bool:
+    """True when source ``i`` is made by the polynomial (Farrow) filters: it moves (its
+    delays change from snapshot to snapshot), is a coherent copy, or is copied (its
+    stream is read at its copies' delays too). Other sources keep the fixed filters."""
+    src = scene.sources[i]
+    if src.motion is not None or src.waveform.kind == COPY:
+        return True
+    return any(s.waveform.kind == COPY and scene.origin_index(j) == i
+               for j, s in enumerate(scene.sources))
+
+
+def _copy_delay(src) -> float:
+    return float(src.waveform.delay) if src.waveform.kind == COPY else 0.0
+
+
+def _delay_bound(scene) -> float:
+    """Bound on |d_n| for the polynomial filters, snapshots: ``B`` times the array's
+    radius plus 8 rms of the position error per spanned axis, plus 4 rms of the
+    channel delay error (beyond it, an event of about 1e-15, the whole part of the
+    delay is clipped, in the streams and the truth alike)."""
+    fb = scene.receiver.fractional_bandwidth or 0.0
+    arr = scene.array
+    radius = float(np.max(np.linalg.norm(arr.positions, axis=1)))
+    radius += 8.0 * arr.errors.position_rms * math.sqrt(float(np.sum(arr.error_axes)))
+    return fb * radius + 4.0 * arr.errors.channel_delay_rms
+
+
+def _whole_range(scene, i: int) -> tuple[int, int]:
+    """Smallest and largest whole part of source i's advances ``d_n - delay``."""
+    bound, delay = _delay_bound(scene), _copy_delay(scene.sources[i])
+    return int(math.floor(-bound - delay)), int(math.floor(bound - delay))
+
+
+def stream_offset(scene, origin: int) -> int:
+    """Where value s_m of a polynomial-path source's white sequence sits in its
+    stream: position ``m + offset``, large enough for every member of its group (the
+    source and its copies) to read back to its earliest value from snapshot 0, and at
+    least the fixed filters' :func:`reach` (so that a source alone reads its stream as
+    the fixed filters do: a zero motion gives the fixed filters' values to rounding)."""
+    so = scene.sources[origin]
+    h = half_length(so.bandwidth)
+    ripple = 1 if scene.array.errors.channel_ripple_rms else 0
+    lows = [_whole_range(scene, j)[0] for j in range(len(scene.sources))
+            if scene.origin_index(j) == origin]
+    return max(reach(scene, so), ripple + h - 1 - min(lows))
+
+
+def polynomial_coefficients(bandwidth: float | None, offset: float) -> np.ndarray:
+    """(DEGREE + 1, 2H) read-only: column ``i + H`` holds the coefficients (in powers of
+    ``x = 2 phi - 1``) of the polynomial that equals the band filter ``h(i + phi)``
+    (the module docstring's windowed sinc, unit power) for ``0 <= phi < 1``, segment
+    ``i = -H .. H-1``: interpolated at DEGREE + 1 Chebyshev points. A filter of
+    fractional advance d then has tap ``sum_p c_p[j + D] x^p`` on ``s_{k-j}``, with
+    ``D = floor(d)``, ``x = 2 (d - D) - 1`` (Farrow, "A continuously variable digital
+    delay element", ISCAS 1988, from memory; Laakso et al. 1996). Checked against
+    :func:`filter_taps` to 1e-12 in the tests."""
+    return _coefficients(None if bandwidth is None else float(bandwidth), float(offset),
+                         half_length(bandwidth), DEGREE)
+
+
+@functools.lru_cache(maxsize=64)
+def _coefficients(bandwidth: float | None, offset: float, h: int, degree: int) -> np.ndarray:
+    b = 1.0 if bandwidth is None else bandwidth
+    j = np.arange(-h, h + 1, dtype=float)
+
+    def taps(t):
+        # the window's limit at its edge (x -> +-1), so the segments are polynomials
+        inside = np.abs(t / h) <= 1.0
+        arg = np.sqrt(np.clip(1.0 - (t / h) ** 2, 0.0, None))
+        w = np.where(inside, np.i0(KAISER_BETA * arg) / np.i0(KAISER_BETA), 0.0)
+        return np.sqrt(b) * np.sinc(b * t) * np.exp(2j * np.pi * offset * t) * w
+
+    gain = math.sqrt(float(np.sum(np.abs(np.where(np.abs(j) < h, taps(j), 0.0)) ** 2)))
+    count = degree + 1
+    nodes = np.cos(np.pi * (np.arange(count) + 0.5) / count)
+    values = taps(np.arange(-h, h)[None, :] + (nodes[:, None] + 1.0) / 2.0) / gain
+    vander = np.polynomial.polynomial.polyvander(nodes, degree)
+    out = np.linalg.solve(vander, values)
+    out.setflags(write=False)
+    return out
+
+
+def _split_delay(d: np.ndarray, low: int, high: int) -> tuple[np.ndarray, np.ndarray]:
+    """Whole part (clipped to [low, high]) and polynomial variable ``2 (d - D) - 1``."""
+    whole = np.clip(np.floor(d), low, high)
+    return whole.astype(np.int64), 2.0 * (d - whole) - 1.0
+
+
+def _segments(coef: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """(..., 2H) every segment's polynomial at x (...,) by Horner's rule."""
+    acc = np.broadcast_to(coef[-1], x.shape + coef.shape[1:]).astype(complex)
+    for p in range(coef.shape[0] - 2, -1, -1):
+        acc = acc * x[..., None] + coef[p]
+    return acc
+
+
+def polynomial_block(batch, source: int, keys, start: int, size: int,
+                     channels: np.ndarray | None = None, reference: bool = False
+                     ) -> np.ndarray:
+    """(T, B, N) unit-power arrivals of a polynomial-path source (see
+    :func:`uses_polynomial_filters`) at the elements, for snapshots ``start .. start +
+    size - 1``: the origin's waveform (a copy's own delay subtracted from its advances)
+    at every element's advance of each snapshot, times the element's true uncoupled
+    steering entry of that snapshot, through the channel filters (T, N, 3) when given
+    (power, gate and a copy's rotation not included). ``reference``: (T, B) the
+    envelope at the array origin (zero advance, no steering or channel).
+
+    Noise-like origins: the P + 1 fixed filters ``v_p[m] = sum_i c_p[i] s_{m-i}`` run
+    over the origin's stream (:func:`filter_bank`, each output one sum in a fixed
+    order), then ``y_n(k) = sum_p x^p v_p[k + D]`` per element and snapshot (Horner's
+    rule): every value depends on its snapshot alone, so blocks are block-size
+    invariant without state. Tones and chirps are evaluated at the delayed times."""
+    sc = batch.scene
+    src = sc.sources[source]
+    origin = sc.origin_index(source)
+    wf = sc.sources[origin].waveform
+    t_ = batch.trials
+    ripple = 1 if (channels is not None and not reference) else 0
+    times = np.arange(start - ripple, start + size + ripple)
+    if reference:
+        d = np.zeros((t_, 1, 1))
+    elif src.motion is not None:
+        d = element_delays(batch, source, times) - _copy_delay(src)          # (T, B', N)
+    else:
+        d = (element_delays(batch, source) - _copy_delay(src))[:, None, :]   # (T, 1, N)
+    if wf.kind in _NOISE_LIKE:
+        so = sc.sources[origin]
+        coef = polynomial_coefficients(so.bandwidth, so.offset)
+        h = coef.shape[1] // 2
+        low, high = (0, 0) if reference else _whole_range(sc, source)
+        whole, x = _split_delay(d, low, high)
+        first = int(times[0]) + low                      # v_p[m] for m = first .. first+W-1
+        width = len(times) + high - low
+        s = _white(keys, wf.kind, first - h + 1 + stream_offset(sc, origin), width + 2 * h - 1)
+        v = filter_bank(coef[None], s, width)                               # (T, W, P+1)
+        shape = (t_, len(times), d.shape[-1])
+        at = np.broadcast_to(times[None, :, None] + whole - first, shape).reshape(t_, -1)
+        x = np.broadcast_to(x, shape).reshape(t_, -1)
+        y = np.take_along_axis(v[:, :, -1], at, axis=1)
+        for p in range(coef.shape[0] - 2, -1, -1):
+            y = y * x + np.take_along_axis(v[:, :, p], at, axis=1)
+        y = y.reshape(shape)
+    else:
+        phi0 = batch.start_phases[:, origin][:, None, None]
+        y = _deterministic(wf, times[None, :, None] + d, phi0)
+        y = np.broadcast_to(y, (t_, len(times), y.shape[-1]))
+    if reference:
+        return y[:, :, 0]
+    if src.motion is not None:
+        a = batch.steering(source, times, coupled=False)                   # (T, B', N)
+    else:
+        a = batch.steering(source, coupled=False)[:, None, :]
+    e = y * a
+    if not ripple:
+        return e
+    return sum(channels[:, None, :, q] * e[:, 2 - q: 2 - q + size] for q in range(3))
+
+
+def _member_delays(batch, i: int, taps: int, kk: np.ndarray, ripple: int):
+    """(T, M, J, N) advances (a copy's delay subtracted) and uncoupled steering of
+    source i at the times ``k - j``, ``j = -ripple .. taps - 1 + ripple`` (J of them)."""
+    src = batch.scene.sources[i]
+    js = np.arange(-ripple, taps + ripple)
+    t_, m = batch.trials, len(kk)
+    if src.motion is not None:
+        times = (kk[:, None] - js[None, :]).ravel()
+        d = element_delays(batch, i, times) - _copy_delay(src)
+        a = batch.steering(i, times, coupled=False)
+        n = d.shape[-1]
+        return d.reshape(t_, m, len(js), n), a.reshape(t_, m, len(js), n)
+    d = (element_delays(batch, i) - _copy_delay(src))[:, None, None, :]
+    a = batch.steering(i, coupled=False)[:, None, None, :]
+    return d, a
+
+
+def _filter_frame(batch, i: int, taps: int, kk: np.ndarray) -> tuple[np.ndarray, int]:
+    """Noise-like polynomial-path source i: (T, M, LN, W) taps of every stacked entry
+    (entry ``l N + n``, element n at snapshot ``k - l``) on ``s_{k - r}`` for ``r = base
+    .. base + W - 1`` (uncoupled, unit power, channel filters included), and base."""
+    sc = batch.scene
+    so = sc.sources[sc.origin_index(i)]
+    coef = polynomial_coefficients(so.bandwidth, so.offset)
+    h = coef.shape[1] // 2
+    channels = batch.channel_filters
+    ripple = 1 if channels is not None else 0
+    low, high = _whole_range(sc, i)
+    d, a = _member_delays(batch, i, taps, kk, ripple)
+    whole, x = _split_delay(d, low, high)
+    n = sc.elements
+    t_, m = batch.trials, len(kk)
+    width = taps + 2 * ripple - 1 + high - low + 2 * h
+    cols = np.arange(2 * h)
+    frame = np.zeros((t_, m, taps, n, width), dtype=complex)
+    for l_ in range(taps):
+        for q in range(2 * ripple + 1):          # channel tap j = q - ripple, time k - l - j
+            jj = l_ + q
+            jd = min(jj, d.shape[2] - 1)
+            gain = a[:, :, min(jj, a.shape[2] - 1)]
+            if ripple:
+                gain = gain * channels[:, None, :, q]
+            vals = np.broadcast_to(gain[..., None] * _segments(coef, x[:, :, jd]),
+                                   (t_, m, n, 2 * h))
+            at = np.broadcast_to(l_ + q + high - whole[:, :, jd], (t_, m, n))
+            tmp = np.zeros((t_, m, n, width), dtype=complex)
+            np.put_along_axis(tmp, at[..., None] + cols, vals, axis=-1)
+            frame[:, :, l_] += tmp
+    return frame.reshape(t_, m, taps * n, width), -ripple - h - high
+
+
+def _tone_vector(batch, i: int, taps: int, kk: np.ndarray) -> np.ndarray:
+    """(T, M, LN) a tone's stacked response (exact: ``x = v e^{j(2 pi f k + phi)}``)."""
+    sc = batch.scene
+    wf = sc.sources[sc.origin_index(i)].waveform
+    channels = batch.channel_filters
+    ripple = 1 if channels is not None else 0
+    d, a = _member_delays(batch, i, taps, kk, ripple)
+    t_, m, n = batch.trials, len(kk), sc.elements
+    v = np.zeros((t_, m, taps, n), dtype=complex)
+    for l_ in range(taps):
+        for q in range(2 * ripple + 1):
+            jj = l_ + q
+            lag = jj - ripple
+            term = a[:, :, min(jj, a.shape[2] - 1)] * np.exp(
+                2j * np.pi * wf.frequency * (d[:, :, min(jj, d.shape[2] - 1)] - lag))
+            if ripple:
+                term = term * channels[:, None, :, q]
+            v[:, :, l_] += term
+    return v.reshape(t_, m, taps * n)
+
+
+def _chirp_terms(batch, i: int, taps: int, kk: np.ndarray):
+    """(T, M, LN) gains and time offsets of a chirp's stacked entries (the chirp's flat
+    sweep kernel of the module docstring; channels at the sweep's centre)."""
+    sc = batch.scene
+    wf = sc.sources[sc.origin_index(i)].waveform
+    channels = batch.channel_filters
+    ripple = 1 if channels is not None else 0
+    d, a = _member_delays(batch, i, taps, kk, ripple)
+    t_, m, n = batch.trials, len(kk), sc.elements
+    g = _channel_response(channels, 0.5 * (wf.start + wf.stop))
+    alpha = np.empty((t_, m, taps, n), dtype=complex)
+    tau = np.empty((t_, m, taps, n))
+    for l_ in range(taps):
+        jj = l_ + ripple
+        alpha[:, :, l_] = np.broadcast_to(a[:, :, min(jj, a.shape[2] - 1)] * (
+            g if channels is None else g[:, None, :]), (t_, m, n))
+        tau[:, :, l_] = np.broadcast_to(d[:, :, min(jj, d.shape[2] - 1)] - l_, (t_, m, n))
+    return alpha.reshape(t_, m, taps * n), tau.reshape(t_, m, taps * n)
+
+
+def _amplitudes(scene, i: int, kk: np.ndarray, unit: bool) -> np.ndarray:
+    """(M,) complex: ``sqrt(P) g(k) e^{j phase}`` of source i (1 with ``unit``)."""
+    if unit:
+        return np.ones(len(kk), dtype=complex)
+    src = scene.sources[i]
+    amp = np.sqrt(src.power) * src.active(kk).astype(float) + 0j
+    if src.waveform.kind == COPY:
+        amp = amp * np.exp(1j * np.deg2rad(src.waveform.phase_deg))
+    return amp
+
+
+def _group_covariance(batch, group: list[int], taps: int, kk: np.ndarray,
+                      unit: bool = False) -> np.ndarray:
+    """(T, M, NL, NL) covariance of sources sharing one waveform (a source and its
+    copies, or one polynomial-path source), cross terms included, through the
+    coupling: every entry a finite sum over the same taps the streams use."""
+    sc = batch.scene
+    kind = sc.sources[sc.origin_index(group[0])].waveform.kind
+    t_, n = batch.trials, sc.elements
+    dim = n * taps
+    out = np.zeros((t_, len(kk), dim, dim), dtype=complex)
+    h = half_length(sc.sources[sc.origin_index(group[0])].bandwidth)
+    per = max(1, t_ * (taps + 2) * n * 2 * h * 4)
+    step = max(1, _TRUTH_VALUES // per)
+    for lo in range(0, len(kk), step):
+        ks = kk[lo:lo + step]
+        amps = [_amplitudes(sc, i, ks, unit)[None, :, None] for i in group]
+        if kind in _NOISE_LIKE:
+            frames = [_filter_frame(batch, i, taps, ks) for i in group]
+            r = 0
+            for a_ in range(len(group)):
+                fa, ba = frames[a_]
+                ga = amps[a_][..., None] * fa
+                for b_ in range(a_, len(group)):
+                    fb_, bb = frames[b_]
+                    first, last = max(ba, bb), min(ba + fa.shape[-1], bb + fb_.shape[-1])
+                    if first >= last:
+                        continue
+                    gb = amps[b_][..., None] * fb_
+                    x = np.einsum("...ar,...br->...ab", ga[..., first - ba:last - ba],
+                                  np.conj(gb[..., first - bb:last - bb]))
+                    r = r + (x if b_ == a_ else x + np.conj(np.swapaxes(x, -1, -2)))
+        elif kind == "tone":
+            v = sum(amp * _tone_vector(batch, i, taps, ks) for amp, i in zip(amps, group))
+            r = v[..., :, None] * np.conj(v[..., None, :])
+        else:
+            wf = sc.sources[sc.origin_index(group[0])].waveform
+            low, high = sorted((wf.start, wf.stop))
+            terms = [_chirp_terms(batch, i, taps, ks) for i in group]
+            r = 0
+            for a_, (al_a, tau_a) in enumerate(terms):
+                for b_, (al_b, tau_b) in enumerate(terms):
+                    tau = tau_a[..., :, None] - tau_b[..., None, :]
+                    ker = np.exp(1j * np.pi * (low + high) * tau) * np.sinc((high - low) * tau)
+                    r = r + ker * ((amps[a_] * al_a)[..., :, None]
+                                   * np.conj((amps[b_] * al_b)[..., None, :]))
+        out[:, lo:lo + len(ks)] = r
+    return _couple(batch, out, taps)
+
+
+# ------------------------------------------------------------------- noise fields
+def diffuse_filters(positions: np.ndarray, field: str, fractional_bandwidth: float
+                    ) -> np.ndarray:
+    """(R, N, N, 2H+1) taps ``A_j`` (j = -H .. H, H = :data:`HALF`) of a dispersive
+    diffuse noise field at ``positions`` (R, N, 3): element n receives ``sum_j sum_m
+    A_j[n, m] z_m[k - j]`` from unit white streams z_m. Design: at baseband frequency f
+    the field's coherence is the carrier's at ``(1 + f B)`` times the separations
+    (:func:`~adapt.scene.geometry.diffuse_coherence`: ``sin(k d)/(k d)`` or ``J0``,
+    Cox 1973); its Hermitian square root on :data:`DIFFUSE_GRID` frequencies,
+    inverse-transformed, Kaiser-windowed, each row scaled to unit power (so the
+    per-element power is exactly the narrowband field's). Without a fractional
+    bandwidth the coherence is flat and the taps are ``A_0`` alone (white in time).
+    Each of the R arrays is designed alone, with products of fixed shape."""
+    pos = np.asarray(positions, float)
+    h = HALF
+    grid = (np.arange(DIFFUSE_GRID) + 0.5) / DIFFUSE_GRID - 0.5
+    j = np.arange(-h, h + 1)
+    basis = np.exp(2j * np.pi * grid[:, None] * j[None, :]) / DIFFUSE_GRID   # (F, J)
+    window = _kaiser(j / (h + 1.0))
+    n = pos.shape[-2]
+    out = np.empty((len(pos), n, n, len(j)), dtype=complex)
+    fb = float(fractional_bandwidth or 0.0)
+    for r_ in range(len(pos)):
+        scaled = pos[r_][None, :, :] * (1.0 + fb * grid)[:, None, None]      # (F, N, 3)
+        lam, e = np.linalg.eigh(diffuse_coherence(scaled, field))
+        root = (e * np.sqrt(np.maximum(lam, 0.0))[:, None, :]) @ np.conj(
+            np.swapaxes(e, -1, -2))                                          # (F, N, N)
+        taps = (root.reshape(DIFFUSE_GRID, n * n).T @ basis).reshape(n, n, len(j))
+        taps = taps * window
+        power = np.sum(np.abs(taps) ** 2, axis=(1, 2))
+        out[r_] = taps / np.sqrt(power)[:, None, None]
+    return out
+
+
+def diffuse_block(batch, keys, start: int, size: int) -> np.ndarray:
+    """(T, B, N) the dispersive diffuse field (:func:`diffuse_filters`) for snapshots
+    ``start .. start + size - 1``: unit streams z_m[k] from normals ``((k + H) N + m) 2
+    + (0, 1)`` of the field's own stream (k >= -H), filtered, summed over m in order,
+    times ``sqrt(level)`` and the element gains."""
+    a = batch.diffuse_taps
+    h = (a.shape[-1] - 1) // 2
+    t_, n = batch.trials, a.shape[1]
+    z = np.empty((t_, size + 2 * h, n, 2))
+    normals.fill(keys, start * n * 2, z.reshape(t_, -1))
+    z = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+    out = None
+    for m in range(n):
+        part = filter_bank(a[:, :, m, :], np.ascontiguousarray(z[:, :, m]), size)
+        out = part if out is None else out + part
+    level = 10.0 ** (batch.scene.noise.level_db / 10.0)
+    return out * (np.sqrt(level) * batch.element_gains)[:, None, :]
+
+
+def noise_space_time(batch, taps: int) -> np.ndarray:
+    """(T, NL, NL) the noise's space-time covariance: the thermal floor (each
+    channel's power) and a white field's ``C C^H`` at lag 0 (white in time:
+    ``I_L kron Q``), plus a dispersive diffuse field's lags ``level g_n g_n'^* sum_j
+    sum_m A_j[n, m] conj(A_{j + l - l'}[n', m])`` (exact for the taps generated)."""
+    n = batch.scene.elements
+    q = batch.noise_covariance()                                             # (T, N, N)
+    out = np.zeros((batch.trials, n * taps, n * taps), dtype=complex)
+    for l_ in range(taps):
+        out[:, l_ * n:(l_ + 1) * n, l_ * n:(l_ + 1) * n] = q
+    a = batch.diffuse_taps
+    if a is None:
+        return out
+    size = a.shape[-1]
+    lead = (a.shape[0],)
+    c = {}
+    for lag in range(taps):
+        if lag < size:
+            c[lag] = np.einsum("rnmj,rpmj->rnp", a[..., :size - lag], np.conj(a[..., lag:]))
+        else:
+            c[lag] = np.zeros(lead + (n, n), dtype=complex)
+        if lag:
+            c[-lag] = np.conj(np.swapaxes(c[lag], -1, -2))
+    g = batch.element_gains
+    scale = 10.0 ** (batch.scene.noise.level_db / 10.0) * (g[:, :, None] * np.conj(g[:, None, :]))
+    return out + _lag_matrix(c, taps, n, lead) * np.tile(scale, (1, taps, taps))
 
 
 class TapLine:
@@ -400,7 +854,12 @@ def expected_eigenvalues(scene, source) -> float:
     W its band in cycles per snapshot, T its delay spread across the aperture in
     snapshots (the time-bandwidth product of the prolate spheroidal concentration
     problem; Slepian, "Prolate spheroidal wave functions ... V", Bell Syst. Tech. J.
-    57, 1978)."""
+    57, 1978). A coherent copy counts with its origin's waveform and band, at its own
+    direction (its start direction when it moves)."""
+    if source.waveform.kind == COPY:
+        origin = scene.sources[scene.source_index(source.waveform.of)]
+        source = dataclasses.replace(origin, azimuth=source.azimuth,
+                                     elevation=source.elevation)
     if source.waveform.kind not in _NOISE_LIKE:
         return 1.0
     fb = scene.receiver.fractional_bandwidth or 0.0

@@ -203,7 +203,8 @@ def describe_waveform(src: Source) -> str:
     if wf.kind == "chirp":
         return f"chirp {wf.start:g}..{wf.stop:g} / {wf.period}"
     if wf.kind == "copy":
-        return f"copy of {wf.of}" + (f" at {wf.phase_deg:g} deg" if wf.phase_deg else "")
+        return (f"copy of {wf.of}" + (f" at {wf.phase_deg:g} deg" if wf.phase_deg else "")
+                + (f", {wf.delay:g} snap later" if wf.delay else ""))
     return wf.kind
 
 

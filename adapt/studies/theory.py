@@ -225,9 +225,13 @@ def _nominal_truth(scene: Scene) -> tuple[np.ndarray, np.ndarray]:
 
     from adapt.scene.model import HardwareErrors
     from adapt.streams.snapshots import TrialBatch
-    nominal = scene.with_overrides(
-        array=dataclasses.replace(scene.array, errors=HardwareErrors()),
-        noise=dataclasses.replace(scene.noise, element_noise_db_rms=0.0))
+    changes = {"array": dataclasses.replace(scene.array, errors=HardwareErrors()),
+               "noise": dataclasses.replace(scene.noise, element_noise_db_rms=0.0)}
+    if scene.wideband and scene.receiver.fractional_bandwidth is None:
+        # wideband through channel errors alone: stays wideband (no dispersion), so
+        # band limits and a copy's delay still shape the nominal truth
+        changes["receiver"] = dataclasses.replace(scene.receiver, fractional_bandwidth=0.0)
+    nominal = scene.with_overrides(**changes)
     batch = TrialBatch(nominal, trials=1, seed=0)
     return batch.covariance()[0], batch.desired_steering()[0]
 
