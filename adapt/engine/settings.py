@@ -286,8 +286,8 @@ def estimate_run(scene: Scene, processors: int, checkpoints: int, tail: int = 0,
     RunEstimate
         Memory: the scores kept per trial, checkpoint and processor (five arrays plus a
         null depth per interferer, merged from the chunks: twice), plus per running
-        chunk its blocks of snapshots, weights and (for a changing scene) the true
-        covariance at every checkpoint. Time: a deliberately high order of magnitude.
+        chunk its blocks of snapshots, weights, (for a changing scene) the true
+        covariance at every checkpoint and (a wideband diffuse noise field) its filter. Time: a deliberately high order of magnitude.
     """
     from adapt.engine.execute import block_size, chunk_size
     t, k, n = int(scene.trials), int(scene.snapshots), int(scene.elements)
@@ -301,6 +301,12 @@ def estimate_run(scene: Scene, processors: int, checkpoints: int, tail: int = 0,
     working = ch * blk * n * 16 * 6 + p * ch * c * n * 16 + 2 * p * ch * c * 8
     if not scene.stationary:
         working += ch * c * n * n * 16 * 2
+    if scene.wideband and scene.noise.diffuse and scene.noise.field != "white":
+        # the dispersive field's filter (one per trial with position errors) and its copy
+        # per filtering call (adapt.streams.wideband.diffuse_filters)
+        from adapt.streams.wideband import HALF
+        rows = ch if scene.array.errors.position_rms else 1
+        working += (rows * n + ch) * n * (2 * HALF + 1) * 16
     seconds = t * (total if samples else c) * (p * n * n * _COST_PROCESSOR + n * _COST_STREAM)
     return RunEstimate(results + min(th, max(1, t // ch)) * working, seconds / th, th, what)
 

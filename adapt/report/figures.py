@@ -1151,12 +1151,14 @@ def band_map_figure(evaluation, azimuths=None, frequencies=None,
         m = band_map_db(evaluation, p.label, az, f)
         image = ax.pcolormesh(az, f, np.clip(m, floor_db, 10), shading="nearest",
                               vmin=floor_db, vmax=10, cmap="viridis")
-        for s in sc.interferers:
+        for i in sc.interferer_indices:
+            s = sc.sources[i]
+            o = sc.sources[sc.origin_index(i)]          # a copy: its origin's band
             lo, hi = -0.5, 0.5
-            if s.bandwidth is not None:
-                lo, hi = s.offset - s.bandwidth / 2, s.offset + s.bandwidth / 2
-            if s.waveform.kind == "tone":
-                lo = hi = s.waveform.frequency
+            if o.bandwidth is not None:
+                lo, hi = o.offset - o.bandwidth / 2, o.offset + o.bandwidth / 2
+            if o.waveform.kind == "tone":
+                lo = hi = o.waveform.frequency
             ax.plot([s.azimuth, s.azimuth], [lo, hi], color="#ffffff", linewidth=1.0,
                     linestyle=(0, (3, 2)))
         ax.set_title(p.label, fontsize=TICK_SIZE + 0.5)
