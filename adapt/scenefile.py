@@ -64,7 +64,9 @@ Scene file keys (``*`` = required)::
                                         N - 1 values, |c| < 1; matrix: N x N, |entry|
                                         <= 10 (any layout); each value a number or
                                         [re, im]; calibrated (default false): the assumed
-                                        look steering includes C too
+                                        look steering includes C too. Wideband scenes:
+                                        C mixes the element outputs (each source after
+                                        its delays and channel filters; not the noise)
     sources: *                         a list; exactly one has role desired
       - name: text *                   unique, non-empty
         role: desired | interferer *
@@ -78,21 +80,25 @@ Scene file keys (``*`` = required)::
                   or {kind: chirp, start: f0, stop: f1, period: P}
                                          f0, f1 in [-0.5, 0.5]; P >= 2 snapshots
                                          (defaults -0.25, 0.25, 1024)
-                  or {kind: copy, of: NAME, phase_deg: P}
+                  or {kind: copy, of: NAME, phase_deg: P, delay: D}
                                          a coherent copy of source NAME's waveform,
                                          scaled to this source's power_db, gated by its
                                          own pulsing, rotated by P degrees ([-360, 360],
-                                         default 0); NAME must be another source that is
-                                         not itself a copy; only interferers may be
-                                         copies (multipath of the wanted signal, a
-                                         repeater); scored by README's convention
+                                         default 0) and, in wideband scenes only,
+                                         delayed by D snapshots ([-100000, 100000],
+                                         fractions too, default 0); NAME must be
+                                         another source that is not itself a copy;
+                                         only interferers may be copies (multipath of
+                                         the wanted signal, a repeater); a copy takes
+                                         no bandwidth or offset of its own (NAME's
+                                         band); scored by README's convention
         pulsing: {start: k0, stop: k1, period: P, on: M}   all optional integers:
                  on at snapshot k when k0 <= k < k1 and (k - k0) mod P < M;
                  k0 >= 0 (default 0), k1 > k0 (default never off), P >= 1 and
                  1 <= M <= P given together
         motion: {azimuth_rate: r, elevation_rate: r}   degrees per snapshot, [-1, 1];
-                 the elevation must stay within [-90, 90] over the run (not in
-                 wideband scenes)
+                 the elevation must stay within [-90, 90] over the run (in wideband
+                 scenes every element's delay follows the motion snapshot by snapshot)
         bandwidth: fraction of the sample rate   [0.01, 1]  noise-like waveforms only;
                  a flat band (default: white over the sampled band, 1)
         offset: fraction of the sample rate      [-0.5, 0.5] the band's centre, default 0;
@@ -109,7 +115,11 @@ Scene file keys (``*`` = required)::
                                         wavelength, added to the thermal floor
       level_db: dB                      diffuse power per element over the thermal
                                         floor, [-100, 100]; required for isotropic
-                                        and cylindrical; with white: extra white noise
+                                        and cylindrical; with white: extra white noise.
+                                        Wideband scenes: isotropic and cylindrical
+                                        fields are dispersive (coherence at (1 + f B)
+                                        times the separations at frequency f), white
+                                        noise stays white in time
       element_noise_db_rms: dB rms      each channel's thermal noise power drawn per
                                         trial (Gaussian in dB, median 1), [0, 10],
                                         default 0

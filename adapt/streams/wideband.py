@@ -41,12 +41,37 @@ l))``; a chirp, whose spectrum over a period is flat across its sweep, the sinc 
 approximation: a chirp is not stationary). As the filter grows the noise-like kernel
 tends to the ideal flat-band sinc kernel (tested against quadrature).
 
+The narrowband model's other effects, in the same terms:
+
+* Moving sources, coherent copies and copied sources use the polynomial (Farrow) form
+  of the same filters (:func:`polynomial_coefficients`): segment i of h, ``h(i + phi)``
+  for ``0 <= phi < 1``, is a polynomial of degree :data:`DEGREE` in ``x = 2 phi - 1``, so
+  an advance d (``D = floor(d)``) gives ``s(k + d) = sum_p x^p v_p[k + D]`` with the fixed
+  filters ``v_p[m] = sum_i c_p[i] s_{m-i}`` run over the stream. d may then change from
+  snapshot to snapshot (a moving source: ``d_n(k) = B p_n.u(k)``, the steering entry
+  ``a_n(k)`` too) and a copy reads its origin's stream at ``d - delay`` (a copy's
+  ``delay``, snapshots). The truth at checkpoint k takes stacked entry ``l N + n`` at
+  snapshot ``k - l`` (its own direction), as a finite sum of the same taps; the
+  sources sharing a waveform add with their cross terms (coherent groups, the
+  narrowband convention).
+* Mutual coupling (``array.coupling``, frequency flat): ``x = C y`` on every source's
+  element outputs y (after the delays and channel filters, before the noise is
+  added); every lag block ``R(tau) -> C R(tau) C^H``; the noise is not coupled.
+* Noise fields: the thermal spread and a ``white`` field are white in time (their
+  spatial covariance at lag 0 only); an isotropic or cylindrical field is dispersive,
+  ``sum_j A_j z_{k-j}`` from white streams with taps designed from the coherence at
+  ``(1 + f B)`` times the separations (:func:`diffuse_filters`), its lags in the
+  truth (:func:`noise_space_time`).
+
 Sources: the broadband array model and space-time (tapped-delay-line) covariance,
 Van Trees, *Optimum Array Processing* (2002), broadband chapter; Compton, "The
 bandwidth performance of a two-element adaptive array with tapped delay-line
 processing", IEEE Trans. AP-36 (1988) (from memory); windowed-sinc fractional delays
 and the Kaiser window, Laakso, Valimaki, Karjalainen and Laine, "Splitting the unit
-delay", IEEE Signal Processing Magazine (1996).
+delay", IEEE Signal Processing Magazine (1996); the polynomial form, Farrow, "A
+continuously variable digital delay element", ISCAS 1988 (from memory); mutual coupling,
+Friedlander and Weiss, IEEE Trans. AP-39 (1991); diffuse noise coherence, Cox, JASA 54
+(1973).
 """
 from __future__ import annotations
 
