@@ -1224,7 +1224,7 @@ def scene_to_mapping(scene: Scene) -> dict:
                       period=int(s.waveform.period))
         elif s.waveform.kind == COPY:
             wf.update(of=s.waveform.of, phase_deg=float(s.waveform.phase_deg))
-            if s.waveform.delay:
+            if scene.wideband:          # (a narrowband copy has no delay: not written)
                 wf["delay"] = float(s.waveform.delay)
         item = {"name": s.name, "role": s.role, "azimuth": float(s.azimuth),
                 "elevation": float(s.elevation), "power_db": float(s.power_db),

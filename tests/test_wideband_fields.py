@@ -106,7 +106,9 @@ def test_the_four_features_are_accepted_and_a_copy_delay_round_trips():
     m = scene_to_mapping(sc)
     assert m["sources"][2]["waveform"]["delay"] == 2.3
     plain = scene_to_mapping(_scene([WANTED, _copy("c", "s", 30, 0)], fb=None))
-    assert "delay" not in plain["sources"][1]["waveform"]      # written only when given
+    assert "delay" not in plain["sources"][1]["waveform"]      # narrowband: never written
+    wide = scene_to_mapping(_scene([WANTED, _copy("c", "s", 30, 0)]))
+    assert wide["sources"][1]["waveform"]["delay"] == 0.0     # wideband: always (sweepable)
 
 
 # ------------------------------------------------------------------ the polynomial filters
@@ -469,3 +471,20 @@ def test_a_scene_with_the_feature_runs_through_compare(feature, tmp_path, run_cl
     assert code == 0 and "wideband:" in out
     if feature == "copies":
         assert "2.3 snap later" in out
+
+
+def test_signal_cancellation_fades_as_the_copy_delay_outgrows_the_coherence():
+    # MVDR trained with the wanted signal present cancels it when a coherent copy
+    # arrives from elsewhere (Widrow, Duvall, Gooch and Newman, "Signal cancellation
+    # phenomena in adaptive antennas", IEEE Trans. AP-30, 1982); the cancellation needs
+    # the copy to stay coherent with the signal, so it fades once the copy's delay
+    # exceeds the signal's correlation time (about one snapshot for a full-band source;
+    # the filters' span here) - the same paper's remedy by decorrelation, from memory
+    losses = []
+    for delay in (0.0, 40.0):
+        sc = _scene([WANTED, _copy("echo", "s", 30, 0, delay=delay)], fb=0.3,
+                    training="signal", array={"layout": "line", "elements": 4})
+        ev = run_trials(sc, [parse_spec("smi taps=2 loading_db=3")], [300], trials=4,
+                        snapshots=300, threads=1)
+        losses.append(float(np.mean(ev.processors[0].loss_db[:, -1])))
+    assert losses[0] > 3.0 and losses[1] < 1.0
