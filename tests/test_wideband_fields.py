@@ -488,3 +488,16 @@ def test_signal_cancellation_fades_as_the_copy_delay_outgrows_the_coherence():
                         snapshots=300, threads=1)
         losses.append(float(np.mean(ev.processors[0].loss_db[:, -1])))
     assert losses[0] > 3.0 and losses[1] < 1.0
+
+
+def test_the_processors_true_covariances_of_a_wideband_copy_scene_are_the_truths():
+    # what LMS-type step bounds read (Context.data_covariance, training_covariance)
+    from adapt.processors import Context
+    sc = parse_scene({**FEATURES["copies"], "training": "signal"})
+    batch = TrialBatch(sc, trials=2)
+    ctx = Context.from_batch(batch)
+    ks = np.array([0, 50])
+    assert np.allclose(ctx.data_covariance(ks), wb.space_time_covariance(batch, 1, ks, "data"))
+    assert np.allclose(ctx.training_covariance(ks),
+                       wb.space_time_covariance(batch, 1, ks, "training"))
+    assert np.allclose(ctx.covariance(ks), wb.space_time_covariance(batch, 1, ks))

@@ -337,7 +337,7 @@ class TrialBatch:
         sc = self.scene
         if sc.wideband:            # the dispersive model's spatial covariance (L = 1)
             return _wideband.space_time_covariance(
-                self, 1, k, "training" if training else "interference")
+                self, 1, k, "data" if data else "training" if training else "interference")
         kk = np.atleast_1d(np.asarray(0 if k is None else k))
         n = sc.elements
         # without hardware errors every trial has the same array: one row, repeated
