@@ -112,6 +112,9 @@ DEGREE = 13
 DIFFUSE_GRID = 256
 #: values of one temporary array of the truth's polynomial path (chunked over moments)
 _TRUTH_VALUES = 1 << 22
+#: stream value at negative position p is value WRAP + p (normals 2 (WRAP + p) and the
+#: next): 2**61, beyond any stream a run can read forward, within the counters' range
+WRAP = 1 << 61
 
 
 def half_length(bandwidth: float | None) -> int:
@@ -226,12 +229,24 @@ def filter_taps(delays: np.ndarray, bandwidth: float | None, offset: float, reac
 
 
 def _white(keys, kind: str, first: int, count: int) -> np.ndarray:
-    """(T, count) unit-power white sequence values s_m, m = first .. first + count - 1
-    (stream positions shifted so that they are >= 0 by the caller): gaussian from
-    normals 2m, 2m+1; bpsk the sign of normal 2m; qpsk the signs of both."""
+    """(T, count) unit-power white sequence values at stream positions ``first .. first
+    + count - 1``: gaussian from normals 2p, 2p+1; bpsk the sign of normal 2p; qpsk the
+    signs of both. A negative position p (values before the fixed filters' reach, read
+    only by a delayed copy or a polynomial filter's margin) is value ``WRAP + p``: far
+    beyond any stream's end, so it never meets a forward value and depends on p alone."""
     t_ = keys.shape[0]
     z = np.empty((t_, count, 2))
-    normals.fill(keys, 2 * first, z.reshape(t_, 2 * count))
+    if first >= 0:
+        normals.fill(keys, 2 * first, z.reshape(t_, 2 * count))
+    else:
+        early = min(count, -first)
+        head = np.empty((t_, 2 * early))
+        normals.fill(keys, 2 * (WRAP + first), head)
+        z[:, :early] = head.reshape(t_, early, 2)
+        if count > early:
+            tail = np.empty((t_, 2 * (count - early)))
+            normals.fill(keys, 0, tail)
+            z[:, early:] = tail.reshape(t_, count - early, 2)
     if kind == "gaussian":
         return z.view(np.complex128)[..., 0] * np.sqrt(0.5)
     sym = np.where(z >= 0, 1.0, -1.0)
@@ -484,17 +499,13 @@ def _whole_range(scene, i: int) -> tuple[int, int]:
 
 
 def stream_offset(scene, origin: int) -> int:
-    """Where value s_m of a polynomial-path source's white sequence sits in its
-    stream: position ``m + offset``, large enough for every member of its group (the
-    source and its copies) to read back to its earliest value from snapshot 0, and at
-    least the fixed filters' :func:`reach` (so that a source alone reads its stream as
-    the fixed filters do: a zero motion gives the fixed filters' values to rounding)."""
-    so = scene.sources[origin]
-    h = half_length(so.bandwidth)
-    ripple = 1 if scene.array.errors.channel_ripple_rms else 0
-    lows = [_whole_range(scene, j)[0] for j in range(len(scene.sources))
-            if scene.origin_index(j) == origin]
-    return max(reach(scene, so), ripple + h - 1 - min(lows))
+    """Where value s_m of a noise-like source's white sequence sits in its stream:
+    position ``m + offset``, the fixed filters' :func:`reach` of the source (the same for
+    the fixed and the polynomial filters, and whatever copies the source has: adding a
+    copy, or changing its delay, leaves its origin's values as they were, to the
+    polynomial's rounding). Earlier values (a delayed copy's) sit at negative
+    positions (:func:`_white`)."""
+    return reach(scene, scene.sources[origin])
 
 
 def polynomial_coefficients(bandwidth: float | None, offset: float) -> np.ndarray:
