@@ -27,6 +27,7 @@ import numpy as np
 
 from adapt.engine import scores
 from adapt.errors import SpecError
+from adapt.numerics import kernels as _kernels
 from adapt.processors import Context, Processor, run_processors
 from adapt.processors.base import normalised_checkpoints
 from adapt.scene.model import Scene
@@ -103,7 +104,13 @@ class Evaluation:
 
 
 class _Measure:
-    """Accumulates output-sample powers of the signal and the rest, per checkpoint span."""
+    """Accumulates output-sample powers of the signal and the rest, per checkpoint span.
+
+    Space-time weights apply to stacked snapshots: with the compiled kernels the
+    output sums ``sum_l w_l^H x_{k-l}`` are formed from the block and the last L - 1
+    snapshots before it (:func:`adapt.numerics.loops.tapped_powers_kernel`), without
+    stacking; in numpy, the block is stacked by delay lines of its own (equal to
+    rounding)."""
 
     def __init__(self, count: int, trials: int, checkpoints: np.ndarray):
         self.checkpoints = checkpoints
@@ -111,19 +118,25 @@ class _Measure:
         self.rest = np.zeros((count, trials, len(checkpoints)))
         self.n = np.zeros((count, len(checkpoints)))
         self.lines: dict = {}
+        self.history: dict = {}
 
     def stacked(self, index: int, block, taps: int):
         """The block as space-time snapshots for processor ``index`` (its own delay
         lines, carried across blocks)."""
         if index not in self.lines:
-            self.lines[index] = (wideband.TapLine(taps), wideband.TapLine(taps))
+            self.lines[index] = (wideband.TapLine(taps, recycle=True),
+                                 wideband.TapLine(taps, recycle=True))
         data_line, signal_line = self.lines[index]
         return Block(block.start, block.stop, data_line(block.data),
                      signal_line(block.signal), block.training, block.reference, None)
 
     def __call__(self, index, block, block_checkpoints, weights, held) -> None:
-        if held.shape[-1] != block.data.shape[-1]:              # space-time weights
-            block = self.stacked(index, block, held.shape[-1] // block.data.shape[-1])
+        n = block.data.shape[-1]
+        if held.shape[-1] != n:                                 # space-time weights
+            if _kernels.compiled():
+                self._tapped(index, block, block_checkpoints, weights, held)
+                return
+            block = self.stacked(index, block, held.shape[-1] // n)
         start = block.start
         edges = [0] + [int(c - start) for c in block_checkpoints] + [block.size]
         # which checkpoint's weight is in force on each span (-1: initial weight)
@@ -146,6 +159,41 @@ class _Measure:
             self.sig[index, :, slot] += np.sum(np.abs(ys) ** 2, axis=1)
             self.rest[index, :, slot] += np.sum(np.abs(yr) ** 2, axis=1)
             self.n[index, slot] += hi - lo
+
+    def _tapped(self, index, block, block_checkpoints, weights, held) -> None:
+        """Compiled output powers of space-time weights (see the class docstring)."""
+        t_, b, n = block.data.shape
+        lag = held.shape[-1] // n - 1
+        if index not in self.history:
+            zeros = np.zeros((t_, lag, n), dtype=complex)
+            self.history[index] = (zeros, zeros)
+        sig_hist, dat_hist = self.history[index]
+        sig = np.ascontiguousarray(block.signal, dtype=complex)
+        dat = np.ascontiguousarray(block.data, dtype=complex)
+        start = block.start
+        edges = [0] + [int(c - start) for c in block_checkpoints] + [b]
+        first = int(np.searchsorted(self.checkpoints, start, side="right")) - 1
+        ps, pr = np.zeros(t_), np.zeros(t_)
+        for j in range(len(edges) - 1):
+            lo, hi = edges[j], edges[j + 1]
+            slot = first + j
+            if hi <= lo or slot < 0:
+                continue
+            w = held if j == 0 else weights[:, j - 1, :]
+            ps[:] = 0.0
+            pr[:] = 0.0
+            _kernels.loops().tapped_powers_kernel(
+                np.ascontiguousarray(w, dtype=complex), sig_hist, sig, dat_hist, dat, lo,
+                hi, ps, pr)
+            self.sig[index, :, slot] += ps
+            self.rest[index, :, slot] += pr
+            self.n[index, slot] += hi - lo
+
+        def keep(hist, x):              # the last L - 1 snapshots, for the next block
+            return (x[:, b - lag:].copy() if b >= lag
+                    else np.concatenate([hist[:, b:], x], axis=1))
+
+        self.history[index] = (keep(sig_hist, sig), keep(dat_hist, dat))
 
     def sinr(self, index: int) -> np.ndarray:
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -200,8 +248,7 @@ def require_bounded(processor: Processor, index: int, w: np.ndarray, r_in: np.nd
     if processor.covariance_based:
         return
     with np.errstate(over="ignore", invalid="ignore"):
-        rw = (r_in @ w[..., None])[..., 0]                                # (T, C, N)
-        power = np.sum(np.conj(w) * rw, axis=-1).real
+        power = scores.quadratic_form(w, r_in)                             # (T, C)
         power = power + p_d * np.abs(np.sum(np.conj(w) * a_d, axis=-1)) ** 2
         total = (np.real(np.trace(r_in, axis1=-2, axis2=-1))
                  + p_d * np.sum(np.abs(a_d) ** 2, axis=-1))
@@ -286,7 +333,7 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
                 truths[taps] = _space_time_truth(batch, taps, moments)
             if not drawn:       # the data covariance R_in + R_s bounds the output power
                 t_ = truths[taps]
-                r_x = t_["in"] + t_["signal"]
+                r_x = _added(t_["in"], t_["signal"])
                 zero = np.zeros(r_x.shape[:-1], dtype=complex)
                 require_bounded(p, i, w, r_x, zero, np.zeros(r_x.shape[1]), checkpoints)
             sinr, norm, loss, wng, nd = _space_time_scores(truths[taps], w, checkpoints)
@@ -320,6 +367,14 @@ def evaluate_batch(batch: TrialBatch, processors: Sequence[Processor], checkpoin
                       checkpoints=checkpoints, optimum_sinr=np.array(opt), processors=out,
                       interferers=tuple(s.name for s in sc.interferers),
                       positions=batch.positions, element_gains=batch.element_gains)
+
+
+def _added(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """a + b for two stacks (T, ...) of the same shape; one sum broadcast when both are
+    one row broadcast over the trials (stride 0)."""
+    if a.shape[0] > 1 and a.strides[0] == 0 and b.strides[0] == 0:
+        return np.broadcast_to(a[:1] + b[:1], a.shape)
+    return a + b
 
 
 def _space_time_truth(batch: TrialBatch, taps: int, moments: np.ndarray) -> dict:

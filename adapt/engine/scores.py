@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from adapt.numerics import kernels as _kernels
 from adapt.numerics.linalg import solve_hermitian
 from adapt.scene import geometry
 
@@ -35,7 +36,8 @@ __all__ = ["output_sinr", "optimum_sinr", "normalised_sinr", "loss_db", "to_db",
            "parabolic_peak", "is_line_array", "plane_normal", "sphere_directions", "tangent_frame",
            "direction_response", "main_beam_peak_2d", "pointing_error_2d_deg",
            "peak_sidelobe_2d_db", "output_sinr_space_time",
-           "optimum_sinr_space_time", "band_response", "band_centre_weights"]
+           "optimum_sinr_space_time", "band_response", "band_centre_weights",
+           "quadratic_form"]
 
 
 def _check_shapes(w: np.ndarray, a: np.ndarray, r: np.ndarray | None = None) -> None:
@@ -84,6 +86,20 @@ def optimum_sinr(steering: np.ndarray, covariance: np.ndarray,
     return np.asarray(signal_power) * np.real(np.einsum("...n,...n->...", np.conj(a_b), x))
 
 
+def quadratic_form(weights: np.ndarray, covariance: np.ndarray) -> np.ndarray:
+    """``Re(w^H R w)`` for weights (..., M) and covariances (..., M, M), broadcast; for
+    the engine's stacks, weights (T, C, M) and covariances (T or 1, C or 1, M, M), each
+    form by itself (:func:`adapt.numerics.kernels.quadratic_forms`, compiled when the
+    kernels are on; equal to the element-wise sum to rounding), so results never
+    depend on the chunk."""
+    w = np.asarray(weights)
+    r = np.asarray(covariance)
+    if w.ndim == 3 and r.ndim == 4 and r.shape[-2:] == (w.shape[-1],) * 2 \
+            and all(r.shape[k] in (1, w.shape[k]) for k in (0, 1)):
+        return _kernels.quadratic_forms(w, r)
+    return np.real(np.einsum("...n,...nm,...m->...", np.conj(w), r, w))
+
+
 def output_sinr_space_time(weights: np.ndarray, signal: np.ndarray,
                            covariance: np.ndarray) -> np.ndarray:
     """Output SINR ``w^H R_s w / (w^H R_in w)`` (linear) of space-time (or spatial)
@@ -91,9 +107,8 @@ def output_sinr_space_time(weights: np.ndarray, signal: np.ndarray,
     noise covariance ``R_in`` (..., M, M), all broadcast; M = N L for L taps. For a rank-
     one ``R_s = sigma_s^2 a a^H`` it is :func:`output_sinr` (Van Trees 2002, broadband
     chapter: the SINR of a tapped-delay-line beamformer)."""
-    w = np.asarray(weights)
-    num = np.real(np.einsum("...n,...nm,...m->...", np.conj(w), signal, w))
-    den = np.real(np.einsum("...n,...nm,...m->...", np.conj(w), covariance, w))
+    num = quadratic_form(weights, signal)
+    den = quadratic_form(weights, covariance)
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
 
@@ -114,8 +129,7 @@ def optimum_sinr_space_time(signal: np.ndarray, covariance: np.ndarray) -> np.nd
 def band_response(weights: np.ndarray, covariance: np.ndarray) -> np.ndarray:
     """``w^H R w`` (real): with R a unit-power white source's space-time covariance,
     the power response toward it averaged over the band."""
-    w = np.asarray(weights)
-    return np.real(np.einsum("...n,...nm,...m->...", np.conj(w), covariance, w))
+    return quadratic_form(weights, covariance)
 
 
 def band_centre_weights(weights: np.ndarray, elements: int) -> np.ndarray:

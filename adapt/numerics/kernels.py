@@ -46,9 +46,9 @@ from adapt.numerics.tables import (
     TAIL_START,
 )
 
-__all__ = ["mode", "compiled", "loops", "lms_block", "lms_pass", "normalised_gain",
-           "rls_block", "wishart_spans", "cholesky_solve", "add_sources", "normals_fill",
-           "noisy_sources", "gamma_fill", "warm_up", "SYMMETRISE_EVERY"]
+__all__ = ["mode", "compiled", "loops", "lined", "lms_block", "lms_pass", "normalised_gain",
+           "rls_block", "wishart_spans", "cholesky_solve", "add_sources", "quadratic_forms",
+           "normals_fill", "noisy_sources", "gamma_fill", "warm_up", "SYMMETRISE_EVERY"]
 
 _CHOICES = ("auto", "numpy", "numba")
 #: RLS numpy path: trials are processed in groups of about this many P-matrix entries
@@ -168,8 +168,20 @@ def lms_pass(wc: np.ndarray, regressor: np.ndarray, marks: np.ndarray, gain,
     return out
 
 
+def lined(xh: np.ndarray, taps: int) -> np.ndarray:
+    """Stacked snapshots (T, B, N taps) ``[x_j; x_{j-1}; ...; x_{j-taps+1}]`` from lined
+    ones ``xh`` (T, B + taps - 1, N): a block after the taps - 1 snapshots before it."""
+    t_, bh, n = xh.shape
+    b = bh - taps + 1
+    out = np.empty((t_, b, n * taps), dtype=np.result_type(xh, complex))
+    for l_ in range(taps):
+        out[:, :, l_ * n:(l_ + 1) * n] = xh[:, taps - 1 - l_:taps - 1 - l_ + b]
+    return out
+
+
 def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
-              direction_conj=None, step: float = 0.0, eps: float = 0.0) -> np.ndarray:
+              direction_conj=None, step: float = 0.0, eps: float = 0.0,
+              taps: int = 1) -> np.ndarray:
     """The LMS-type recursion of :func:`lms_pass` over one block: compiled when the
     kernels are on, else :func:`lms_pass` itself.
 
@@ -178,9 +190,22 @@ def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
     gain: scalar or (T,) per-trial step, (T, B) per snapshot, or None for the NLMS gain
     ``step / (eps + |x|^2)`` (:func:`normalised_gain`); desired: (T, B) or None (d = 0);
     direction_conj: (T, B, M) ``conj(v)`` or None for ``conj(x)``.
+    taps > 1: x is (T, B + taps - 1, N), a block's snapshots after the taps - 1 before
+    it, and the regressor of snapshot j the stacked ``[x_j; x_{j-1}; ...]`` (M = N
+    taps, the order of :class:`adapt.streams.wideband.TapLine`), read in place by the
+    compiled kernel (no direction_conj then); the same numbers as stacking first.
     Returns the weights w after each mark, (T, len(marks), M).
     """
+    taps = int(taps)
+    if taps > 1:
+        if direction_conj is not None or x.ndim != 3 or x.shape[1] < taps:
+            raise ValueError("lined regressors need x (T, B + taps - 1, N) and no "
+                             "direction_conj")
+        if not compiled():
+            x = lined(x, taps)
     t_, b, m = x.shape
+    if taps > 1 and compiled():
+        b, m = b - taps + 1, m * taps
     if wc.shape != (t_, m) or wc.dtype != np.complex128 or not wc.flags.writeable:
         raise ValueError(f"weight state must be a writable complex (T, M) = {(t_, m)} array")
     marks = np.ascontiguousarray(marks, dtype=np.int64)
@@ -212,6 +237,10 @@ def lms_block(wc: np.ndarray, x: np.ndarray, marks, gain=None, desired=None,
             gain_t[:] = g          # a fresh writable array: one compiled signature
     d = (np.zeros((t_, 0), dtype=complex) if desired is None
          else np.asarray(desired, dtype=complex))
+    if taps > 1:
+        loops().lms_lined_kernel(wc, np.ascontiguousarray(x, dtype=complex), taps, d, gmode,
+                                 gain_t, gain_tb, float(step), float(eps), marks, out)
+        return out
     dirc = (np.zeros((t_, 0, m), dtype=complex) if direction_conj is None
             else np.asarray(direction_conj, dtype=complex))
     loops().lms_kernel(wc, np.asarray(x, dtype=complex), d, gmode, gain_t, gain_tb,
@@ -400,6 +429,28 @@ def add_sources(x: np.ndarray, scale: float, env: np.ndarray, steer: np.ndarray,
     return out
 
 
+def quadratic_forms(w: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """``Re(w^H R w)`` (A, B) for weights w (A, B, M) and Hermitian matrices r (A or 1,
+    B or 1, M, M) (broadcast along an axis of length 1 or stride 0): compiled, each
+    form by itself in a fixed order of sums whatever the stack (a stack and its items
+    one by one agree exactly); else numpy's element-wise sum (equal to rounding)."""
+    w = np.asarray(w)
+    r = np.asarray(r)
+    if w.ndim != 3 or r.ndim != 4 or r.shape[-2:] != (w.shape[-1],) * 2 \
+            or any(r.shape[k] not in (1, w.shape[k]) for k in (0, 1)):
+        raise ValueError(f"need w (A, B, M) and r (A or 1, B or 1, M, M), got {w.shape} "
+                         f"and {r.shape}")
+    if not compiled():
+        return np.real(np.einsum("...n,...nm,...m->...", np.conj(w), r, w))
+    for k in (0, 1):                       # a broadcast axis: its one matrix
+        if r.shape[k] > 1 and r.strides[k] == 0:
+            r = r[:1] if k == 0 else r[:, :1]
+    out = np.empty(w.shape[:2])
+    loops().quadratic_kernel(np.ascontiguousarray(w, dtype=complex),
+                             np.ascontiguousarray(r, dtype=complex), out)
+    return out
+
+
 def normals_fill(keys: np.ndarray, start: int, out: np.ndarray) -> np.ndarray:
     """Normals ``start ..`` of each counter-based stream, compiled (the wrapper that
     checks the arguments and falls back to numpy is :func:`adapt.streams.normals.fill`):
@@ -490,6 +541,8 @@ def warm_up() -> float:
     marks = np.array([3])
     lms_block(np.zeros((2, 3), complex), x, marks, gain=0.01, desired=d)
     lms_block(np.zeros((2, 3), complex), x, marks, gain=None, desired=d, step=0.1, eps=1e-6)
+    lms_block(np.zeros((2, 6), complex), x, np.array([1]), gain=None, desired=d[:, :3],
+              step=0.1, eps=1e-6, taps=2)              # lined regressors (tapped LMS-type)
     p = np.broadcast_to(np.eye(3, dtype=complex), (2, 3, 3)).copy()
     rls_block(p, np.zeros((2, 3), complex), x, d, 1.0, 0, marks)
     wishart_spans(p, np.ones((2, 1, 3)), np.zeros((2, 3, 2)), np.array([1, 2, 2]),
@@ -501,4 +554,12 @@ def warm_up() -> float:
     gamma_fill(np.ones((2, 2), dtype=np.uint64), np.array([0.0, 1.0, 5.0]), np.empty((2, 3)))
     noisy_sources(np.ones((2, 2), dtype=np.uint64), 0, 1.0, x[:, :, :2], x[:1, :2, :],
                   x[:, :, 0], x[:1, 0, :], np.empty_like(x), np.empty_like(x))
+    quadratic_forms(x[:, :2], p[:, None])
+    # the wideband sources' filter bank, and the space-time output powers
+    from adapt.numerics import fir
+    bank = fir.FilterBank(x[:, :2, :3])
+    fir.filter_bank(bank, x[:, :, 0], 2)
+    fir.add_filtered(bank, x[:, :, 0], x[:, 0, :2], np.ones(2), np.zeros((2, 2, 2), complex))
+    loops().tapped_powers_kernel(np.ones((2, 6), complex), x[:, :1, :].copy(), x.copy(),
+                                 x[:, :1, :].copy(), x.copy(), 0, 4, np.zeros(2), np.zeros(2))
     return time.perf_counter() - t0

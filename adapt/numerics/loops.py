@@ -18,10 +18,27 @@ method of Marsaglia & Tsang 2000).
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from llvmlite import ir
+from numba import njit, types
+from numba.extending import intrinsic
 
-__all__ = ["lms_kernel", "rls_kernel", "wishart_kernel", "cholesky_kernel", "mix_kernel",
-           "normals_kernel", "noisy_sources_kernel", "gamma_kernel", "KERNELS"]
+__all__ = ["lms_kernel", "lms_lined_kernel", "rls_kernel", "wishart_kernel", "cholesky_kernel", "mix_kernel",
+           "normals_kernel", "noisy_sources_kernel", "gamma_kernel", "fir_kernel",
+           "tapped_powers_kernel", "quadratic_kernel", "KERNELS"]
+
+
+@intrinsic
+def fused_multiply_add(typingctx, a, b, c):
+    """``a * b + c`` rounded once (LLVM's ``llvm.fma.f64``: the hardware instruction
+    where there is one, else the correctly rounded library function)."""
+    sig = types.float64(types.float64, types.float64, types.float64)
+
+    def codegen(context, builder, signature, args):
+        d = ir.DoubleType()
+        fn = builder.module.declare_intrinsic("llvm.fma", [d], ir.FunctionType(d, [d, d, d]))
+        return builder.call(fn, args)
+
+    return sig, codegen
 
 
 @njit(cache=True, nogil=True)
@@ -59,6 +76,48 @@ def lms_kernel(wc, x, d, gain_mode, gain_t, gain_tb, step, eps, dirc, marks, out
                     wc[t, i] += np.conj(x[t, j, i]) * e
             while nxt < nm and marks[nxt] == j:
                 for i in range(m):
+                    out[t, nxt, i] = np.conj(wc[t, i])
+                nxt += 1
+
+
+@njit(cache=True, nogil=True)
+def lms_lined_kernel(wc, xh, taps, d, gain_mode, gain_t, gain_tb, step, eps, marks, out):
+    # lms_kernel on stacked regressors read in place: xh (T, B + taps - 1, N) holds a
+    # block's snapshots after the taps - 1 before it, and the regressor of snapshot j
+    # is u = [x_j; x_{j-1}; ...; x_{j-taps+1}] (entry l N + e = xh[t, j + taps - 1 - l,
+    # e]); the operations and their order are lms_kernel's on u (no update direction)
+    t_, bh, n = xh.shape
+    b = bh - taps + 1
+    use_d = d.shape[1] > 0
+    nm = marks.shape[0]
+    for t in range(t_):
+        nxt = 0
+        for j in range(b):
+            y = 0j
+            for l_ in range(taps):
+                r = j + taps - 1 - l_
+                for e in range(n):
+                    y += wc[t, l_ * n + e] * xh[t, r, e]
+            e_ = (d[t, j] - y) if use_d else -y
+            if gain_mode == 0:
+                g = gain_t[t]
+            elif gain_mode == 1:
+                g = gain_tb[t, j]
+            else:
+                pw = 0.0
+                for l_ in range(taps):
+                    r = j + taps - 1 - l_
+                    for e in range(n):
+                        v = xh[t, r, e]
+                        pw += v.real * v.real + v.imag * v.imag
+                g = step / (eps + pw)
+            e_ = e_ * g
+            for l_ in range(taps):
+                r = j + taps - 1 - l_
+                for e in range(n):
+                    wc[t, l_ * n + e] += np.conj(xh[t, r, e]) * e_
+            while nxt < nm and marks[nxt] == j:
+                for i in range(n * taps):
                     out[t, nxt, i] = np.conj(wc[t, i])
                 nxt += 1
 
@@ -452,7 +511,138 @@ def gamma_kernel(keys, shapes, out, step, accept, table, density, r):
                     break
 
 
+@njit(cache=True, nogil=True)
+def fir_kernel(hr, hi, s, steer, gate, mode, out, ref):
+    # The filter bank of adapt.numerics.fir: acc[t, b, d] = sum_{i=0..M-1} h[t, d, i]
+    # s[t, b + M - 1 - i], i increasing, each product and sum the plain complex
+    # arithmetic (re = hr sr - hi si, im = hr si + hi sr), taps held planar and
+    # transposed, hr, hi (T or 1, M, D) (1: shared by every trial), s (T, B + M - 1).
+    # The D sums of one output snapshot run side by side (vectorised over d); each is
+    # the same sequence of roundings as the one-at-a-time loop.
+    # mode 0: out (T, B, D) <- acc.
+    # mode 1 and 2, the streams' source terms (adapt.streams.wideband.add_dispersed):
+    # the factor f = steer[t, d] * gate[b] (steer (T, N) complex, gate (B,) float, as
+    # numpy multiplies a complex by a real: (sr g - si 0, sr 0 + si g)), the term
+    # p = acc * f as numpy's contiguous complex multiply rounds it (re = fma(ar, fr,
+    # -(ai fi)), im = fma(ar, fi, ai fr)); mode 1: out[t, b, d] <- p for d < N and, when
+    # D = N + 1, ref[t, b] <- acc[t, b, N] * gate[b] (complex times real); mode 2:
+    # out[t, b, d] += p (N = D).
+    t_, b_ = out.shape[0], out.shape[1]
+    m = hr.shape[1]
+    d_ = hr.shape[2]
+    n = steer.shape[1]
+    shared = hr.shape[0] == 1
+    ar = np.empty(d_)
+    ai = np.empty(d_)
+    for t in range(t_):
+        th = 0 if shared else t
+        for b in range(b_):
+            for d in range(d_):
+                ar[d] = 0.0
+                ai[d] = 0.0
+            for i in range(m):
+                v = s[t, b + m - 1 - i]
+                sr = v.real
+                si = v.imag
+                for d in range(d_):
+                    pr = hr[th, i, d]
+                    pi = hi[th, i, d]
+                    ar[d] = ar[d] + (pr * sr - pi * si)
+                    ai[d] = ai[d] + (pr * si + pi * sr)
+            if mode == 0:
+                for d in range(d_):
+                    out[t, b, d] = complex(ar[d], ai[d])
+                continue
+            g = gate[b]
+            for d in range(n):
+                c = steer[t, d]
+                fr = c.real * g - c.imag * 0.0
+                fi = c.real * 0.0 + c.imag * g
+                qr = fused_multiply_add(ar[d], fr, -(ai[d] * fi))
+                qi = fused_multiply_add(ar[d], fi, ai[d] * fr)
+                if mode == 1:
+                    out[t, b, d] = complex(qr, qi)
+                else:
+                    o = out[t, b, d]
+                    out[t, b, d] = complex(o.real + qr, o.imag + qi)
+            if d_ > n:
+                ref[t, b] = complex(ar[n] * g - ai[n] * 0.0, ar[n] * 0.0 + ai[n] * g)
+
+
+@njit(cache=True, nogil=True)
+def tapped_powers_kernel(w, sig_hist, sig, dat_hist, dat, lo, hi, ps, pr):
+    # Output powers of a space-time weight over snapshots lo .. hi - 1 of a block:
+    # w (T, L N) weights (entry l N + n), sig and dat (T, B, N) the block's wanted
+    # signal and data, *_hist (T, L - 1, N) the L - 1 snapshots before the block
+    # (zeros before the stream starts); ys = sum_{l, n} conj(w[l N + n]) s[k - l, n],
+    # yr the same over dat - sig; ps[t] += sum |ys|^2, pr[t] += sum |yr|^2
+    t_ = sig.shape[0]
+    n = sig.shape[2]
+    taps = w.shape[1] // n
+    lag = taps - 1
+    for t in range(t_):
+        accs = 0.0
+        accr = 0.0
+        for k in range(lo, hi):
+            ysr = 0.0
+            ysi = 0.0
+            yrr = 0.0
+            yri = 0.0
+            for l_ in range(taps):
+                j = k - l_
+                for e in range(n):
+                    if j >= 0:
+                        a = sig[t, j, e]
+                        b = dat[t, j, e]
+                    else:
+                        a = sig_hist[t, lag + j, e]
+                        b = dat_hist[t, lag + j, e]
+                    c = w[t, l_ * n + e]
+                    r = b - a
+                    ysr += c.real * a.real + c.imag * a.imag
+                    ysi += c.real * a.imag - c.imag * a.real
+                    yrr += c.real * r.real + c.imag * r.imag
+                    yri += c.real * r.imag - c.imag * r.real
+            accs += ysr * ysr + ysi * ysi
+            accr += yrr * yrr + yri * yri
+        ps[t] += accs
+        pr[t] += accr
+
+
+@njit(cache=True, nogil=True)
+def quadratic_kernel(w, r, out):
+    # out[i, j] = Re(w^H R w) for weights w (A, B, M) and matrices r (A or 1, B or 1,
+    # M, M) (1: shared along that axis), as Re(w^H R^H w) (the same real part for
+    # any R): R^H w accumulated row by row of R (rw[b] += conj(R[a, b]) w[a], a
+    # increasing: contiguous rows), then the sum of Re(conj(w[b]) rw[b]), b increasing;
+    # each form by itself, whatever the stack
+    a_, b_, m = w.shape
+    rr = np.empty(m)
+    ri = np.empty(m)
+    for i in range(a_):
+        ia = 0 if r.shape[0] == 1 else i
+        for j in range(b_):
+            jb = 0 if r.shape[1] == 1 else j
+            for b in range(m):
+                rr[b] = 0.0
+                ri[b] = 0.0
+            for a in range(m):
+                v = w[i, j, a]
+                vr = v.real
+                vi = v.imag
+                for b in range(m):
+                    c = r[ia, jb, a, b]
+                    rr[b] += c.real * vr + c.imag * vi
+                    ri[b] += c.real * vi - c.imag * vr
+            acc = 0.0
+            for b in range(m):
+                v = w[i, j, b]
+                acc += v.real * rr[b] + v.imag * ri[b]
+            out[i, j] = acc
+
+
 #: every compiled entry point (for :func:`adapt.numerics.kernels.warm_up` and the
 #: cache test)
-KERNELS = (lms_kernel, rls_kernel, wishart_kernel, cholesky_kernel, mix_kernel,
-           normals_kernel, noisy_sources_kernel, gamma_kernel)
+KERNELS = (lms_kernel, lms_lined_kernel, rls_kernel, wishart_kernel, cholesky_kernel, mix_kernel,
+           normals_kernel, noisy_sources_kernel, gamma_kernel, fir_kernel, tapped_powers_kernel,
+           quadratic_kernel)

@@ -22,10 +22,10 @@ import warnings
 import numpy as np
 
 from adapt.errors import SpecError
-from adapt.numerics.linalg import solve_hermitian
+from adapt.numerics.linalg import compiled_solves, solve_hermitian
 from adapt.processors.base import Context, Parameter, Processor, State
 
-__all__ = ["outer_sum", "GrowingSums", "SlidingSums", "hermitian_part", "loading_level",
+__all__ = ["outer_sum", "GrowingSums", "SlidingSums", "LaggedSums", "hermitian_part", "loading_level",
            "noise_floor_estimate", "signal_count_mdl", "solve_sample", "SampleCovarianceProcessor",
            "loading_parameters", "check_loading", "smoothed_covariance",
            "smoothing_parameters", "check_smoothing", "shift_invariant_reason"]
@@ -156,6 +156,105 @@ class SlidingSums:
         self.buffer = history[:, max(0, history.shape[1] - L):].copy()
         self.seen = stop
         return out
+
+
+class LaggedSums:
+    """Growing-window sums of stacked space-time snapshots ``z_k = [x_k; x_{k-1}; ...;
+    x_{k-L+1}]`` (zeros before the stream starts), formed from the snapshots x_k (T, B,
+    N) themselves: with the lag sums ``Q_q(c) = sum_{j<c} x_j x_{j-q}^H`` (q = 0 ..
+    L - 1), block (l, m) of ``S(c) = sum_{k<c} z_k z_k^H`` is, for m >= l,
+    ``sum_{j<c-l} x_j x_{j-(m-l)}^H = Q_{m-l}(c) - sum_{c-l<=j<c} x_j x_{j-(m-l)}^H``
+    (zero when c <= l) and block (m, l) its conjugate transpose. Cost per snapshot
+    L N^2 complex multiply-adds instead of (N L)^2, with L (L - 1) / 2 outer products
+    per checkpoint for the last terms; the returned sums are exactly Hermitian (the
+    upper triangle mirrored). Equal to :class:`GrowingSums` of the stacked snapshots to
+    rounding (tested).
+
+    ``advance(x, start, checkpoints)`` takes the block's snapshots (T, B, N) (or its
+    stacked snapshots (T, B, N L), of which it reads x_k, the first N entries) and
+    returns S at each snapshot count in ``checkpoints`` (T, len(checkpoints), N L, N L),
+    in a buffer reused by the next call.
+    """
+
+    #: advance reads the snapshots of the block, not their stacks
+    unstacked = True
+    #: the sums it returns are exactly Hermitian
+    hermitian = True
+
+    def __init__(self, trials: int, elements: int, taps: int):
+        if trials < 1 or elements < 1 or taps < 2:
+            raise ValueError("trials and elements must be >= 1 and taps >= 2")
+        self.n, self.taps = int(elements), int(taps)
+        self.lags = np.zeros((trials, self.taps, self.n, self.n), dtype=complex)
+        # the last 2 (L - 1) snapshots (zeros before the stream): the last terms' reach
+        self.history = np.zeros((trials, 2 * (self.taps - 1), self.n), dtype=complex)
+        self.seen = 0
+        self._buffer: np.ndarray | None = None
+
+    def count(self, k: np.ndarray) -> np.ndarray:
+        return np.asarray(k, dtype=np.int64)
+
+    def advance(self, data: np.ndarray, start: int, checkpoints) -> np.ndarray:
+        if start != self.seen:
+            raise ValueError(f"blocks must be contiguous: expected start {self.seen}, got {start}")
+        n, taps = self.n, self.taps
+        if data.shape[-1] == n * taps:
+            data = data[..., :n]
+        t_, b, _ = data.shape
+        checkpoints = _check_stops(start, b, checkpoints)
+        h = self.history.shape[1]
+        full = np.concatenate([self.history, data], axis=1)       # snapshot j at j - start + h
+        conj = np.conj(full)
+        out = self._output((t_, len(checkpoints), n * taps, n * taps))
+        lo = 0
+        for i, c in enumerate(list(checkpoints) + [start + b]):
+            hi = int(c - start)
+            if hi > lo:
+                now = np.swapaxes(full[:, h + lo:h + hi], 1, 2)
+                for q in range(taps):
+                    self.lags[:, q] += now @ conj[:, h + lo - q:h + hi - q]
+            lo = hi
+            if i < len(checkpoints):
+                self._assemble(out[:, i], full, conj, int(c), h - start)
+        self.history = full[:, full.shape[1] - h:].copy()
+        self.seen = start + b
+        return out
+
+    def _output(self, shape: tuple) -> np.ndarray:
+        """The returned sums: a view of one buffer kept across blocks (valid until the
+        next ``advance``; fresh large arrays per block cost page faults)."""
+        count = int(np.prod(shape))
+        if self._buffer is None or self._buffer.size < count:
+            self._buffer = np.empty(count, dtype=complex)
+        return self._buffer[:count].reshape(shape)
+
+    def _assemble(self, out: np.ndarray, full: np.ndarray, conj: np.ndarray, c: int,
+                  shift: int) -> None:
+        """S(c) into out (T, N L, N L); snapshot j sits at full[:, j + shift]."""
+        n, taps = self.n, self.taps
+        rows, cols = np.triu_indices(n, 1)
+        diag = np.arange(n)
+        for q in range(taps):
+            last = None                                        # the last l terms
+            for l_ in range(taps - q):
+                if l_:
+                    j = c - l_ + shift
+                    term = full[:, j, :, None] * conj[:, j - q, None, :]
+                    last = term if last is None else np.add(last, term, out=last)
+                m = l_ + q
+                up = out[:, l_ * n:(l_ + 1) * n, m * n:(m + 1) * n]
+                if c <= l_:
+                    up[...] = 0.0
+                elif last is None:
+                    up[...] = self.lags[:, q]
+                else:
+                    np.subtract(self.lags[:, q], last, out=up)
+                if q:                                          # block (m, l): (l, m)^H
+                    out[:, m * n:(m + 1) * n, l_ * n:(l_ + 1) * n] = \
+                        np.conj(np.swapaxes(up, 1, 2))
+                else:                                          # mirror the upper triangle
+                    up[:, cols, rows] = np.conj(up[:, rows, cols])
+                    up[:, diag, diag] = up[:, diag, diag].real
 
 
 def signal_count_mdl(lam_desc: np.ndarray, snapshots: int) -> np.ndarray:
@@ -473,8 +572,12 @@ class SampleCovarianceProcessor(Processor):
         self.check(context)
         window, length, _ = self.window_settings()
         t_, n = context.trials, context.elements
+        if window == "growing" and context.taps > 1:     # stacked: from the lag sums
+            sums = LaggedSums(t_, n // context.taps, context.taps)
+        else:
+            sums = GrowingSums(t_, n) if window == "growing" else SlidingSums(t_, n, length)
         return State(context=context,
-                     sums=GrowingSums(t_, n) if window == "growing" else SlidingSums(t_, n, length),
+                     sums=sums,
                      held=None,           # (sum (T, N, N), update time) at the last update
                      warned=False,
                      warned_auto=False,
@@ -518,29 +621,73 @@ class SampleCovarianceProcessor(Processor):
     def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         checkpoints = np.asarray(checkpoints, dtype=np.int64)
         every = int(self.window_settings()[2])
+        if every == 1 and getattr(state.sums, "unstacked", False):
+            return self._update_by_checkpoint(state, block, checkpoints)
         times = self.update_times(checkpoints)
         last = (block.stop // every) * every
+        # the sum at the block's last update time serves the checkpoints of later
+        # blocks that fall before their own next update (interval > 1 only)
+        keep = every > 1 and last > block.start
         wanted = np.union1d(times[times > block.start],
-                            [last] if last > block.start else []).astype(np.int64)
-        sums = state.sums.advance(block.training, block.start, wanted)
+                            [last] if keep else []).astype(np.int64)
+        sums = state.sums.advance(self._training(state, block), block.start, wanted)
         t_, n = state.context.trials, state.context.elements
         if not checkpoints.size:
-            if wanted.size:
-                state.held = (sums[:, -1], int(wanted[-1]))
+            if keep:
+                state.held = (sums[:, -1].copy(), int(wanted[-1]))
             return np.empty((t_, 0, n), dtype=complex)
         # the sum behind each distinct update time used by this block's checkpoints
         distinct = np.unique(times[times > 0])
-        table = np.empty((t_, len(distinct), n, n), dtype=complex)
-        for i, u in enumerate(distinct):
-            if u > block.start:
-                table[:, i] = sums[:, int(np.searchsorted(wanted, u))]
-            else:
-                if state.held is None or state.held[1] != u:
-                    raise RuntimeError("internal: no covariance held for the update time")
-                table[:, i] = state.held[0]
-        if wanted.size:
-            state.held = (sums[:, -1], int(wanted[-1]))
+        if np.array_equal(distinct, wanted):            # all of this block's own
+            table = sums
+        else:
+            table = np.empty((t_, len(distinct), n, n), dtype=complex)
+            for i, u in enumerate(distinct):
+                if u > block.start:
+                    table[:, i] = sums[:, int(np.searchsorted(wanted, u))]
+                else:
+                    if state.held is None or state.held[1] != u:
+                        raise RuntimeError("internal: no covariance held for the update time")
+                    table[:, i] = state.held[0]
+        if keep:
+            state.held = (sums[:, -1].copy(), int(wanted[-1]))
+        if getattr(state.sums, "hermitian", False):
+            with compiled_solves():                  # see _update_by_checkpoint
+                return self.weights_from_sums(state, checkpoints, distinct, table,
+                                              hermitian=True)
         return self.weights_from_sums(state, checkpoints, distinct, table)
+
+    @staticmethod
+    def _training(state: State, block) -> np.ndarray:
+        """What the window sums read: the block's own snapshots for sums formed from
+        them (:class:`LaggedSums`, when the block offers them), else ``training``."""
+        if getattr(state.sums, "unstacked", False):
+            raw = getattr(block, "unstacked_training", None)
+            if raw is not None:
+                return raw
+        return block.training
+
+    def _update_by_checkpoint(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
+        """Space-time sums (:class:`LaggedSums`, a weight at every checkpoint): the block
+        is fed up to each checkpoint in turn and the weight solved there, so only one
+        N L x N L sum per trial exists at a time (the block's sums all at once are
+        hundreds of megabytes for a few hundred trials). The sums are exactly
+        Hermitian; with the kernels on they are solved by the compiled Cholesky loop
+        (one pass per matrix instead of a LAPACK call per small matrix, whose threads
+        crawl on a busy machine; equal to rounding)."""
+        x = self._training(state, block)
+        t_, n = state.context.trials, state.context.elements
+        w = np.empty((t_, len(checkpoints), n), dtype=complex)
+        lo = block.start
+        for i, c in enumerate(int(c) for c in checkpoints):
+            sums = state.sums.advance(x[:, lo - block.start:c - block.start], lo, [c])
+            with compiled_solves():
+                w[:, i] = self.weights_from_sums(state, [c], np.array([c]), sums,
+                                                 hermitian=True)[:, 0]
+            lo = c
+        if block.stop > lo:
+            state.sums.advance(x[:, lo - block.start:], lo, [])
+        return w
 
     def weights_from_sums(self, state: State, checkpoints, distinct: np.ndarray, table: np.ndarray,
                           rows: slice = slice(None), hermitian: bool = False) -> np.ndarray:

@@ -27,10 +27,10 @@ import numpy as np
 
 from adapt.errors import SpecError
 from adapt.processors.base import Context, Parameter, State
-from adapt.streams.snapshots import Block
 from adapt.streams.wideband import TapLine
 
-__all__ = ["TAPS", "Tapped", "tapped", "stacked_data", "stacked_context", "centre_tap"]
+__all__ = ["TAPS", "Tapped", "StackedBlock", "tapped", "stacked_data", "stacked_context",
+           "centre_tap", "regressors"]
 
 #: the shared delay-line length parameter
 TAPS = Parameter("int", 1, "delay-line length behind each element: N x taps weights, "
@@ -60,7 +60,8 @@ def stacked_context(context: Context, taps: int) -> Context:
                    noise_power=context.noise_power, covariance=cov("interference"),
                    training_covariance=cov("training"), has_reference=context.has_reference,
                    look_direction=None, data_covariance=cov("data"), moments=context.moments,
-                   space_time=st, fractional_bandwidth=context.fractional_bandwidth)
+                   space_time=st, fractional_bandwidth=context.fractional_bandwidth,
+                   taps=taps)
 
 
 class Tapped:
@@ -98,24 +99,69 @@ class Tapped:
                             path="taps", value=self.taps, allowed="1 with subarray")
         stacked = stacked_context(context, self.taps)
         return State(context=context, inner=self.inner.begin(stacked),
-                     lines=(TapLine(self.taps), TapLine(self.taps)),
+                     lines=(TapLine(self.taps, recycle=True),
+                            TapLine(self.taps, recycle=True)),
                      reference_line=TapLine(centre_tap(self.taps) + 1),
                      initial=self.inner.initial_weights(stacked), last_data=None)
 
     def update(self, state: State, block, checkpoints) -> np.ndarray:
         data_line, training_line = state.lines
-        data = data_line(block.data)
-        training = data if block.training is block.data else training_line(block.training)
+        data = data_line.push(block.data)
+        same = block.training is block.data
+        training = data if same else training_line.push(block.training)
         ref = state.reference_line(block.reference[..., None])[..., -1]
-        state.last_data = data
-        w = self.inner.update(state.inner,
-                              Block(block.start, block.stop, data, None, training, ref, None),
-                              checkpoints)
+        stacked = StackedBlock(block.start, block.stop, data, training, ref, block.training)
+        state.last_data = stacked
+        w = self.inner.update(state.inner, stacked, checkpoints)
         early = np.asarray(checkpoints) < self.taps - 1
         if early.any():     # incomplete stacks: a look response may be undefined there
             bad = early[None, :] & ~np.isfinite(w).all(axis=-1)
             w[bad] = np.broadcast_to(state.initial[:, None, :], w.shape)[bad]
         return w
+
+
+class StackedBlock:
+    """A block of stacked space-time snapshots as a tapped processor's inner processor
+    sees it (the attributes of :class:`~adapt.streams.snapshots.Block` it reads):
+    ``data`` and ``training`` (T, B, N L) are formed on first use (by the delay lines,
+    which have already advanced), ``reference`` is the delayed reference, and
+    ``unstacked_training`` the block's own training (T, B, N) for processors that form
+    their space-time sums from it (:class:`~adapt.processors._covariance.LaggedSums`);
+    ``lined_data`` the data's :class:`~adapt.streams.wideband.PushedBlock`, for kernels
+    that read the stacked regressors in place (:func:`regressors`). Valid until the
+    next block: the delay lines reuse their buffers."""
+
+    stored_signal = None
+    desired = None
+
+    def __init__(self, start: int, stop: int, data, training, reference: np.ndarray,
+                 unstacked_training: np.ndarray):
+        self.start, self.stop = int(start), int(stop)
+        self.lined_data, self._training = data, training
+        self.reference = reference
+        self.unstacked_training = unstacked_training
+
+    @property
+    def size(self) -> int:
+        return self.stop - self.start
+
+    @property
+    def data(self) -> np.ndarray:
+        return self.lined_data()
+
+    @property
+    def training(self) -> np.ndarray:
+        return self._training()
+
+
+def regressors(block) -> tuple[np.ndarray, int]:
+    """``(x, taps)`` for :func:`adapt.numerics.kernels.lms_block`: a stacked block's
+    data lined (T, L - 1 + B, N) with its L (read in place, no stacked copy), else the
+    block's data and 1."""
+    pushed = getattr(block, "lined_data", None)
+    if pushed is not None and pushed.taps > 1:
+        return pushed.lined(), pushed.taps
+    return block.data, 1
 
 
 def tapped(processor):
@@ -130,5 +176,5 @@ def stacked_data(processor, state: State, block) -> np.ndarray:
     """The data the processor's weights apply to in ``block`` (stacked for a tapped
     processor, read from its run ``state`` after its update)."""
     if isinstance(processor, Tapped) and state.last_data is not None:
-        return state.last_data
+        return state.last_data.data
     return block.data

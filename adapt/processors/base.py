@@ -194,6 +194,10 @@ class Context:
     space_time: Callable[[np.ndarray, int, str], np.ndarray] | None = None
     #: the scene's fractional bandwidth (sample rate over carrier), 0 when narrowband
     fractional_bandwidth: float = 0.0
+    #: delay-line length L behind each element when the look vector and covariances
+    #: describe stacked space-time snapshots of ``elements / taps`` channels
+    #: (adapt.processors._taps); 1 otherwise
+    taps: int = 1
 
     @property
     def elements(self) -> int:

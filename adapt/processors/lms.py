@@ -44,7 +44,7 @@ from adapt.processors._recursive import (
     local_marks,
     starting_weights,
 )
-from adapt.processors._taps import TAPS
+from adapt.processors._taps import TAPS, regressors
 from adapt.processors.base import Context, Parameter, State
 
 INITIAL_HELP = "start weight: quiescent (look vector / N, the conventional beam) or zero"
@@ -115,5 +115,6 @@ class LeastMeanSquares(AutoStep):
 
     def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         marks = local_marks(block, checkpoints)
-        return _kernels.lms_block(state.wc, block.data, marks, gain=state.steps,
-                                  desired=block.reference)
+        x, taps = regressors(block)
+        return _kernels.lms_block(state.wc, x, marks, gain=state.steps,
+                                  desired=block.reference, taps=taps)

@@ -28,7 +28,7 @@ import numpy as np
 from adapt.numerics import kernels as _kernels
 from adapt.numerics.kernels import normalised_gain  # noqa: F401 - re-exported
 from adapt.processors._recursive import local_marks, starting_weights
-from adapt.processors._taps import TAPS
+from adapt.processors._taps import TAPS, regressors
 from adapt.processors.base import Context, Parameter, Processor, State
 from adapt.processors.lms import INITIAL_HELP
 
@@ -87,6 +87,7 @@ class NormalisedLms(Processor):
 
     def update(self, state: State, block, checkpoints: np.ndarray) -> np.ndarray:
         marks = local_marks(block, checkpoints)
-        return _kernels.lms_block(state.wc, block.data, marks, gain=None,
-                                  desired=block.reference, step=self.params["step"],
-                                  eps=self.params["eps"])
+        x, taps = regressors(block)
+        return _kernels.lms_block(state.wc, x, marks, gain=None, desired=block.reference,
+                                  step=self.params["step"], eps=self.params["eps"],
+                                  taps=taps)

@@ -34,6 +34,7 @@ from typing import Iterator
 import numpy as np
 
 from adapt.numerics import kernels as _kernels
+from adapt.numerics.fir import FilterBank, add_filtered
 from adapt.scene import elements, geometry
 from adapt.scene.geometry import diffuse_coherence
 from adapt.scene.model import Scene
@@ -625,7 +626,9 @@ class TrialBatch:
         source's element outputs), added element by element in scene order to the
         noise (thermal, a white field, or a dispersive diffuse field); the reference is
         the wanted source's envelope at the array origin (zero advance); ``desired`` is
-        None (the wanted signal is not rank one)."""
+        None (the wanted signal is not rank one). The fixed filters of the noise-like,
+        uncoupled sources are made once per batch and each such source is filtered,
+        weighted and added in one pass (:func:`adapt.numerics.fir.add_filtered`)."""
         sc = self.scene
         n = sc.elements
         idx = self.trial_indices
@@ -647,6 +650,17 @@ class TrialBatch:
         def fresh(name, shape, dtype):
             return np.empty(shape, dtype)
 
+        banks = {}
+        for i, src in enumerate(sc.sources):
+            if not _wideband.noise_like(src) or varying[i] or coupling is not None:
+                continue
+            h = _wideband.source_filters(self, i, delays[i], self.channel_filters)
+            if i == d_idx:                  # the reference's filter as output N
+                ref = _wideband.source_filters(self, i, zero)
+                rows = max(len(h), len(ref))
+                h = np.concatenate([np.broadcast_to(h, (rows,) + h.shape[1:]),
+                                    np.broadcast_to(ref, (rows,) + ref.shape[1:])], axis=1)
+            banks[i] = FilterBank(h)
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
@@ -663,6 +677,16 @@ class TrialBatch:
             reference = None
             for i, src in enumerate(sc.sources):
                 gate = np.sqrt(src.power) * src.active(kk).astype(float)       # (B,)
+                if i in banks:
+                    s = _wideband.white_block(self, i, keys[i], start, size)
+                    if i == d_idx:
+                        signal = np.empty_like(interference)
+                        reference = np.empty((self.trials, size), dtype=complex)
+                        add_filtered(banks[i], s, steer[i], gate, signal, reference,
+                                     accumulate=False)
+                    else:
+                        add_filtered(banks[i], s, steer[i], gate, interference)
+                    continue
                 origin = sc.origin_index(i)
                 if varying[i]:
                     part = _wideband.polynomial_block(self, i, keys[origin], start, size,

@@ -90,7 +90,8 @@ from adapt.streams.seeding import trial_generators
 
 __all__ = ["HALF", "KAISER_BETA", "DEGREE", "DIFFUSE_GRID", "half_length", "reach",
            "element_delays", "filter_taps", "draw_channel_delays", "draw_channel_filters",
-           "source_block", "space_time_covariance", "direction_covariance", "TapLine",
+           "source_filters", "white_block", "noise_like", "source_block",
+           "space_time_covariance", "direction_covariance", "TapLine", "PushedBlock",
            "delay_spread", "expected_eigenvalues", "uses_polynomial_filters",
            "polynomial_coefficients", "polynomial_block", "stream_offset",
            "diffuse_filters", "diffuse_block", "noise_space_time", "source_covariance"]
@@ -267,12 +268,48 @@ def _deterministic(wf, tt: np.ndarray, phi0) -> np.ndarray:
     return np.exp(1j * (_chirp_phase(wf, tt) + phi0))
 
 
+def source_filters(batch, source: int, delays: np.ndarray,
+                   channels: np.ndarray | None = None) -> np.ndarray:
+    """Taps (T or 1, D, 2K + 1) of a noise-like ``source`` at each of the D advances
+    ``delays`` (T, D) (:func:`filter_taps`), through the channel filters ``channels``
+    (T, D, 3) when given (with channel ripple and no ``channels``: the same taps padded
+    with a zero at each end, so that every filter of the scene has one length); one
+    row (1, D, 2K + 1) when every trial has the same delays and no channel filters
+    (each tap is computed element by element: the same numbers either way)."""
+    sc = batch.scene
+    src = sc.sources[source]
+    delays = np.broadcast_to(delays, (batch.trials, delays.shape[-1]))
+    ripple = 1 if sc.array.errors.channel_ripple_rms else 0
+    if (channels is None or not ripple) and np.all(delays == delays[:1]):
+        delays = delays[:1]
+    h = filter_taps(delays, src.bandwidth, src.offset, reach(sc, src) - ripple)
+    if ripple:                           # (T, D, 2K+1), the channel filters included
+        h = _with_channel(h, channels) if channels is not None else \
+            np.concatenate([np.zeros(h.shape[:-1] + (1,)), h,
+                            np.zeros(h.shape[:-1] + (1,))], axis=-1)
+    return h
+
+
+def white_block(batch, source: int, keys, start: int, size: int) -> np.ndarray:
+    """(T, size + 2K) the white sequence ``s_m`` of a noise-like ``source`` that the
+    outputs of snapshots ``start .. start + size - 1`` read, m in [start - K, start +
+    size + K) (stream index m + K >= 0)."""
+    sc = batch.scene
+    src = sc.sources[source]
+    kr = reach(sc, src)
+    return _white(keys, src.waveform.kind, start, size + 2 * kr)
+
+
 def source_block(batch, source: int, keys, start: int, size: int,
-                 delays: np.ndarray, channels: np.ndarray | None = None) -> np.ndarray:
+                 delays: np.ndarray, channels: np.ndarray | None = None,
+                 filters=None) -> np.ndarray:
     """(T, B, D) unit-power envelopes ``s(k + d)`` of ``source`` for snapshots
     ``start .. start + size - 1`` at each of the D advances ``delays`` (T, D) (without
     the steering entries, power or gate), through the channel filters ``channels``
-    (T, D, 3) when given. D = 1 with zero delay is the reference at the array origin."""
+    (T, D, 3) when given. D = 1 with zero delay is the reference at the array origin.
+    ``filters``: the taps of a noise-like source computed beforehand
+    (:func:`source_filters` of the same delays and channels, or a
+    :class:`~adapt.numerics.fir.FilterBank` of them)."""
     sc = batch.scene
     src = sc.sources[source]
     wf = src.waveform
@@ -280,15 +317,9 @@ def source_block(batch, source: int, keys, start: int, size: int,
     delays = np.broadcast_to(delays, (t_, delays.shape[-1]))
     k = np.arange(start, start + size, dtype=float)
     if wf.kind in _NOISE_LIKE:
-        kr = reach(sc, src)
-        ripple = 1 if sc.array.errors.channel_ripple_rms else 0
-        h = filter_taps(delays, src.bandwidth, src.offset, kr - ripple)
-        if ripple:                       # (T, D, 2K+1), the channel filters included
-            h = _with_channel(h, channels) if channels is not None else \
-                np.concatenate([np.zeros(h.shape[:-1] + (1,)), h,
-                                np.zeros(h.shape[:-1] + (1,))], axis=-1)
+        h = source_filters(batch, source, delays, channels) if filters is None else filters
         # s_m for m in [start - K, start + size + K): stream index m + K >= 0
-        s = _white(keys, wf.kind, start, size + 2 * kr)                      # (T, B + 2K)
+        s = white_block(batch, source, keys, start, size)                    # (T, B + 2K)
         # s_{k - j} sits at column (k - start) + K - j: tap i = j + K reads column
         # (k - start) + 2K - i, as filter_bank sums (in increasing i)
         return filter_bank(h, s, size)
@@ -301,6 +332,11 @@ def source_block(batch, source: int, keys, start: int, size: int,
     if channels is None:
         return at(t)
     return sum(channels[:, None, :, q] * at(t - (q - 1)) for q in range(3))
+
+
+def noise_like(source) -> bool:
+    """True for the sources made of a filtered white sequence (gaussian, bpsk, qpsk)."""
+    return source.waveform.kind in _NOISE_LIKE
 
 
 def _lag_matrix(c: dict, taps: int, n: int, lead: tuple) -> np.ndarray:
@@ -856,25 +892,80 @@ class TapLine:
     """Stacks a stream of blocks (T, B, N) into space-time snapshots (T, B, N L),
     ``z_k = [x_k; x_{k-1}; ...; x_{k-L+1}]`` (entry ``l N + n``), carrying the last
     L - 1 snapshots across blocks (zeros before the stream starts: prewindowed), so the
-    result does not depend on the block size."""
+    result does not depend on the block size.
 
-    def __init__(self, taps: int):
+    ``recycle``: the stacked blocks are written into one buffer kept by the line (for
+    a consumer done with each block before the next, like the engine): no fresh large
+    array per block. :meth:`push` advances the line and leaves the stacking to the
+    first use of the block (a processor that reads only some of its inputs never pays
+    for the others)."""
+
+    def __init__(self, taps: int, recycle: bool = False):
         self.taps = int(taps)
         self.history: np.ndarray | None = None
+        self.recycle = bool(recycle)
+        self._buffer: np.ndarray | None = None
 
     def __call__(self, x: np.ndarray) -> np.ndarray:
+        return self.push(x)()
+
+    def push(self, x: np.ndarray) -> "PushedBlock":
+        """Advance the line by the block x (T, B, N); returns the block's
+        :class:`PushedBlock`, which forms its stacked block on first use."""
         lag = self.taps - 1
-        if not lag:
-            return x
         t_, b, n = x.shape
         if self.history is None:
             self.history = np.zeros((t_, lag, n), dtype=x.dtype)
-        full = np.concatenate([self.history, x], axis=1)                   # (T, lag + B, N)
-        out = np.empty((t_, b, n * self.taps), dtype=np.result_type(x, complex))
-        for l_ in range(self.taps):
-            out[:, :, l_ * n:(l_ + 1) * n] = full[:, lag - l_: lag - l_ + b]
-        self.history = full[:, b:].copy()
+        before = self.history
+        if b >= lag:
+            self.history = x[:, b - lag:].copy()
+        else:
+            self.history = np.concatenate([before[:, b:], x], axis=1)
+        return PushedBlock(self, before, x)
+
+    def _output(self, shape: tuple, dtype) -> np.ndarray:
+        out = self._buffer if self.recycle else None
+        if out is None or out.shape != shape or out.dtype != dtype:
+            out = np.empty(shape, dtype=dtype)
+            if self.recycle:
+                self._buffer = out
         return out
+
+
+class PushedBlock:
+    """One block as it went through a :class:`TapLine`: ``pushed()`` its stacked block
+    (T, B, N L), formed once on first use; :meth:`lined` the block after the L - 1
+    snapshots before it (T, L - 1 + B, N), from which the stacked snapshot of index j
+    is ``[lined[j + L - 1]; lined[j + L - 2]; ...; lined[j]]``. Valid until the line's
+    next block when it recycles its buffer."""
+
+    def __init__(self, line: TapLine, before: np.ndarray, x: np.ndarray):
+        self.line, self.before, self.x = line, before, x
+        self.taps = line.taps
+        self._stacked: np.ndarray | None = None
+
+    def __call__(self) -> np.ndarray:
+        if self._stacked is None:
+            self._stacked = self._stack()
+        return self._stacked
+
+    def _stack(self) -> np.ndarray:
+        x, before, taps = self.x, self.before, self.taps
+        lag = taps - 1
+        if not lag:
+            return x
+        t_, b, n = x.shape
+        out = self.line._output((t_, b, n * taps), np.result_type(x, complex))
+        for l_ in range(taps):             # z_k entry l: x_{k-l}, before the block
+            cols = slice(l_ * n, (l_ + 1) * n)       # from the carried history
+            early = min(l_, b)
+            out[:, :early, cols] = before[:, lag - l_:lag - l_ + early]
+            out[:, early:, cols] = x[:, :b - early]
+        return out
+
+    def lined(self) -> np.ndarray:
+        """(T, L - 1 + B, N): the L - 1 snapshots before the block, then the block."""
+        return np.concatenate([self.before, self.x], axis=1)
 
 
 def delay_spread(scene) -> float:
