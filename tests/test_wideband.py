@@ -488,3 +488,133 @@ def test_channel_ripple_enters_samples_and_truth_alike():
     plain = wb.source_covariance(TrialBatch(_scene(fb=None, elements=4, jammers=jams), trials=1),
                                  1, 1, np.array([0]), unit=True)[0, 0]
     assert np.linalg.eigvalsh(plain)[-2] / np.linalg.eigvalsh(plain)[-1] < 1e-12
+
+
+# ------------------------------------------------------------------ fast paths (speed)
+def _numpy_product_is_fused() -> bool:
+    """numpy's contiguous complex product rounds as re = fma(ar, br, -ai bi), im =
+    fma(ar, bi, ai br) on machines with its fused SIMD loops (then the compiled
+    source pass equals the numpy operations it replaces to the last bit), else as the
+    plain formula (then to rounding)."""
+    rng = np.random.default_rng(11)
+    a = rng.standard_normal(256) + 1j * rng.standard_normal(256)
+    b = rng.standard_normal(256) + 1j * rng.standard_normal(256)
+    p = a * b
+    return not np.array_equal(p.real, a.real * b.real - a.imag * b.imag)
+
+
+@pytest.mark.parametrize("reference", [False, True])
+def test_source_pass_equals_filtering_then_numpy_weighting(monkeypatch, reference):
+    # add_filtered (filter, weight by steering x gate, add or write) against the
+    # operations it replaces: the filter bank, then numpy's part *= steer * gate and
+    # out += part; the filter bank itself is numpy's convolve (the definition)
+    from adapt.numerics import fir
+    from adapt.numerics import kernels as _kernels
+    rng = np.random.default_rng(5)
+    t_, n, m, b = 3, 5, 9, 37
+    h = rng.standard_normal((t_, n + reference, m)) + 1j * rng.standard_normal((t_, n + reference, m))
+    s = rng.standard_normal((t_, b + m - 1)) + 1j * rng.standard_normal((t_, b + m - 1))
+    steer = np.exp(2j * np.pi * rng.random((t_, n)))
+    gate = np.where(rng.random(b) < 0.3, 0.0, 3.0)           # a pulsing source
+    start = rng.standard_normal((t_, b, n)) + 1j * rng.standard_normal((t_, b, n))
+    conv = np.stack([np.convolve(s[t], h[t, d], mode="valid") for t in range(t_)
+                     for d in range(n + reference)]).reshape(t_, n + reference, b)
+    bank = fir.FilterBank(h)
+    for kernels in ("numpy", "auto"):
+        monkeypatch.setenv("ADAPT_KERNELS", kernels)
+        assert np.allclose(fir.filter_bank(bank, s, b), conv.transpose(0, 2, 1), atol=1e-12)
+        part = fir.filter_bank(h[:, :n], s, b)
+        part *= steer[:, None, :] * gate[None, :, None]
+        out = start.copy() if not reference else np.empty_like(start)
+        ref = np.empty((t_, b), dtype=complex) if reference else None
+        fir.add_filtered(bank, s, steer, gate, out, ref, accumulate=not reference)
+        want = part if reference else start + part
+        exact = kernels == "numpy" or not _kernels.compiled() or _numpy_product_is_fused()
+        if exact:
+            assert np.array_equal(out, want), kernels
+        assert np.allclose(out, want, rtol=1e-14, atol=1e-14), kernels
+        if reference:
+            want_ref = fir.filter_bank(h[:, n:], s, b)[..., 0] * gate[None, :]
+            assert np.array_equal(ref, want_ref), kernels
+
+
+def test_lagged_sums_equal_the_sums_of_stacked_snapshots():
+    # the stacked sums formed from lag sums (processors/_covariance.LaggedSums) equal
+    # the sums of the stacked snapshots themselves, for checkpoints before the stacks
+    # fill (c < L), at block starts and across blocks of any size; exactly Hermitian
+    from adapt.processors._covariance import GrowingSums, LaggedSums
+    rng = np.random.default_rng(3)
+    t_, n, taps = 2, 3, 4
+    x = rng.standard_normal((t_, 60, n)) + 1j * rng.standard_normal((t_, 60, n))
+    cps = np.array([1, 2, 3, 5, 11, 12, 13, 30, 59, 60])
+    z = wb.TapLine(taps)(x)
+    want = GrowingSums(t_, n * taps).advance(z, 0, cps)
+    for edges in ([0, 60], [0, 11, 12, 13, 40, 60], [0, 1, 2, 3, 4, 30, 60]):
+        sums = LaggedSums(t_, n, taps)
+        got = []
+        for lo, hi in zip(edges[:-1], edges[1:]):
+            inside = cps[(cps > lo) & (cps <= hi)]
+            part = x[:, lo:hi] if lo % 2 else z[:, lo:hi]     # raw or stacked input
+            got.append(sums.advance(part, lo, inside).copy())
+        got = np.concatenate(got, axis=1)
+        assert np.allclose(got, want, rtol=1e-12, atol=1e-12), edges
+        assert np.array_equal(got, np.conj(np.swapaxes(got, -1, -2))), edges
+    assert np.array_equal(got[:, 0, n:, :], np.zeros_like(got[:, 0, n:, :]))  # c = 1
+
+
+def test_tapped_lms_reads_stacked_regressors_in_place(monkeypatch):
+    # the lined kernel (no stacked copy) gives the numbers of the stacked regressors
+    from adapt.numerics import kernels as _kernels
+    rng = np.random.default_rng(8)
+    t_, b, n, taps = 3, 40, 4, 3
+    xh = rng.standard_normal((t_, b + taps - 1, n)) + 1j * rng.standard_normal((t_, b + taps - 1, n))
+    d = rng.standard_normal((t_, b)) + 1j * rng.standard_normal((t_, b))
+    marks = np.array([0, 17, 39])
+    for kernels in ("numpy", "auto"):
+        monkeypatch.setenv("ADAPT_KERNELS", kernels)
+        for gain in (None, 0.01):
+            w1 = np.zeros((t_, n * taps), complex)
+            w2 = w1.copy()
+            a = _kernels.lms_block(w1, xh, marks, gain=gain, desired=d, step=0.3, eps=1e-3,
+                                   taps=taps)
+            s = _kernels.lms_block(w2, _kernels.lined(xh, taps), marks, gain=gain, desired=d,
+                                   step=0.3, eps=1e-3)
+            assert np.array_equal(a, s) and np.array_equal(w1, w2), (kernels, gain)
+
+
+def test_quadratic_forms_each_by_itself(monkeypatch):
+    # w^H R w one form at a time: equal to the element-wise sum to rounding, and a
+    # stack equals its items one by one exactly (results never depend on the chunk)
+    from adapt.engine import scores as sc_
+    rng = np.random.default_rng(4)
+    w = rng.standard_normal((5, 3, 6)) + 1j * rng.standard_normal((5, 3, 6))
+    a = rng.standard_normal((5, 1, 6, 6)) + 1j * rng.standard_normal((5, 1, 6, 6))
+    r = a @ np.conj(np.swapaxes(a, -1, -2))
+    plain = np.real(np.einsum("...n,...nm,...m->...", np.conj(w), r, w))
+    for kernels in ("numpy", "auto"):
+        monkeypatch.setenv("ADAPT_KERNELS", kernels)
+        got = sc_.quadratic_form(w, r)
+        assert np.allclose(got, plain, rtol=1e-13)
+        assert all(np.array_equal(sc_.quadratic_form(w[i:i + 1], r[i:i + 1]), got[i:i + 1])
+                   for i in range(5))
+        shared = sc_.quadratic_form(w, np.broadcast_to(r[:1], r.shape))
+        assert all(np.array_equal(sc_.quadratic_form(w[i:i + 1], r[:1]), shared[i:i + 1])
+                   for i in range(5))
+
+
+def test_wideband_scores_agree_between_compiled_and_numpy_paths(monkeypatch):
+    # the compiled paths (source pass, lag sums and compiled solves, lined LMS, output
+    # powers from the block's history, quadratic forms) against numpy's, to rounding
+    from adapt.engine.execute import run_trials as evaluate
+    sc = _mixed()
+    specs = ["smi taps=3 loading_db=3", "nlms taps=3 step=0.3", "lms taps=2", "optimum taps=2"]
+    runs = []
+    for kernels in ("numpy", "auto"):
+        monkeypatch.setenv("ADAPT_KERNELS", kernels)
+        runs.append(evaluate(sc, [parse_spec(s) for s in specs], [1, 2, 16, 200], trials=3,
+                             snapshots=200, tail=16, threads=1, block=57))
+    for a, b in zip(*(r.processors for r in runs)):
+        for name in ("sinr", "measured_sinr", "null_depth_db", "white_noise_gain",
+                     "final_weights"):
+            assert np.allclose(getattr(a, name), getattr(b, name), rtol=1e-8, atol=1e-12,
+                               equal_nan=True), (a.label, name)
