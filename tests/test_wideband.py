@@ -513,6 +513,8 @@ def test_source_pass_equals_filtering_then_numpy_weighting(monkeypatch, referenc
     rng = np.random.default_rng(5)
     t_, n, m, b = 3, 5, 9, 37
     h = rng.standard_normal((t_, n + reference, m)) + 1j * rng.standard_normal((t_, n + reference, m))
+    h[:, 3] = h[:, 1]                   # equal filters (summed once by the compiled path)
+    h[:, -1] = h[:, 0]
     s = rng.standard_normal((t_, b + m - 1)) + 1j * rng.standard_normal((t_, b + m - 1))
     steer = np.exp(2j * np.pi * rng.random((t_, n)))
     gate = np.where(rng.random(b) < 0.3, 0.0, 3.0)           # a pulsing source

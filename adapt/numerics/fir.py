@@ -11,9 +11,10 @@ on/off gate and adds them into the stream (or writes them), with the roundings o
 numpy operations it replaces (``part *= steer * gate``; ``out += part``), so the streams
 are the same to the last bit whichever runs. The compiled path
 (:func:`adapt.numerics.loops.fir_kernel`, :func:`adapt.numerics.kernels.compiled`) does
-it in one pass, the D sums of each output snapshot side by side, from taps prepared once
-(:class:`FilterBank`); it equals the numpy path to rounding (tested; numpy's complex
-products are not the same roundings for every memory layout).
+it in one pass, the sums of each output snapshot side by side and each distinct filter
+summed once, from taps prepared once (:class:`FilterBank`); it equals the numpy path to
+rounding (tested; numpy's complex products are not the same roundings for every memory
+layout).
 """
 from __future__ import annotations
 
@@ -26,15 +27,17 @@ __all__ = ["filter_bank", "FilterBank", "add_filtered"]
 
 class FilterBank:
     """Taps h (T or 1, D, M) (1: the same for every trial), kept as given for the numpy
-    path and, on first use by the compiled path, planar and transposed (M, D), so
-    that a stream of blocks prepares them once."""
+    path and, on first use by the compiled path, reduced to the distinct filters (a
+    source seen from broadside has the same filter at every element; so do the
+    elements of a grid's column), planar and transposed (M, U), so that a stream of
+    blocks prepares them once."""
 
     def __init__(self, h: np.ndarray):
         h = np.asarray(h)
         if h.ndim != 3 or h.shape[-1] < 1 or h.shape[1] < 1:
             raise ValueError(f"taps must be (T or 1, D, M) with D, M >= 1, got {h.shape}")
         self.h = np.ascontiguousarray(h, dtype=complex)
-        self._planar: tuple[np.ndarray, np.ndarray] | None = None
+        self._planar: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
 
     @property
     def length(self) -> int:
@@ -44,10 +47,16 @@ class FilterBank:
     def outputs(self) -> int:
         return int(self.h.shape[1])
 
-    def planar(self) -> tuple[np.ndarray, np.ndarray]:
+    def planar(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(hr, hi, index): the distinct filters' taps (T or 1, M, U), real and
+        imaginary parts, and the filter of each output (D,) (equal bits only)."""
         if self._planar is None:
-            t = np.swapaxes(self.h, 1, 2)
-            self._planar = (np.ascontiguousarray(t.real), np.ascontiguousarray(t.imag))
+            rows = np.ascontiguousarray(np.swapaxes(self.h, 0, 1)).reshape(self.outputs, -1)
+            keys = rows.view(np.dtype((np.void, rows.dtype.itemsize * rows.shape[1])))[:, 0]
+            _, first, index = np.unique(keys, return_index=True, return_inverse=True)
+            t = np.swapaxes(self.h[:, first], 1, 2)
+            self._planar = (np.ascontiguousarray(t.real), np.ascontiguousarray(t.imag),
+                            np.ascontiguousarray(index.reshape(-1), dtype=np.int64))
         return self._planar
 
 
@@ -78,9 +87,9 @@ def filter_bank(h, s: np.ndarray, size: int) -> np.ndarray:
     if not _kernels.compiled():
         return _numpy_bank(bank.h, s, size)
     out = np.empty((s.shape[0], size, bank.outputs), dtype=complex)
-    hr, hi = bank.planar()
-    _kernels.loops().fir_kernel(hr, hi, s, np.zeros((1, 0), dtype=complex), np.zeros(0), 0,
-                                out, np.zeros((1, 0), dtype=complex))
+    hr, hi, index = bank.planar()
+    _kernels.loops().fir_kernel(hr, hi, index, s, np.zeros((1, 0), dtype=complex),
+                                np.zeros(0), 0, out, np.zeros((1, 0), dtype=complex))
     return out
 
 
@@ -122,7 +131,7 @@ def add_filtered(bank: FilterBank, s: np.ndarray, steer: np.ndarray, gate: np.nd
         if reference is not None:
             reference[...] = _numpy_bank(bank.h[:, n:], s, size)[..., 0] * gate[None, :]
         return
-    hr, hi = bank.planar()
+    hr, hi, index = bank.planar()
     ref = reference if reference is not None else np.zeros((1, 0), dtype=complex)
-    _kernels.loops().fir_kernel(hr, hi, s, np.ascontiguousarray(steer, dtype=complex), gate,
-                                2 if accumulate else 1, out, ref)
+    _kernels.loops().fir_kernel(hr, hi, index, s, np.ascontiguousarray(steer, dtype=complex),
+                                gate, 2 if accumulate else 1, out, ref)

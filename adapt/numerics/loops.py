@@ -512,61 +512,68 @@ def gamma_kernel(keys, shapes, out, step, accept, table, density, r):
 
 
 @njit(cache=True, nogil=True)
-def fir_kernel(hr, hi, s, steer, gate, mode, out, ref):
-    # The filter bank of adapt.numerics.fir: acc[t, b, d] = sum_{i=0..M-1} h[t, d, i]
+def fir_kernel(hr, hi, index, s, steer, gate, mode, out, ref):
+    # The filter bank of adapt.numerics.fir: acc[t, b, u] = sum_{i=0..M-1} h[t, u, i]
     # s[t, b + M - 1 - i], i increasing, each product and sum the plain complex
-    # arithmetic (re = hr sr - hi si, im = hr si + hi sr), taps held planar and
-    # transposed, hr, hi (T or 1, M, D) (1: shared by every trial), s (T, B + M - 1).
-    # The D sums of one output snapshot run side by side (vectorised over d); each is
-    # the same sequence of roundings as the one-at-a-time loop.
+    # arithmetic (re = hr sr - hi si, im = hr si + hi sr), for the U distinct filters,
+    # taps held planar and transposed, hr, hi (T or 1, M, U) (1: shared by every
+    # trial), s (T, B + M - 1); output d reads filter index[d] (D outputs; equal filters
+    # are summed once, the same numbers). The U sums of one output snapshot run side
+    # by side (vectorised over u); each is the same sequence of roundings as the
+    # one-at-a-time loop.
     # mode 0: out (T, B, D) <- acc.
-    # mode 1 and 2, the streams' source terms (adapt.streams.wideband.add_dispersed):
-    # the factor f = steer[t, d] * gate[b] (steer (T, N) complex, gate (B,) float, as
-    # numpy multiplies a complex by a real: (sr g - si 0, sr 0 + si g)), the term
-    # p = acc * f as numpy's contiguous complex multiply rounds it (re = fma(ar, fr,
-    # -(ai fi)), im = fma(ar, fi, ai fr)); mode 1: out[t, b, d] <- p for d < N and, when
-    # D = N + 1, ref[t, b] <- acc[t, b, N] * gate[b] (complex times real); mode 2:
+    # mode 1 and 2, the streams' source terms (adapt.numerics.fir.add_filtered): the
+    # factor f = steer[t, d] * gate[b] (steer (T, N) complex, gate (B,) float, as numpy
+    # multiplies a complex by a real: (sr g - si 0, sr 0 + si g)), the term p = acc * f
+    # as numpy's contiguous complex multiply rounds it (re = fma(ar, fr, -(ai fi)),
+    # im = fma(ar, fi, ai fr)); mode 1: out[t, b, d] <- p for d < N and, when D = N + 1,
+    # ref[t, b] <- acc[t, b, index[N]] * gate[b] (complex times real); mode 2:
     # out[t, b, d] += p (N = D).
     t_, b_ = out.shape[0], out.shape[1]
     m = hr.shape[1]
-    d_ = hr.shape[2]
+    u_ = hr.shape[2]
+    d_ = index.shape[0]
     n = steer.shape[1]
     shared = hr.shape[0] == 1
-    ar = np.empty(d_)
-    ai = np.empty(d_)
+    ar = np.empty(u_)
+    ai = np.empty(u_)
     for t in range(t_):
         th = 0 if shared else t
         for b in range(b_):
-            for d in range(d_):
-                ar[d] = 0.0
-                ai[d] = 0.0
+            for u in range(u_):
+                ar[u] = 0.0
+                ai[u] = 0.0
             for i in range(m):
                 v = s[t, b + m - 1 - i]
                 sr = v.real
                 si = v.imag
-                for d in range(d_):
-                    pr = hr[th, i, d]
-                    pi = hi[th, i, d]
-                    ar[d] = ar[d] + (pr * sr - pi * si)
-                    ai[d] = ai[d] + (pr * si + pi * sr)
+                for u in range(u_):
+                    pr = hr[th, i, u]
+                    pi = hi[th, i, u]
+                    ar[u] = ar[u] + (pr * sr - pi * si)
+                    ai[u] = ai[u] + (pr * si + pi * sr)
             if mode == 0:
                 for d in range(d_):
-                    out[t, b, d] = complex(ar[d], ai[d])
+                    out[t, b, d] = complex(ar[index[d]], ai[index[d]])
                 continue
             g = gate[b]
             for d in range(n):
                 c = steer[t, d]
                 fr = c.real * g - c.imag * 0.0
                 fi = c.real * 0.0 + c.imag * g
-                qr = fused_multiply_add(ar[d], fr, -(ai[d] * fi))
-                qi = fused_multiply_add(ar[d], fi, ai[d] * fr)
+                xr = ar[index[d]]
+                xi = ai[index[d]]
+                qr = fused_multiply_add(xr, fr, -(xi * fi))
+                qi = fused_multiply_add(xr, fi, xi * fr)
                 if mode == 1:
                     out[t, b, d] = complex(qr, qi)
                 else:
                     o = out[t, b, d]
                     out[t, b, d] = complex(o.real + qr, o.imag + qi)
             if d_ > n:
-                ref[t, b] = complex(ar[n] * g - ai[n] * 0.0, ar[n] * 0.0 + ai[n] * g)
+                xr = ar[index[n]]
+                xi = ai[index[n]]
+                ref[t, b] = complex(xr * g - xi * 0.0, xr * 0.0 + xi * g)
 
 
 @njit(cache=True, nogil=True)
