@@ -555,6 +555,7 @@ def warm_up() -> float:
     noisy_sources(np.ones((2, 2), dtype=np.uint64), 0, 1.0, x[:, :, :2], x[:1, :2, :],
                   x[:, :, 0], x[:1, 0, :], np.empty_like(x), np.empty_like(x))
     quadratic_forms(x[:, :2], p[:, None])
+    loops().lag_sums_kernel(x.copy(), 1, 4, np.zeros((2, 2, 3, 3), complex))
     # the wideband sources' filter bank, and the space-time output powers
     from adapt.numerics import fir
     bank = fir.FilterBank(x[:, :2, :3])

@@ -24,7 +24,7 @@ from numba.extending import intrinsic
 
 __all__ = ["lms_kernel", "lms_lined_kernel", "rls_kernel", "wishart_kernel", "cholesky_kernel", "mix_kernel",
            "normals_kernel", "noisy_sources_kernel", "gamma_kernel", "fir_kernel",
-           "tapped_powers_kernel", "quadratic_kernel", "KERNELS"]
+           "tapped_powers_kernel", "quadratic_kernel", "lag_sums_kernel", "KERNELS"]
 
 
 @intrinsic
@@ -617,6 +617,45 @@ def tapped_powers_kernel(w, sig_hist, sig, dat_hist, dat, lo, hi, ps, pr):
 
 
 @njit(cache=True, nogil=True)
+def lag_sums_kernel(full, lo, hi, lags):
+    # lags[t, q] += sum_{k = lo .. hi - 1} x_k x_{k-q}^H for q = 0 .. L - 1, x_k =
+    # full[t, k] (T, K, N) (rows before lo: the snapshots before, zeros before the
+    # stream), snapshot by snapshot in increasing k; held planar per trial so that the
+    # inner loop runs over contiguous floats (vectorised)
+    t_ = full.shape[0]
+    n = full.shape[2]
+    taps = lags.shape[1]
+    lr = np.empty((taps, n, n))
+    li = np.empty((taps, n, n))
+    yr = np.empty(n)
+    yi = np.empty(n)
+    for t in range(t_):
+        for q in range(taps):
+            for a in range(n):
+                for b in range(n):
+                    v = lags[t, q, a, b]
+                    lr[q, a, b] = v.real
+                    li[q, a, b] = v.imag
+        for k in range(lo, hi):
+            for q in range(taps):
+                for b in range(n):
+                    v = full[t, k - q, b]
+                    yr[b] = v.real
+                    yi[b] = v.imag
+                for a in range(n):
+                    v = full[t, k, a]
+                    xr = v.real
+                    xi = v.imag
+                    for b in range(n):
+                        lr[q, a, b] += xr * yr[b] + xi * yi[b]
+                        li[q, a, b] += xi * yr[b] - xr * yi[b]
+        for q in range(taps):
+            for a in range(n):
+                for b in range(n):
+                    lags[t, q, a, b] = complex(lr[q, a, b], li[q, a, b])
+
+
+@njit(cache=True, nogil=True)
 def quadratic_kernel(w, r, out):
     # out[i, j] = Re(w^H R w) for weights w (A, B, M) and matrices r (A or 1, B or 1,
     # M, M) (1: shared along that axis), as Re(w^H R^H w) (the same real part for
@@ -652,4 +691,4 @@ def quadratic_kernel(w, r, out):
 #: cache test)
 KERNELS = (lms_kernel, lms_lined_kernel, rls_kernel, wishart_kernel, cholesky_kernel, mix_kernel,
            normals_kernel, noisy_sources_kernel, gamma_kernel, fir_kernel, tapped_powers_kernel,
-           quadratic_kernel)
+           quadratic_kernel, lag_sums_kernel)

@@ -22,6 +22,7 @@ import warnings
 import numpy as np
 
 from adapt.errors import SpecError
+from adapt.numerics import kernels as _kernels
 from adapt.numerics.linalg import compiled_solves, solve_hermitian
 from adapt.processors.base import Context, Parameter, Processor, State
 
@@ -207,9 +208,12 @@ class LaggedSums:
         conj = np.conj(full)
         out = self._output((t_, len(checkpoints), n * taps, n * taps))
         lo = 0
+        compiled = _kernels.compiled()
         for i, c in enumerate(list(checkpoints) + [start + b]):
             hi = int(c - start)
-            if hi > lo:
+            if hi > lo and compiled:      # one pass, no BLAS call (nor its threads)
+                _kernels.loops().lag_sums_kernel(full, h + lo, h + hi, self.lags)
+            elif hi > lo:
                 now = np.swapaxes(full[:, h + lo:h + hi], 1, 2)
                 for q in range(taps):
                     self.lags[:, q] += now @ conj[:, h + lo - q:h + hi - q]

@@ -457,7 +457,7 @@ class TrialBatch:
             if int(every) != 1:
                 raise ValueError("wideband streams carry filter state from block to block: "
                                  "they run in one sequence (every=1)")
-            yield from self._wideband_blocks(k_total, b)
+            yield from self._wideband_blocks(k_total, b, recycle)
             return
         idx = self.trial_indices
 
@@ -619,7 +619,7 @@ class TrialBatch:
         mix = np.sqrt(0.5) * np.swapaxes(self.diffuse_factor, -1, -2)      # (T or 1, N, N)
         _kernels.add_sources(noise, np.sqrt(0.5), z.view(np.complex128)[..., 0], mix)
 
-    def _wideband_blocks(self, k_total: int, b: int) -> Iterator[Block]:
+    def _wideband_blocks(self, k_total: int, b: int, recycle: bool = False) -> Iterator[Block]:
         """Blocks of a wideband scene (:mod:`adapt.streams.wideband`): every source
         dispersed across the aperture (fixed filters, or the polynomial filters for
         moving, copied and copy sources), coupled when the array is (``C`` on each
@@ -628,7 +628,7 @@ class TrialBatch:
         the wanted source's envelope at the array origin (zero advance); ``desired`` is
         None (the wanted signal is not rank one). The fixed filters of the noise-like,
         uncoupled sources are made once per batch and each such source is filtered,
-        weighted and added in one pass (:func:`adapt.numerics.fir.add_filtered`)."""
+        weighted and added in one pass (:func:`adapt.numerics.fir.add_filtered`). ``recycle``: as in :meth:`blocks`."""
         sc = self.scene
         n = sc.elements
         idx = self.trial_indices
@@ -661,13 +661,20 @@ class TrialBatch:
                 h = np.concatenate([np.broadcast_to(h, (rows,) + h.shape[1:]),
                                     np.broadcast_to(ref, (rows,) + ref.shape[1:])], axis=1)
             banks[i] = FilterBank(h)
+        kept: dict[str, np.ndarray] | None = {} if recycle else None
+
+        def take(name: str, shape: tuple, dtype) -> np.ndarray:
+            return scratch_array(kept, name, shape, dtype)
+
         for start in range(0, k_total, b):
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
-            z = np.empty((self.trials, size, n, 2))
+            z = take("noise", (self.trials, size, n, 2), float)
             normals.fill(noise_keys, start * n * 2, z.reshape(self.trials, size * n * 2))
             if sc.noise.plain:
-                interference = z.view(np.complex128)[..., 0] * np.sqrt(0.5)
+                interference = np.multiply(z.view(np.complex128)[..., 0], np.sqrt(0.5),
+                                           out=take("interference", (self.trials, size, n),
+                                                    complex))
             else:
                 interference = z.view(np.complex128)[..., 0]
                 self._noise_field(interference, diffuse_keys, start, fresh)
@@ -680,7 +687,7 @@ class TrialBatch:
                 if i in banks:
                     s = _wideband.white_block(self, i, keys[i], start, size)
                     if i == d_idx:
-                        signal = np.empty_like(interference)
+                        signal = take("signal", interference.shape, complex)
                         reference = np.empty((self.trials, size), dtype=complex)
                         add_filtered(banks[i], s, steer[i], gate, signal, reference,
                                      accumulate=False)
@@ -711,7 +718,7 @@ class TrialBatch:
                         reference = ref[..., 0] * gate[None, :]
                 else:
                     interference += part
-            data = interference + signal
+            data = np.add(interference, signal, out=take("data", interference.shape, complex))
             data, training = _received(sc, data, interference, full_scale)
             yield Block(start, start + size, data, signal, training, reference, None)
 
