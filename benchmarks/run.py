@@ -35,7 +35,8 @@ broadside at 0 dB, training on interference plus noise):
   (``np.convolve`` per element and source, stacked snapshots, the stacked covariance
   accumulated between checkpoints and a solve at each, or NLMS as a Python loop over
   snapshots; every checkpoint scored against the true space-time covariances worked
-  out by hand), timed on 4 trials and scaled. Floor: adapt's wideband stream (its
+  out by hand), timed on 4 trials and scaled, in a process of its own on one core (its
+  BLAS on one thread, as P's plain script). Floor: adapt's wideband stream (its
   filters are the model) and the bare computation by adapt's own parts without the
   engine (the lag sums and compiled solves, or the NLMS kernel). Then a 10,000,000-
   snapshot wideband NLMS stream through ``adapt compare`` as a process of its own:
@@ -1131,6 +1132,18 @@ def w4_reference(trials: int, snapshots: int, spec: str) -> dict:
             "final_mean_rho": float(rho[:, -1].mean())}
 
 
+def w4_reference_process(trials: int, snapshots: int, spec: str) -> dict:
+    """:func:`w4_reference` in a process of its own on one core (its BLAS on one
+    thread, as :func:`_plain_w1_process`: BLAS threads waiting for each other on a
+    shared 2-core machine made it many times slower, which would flatter adapt); the
+    time is measured inside the process (its start-up not included)."""
+    out = subprocess.run([sys.executable, str(Path(__file__).resolve()), "--plain-w4", spec,
+                          str(int(trials)), str(int(snapshots))], cwd=ROOT,
+                         env=dict(os.environ, **_ONE_CORE), capture_output=True, text=True,
+                         check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
 def w4_stream(snapshots: int, folder: Path) -> dict:
     """A ``snapshots``-snapshot wideband stream (one trial of the W4 scene) of
     :data:`W4_STREAM_SPEC` through ``adapt compare``, as a process of its own (warm
@@ -1150,9 +1163,9 @@ def w4_stream(snapshots: int, folder: Path) -> dict:
 def run_w4(quick: bool = False, say=print, threads: int | None = None) -> dict:
     """W4, the wideband workload (16 elements, 5 taps, space-time SMI and NLMS):
     product and floor on ``threads`` threads (and on one), the plain per-trial
-    reference on one (a few trials, scaled; its repeats spread around the product's
-    runs); targets 20x the reference and within 2x of the floor. Then the long
-    wideband stream as a whole process: peak memory below 300 MB."""
+    reference on one core in a process of its own (a few trials, scaled; its repeats
+    spread around the product's runs); targets 20x the reference and within 2x of the
+    floor. Then the long wideband stream as a whole process: peak memory below 300 MB."""
     from adapt.numerics import kernels as _kernels
     z = dict(W4_QUICK if quick else W4_FULL)
     t4, k4, tr = z["w4_trials"], z["w4_snapshots"], z["w4_reference_trials"]
@@ -1163,10 +1176,10 @@ def run_w4(quick: bool = False, say=print, threads: int | None = None) -> dict:
         f"product and floor on {th} thread(s), 1 thread in brackets; reference on {tr} "
         f"trials, one thread, scaled x{t4 / tr:g})")
     for spec in W4_SPECS:
-        refs, prods = [w4_reference(tr, k4, spec)], []
+        refs, prods = [w4_reference_process(tr, k4, spec)], []
         for _ in range(2):
             prods.append(w4_product(t4, k4, spec, th))
-            refs.append(w4_reference(tr, k4, spec))
+            refs.append(w4_reference_process(tr, k4, spec))
         prod, ref = _fastest(prods), _fastest(refs)
         prod1 = w4_product(t4, k4, spec, 1)
         floor = _best(w4_floor, 2, t4, k4, spec, th)
@@ -1222,11 +1235,17 @@ def main(argv=None) -> int:
                     help="threads for the product and the floors (default: every usable core)")
     ap.add_argument("--plain-w1", type=int, default=None, metavar="TRIALS",
                     help=argparse.SUPPRESS)     # the W1 reference as a process (P)
+    ap.add_argument("--plain-w4", nargs=3, default=None, metavar=("SPEC", "TRIALS", "SNAPSHOTS"),
+                    help=argparse.SUPPRESS)     # the W4 reference as a process
     ap.add_argument("--wideband", action="store_true",
                     help="run the wideband workload W4 alone (space-time SMI and NLMS)")
     args = ap.parse_args(argv)
     if args.plain_w1 is not None:
         print(json.dumps(w1_reference(args.plain_w1)["mean_rho"]))
+        return 0
+    if args.plain_w4 is not None:
+        spec, trials, snapshots = args.plain_w4
+        print(json.dumps(w4_reference(int(trials), int(snapshots), spec)))
         return 0
     if args.wideband:
         info = dict(machine(), core_scaling=core_scaling(500_000 if args.quick else 5_000_000),
