@@ -109,7 +109,8 @@ class Tapped:
         data = data_line.push(block.data)
         same = block.training is block.data
         training = data if same else training_line.push(block.training)
-        ref = state.reference_line(block.reference[..., None])[..., -1]
+        # the reference c snapshots late: the line's last c values, then the block's
+        ref = state.reference_line.push(block.reference[..., None]).lined()[:, :block.size, 0]
         stacked = StackedBlock(block.start, block.stop, data, training, ref, block.training)
         state.last_data = stacked
         w = self.inner.update(state.inner, stacked, checkpoints)

@@ -453,11 +453,8 @@ class TrialBatch:
         if int(every) < 1 or not 0 <= int(first) < int(every):
             raise ValueError(f"need 0 <= first < every, got first={first}, every={every}")
         starts = range(int(first) * b, k_total, int(every) * b)
-        if sc.wideband:
-            if int(every) != 1:
-                raise ValueError("wideband streams carry filter state from block to block: "
-                                 "they run in one sequence (every=1)")
-            yield from self._wideband_blocks(k_total, b, recycle)
+        if sc.wideband:         # its blocks read their stream numbers directly, too
+            yield from self._wideband_blocks(k_total, b, recycle, starts)
             return
         idx = self.trial_indices
 
@@ -546,8 +543,7 @@ class TrialBatch:
         interpreter lock), so a run of few trials, whose trials cannot fill the cores,
         still uses them. At most two blocks per thread are held in memory. A
         generation error is raised here; closing the iterator early stops the threads.
-        Wideband scenes (filter state carried across blocks) and ``threads=1`` fall
-        back to :meth:`blocks`."""
+        ``threads=1`` falls back to :meth:`blocks`."""
         import queue
         import threading
         k_total = int(self.scene.snapshots if snapshots is None else snapshots)
@@ -557,7 +553,7 @@ class TrialBatch:
             else int(block)
         count = -(-k_total // max(b, 1))
         threads = int(threads)
-        if threads <= 1 or self.scene.wideband or count < 2:
+        if threads <= 1 or count < 2:
             yield from self.blocks(k_total, b, recycle=True)
             return
         threads = min(threads, count)
@@ -619,7 +615,8 @@ class TrialBatch:
         mix = np.sqrt(0.5) * np.swapaxes(self.diffuse_factor, -1, -2)      # (T or 1, N, N)
         _kernels.add_sources(noise, np.sqrt(0.5), z.view(np.complex128)[..., 0], mix)
 
-    def _wideband_blocks(self, k_total: int, b: int, recycle: bool = False) -> Iterator[Block]:
+    def _wideband_blocks(self, k_total: int, b: int, recycle: bool = False,
+                         starts=None) -> Iterator[Block]:
         """Blocks of a wideband scene (:mod:`adapt.streams.wideband`): every source
         dispersed across the aperture (fixed filters, or the polynomial filters for
         moving, copied and copy sources), coupled when the array is (``C`` on each
@@ -628,7 +625,8 @@ class TrialBatch:
         the wanted source's envelope at the array origin (zero advance); ``desired`` is
         None (the wanted signal is not rank one). The fixed filters of the noise-like,
         uncoupled sources are made once per batch and each such source is filtered,
-        weighted and added in one pass (:func:`adapt.numerics.fir.add_filtered`). ``recycle``: as in :meth:`blocks`."""
+        weighted and added in one pass (:func:`adapt.numerics.fir.add_filtered`). ``recycle``: as in :meth:`blocks`;
+        ``starts``: the first snapshots of the blocks wanted (default: every block)."""
         sc = self.scene
         n = sc.elements
         idx = self.trial_indices
@@ -666,7 +664,7 @@ class TrialBatch:
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
             return scratch_array(kept, name, shape, dtype)
 
-        for start in range(0, k_total, b):
+        for start in (range(0, k_total, b) if starts is None else starts):
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
             z = take("noise", (self.trials, size, n, 2), float)
