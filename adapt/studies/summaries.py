@@ -59,6 +59,14 @@ def _pair(value) -> tuple:
 
 
 # =========================================================================== compare
+
+def entry_by_label(entries, label: str):
+    """The first of ``entries`` whose ``label`` is ``label`` (KeyError if none)."""
+    for p in entries:
+        if p.label == label:
+            return p
+    raise KeyError(label)
+
 @dataclass(frozen=True)
 class OptimumCurve:
     """The optimum (clairvoyant MVDR) SINR per checkpoint: mean over trials of dB."""
@@ -388,10 +396,7 @@ class CompareSummary:
 
     def processor(self, label: str) -> ProcessorSummary:
         """The entry of one processor, by label (KeyError if there is none)."""
-        for p in self.processors:
-            if p.label == label:
-                return p
-        raise KeyError(label)
+        return entry_by_label(self.processors, label)
 
     def to_json(self) -> dict:
         """The ``metrics.json`` mapping, keys in the order of the file."""

@@ -49,7 +49,7 @@ import numpy as np
 from adapt.errors import InputError, SpecError, did_you_mean
 from adapt.processors import Processor, is_clairvoyant, parse_spec, registry
 from adapt.scene.model import Scene
-from adapt.studies.summaries import ProcessorSummary
+from adapt.studies.summaries import ProcessorSummary, entry_by_label
 
 __all__ = ["Axis", "Sweep", "SweepPoint", "parse_axis", "sweep", "recommendations", "MAX_POINTS",
            "WITHIN_DB"]
@@ -340,10 +340,7 @@ class SweepPoint:
 
     def processor(self, label: str) -> ProcessorSummary:
         """The entry of one processor, by its study label (KeyError if none)."""
-        for p in self.processors:
-            if p.label == label:
-                return p
-        raise KeyError(label)
+        return entry_by_label(self.processors, label)
 
     def to_json(self) -> dict:
         """The point as ``sweep.json`` writes it: of each processor, the label, method,
