@@ -158,9 +158,7 @@ def complete(folder: "Folder", work, write, line, options: dict, on_exit=None,
     def finish(result, path):
         return write(result, command_line=line, folder=path)
 
-    from adapt.numerics.kernels import warm_up_in_background
     from adapt.report.figures import load_drawing_library_in_background
-    warm_up_in_background()                  # while the scene is planned
     load_drawing_library_in_background()     # while the trials run
 
     return print_outcome(*execute(folder, guarded, finish))

@@ -505,30 +505,6 @@ def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
         TAIL_START)
 
 
-def warm_up_in_background():
-    """Start :func:`warm_up` on a daemon thread (numba's cache loading spends most of
-    its time in LLVM, outside the interpreter lock, so it overlaps a command's start:
-    parsing, planning, drawing-library import). Returns the thread, or None when the
-    kernels are switched off. A kernel called meanwhile waits for numba's
-    compile lock, never loads twice; a failure here surfaces again at that call."""
-    import threading
-    try:
-        if mode() == "numpy":
-            return None
-    except ValueError:              # a bad ADAPT_KERNELS: reported by the first call
-        return None
-
-    def load():
-        try:
-            warm_up()               # imports numba here, off the main thread
-        except Exception:           # the first real call reports it
-            pass
-
-    t = threading.Thread(target=load, name="adapt-load-kernels", daemon=True)
-    t.start()
-    return t
-
-
 def warm_up() -> float:
     """Compile (or load from cache) the kernels for the block layouts the processors
     use; returns the seconds it took (0 when the kernels are off)."""
