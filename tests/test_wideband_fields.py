@@ -276,7 +276,11 @@ def test_compiled_and_numpy_streams_agree(monkeypatch):
     plain = TrialBatch(sc).samples(300)
     monkeypatch.setenv("ADAPT_KERNELS", "auto")
     if not _kernels.compiled():
-        pytest.skip("numba not installed")
+        # without numba the compiled path must be refused by name, not silently replaced
+        monkeypatch.setenv("ADAPT_KERNELS", "numba")
+        with pytest.raises(RuntimeError, match="numba is not installed"):
+            _kernels.compiled()
+        return
     fast = TrialBatch(sc).samples(300)
     scale = np.abs(plain.data).max()
     assert np.abs(fast.data - plain.data).max() < 1e-10 * scale
