@@ -47,7 +47,7 @@ def test_a_second_process_loads_every_kernel_from_the_cache():
     second = _run(_REPORT)
     assert second.returncode == 0, second.stderr
     stats = json.loads(second.stdout.strip().splitlines()[-1])
-    assert len(stats) == 13
+    assert len(stats) == 15
     for name, (hits, misses) in stats.items():
         assert misses == 0 and hits >= 1, (name, hits, misses)
 

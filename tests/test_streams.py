@@ -212,15 +212,24 @@ def test_blocks_concatenate_bit_identically(kind):
 @pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
 @pytest.mark.parametrize("threads", [2, 3])
 def test_blocks_made_ahead_on_threads_are_the_blocks(kind, threads):
-    # alternate blocks made by several threads: the same blocks, in order, bit for bit
+    # alternate blocks made by several threads (each filling its three buffer sets in
+    # turn): the same blocks, in order, bit for bit, for a consumer that is done with a
+    # block before asking for the next, however slowly it works (here it dawdles on
+    # every third block before reading it, so the producers fill their lanes and wait)
+    import time
     scene = rich_scene(trials=2, snapshots=301, **kind)
     for size in (7, 100, 400):
         plain = list(TrialBatch(scene).blocks(block=size))
-        ahead = list(TrialBatch(scene).blocks_on_threads(block=size, threads=threads))
-        assert [(b.start, b.stop) for b in ahead] == [(b.start, b.stop) for b in plain]
-        for b, a in zip(plain, ahead):
+        seen = []
+        for n, a in enumerate(TrialBatch(scene).blocks_on_threads(block=size,
+                                                                   threads=threads)):
+            b = plain[n]
+            seen.append((a.start, a.stop))
+            if n % 3 == 0:
+                time.sleep(0.002)
             for name in ("data", "signal", "training", "reference"):
                 assert np.array_equal(getattr(b, name), getattr(a, name)), (size, name)
+        assert seen == [(b.start, b.stop) for b in plain]
 
 
 def test_blocks_made_ahead_stop_with_their_consumer():
@@ -422,3 +431,52 @@ def test_long_stream_bounded_memory():
     # std is at most their mean, so 5 standard errors are within 5 / sqrt(K) relative.
     expected = float(np.real(np.conj(w) @ batch.covariance()[0] @ w)) + 0.1
     assert power == pytest.approx(expected, rel=5 / math.sqrt(10_000_000))
+
+
+def _numpy_envelope(batch, keys, i, start, size):
+    # the numpy steps of an envelope: the waveform, its amplitude, its gate
+    src = batch.scene.sources[i]
+    env = batch._waveform(keys, i, start, size)
+    env *= np.sqrt(src.power)
+    if src.pulsing is not None:
+        env *= src.active(np.arange(start, start + size))
+    return env
+
+
+@pytest.mark.parametrize("start,size", [(0, 300), (12345, 257), (10**9 + 3, 64)])
+def test_compiled_envelopes_equal_the_numpy_steps_to_the_last_bit(start, size):
+    # every waveform kind the one-pass kernel forms (gaussian, bpsk, qpsk, tone, chirp;
+    # pulsed and not), against TrialBatch._waveform and the scalings of the numpy path:
+    # identical values and zero signs, at any start (the chirp's period wraps)
+    pytest.importorskip("numba")
+    from adapt.numerics import kernels
+    from adapt.streams import normals as nm
+    from adapt.streams.snapshots import _component_key, _envelope_params
+    sources = [
+        dict(WANTED, waveform={"kind": "chirp", "start": -0.2, "stop": 0.1, "period": 50}),
+        {"name": "g", "role": "interferer", "azimuth": -30, "power_db": 20},
+        {"name": "t", "role": "interferer", "azimuth": 50, "power_db": 25,
+         "waveform": {"kind": "tone", "frequency": -0.37}, "pulsing": {"period": 20, "on": 7}},
+        {"name": "m", "role": "interferer", "azimuth": 10, "power_db": 15, "waveform": "qpsk"},
+        {"name": "b", "role": "interferer", "azimuth": -55, "power_db": 18, "waveform": "bpsk",
+         "pulsing": {"start": 40, "stop": 12400}},
+        {"name": "w", "role": "interferer", "azimuth": 5, "power_db": 7,
+         "waveform": "gaussian", "pulsing": {"period": 9, "on": 4, "start": 3}},
+        {"name": "c2", "role": "interferer", "azimuth": -5, "power_db": -3,
+         "waveform": {"kind": "chirp", "start": 0.3, "stop": -0.45, "period": 77}}]
+    scene = make_scene(sources, trials=3)
+    batch = TrialBatch(scene)
+    kinds = set()
+    for i, src in enumerate(scene.sources):
+        keys = nm.stream_keys(scene.seed, batch.trial_indices, 1, _component_key(src.name))
+        want = _numpy_envelope(batch, keys, i, start, size)
+        out = np.full((3, size, 2), np.nan + 0j)
+        gate = None if src.pulsing is None else src.active(np.arange(start, start + size))
+        kernels.envelope_fill(keys, start, src.waveform.kind, _envelope_params(src.waveform),
+                              batch.start_phases[:, i], np.sqrt(src.power), gate, out, 1)
+        got = out[:, :, 1]
+        assert np.array_equal(np.ascontiguousarray(got).view(np.uint64),
+                              np.ascontiguousarray(want).view(np.uint64)), src.name
+        assert np.isnan(out[:, :, 0]).all()
+        kinds.add(src.waveform.kind)
+    assert kinds == set(kernels.ENVELOPE_KINDS)

@@ -48,7 +48,7 @@ from adapt.numerics.tables import (
 
 __all__ = ["mode", "compiled", "loops", "lined", "lms_block", "lms_pass", "normalised_gain",
            "rls_block", "wishart_spans", "cholesky_solve", "add_sources", "quadratic_forms",
-           "normals_fill", "noisy_sources", "gamma_fill", "warm_up", "SYMMETRISE_EVERY"]
+           "normals_fill", "noisy_sources", "envelope_fill", "ENVELOPE_KINDS", "gamma_fill", "warm_up", "SYMMETRISE_EVERY"]
 
 _CHOICES = ("auto", "numpy", "numba")
 #: RLS numpy path: trials are processed in groups of about this many P-matrix entries
@@ -505,6 +505,43 @@ def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
         TAIL_START)
 
 
+#: waveform kinds the compiled envelope kernel forms, and their codes
+ENVELOPE_KINDS = {"gaussian": 0, "bpsk": 1, "qpsk": 2, "tone": 3, "chirp": 4}
+
+
+def envelope_fill(keys: np.ndarray, start: int, kind: str, params, phi0: np.ndarray,
+                  amp: float, gate: np.ndarray | None, out: np.ndarray, col: int) -> None:
+    """Compiled, one pass (the numpy twin is
+    :meth:`adapt.streams.snapshots.TrialBatch._waveform` and the envelope's scalings):
+    ``out[:, :, col]`` (out (T, B, J) complex, C-contiguous) <- ``amp`` x the unit-power
+    waveform ``kind`` (a key of :data:`ENVELOPE_KINDS`) of snapshots ``start ..``
+    (x ``gate`` (B,) 0/1 when given). ``keys`` (T, 2) uint64: the source's normal
+    streams (random kinds); ``params``: tone ``(2 pi f,)``, chirp ``(start, (stop -
+    start) / 2, period, 2 pi)``; ``phi0`` (T,): start phases. The same operations in
+    the same order as numpy, so the values are equal to the last bit (tested).
+    RuntimeError without numba."""
+    t_, b_, j_ = out.shape
+    if out.dtype != np.complex128 or not out.flags.c_contiguous or not out.flags.writeable \
+            or not 0 <= int(col) < j_:
+        raise ValueError(f"out must be a writable contiguous complex (T, B, J) array and "
+                         f"0 <= col < J, got {out.dtype} {out.shape}, col {col}")
+    if kind not in ENVELOPE_KINDS:
+        raise ValueError(f"kind must be one of {', '.join(ENVELOPE_KINDS)}, got {kind!r}")
+    keys = np.zeros((t_, 2), dtype=np.uint64) if keys is None else keys
+    if keys.shape != (t_, 2) or keys.dtype != np.uint64:
+        raise ValueError(f"keys must be uint64 ({t_}, 2), got {keys.dtype} {keys.shape}")
+    phi0 = np.ascontiguousarray(phi0, dtype=float).reshape(-1)
+    if phi0.shape != (t_,):
+        raise ValueError(f"phi0 must hold one phase per trial ({t_}), got {phi0.shape}")
+    gate = np.zeros(0) if gate is None else np.ascontiguousarray(gate, dtype=float)
+    if gate.shape not in ((0,), (b_,)):
+        raise ValueError(f"gate must be empty or hold one value per snapshot ({b_}), "
+                         f"got {gate.shape}")
+    loops().envelope_kernel(keys, int(start), ENVELOPE_KINDS[kind],
+                            np.asarray(params, dtype=float).reshape(-1), phi0, float(amp),
+                            gate, out, int(col), ACCEPT, SCALE, DENSITY, TAIL_START)
+
+
 def warm_up() -> float:
     """Compile (or load from cache) the kernels for the block layouts the processors
     use; returns the seconds it took (0 when the kernels are off)."""
@@ -531,6 +568,10 @@ def warm_up() -> float:
     noisy_sources(np.ones((2, 2), dtype=np.uint64), 0, 1.0, x[:, :, :2], x[:1, :2, :],
                   x[:, :, 0], x[:1, 0, :], np.empty_like(x), np.empty_like(x))
     quadratic_forms(x[:, :2], p[:, None])
+    loops().rank_one_powers_kernel(x[:, 0, :].copy(), x[:1, 0, :].copy(), x[:, :, 0].copy(), x.copy(),
+                                   0, 4, np.zeros(2), np.zeros(2))
+    envelope_fill(np.ones((2, 2), dtype=np.uint64), 0, "qpsk", (), np.zeros(2), 1.0, None,
+                  np.empty((2, 4, 2), complex), 1)
     loops().lag_sums_kernel(x.copy(), 1, 4, np.zeros((2, 2, 3, 3), complex))
     # the wideband sources' filter bank, and the space-time output powers
     from adapt.numerics import fir

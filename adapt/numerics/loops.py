@@ -23,8 +23,8 @@ from numba import njit, types
 from numba.extending import intrinsic
 
 __all__ = ["lms_kernel", "lms_lined_kernel", "rls_kernel", "wishart_kernel", "cholesky_kernel", "mix_kernel",
-           "normals_kernel", "noisy_sources_kernel", "gamma_kernel", "fir_kernel",
-           "tapped_powers_kernel", "quadratic_kernel", "lag_sums_kernel", "KERNELS"]
+           "normals_kernel", "noisy_sources_kernel", "envelope_kernel", "gamma_kernel", "fir_kernel",
+           "tapped_powers_kernel", "rank_one_powers_kernel", "quadratic_kernel", "lag_sums_kernel", "KERNELS"]
 
 
 @intrinsic
@@ -476,6 +476,78 @@ def noisy_sources_kernel(keys, start, scale, env, steer, env_d, steer_d, inter, 
                                             ai[i] + (er * di[i] + ei * dr[i]))
 
 
+@njit(cache=True, nogil=True, inline="always")
+def times_real(xr, xi, g):
+    # (xr + i xi) (g + 0i) as numpy multiplies a complex array by a real one cast to
+    # complex: both products of the full complex rule, zero signs included
+    return xr * g - xi * 0.0, xr * 0.0 + xi * g
+
+
+@njit(cache=True, nogil=True)
+def envelope_kernel(keys, start, kind, params, phi0, amp, gate, out, col, accept, table,
+                    density, r):
+    # out[t, b, col] <- amp x the unit-power waveform of one source at snapshot
+    # start + b of trial t (x gate[b] when gate has entries), operation for operation
+    # as adapt.streams.snapshots.TrialBatch._waveform then the envelope's scalings do
+    # in numpy. kind: 0 gaussian (normals 2k, 2k + 1), 1 bpsk (sign of normal k),
+    # 2 qpsk (signs of normals 2k, 2k + 1), 3 tone (params: 2 pi f), 4 chirp (params:
+    # start, (stop - start) / 2, period, 2 pi; the period a whole number, so the
+    # position in it, k mod period, is counted exactly instead of divided out)
+    t_, b_ = out.shape[0], out.shape[1]
+    gated = gate.shape[0] > 0
+    half = np.sqrt(0.5)
+    rails = 1 if kind == 1 else 2
+    for t in range(t_):
+        if kind <= 2:
+            gamma = keys[t, 1]
+            s = keys[t, 0] + np.uint64(start * rails + 1) * gamma
+            for b in range(b_):
+                u = mix64(s)
+                s += gamma
+                x = first_try(u, accept, table)
+                z0 = x if x == x else resolve(u, accept, table, density, r)
+                if kind == 1:
+                    xr = 1.0 if z0 >= 0 else -1.0
+                    xi = 0.0
+                else:
+                    u = mix64(s)
+                    s += gamma
+                    x = first_try(u, accept, table)
+                    z1 = x if x == x else resolve(u, accept, table, density, r)
+                    if kind == 2:
+                        s0 = 1.0 if z0 >= 0 else -1.0
+                        s1 = 1.0 if z1 >= 0 else -1.0
+                        # s0 + 1j * s1: (0 + 1i)(s1 + 0i), then s0 + 0i added
+                        z0 = s0 + (0.0 * s1 - 1.0 * 0.0)
+                        z1 = 0.0 + (0.0 * 0.0 + 1.0 * s1)
+                    xr, xi = times_real(z0, z1, half)
+                xr, xi = times_real(xr, xi, amp)
+                if gated:
+                    xr, xi = times_real(xr, xi, gate[b])
+                out[t, b, col] = complex(xr, xi)
+        elif kind == 3:
+            for b in range(b_):
+                th = params[0] * float(start + b) + phi0[t]
+                xr, xi = times_real(np.cos(th), np.sin(th), amp)
+                if gated:
+                    xr, xi = times_real(xr, xi, gate[b])
+                out[t, b, col] = complex(xr, xi)
+        else:
+            period = np.int64(params[2])
+            m_int = start % period
+            for b in range(b_):
+                m = float(m_int)
+                cyc = params[0] * m + params[1] * m * m / params[2]
+                th = params[3] * cyc + phi0[t]
+                xr, xi = times_real(np.cos(th), np.sin(th), amp)
+                if gated:
+                    xr, xi = times_real(xr, xi, gate[b])
+                out[t, b, col] = complex(xr, xi)
+                m_int += 1
+                if m_int == period:
+                    m_int = 0
+
+
 @njit(cache=True, nogil=True)
 def gamma_kernel(keys, shapes, out, step, accept, table, density, r):
     # Marsaglia-Tsang gamma variates from counter-based words (adapt.streams.normals)
@@ -574,6 +646,43 @@ def fir_kernel(hr, hi, index, s, steer, gate, mode, out, ref):
                 xr = ar[index[n]]
                 xi = ai[index[n]]
                 ref[t, b] = complex(xr * g - xi * 0.0, xr * 0.0 + xi * g)
+
+
+@njit(cache=True, nogil=True)
+def rank_one_powers_kernel(w, desired, reference, dat, lo, hi, ps, pr):
+    # Output powers of a narrowband weight over snapshots lo .. hi - 1 of a block whose
+    # wanted signal is rank one, reference[t, k] a (a = desired[t], or desired[0] for
+    # every trial): ys = reference x (w^H a), yr = w^H x - ys; ps[t] += sum |ys|^2,
+    # pr[t] += sum |yr|^2 (w (T, N), dat (T, B, N))
+    t_, _, n = dat.shape
+    for t in range(t_):
+        ta = 0 if desired.shape[0] == 1 else t
+        gr = 0.0
+        gi = 0.0
+        for e in range(n):
+            c = w[t, e]
+            a = desired[ta, e]
+            gr += c.real * a.real + c.imag * a.imag
+            gi += c.real * a.imag - c.imag * a.real
+        accs = 0.0
+        accr = 0.0
+        for k in range(lo, hi):
+            yr = 0.0
+            yi = 0.0
+            for e in range(n):
+                c = w[t, e]
+                x = dat[t, k, e]
+                yr += c.real * x.real + c.imag * x.imag
+                yi += c.real * x.imag - c.imag * x.real
+            f = reference[t, k]
+            sr = f.real * gr - f.imag * gi
+            si = f.real * gi + f.imag * gr
+            yr -= sr
+            yi -= si
+            accs += sr * sr + si * si
+            accr += yr * yr + yi * yi
+        ps[t] += accs
+        pr[t] += accr
 
 
 @njit(cache=True, nogil=True)
@@ -690,5 +799,5 @@ def quadratic_kernel(w, r, out):
 #: every compiled entry point (for :func:`adapt.numerics.kernels.warm_up` and the
 #: cache test)
 KERNELS = (lms_kernel, lms_lined_kernel, rls_kernel, wishart_kernel, cholesky_kernel, mix_kernel,
-           normals_kernel, noisy_sources_kernel, gamma_kernel, fir_kernel, tapped_powers_kernel,
-           quadratic_kernel, lag_sums_kernel)
+           normals_kernel, noisy_sources_kernel, envelope_kernel, gamma_kernel, fir_kernel, tapped_powers_kernel,
+           rank_one_powers_kernel, quadratic_kernel, lag_sums_kernel)

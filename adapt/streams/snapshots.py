@@ -144,6 +144,28 @@ def _received(scene, data: np.ndarray, interference: np.ndarray, full_scale):
         training = interference if scene.training == "interference" else data
     return data, training
 
+def _buffer_sets(recycle: bool | int) -> list[dict] | None:
+    """The buffer stores of :meth:`TrialBatch.blocks`' ``recycle``: None (fresh arrays)
+    for False or 0, else that many stores (True: one), used block after block in turn."""
+    count = int(recycle)
+    if count < 0:
+        raise ValueError(f"recycle must be a bool or a count >= 0, got {recycle!r}")
+    return [{} for _ in range(count)] if count else None
+
+
+def _envelope_params(wf) -> tuple | None:
+    """The parameters of :func:`adapt.numerics.kernels.envelope_fill` for waveform
+    ``wf``, computed as :meth:`TrialBatch._waveform` computes them; None for kinds the
+    compiled pass does not form (copies)."""
+    if wf.kind in ("gaussian", "bpsk", "qpsk"):
+        return ()
+    if wf.kind == "tone":
+        return (2 * np.pi * wf.frequency,)
+    if wf.kind == "chirp":
+        return (wf.start, 0.5 * (wf.stop - wf.start), wf.period, 2 * np.pi)
+    return None
+
+
 class TrialBatch:
     """Trials ``first_trial`` .. ``first_trial + trials - 1`` of a scene.
 
@@ -429,7 +451,7 @@ class TrialBatch:
         return np.exp(1j * (2 * np.pi * cyc[None, :] + phi0))
 
     def blocks(self, snapshots: int | None = None, block: int | None = None,
-               recycle: bool = False, first: int = 0, every: int = 1) -> Iterator[Block]:
+               recycle: bool | int = False, first: int = 0, every: int = 1) -> Iterator[Block]:
         """Yield :class:`Block` s covering snapshots 0 .. snapshots-1 of every trial.
 
         Each call starts the streams afresh, so two calls yield identical data.
@@ -437,6 +459,8 @@ class TrialBatch:
         data arrays) are overwritten by the next block, for a consumer that is done with
         each block before asking for the next (the engine): no fresh large arrays per
         block, whose page faults cost much on virtual machines and serialise threads.
+        An integer m > 1 keeps m sets of buffers used in turn, for a consumer that may
+        still hold the m - 1 blocks before the newest (:meth:`blocks_on_threads`).
         The values are the same either way. ``first``, ``every``: only blocks number
         ``first``, ``first + every``, ... (numbered from 0; each starts at its number
         times ``block``), for :meth:`blocks_on_threads`; every snapshot is a function
@@ -485,24 +509,44 @@ class TrialBatch:
                 env *= src.active(kk)
             return env
 
-        kept: dict[str, np.ndarray] | None = {} if recycle else None
+        sets = _buffer_sets(recycle)
+        kept: dict[str, np.ndarray] | None = None
 
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
             return scratch_array(kept, name, shape, dtype)
+
+        # the plain waveforms are formed by one compiled pass each, outside the
+        # interpreter lock (equal to the numpy steps of envelope() to the last bit)
+        one_pass = _kernels.compiled()
+
+        def envelope_into(i: int, start: int, size: int, kk: np.ndarray,
+                          out: np.ndarray, col: int) -> None:
+            src = sc.sources[i]
+            params = _envelope_params(src.waveform)
+            if one_pass and params is not None:
+                _kernels.envelope_fill(source_keys.get(i), start, src.waveform.kind, params,
+                                       self.start_phases[:, i], np.sqrt(src.power),
+                                       None if src.pulsing is None else src.active(kk),
+                                       out, col)
+            else:
+                out[:, :, col] = envelope(i, start, size, kk)
 
         # one pass forms noise, fixed sources and the data (no moving sources)
         fused = not moving and desired_a is not None and sc.noise.plain
         noise_scale = np.sqrt(0.5) if sc.noise.plain else 1.0
         diffuse_keys = keys_for(_DIFFUSE_KEY) if sc.noise.diffuse else None
 
-        for start in starts:
+        for number, start in enumerate(starts):
+            kept = sets[number % len(sets)] if sets else None
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
             if fixed:
                 env = take("envelopes", (self.trials, size, len(fixed)), complex)
                 for j, i in enumerate(fixed):
-                    env[:, :, j] = envelope(i, start, size, kk)
-            reference = envelope(d_idx, start, size, kk)
+                    envelope_into(i, start, size, kk, env, j)
+            reference = np.empty((self.trials, size, 1), dtype=complex)
+            envelope_into(d_idx, start, size, kk, reference, 0)
+            reference = reference[..., 0]
             signal = None
             if fused:
                 interference = take("noise", (self.trials, size, n), complex)
@@ -541,9 +585,12 @@ class TrialBatch:
         ``threads`` threads taking alternate blocks (thread i makes blocks i, i +
         threads, ...; the heavy parts, the random fills and source mixing, release the
         interpreter lock), so a run of few trials, whose trials cannot fill the cores,
-        still uses them. At most two blocks per thread are held in memory. A
-        generation error is raised here; closing the iterator early stops the threads.
-        ``threads=1`` falls back to :meth:`blocks`."""
+        still uses them. Like ``blocks(recycle=True)``, it is for a consumer that is
+        done with each block before asking for the next: each thread fills three sets of
+        buffers in turn (one block with the consumer, one waiting in the thread's
+        one-place lane, one being made; a set comes round again only after the consumer
+        has asked for a later block). A generation error is raised here; closing the
+        iterator early stops the threads. ``threads=1`` falls back to :meth:`blocks`."""
         import queue
         import threading
         k_total = int(self.scene.snapshots if snapshots is None else snapshots)
@@ -572,7 +619,7 @@ class TrialBatch:
 
         def make(i: int) -> None:
             try:
-                for blk in self.blocks(k_total, b, first=i, every=threads):
+                for blk in self.blocks(k_total, b, recycle=3, first=i, every=threads):
                     if not hand_over(i, ("block", blk)):
                         return
             except BaseException as exc:        # handed to the consumer
@@ -615,7 +662,7 @@ class TrialBatch:
         mix = np.sqrt(0.5) * np.swapaxes(self.diffuse_factor, -1, -2)      # (T or 1, N, N)
         _kernels.add_sources(noise, np.sqrt(0.5), z.view(np.complex128)[..., 0], mix)
 
-    def _wideband_blocks(self, k_total: int, b: int, recycle: bool = False,
+    def _wideband_blocks(self, k_total: int, b: int, recycle: bool | int = False,
                          starts=None) -> Iterator[Block]:
         """Blocks of a wideband scene (:mod:`adapt.streams.wideband`): every source
         dispersed across the aperture (fixed filters, or the polynomial filters for
@@ -659,12 +706,14 @@ class TrialBatch:
                 h = np.concatenate([np.broadcast_to(h, (rows,) + h.shape[1:]),
                                     np.broadcast_to(ref, (rows,) + ref.shape[1:])], axis=1)
             banks[i] = FilterBank(h)
-        kept: dict[str, np.ndarray] | None = {} if recycle else None
+        sets = _buffer_sets(recycle)
+        kept: dict[str, np.ndarray] | None = None
 
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
             return scratch_array(kept, name, shape, dtype)
 
-        for start in (range(0, k_total, b) if starts is None else starts):
+        for number, start in enumerate(range(0, k_total, b) if starts is None else starts):
+            kept = sets[number % len(sets)] if sets else None
             size = min(b, k_total - start)
             kk = np.arange(start, start + size)
             z = take("noise", (self.trials, size, n, 2), float)
