@@ -73,3 +73,19 @@ def test_unframe_refuses_a_short_or_foreign_message():
     assert render._unframe(blob, {"a", "b"}) == {"a": b"123", "b": b""}
     assert render._unframe(blob[:-3], {"a", "b"}) is None
     assert render._unframe(blob, {"a"}) is None
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="no fork on this platform")
+def test_shares_are_one_per_core_plus_one(monkeypatch):
+    # 2 cores: three shares (this process and two children), each job run exactly once,
+    # the shares balanced by weight (greedy: the costliest first, to the lightest share)
+    monkeypatch.setattr(render, "can_fork_safely", lambda: True)
+    monkeypatch.setattr(render, "usable_cores", lambda: 2)
+    jobs = {name: (lambda: str(os.getpid()).encode()) for name in ("p", "q", "r", "s")}
+    got = render.render_all(jobs, weights={"p": 3, "q": 2, "r": 2, "s": 1})
+    pids = {name: int(value) for name, value in got.items()}
+    assert len(set(pids.values())) == 3 and pids["p"] == os.getpid()
+    assert pids["q"] != pids["r"] and pids["s"] in (pids["q"], pids["r"])
+    assert render._shares(["p", "q", "r", "s"], {"p": 3, "q": 2, "r": 2, "s": 1}, 3) \
+        == [["p"], ["q", "s"], ["r"]]
+    assert render._shares(["a", "b"], {"a": 1, "b": 1}, 3) == [["a"], ["b"]]

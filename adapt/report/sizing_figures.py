@@ -26,6 +26,7 @@ from adapt.report.figures import (
     add_title,
     label_axes,
     legend_outside,
+    log_minor_grid,
     new_figure,
     save_png,
     series_styles,
@@ -104,6 +105,8 @@ def sizing_figure(summary):
                     color=REFERENCE_COLOUR)
     ax.set_xscale("log")
     _count_ticks(ax, kmin, kmax)
+    if kmax >= 10 * kmin:
+        log_minor_grid([ax], kmin, kmax)
     if kmax > kmin:
         ax.set_xlim(kmin, kmax)
     else:

@@ -22,6 +22,7 @@ from adapt.report.figures import (
     add_title,
     label_axes,
     legend_outside,
+    log_minor_grid,
     new_figure,
     save_png,
     series_styles,
@@ -127,6 +128,8 @@ def line_figure(record: dict):
             ax.set_xticks(x[::every], words[::every], rotation=30 if len(words) > 6 else 0)
         elif _log_axis(axis, x):
             ax.set_xscale("log")
+            if np.max(x) >= 10 * np.min(x):
+                log_minor_grid([ax], float(np.min(x)), float(np.max(x)))
     add_title(fig, f"Design study - {record['scene']}",
               f"{axis['key']} varied; {record['trials']} trials, {record['snapshots']} "
               f"snapshots, the same seed at every point; loss band: 10th-90th percentile, "
