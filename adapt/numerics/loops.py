@@ -53,19 +53,24 @@ def lms_kernel(wc, x, d, gain_mode, gain_t, gain_tb, step, eps, dirc, marks, out
     for t in range(t_):
         nxt = 0
         for j in range(b):
+            # the output and (NLMS) the regressor's power in one loop: two independent
+            # sums, each in its own order, so their additions overlap
             y = 0j
-            for i in range(m):
-                y += wc[t, i] * x[t, j, i]
+            pw = 0.0
+            if gain_mode == 2:
+                for i in range(m):
+                    v = x[t, j, i]
+                    y += wc[t, i] * v
+                    pw += v.real * v.real + v.imag * v.imag
+            else:
+                for i in range(m):
+                    y += wc[t, i] * x[t, j, i]
             e = (d[t, j] - y) if use_d else -y
             if gain_mode == 0:
                 g = gain_t[t]
             elif gain_mode == 1:
                 g = gain_tb[t, j]
             else:
-                pw = 0.0
-                for i in range(m):
-                    v = x[t, j, i]
-                    pw += v.real * v.real + v.imag * v.imag
                 g = step / (eps + pw)
             e = e * g
             if use_dir:
@@ -94,22 +99,23 @@ def lms_lined_kernel(wc, xh, taps, d, gain_mode, gain_t, gain_tb, step, eps, mar
         nxt = 0
         for j in range(b):
             y = 0j
+            pw = 0.0                       # (the two sums in one loop, as lms_kernel)
             for l_ in range(taps):
                 r = j + taps - 1 - l_
-                for e in range(n):
-                    y += wc[t, l_ * n + e] * xh[t, r, e]
+                if gain_mode == 2:
+                    for e in range(n):
+                        v = xh[t, r, e]
+                        y += wc[t, l_ * n + e] * v
+                        pw += v.real * v.real + v.imag * v.imag
+                else:
+                    for e in range(n):
+                        y += wc[t, l_ * n + e] * xh[t, r, e]
             e_ = (d[t, j] - y) if use_d else -y
             if gain_mode == 0:
                 g = gain_t[t]
             elif gain_mode == 1:
                 g = gain_tb[t, j]
             else:
-                pw = 0.0
-                for l_ in range(taps):
-                    r = j + taps - 1 - l_
-                    for e in range(n):
-                        v = xh[t, r, e]
-                        pw += v.real * v.real + v.imag * v.imag
                 g = step / (eps + pw)
             e_ = e_ * g
             for l_ in range(taps):
