@@ -158,3 +158,28 @@ def test_compare_imports_neither_scipy_signal_nor_stats():
     assert done.returncode == 0, done.stderr
     code, heavy = json.loads(done.stderr.strip().splitlines()[-1])
     assert code == 0 and heavy == []
+
+
+@pytest.mark.skipif(not HAVE_NUMBA, reason="numba not installed")
+def test_a_command_sets_numba_up_without_scipy_blas_and_scipy_still_imports(tmp_path):
+    # numba's first set-up imports scipy.linalg only to check for BLAS (a quarter of a
+    # second); a command runs no numba code of its own, so it skips that import; scipy
+    # imports normally afterwards, and the kernels' results are those of the library
+    # default (which leaves numba's check alone: other numba code may need np.dot)
+    code = ("import sys, json, numpy as np\n"
+            "from adapt.cli.main import main\n"
+            "code = main(ARGS)\n"
+            "skipped = 'scipy.linalg' not in sys.modules\n"
+            "import numba.np.arraymath as am\n"
+            "from scipy import linalg\n"
+            "ok = bool(np.isclose(linalg.cholesky([[4.0]])[0, 0], 2.0))\n"
+            "print(json.dumps([code, skipped, bool(am._HAVE_BLAS), ok]))\n")
+    args = ["compare", "scenes/single_jammer.yaml", "--trials", "3", "--snapshots", "64",
+            "-p", "nlms", "-p", "rls", "--no-progress", "--out", str(tmp_path)]
+    done = _run(code.replace("ARGS", repr(args)), ADAPT_KERNELS="numba")
+    assert done.returncode == 0, done.stderr
+    assert json.loads(done.stdout.strip().splitlines()[-1]) == [0, True, False, True]
+    lib = _run("from adapt.numerics import kernels\nkernels.warm_up()\n"
+               "import numba.np.arraymath as am\nprint(am._HAVE_BLAS)\n")
+    assert lib.returncode == 0, lib.stderr
+    assert lib.stdout.strip().splitlines()[-1] == "True"

@@ -70,6 +70,8 @@ def one_blas_thread_per_engine_thread(environ=os.environ) -> bool:
 
 def main(argv=None) -> int:
     one_blas_thread_per_engine_thread()
+    from adapt.numerics.numba_start import start_without_blas
+    start_without_blas()            # this process runs no numba code but adapt's
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):

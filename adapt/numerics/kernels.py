@@ -33,10 +33,12 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import os
+import threading
 import time
 
 import numpy as np
 
+from adapt.numerics import numba_start
 from adapt.numerics.tables import (
     ACCEPT,
     DENSITY,
@@ -67,21 +69,28 @@ def mode() -> str:
     return value
 
 
+_FIRST_LOAD = threading.Lock()
+
+
 def _load():
     """:mod:`adapt.numerics.loops`, imported (with numba) on the first call, or None when
     numba is absent or fails to import (any failure of numba's own import counts as
-    absent; a failure in the kernels' module is raised). Remembered; Python's import
-    lock makes concurrent first calls safe."""
+    absent; a failure in the kernels' module is raised). Remembered; a lock makes
+    concurrent first calls wait for the first."""
     global _HAVE_NUMBA, _LOOPS
-    if _LOOPS is None and _HAVE_NUMBA is not False:
-        try:
-            _HAVE_NUMBA = importlib.util.find_spec("numba") is not None
+    if _LOOPS is not None or _HAVE_NUMBA is False:
+        return _LOOPS
+    with _FIRST_LOAD:
+        if _LOOPS is None and _HAVE_NUMBA is not False:
+            try:
+                _HAVE_NUMBA = importlib.util.find_spec("numba") is not None
+                if _HAVE_NUMBA:
+                    import numba  # noqa: F401 - the slow import, here and only here
+            except Exception:              # noqa: BLE001 - a broken install is an absent one
+                _HAVE_NUMBA = False
             if _HAVE_NUMBA:
-                import numba  # noqa: F401 - the slow import, here and only here
-        except Exception:                  # noqa: BLE001 - a broken install is an absent one
-            _HAVE_NUMBA = False
-        if _HAVE_NUMBA:
-            _LOOPS = importlib.import_module("adapt.numerics.loops")
+                numba_start.set_up()
+                _LOOPS = importlib.import_module("adapt.numerics.loops")
     return _LOOPS
 
 
