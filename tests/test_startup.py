@@ -183,3 +183,18 @@ def test_a_command_sets_numba_up_without_scipy_blas_and_scipy_still_imports(tmp_
                "import numba.np.arraymath as am\nprint(am._HAVE_BLAS)\n")
     assert lib.returncode == 0, lib.stderr
     assert lib.stdout.strip().splitlines()[-1] == "True"
+
+
+def test_only_commands_without_a_concurrent_scipy_import_skip_numbas_blas_check():
+    # size imports scipy.stats (and with it scipy.linalg) on a thread beside its trials,
+    # which must never meet the mark; the others import no scipy.linalg meanwhile
+    from adapt.cli.main import build_parser
+    parser = build_parser()
+    skip = {}
+    for words in (["compare", "x.yaml"], ["sweep", "x.yaml"], ["size", "x.yaml"],
+                  ["record", "x.yaml", "--processor", "smi", "--out", "o"],
+                  ["verify", "ref", "--command", "prog"]):
+        args, _ = parser.parse_known_args(words)
+        skip[words[0]] = getattr(args, "numba_without_blas", False)
+    assert skip == {"compare": True, "sweep": True, "size": False, "record": True,
+                    "verify": True}

@@ -40,7 +40,7 @@ def register(subparsers) -> None:
                    help="folder that receives the run folder (default: runs)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     _run.add_options(p)
-    p.set_defaults(func=run)
+    p.set_defaults(func=run, numba_without_blas=True)   # see cli.main.main
 
 
 #: library argument names -> command-line options, for error messages

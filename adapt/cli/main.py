@@ -70,10 +70,14 @@ def one_blas_thread_per_engine_thread(environ=os.environ) -> bool:
 
 def main(argv=None) -> int:
     one_blas_thread_per_engine_thread()
-    from adapt.numerics.numba_start import start_without_blas
-    start_without_blas()            # this process runs no numba code but adapt's
     parser = build_parser()
     args = parser.parse_args(argv)
+    if getattr(args, "numba_without_blas", False):
+        # this process runs no numba code but adapt's, and the command imports no
+        # scipy.linalg while its kernels load (size does: it imports scipy.stats
+        # alongside its trials, so it keeps numba's check)
+        from adapt.numerics.numba_start import start_without_blas
+        start_without_blas()
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_USAGE

@@ -46,7 +46,7 @@ def register(subparsers) -> None:
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="compute the cases on an existing Dask cluster, e.g. tcp://host:8786")
     add_threads(p)
-    p.set_defaults(func=run)
+    p.set_defaults(func=run, numba_without_blas=True)   # see cli.main.main
 
 
 def parse_checkpoints(text: str | None):

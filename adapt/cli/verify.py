@@ -42,7 +42,7 @@ def register(subparsers) -> None:
     p.add_argument("--junit", metavar="FILE",
                    help="also write JUnit XML for CI (written before the first case with "
                         "every case marked 'not run', then with the results)")
-    p.set_defaults(func=run)
+    p.set_defaults(func=run, numba_without_blas=True)   # see cli.main.main
 
 
 def run(args) -> int:

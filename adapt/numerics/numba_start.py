@@ -14,7 +14,9 @@ _CYTHON_BLAS = "scipy.linalg.cython_blas"
 
 def start_without_blas() -> None:
     """Let the first kernel load set numba up without scipy's BLAS wrappers, for a
-    process that runs no numba code but adapt's (the command line calls this).
+    process that runs no numba code but adapt's and imports no ``scipy.linalg`` on
+    another thread while its kernels first load (the commands other than ``size``
+    call this; ``size`` imports ``scipy.stats`` alongside its trials).
 
     On its first compile or cache load numba sets up its CPU target, and with it the
     module of its numpy functions, which imports ``scipy.linalg`` only to learn whether
@@ -33,10 +35,11 @@ def start_without_blas() -> None:
 def set_up() -> None:
     """Called by the first kernel load, numba imported: when :func:`start_without_blas`
     was asked for, set numba's CPU target up with scipy's BLAS wrappers unimportable;
-    nothing when it was not, when they are already imported (the check is then free)
-    or when numba's numpy functions are already loaded."""
-    if not _WITHOUT_BLAS or _CYTHON_BLAS in sys.modules or "numba.np.arraymath" in sys.modules:
-        return
+    nothing when it was not, when ``scipy.linalg`` is imported or being imported (the
+    check is then free, and a half-done import must not meet the mark) or when numba's
+    numpy functions are already loaded."""
+    if not _WITHOUT_BLAS or "scipy.linalg" in sys.modules or "numba.np.arraymath" in sys.modules:
+        return                     # (scipy.linalg listed: imported, or being imported)
     sys.modules[_CYTHON_BLAS] = None
     try:
         from numba.core.registry import cpu_target
