@@ -50,7 +50,7 @@ from adapt.numerics.tables import (
 
 __all__ = ["mode", "compiled", "loops", "lined", "lms_block", "lms_pass", "normalised_gain",
            "rls_block", "wishart_spans", "cholesky_solve", "add_sources", "quadratic_forms",
-           "normals_fill", "noisy_sources", "envelope_fill", "ENVELOPE_KINDS", "gamma_fill", "warm_up", "SYMMETRISE_EVERY"]
+           "normals_fill", "noisy_sources", "EnvelopePlan", "envelopes_fill", "ENVELOPE_KINDS", "gamma_fill", "warm_up", "SYMMETRISE_EVERY"]
 
 _CHOICES = ("auto", "numpy", "numba")
 #: RLS numpy path: trials are processed in groups of about this many P-matrix entries
@@ -518,37 +518,60 @@ def noisy_sources(keys: np.ndarray, start: int, scale: float, env: np.ndarray,
 ENVELOPE_KINDS = {"gaussian": 0, "bpsk": 1, "qpsk": 2, "tone": 3, "chirp": 4}
 
 
-def envelope_fill(keys: np.ndarray, start: int, kind: str, params, phi0: np.ndarray,
-                  amp: float, gate: np.ndarray | None, out: np.ndarray, col: int) -> None:
-    """Compiled, one pass (the numpy twin is
+class EnvelopePlan:
+    """What :func:`envelopes_fill` needs of J sources, checked and laid out once per
+    run: ``keys`` (J, T, 2) uint64 (each source's normal streams; zeros for the tone
+    and chirp), ``kinds`` (J,) codes of :data:`ENVELOPE_KINDS`, ``params`` (J, 4)
+    (tone ``2 pi f``; chirp ``start, (stop - start) / 2, period, 2 pi``), ``phi0``
+    (J, T) start phases, ``amps`` (J,) amplitudes, ``gated`` (J,) which sources pulse."""
+
+    def __init__(self, keys, kinds, params, phi0, amps, gated):
+        j_ = len(kinds)
+        if not all(k in ENVELOPE_KINDS for k in kinds):
+            raise ValueError(f"kinds must be among {', '.join(ENVELOPE_KINDS)}, got {kinds}")
+        phi0 = np.ascontiguousarray(np.asarray(phi0, dtype=float).T)        # (J, T)
+        t_ = phi0.shape[1]
+        self.keys = np.zeros((j_, t_, 2), dtype=np.uint64)
+        for j, k in enumerate(keys):
+            if k is not None:
+                if k.shape != (t_, 2) or k.dtype != np.uint64:
+                    raise ValueError(f"keys of source {j} must be uint64 ({t_}, 2), got "
+                                     f"{k.dtype} {k.shape}")
+                self.keys[j] = k
+        self.kinds = np.array([ENVELOPE_KINDS[k] for k in kinds], dtype=np.int64)
+        self.params = np.zeros((j_, 4))
+        for j, p in enumerate(params):
+            self.params[j, :len(p)] = p
+        self.phi0 = phi0
+        self.amps = np.asarray(amps, dtype=float).reshape(j_)
+        self.gated = np.asarray(gated, dtype=bool).reshape(j_)
+        self.trials = t_
+
+
+def envelopes_fill(plan: EnvelopePlan, start: int, gates: np.ndarray | None,
+                   out: np.ndarray) -> None:
+    """Compiled, one pass per source (the numpy twin is
     :meth:`adapt.streams.snapshots.TrialBatch._waveform` and the envelope's scalings):
-    ``out[:, :, col]`` (out (T, B, J) complex, C-contiguous) <- ``amp`` x the unit-power
-    waveform ``kind`` (a key of :data:`ENVELOPE_KINDS`) of snapshots ``start ..``
-    (x ``gate`` (B,) 0/1 when given). ``keys`` (T, 2) uint64: the source's normal
-    streams (random kinds); ``params``: tone ``(2 pi f,)``, chirp ``(start, (stop -
-    start) / 2, period, 2 pi)``; ``phi0`` (T,): start phases. The same operations in
-    the same order as numpy, so the values are equal to the last bit (tested).
-    RuntimeError without numba."""
+    ``out[:, :, j]`` (out (T, B, J) complex, C-contiguous) <- the amplitude x the
+    unit-power waveform of source j of ``plan`` at snapshots ``start ..``, x its row of
+    ``gates`` (J, B) 0/1 when it pulses. The same operations in the same order as numpy,
+    so the values are equal to the last bit (tested). RuntimeError without numba."""
     t_, b_, j_ = out.shape
     if out.dtype != np.complex128 or not out.flags.c_contiguous or not out.flags.writeable \
-            or not 0 <= int(col) < j_:
-        raise ValueError(f"out must be a writable contiguous complex (T, B, J) array and "
-                         f"0 <= col < J, got {out.dtype} {out.shape}, col {col}")
-    if kind not in ENVELOPE_KINDS:
-        raise ValueError(f"kind must be one of {', '.join(ENVELOPE_KINDS)}, got {kind!r}")
-    keys = np.zeros((t_, 2), dtype=np.uint64) if keys is None else keys
-    if keys.shape != (t_, 2) or keys.dtype != np.uint64:
-        raise ValueError(f"keys must be uint64 ({t_}, 2), got {keys.dtype} {keys.shape}")
-    phi0 = np.ascontiguousarray(phi0, dtype=float).reshape(-1)
-    if phi0.shape != (t_,):
-        raise ValueError(f"phi0 must hold one phase per trial ({t_}), got {phi0.shape}")
-    gate = np.zeros(0) if gate is None else np.ascontiguousarray(gate, dtype=float)
-    if gate.shape not in ((0,), (b_,)):
-        raise ValueError(f"gate must be empty or hold one value per snapshot ({b_}), "
-                         f"got {gate.shape}")
-    loops().envelope_kernel(keys, int(start), ENVELOPE_KINDS[kind],
-                            np.asarray(params, dtype=float).reshape(-1), phi0, float(amp),
-                            gate, out, int(col), ACCEPT, SCALE, DENSITY, TAIL_START)
+            or j_ != len(plan.kinds) or t_ != plan.trials:
+        raise ValueError(f"out must be a writable contiguous complex (T, B, J) array with "
+                         f"(T, J) = {(plan.trials, len(plan.kinds))}, got {out.dtype} "
+                         f"{out.shape}")
+    if gates is None:
+        if plan.gated.any():
+            raise ValueError("gates are needed: a source pulses")
+        gates = np.zeros((j_, 0))
+    elif gates.shape != (j_, b_) or gates.dtype != np.float64 or not gates.flags.c_contiguous:
+        raise ValueError(f"gates must be contiguous float64 {(j_, b_)}, got "
+                         f"{gates.dtype} {gates.shape}")
+    loops().envelopes_kernel(plan.keys, int(start), plan.kinds, plan.params, plan.phi0,
+                             plan.amps, gates, plan.gated, out, ACCEPT, SCALE, DENSITY,
+                             TAIL_START)
 
 
 def warm_up() -> float:
@@ -579,8 +602,9 @@ def warm_up() -> float:
     quadratic_forms(x[:, :2], p[:, None])
     loops().rank_one_powers_kernel(x[:, 0, :].copy(), x[:1, 0, :].copy(), x[:, :, 0].copy(), x.copy(),
                                    0, 4, np.zeros(2), np.zeros(2))
-    envelope_fill(np.ones((2, 2), dtype=np.uint64), 0, "qpsk", (), np.zeros(2), 1.0, None,
-                  np.empty((2, 4, 2), complex), 1)
+    plan = EnvelopePlan([np.ones((2, 2), dtype=np.uint64), None], ["qpsk", "tone"],
+                        [(), (0.5,)], np.zeros((2, 2)), [1.0, 2.0], [False, True])
+    envelopes_fill(plan, 0, np.ones((2, 4)), np.empty((2, 4, 2), complex))
     loops().lag_sums_kernel(x.copy(), 1, 4, np.zeros((2, 2, 3, 3), complex))
     # the wideband sources' filter bank, and the space-time output powers
     from adapt.numerics import fir

@@ -23,7 +23,7 @@ from numba import njit, types
 from numba.extending import intrinsic
 
 __all__ = ["lms_kernel", "lms_lined_kernel", "rls_kernel", "wishart_kernel", "cholesky_kernel", "mix_kernel",
-           "normals_kernel", "noisy_sources_kernel", "envelope_kernel", "gamma_kernel", "fir_kernel",
+           "normals_kernel", "noisy_sources_kernel", "envelope_column", "envelopes_kernel", "gamma_kernel", "fir_kernel",
            "tapped_powers_kernel", "rank_one_powers_kernel", "quadratic_kernel", "lag_sums_kernel", "KERNELS"]
 
 
@@ -490,7 +490,7 @@ def times_real(xr, xi, g):
 
 
 @njit(cache=True, nogil=True)
-def envelope_kernel(keys, start, kind, params, phi0, amp, gate, out, col, accept, table,
+def envelope_column(keys, start, kind, params, phi0, amp, gate, out, col, accept, table,
                     density, r):
     # out[t, b, col] <- amp x the unit-power waveform of one source at snapshot
     # start + b of trial t (x gate[b] when gate has entries), operation for operation
@@ -552,6 +552,18 @@ def envelope_kernel(keys, start, kind, params, phi0, amp, gate, out, col, accept
                 m_int += 1
                 if m_int == period:
                     m_int = 0
+
+
+@njit(cache=True, nogil=True)
+def envelopes_kernel(keys, start, kinds, params, phi0, amps, gates, gated, out, accept, table,
+                     density, r):
+    # envelope_column for sources j = 0 .. J - 1 into out[:, :, j]: keys (J, T, 2),
+    # kinds (J,), params (J, 4), phi0 (J, T), amps (J,), gates (J, B) (row j used
+    # when gated[j]), out (T, B, J); one call per block for all of them
+    for j in range(kinds.shape[0]):
+        gate = gates[j] if gated[j] else gates[j, :0]
+        envelope_column(keys[j], start, kinds[j], params[j], phi0[j], amps[j], gate, out, j,
+                        accept, table, density, r)
 
 
 @njit(cache=True, nogil=True)
@@ -805,5 +817,5 @@ def quadratic_kernel(w, r, out):
 #: every compiled entry point (for :func:`adapt.numerics.kernels.warm_up` and the
 #: cache test)
 KERNELS = (lms_kernel, lms_lined_kernel, rls_kernel, wishart_kernel, cholesky_kernel, mix_kernel,
-           normals_kernel, noisy_sources_kernel, envelope_kernel, gamma_kernel, fir_kernel, tapped_powers_kernel,
+           normals_kernel, noisy_sources_kernel, envelopes_kernel, gamma_kernel, fir_kernel, tapped_powers_kernel,
            rank_one_powers_kernel, quadratic_kernel, lag_sums_kernel)

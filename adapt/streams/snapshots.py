@@ -154,7 +154,7 @@ def _buffer_sets(recycle: bool | int) -> list[dict] | None:
 
 
 def _envelope_params(wf) -> tuple | None:
-    """The parameters of :func:`adapt.numerics.kernels.envelope_fill` for waveform
+    """The parameters of :class:`adapt.numerics.kernels.EnvelopePlan` for waveform
     ``wf``, computed as :meth:`TrialBatch._waveform` computes them; None for kinds the
     compiled pass does not form (copies)."""
     if wf.kind in ("gaussian", "bpsk", "qpsk"):
@@ -515,21 +515,35 @@ class TrialBatch:
         def take(name: str, shape: tuple, dtype) -> np.ndarray:
             return scratch_array(kept, name, shape, dtype)
 
-        # the plain waveforms are formed by one compiled pass each, outside the
-        # interpreter lock (equal to the numpy steps of envelope() to the last bit)
-        one_pass = _kernels.compiled()
+        # the plain waveforms are formed in compiled passes outside the interpreter
+        # lock, all fixed interferers in one call per block (equal to the numpy steps
+        # of envelope() to the last bit); plans laid out once per run
+        def plan_for(indices: list[int]):
+            srcs = [sc.sources[i] for i in indices]
+            params = [_envelope_params(s.waveform) for s in srcs]
+            if not indices or not _kernels.compiled() or any(p is None for p in params):
+                return None
+            return _kernels.EnvelopePlan(
+                [source_keys.get(i) for i in indices], [s.waveform.kind for s in srcs],
+                params, self.start_phases[:, indices], [np.sqrt(s.power) for s in srcs],
+                [s.pulsing is not None for s in srcs])
 
-        def envelope_into(i: int, start: int, size: int, kk: np.ndarray,
-                          out: np.ndarray, col: int) -> None:
-            src = sc.sources[i]
-            params = _envelope_params(src.waveform)
-            if one_pass and params is not None:
-                _kernels.envelope_fill(source_keys.get(i), start, src.waveform.kind, params,
-                                       self.start_phases[:, i], np.sqrt(src.power),
-                                       None if src.pulsing is None else src.active(kk),
-                                       out, col)
-            else:
-                out[:, :, col] = envelope(i, start, size, kk)
+        def envelopes_into(indices: list[int], plan, start: int, size: int,
+                           kk: np.ndarray, out: np.ndarray) -> None:
+            if plan is None:
+                for j, i in enumerate(indices):
+                    out[:, :, j] = envelope(i, start, size, kk)
+                return
+            gates = None
+            if plan.gated.any():
+                gates = np.zeros((len(indices), size))
+                for j, i in enumerate(indices):
+                    if plan.gated[j]:
+                        gates[j] = sc.sources[i].active(kk)
+            _kernels.envelopes_fill(plan, start, gates, out)
+
+        fixed_plan = plan_for(fixed)
+        desired_plan = plan_for([d_idx])
 
         # one pass forms noise, fixed sources and the data (no moving sources)
         fused = not moving and desired_a is not None and sc.noise.plain
@@ -542,10 +556,9 @@ class TrialBatch:
             kk = np.arange(start, start + size)
             if fixed:
                 env = take("envelopes", (self.trials, size, len(fixed)), complex)
-                for j, i in enumerate(fixed):
-                    envelope_into(i, start, size, kk, env, j)
+                envelopes_into(fixed, fixed_plan, start, size, kk, env)
             reference = np.empty((self.trials, size, 1), dtype=complex)
-            envelope_into(d_idx, start, size, kk, reference, 0)
+            envelopes_into([d_idx], desired_plan, start, size, kk, reference)
             reference = reference[..., 0]
             signal = None
             if fused:
