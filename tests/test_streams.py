@@ -212,8 +212,8 @@ def test_blocks_concatenate_bit_identically(kind):
 @pytest.mark.parametrize("kind", [{}, FIXED_WITH_ADC], ids=["moving", "fixed-adc"])
 @pytest.mark.parametrize("threads", [2, 3])
 def test_blocks_made_ahead_on_threads_are_the_blocks(kind, threads):
-    # alternate blocks made by several threads (each filling its three buffer sets in
-    # turn): the same blocks, in order, bit for bit, for a consumer that is done with a
+    # alternate blocks made by several threads (each filling its two buffer sets in
+    # turn, a set reused only once the consumer has asked past its block): the same blocks, in order, bit for bit, for a consumer that is done with a
     # block before asking for the next, however slowly it works (here it dawdles on
     # every third block before reading it, so the producers fill their lanes and wait)
     import time
@@ -486,3 +486,25 @@ def test_compiled_envelopes_equal_the_numpy_steps_to_the_last_bit(start, size):
                               np.ascontiguousarray(want).view(np.uint64)), src.name
         kinds.add(src.waveform.kind)
     assert kinds == set(kernels.ENVELOPE_KINDS)
+
+
+def test_blocks_made_ahead_hold_to_their_memory_budget(monkeypatch):
+    # the threads' buffer sets are held to AHEAD_BYTES: fewer threads for large blocks,
+    # and blocks in sequence (no thread) when one thread's two sets would not fit; the
+    # values are the same either way
+    import threading
+
+    from adapt.streams import snapshots as snap
+    scene = rich_scene(trials=2, snapshots=600)
+    batch = TrialBatch(scene)
+    per_set = batch.block_bytes(100)
+    plain = [b.data.copy() for b in TrialBatch(scene).blocks(block=100)]
+    for budget, threads in ((10 * 2 * per_set, 3), (2 * 2 * per_set, 2), (2 * per_set - 1, 0)):
+        monkeypatch.setattr(snap, "AHEAD_BYTES", budget)
+        before = threading.active_count()
+        seen = 0
+        for n, blk in enumerate(batch.blocks_on_threads(block=100, threads=3)):
+            if n == 0:
+                seen = threading.active_count() - before
+            assert np.array_equal(blk.data, plain[n])
+        assert seen == threads, budget

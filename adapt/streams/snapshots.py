@@ -144,6 +144,12 @@ def _received(scene, data: np.ndarray, interference: np.ndarray, full_scale):
         training = interference if scene.training == "interference" else data
     return data, training
 
+#: bytes of the buffer sets held by the threads of TrialBatch.blocks_on_threads (all of
+#: them together; common practice: small beside the 300 MB a 10M-snapshot stream may
+#: use, and enough for three threads of the default blocks of a one-trial stream)
+AHEAD_BYTES = 64 << 20
+
+
 def _buffer_sets(recycle: bool | int) -> list[dict] | None:
     """The buffer stores of :meth:`TrialBatch.blocks`' ``recycle``: None (fresh arrays)
     for False or 0, else that many stores (True: one), used block after block in turn."""
@@ -599,11 +605,13 @@ class TrialBatch:
         threads, ...; the heavy parts, the random fills and source mixing, release the
         interpreter lock), so a run of few trials, whose trials cannot fill the cores,
         still uses them. Like ``blocks(recycle=True)``, it is for a consumer that is
-        done with each block before asking for the next: each thread fills three sets of
-        buffers in turn (one block with the consumer, one waiting in the thread's
-        one-place lane, one being made; a set comes round again only after the consumer
-        has asked for a later block). A generation error is raised here; closing the
-        iterator early stops the threads. ``threads=1`` falls back to :meth:`blocks`."""
+        done with each block before asking for the next: each thread fills two sets of
+        buffers in turn and starts a block only when one is free (a set is freed when
+        the consumer asks for the block after the one it holds). The sets of all
+        threads are held to about :data:`AHEAD_BYTES`: fewer threads when the blocks are
+        large, none (:meth:`blocks` in sequence) when two sets of one thread would
+        exceed it. A generation error is raised here; closing the iterator early stops
+        the threads. ``threads=1`` falls back to :meth:`blocks`."""
         import queue
         import threading
         k_total = int(self.scene.snapshots if snapshots is None else snapshots)
@@ -612,31 +620,41 @@ class TrialBatch:
         b = default_block_size(self.trials, self.scene.elements, k_total) if block is None \
             else int(block)
         count = -(-k_total // max(b, 1))
-        threads = int(threads)
-        if threads <= 1 or count < 2:
+        sets = 2
+        threads = min(int(threads), count, AHEAD_BYTES // (sets * self.block_bytes(b)))
+        if threads <= 1:
             yield from self.blocks(k_total, b, recycle=True)
             return
-        threads = min(threads, count)
         stop = threading.Event()
         lanes = [queue.Queue(maxsize=1) for _ in range(threads)]
+        free = [threading.Semaphore(sets) for _ in range(threads)]
 
-        def hand_over(i: int, item) -> bool:
-            # wait for room in lane i unless the consumer has gone; True when handed over
+        def wait(attempt) -> bool:
+            # retry attempt() (a put or an acquire with a timeout) until it succeeds or
+            # the consumer has gone; True when it succeeded
             while not stop.is_set():
+                if attempt():
+                    return True
+            return False
+
+        def put(i: int, item) -> bool:
+            def attempt() -> bool:
                 try:
                     lanes[i].put(item, timeout=0.1)
                     return True
                 except queue.Full:
-                    continue
-            return False
+                    return False
+            return wait(attempt)
 
         def make(i: int) -> None:
             try:
-                for blk in self.blocks(k_total, b, recycle=3, first=i, every=threads):
-                    if not hand_over(i, ("block", blk)):
+                made = self.blocks(k_total, b, recycle=sets, first=i, every=threads)
+                while wait(lambda: free[i].acquire(timeout=0.1)):
+                    blk = next(made, None)          # into this thread's next set
+                    if blk is None or not put(i, ("block", blk)):
                         return
             except BaseException as exc:        # handed to the consumer
-                hand_over(i, ("error", exc))
+                put(i, ("error", exc))
 
         workers = [threading.Thread(target=make, args=(i,), daemon=True,
                                     name=f"adapt-blocks-{i}") for i in range(threads)]
@@ -648,6 +666,7 @@ class TrialBatch:
                 if kind == "error":
                     raise item
                 yield item
+                free[n % threads].release()      # the consumer is done with block n
         finally:
             stop.set()
             for lane in lanes:              # unblock a producer waiting to put
@@ -657,6 +676,13 @@ class TrialBatch:
                     pass
             for w in workers:
                 w.join()
+
+    def block_bytes(self, block: int) -> int:
+        """About the bytes of one set of a block's large arrays (noise, interference,
+        data, training, signal and one envelope per source, complex): what
+        :meth:`blocks_on_threads` budgets per buffer set."""
+        n = self.scene.elements
+        return max(1, self.trials * int(block) * 16 * (5 * n + len(self.scene.sources)))
 
     def _noise_field(self, noise: np.ndarray, keys, start: int, take) -> None:
         """Turn unit-variance complex normals ``noise`` (T, B, N) (before the sqrt(1/2)
