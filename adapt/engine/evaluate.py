@@ -166,10 +166,21 @@ class _Measure:
     def _rank_one(self, index, block, edges, first, weights, held) -> None:
         """Compiled output powers when the wanted signal is rank one (one pass over each
         span, outside the interpreter lock; equal to the numpy sums to rounding)."""
-        t_ = block.data.shape[0]
         dat = np.ascontiguousarray(block.data, dtype=complex)
         ref = np.ascontiguousarray(block.reference, dtype=complex)
         desired = np.ascontiguousarray(block.desired, dtype=complex).reshape(-1, dat.shape[-1])
+
+        def powers(w, lo, hi, ps, pr):
+            _kernels.loops().rank_one_powers_kernel(w, desired, ref, dat, lo, hi, ps, pr)
+
+        self._add_spans(index, edges, first, weights, held, powers)
+
+    def _add_spans(self, index, edges, first, weights, held, powers) -> None:
+        """For each checkpoint span [lo, hi) of a block (``edges``; span j is slot
+        ``first + j``, under the held weight for j = 0), ``powers(w, lo, hi, ps, pr)``
+        (a compiled pass adding the span's output powers of the signal and the rest into
+        ps, pr, zeroed first) and the results added to the processor's sums."""
+        t_ = held.shape[0]
         ps, pr = np.zeros(t_), np.zeros(t_)
         for j in range(len(edges) - 1):
             lo, hi = edges[j], edges[j + 1]
@@ -179,8 +190,7 @@ class _Measure:
             w = held if j == 0 else weights[:, j - 1, :]
             ps[:] = 0.0
             pr[:] = 0.0
-            _kernels.loops().rank_one_powers_kernel(np.ascontiguousarray(w, dtype=complex),
-                                                    desired, ref, dat, lo, hi, ps, pr)
+            powers(np.ascontiguousarray(w, dtype=complex), lo, hi, ps, pr)
             self.sig[index, :, slot] += ps
             self.rest[index, :, slot] += pr
             self.n[index, slot] += hi - lo
@@ -198,21 +208,12 @@ class _Measure:
         start = block.start
         edges = [0] + [int(c - start) for c in block_checkpoints] + [b]
         first = int(np.searchsorted(self.checkpoints, start, side="right")) - 1
-        ps, pr = np.zeros(t_), np.zeros(t_)
-        for j in range(len(edges) - 1):
-            lo, hi = edges[j], edges[j + 1]
-            slot = first + j
-            if hi <= lo or slot < 0:
-                continue
-            w = held if j == 0 else weights[:, j - 1, :]
-            ps[:] = 0.0
-            pr[:] = 0.0
-            _kernels.loops().tapped_powers_kernel(
-                np.ascontiguousarray(w, dtype=complex), sig_hist, sig, dat_hist, dat, lo,
-                hi, ps, pr)
-            self.sig[index, :, slot] += ps
-            self.rest[index, :, slot] += pr
-            self.n[index, slot] += hi - lo
+
+        def powers(w, lo, hi, ps, pr):
+            _kernels.loops().tapped_powers_kernel(w, sig_hist, sig, dat_hist, dat, lo, hi,
+                                                  ps, pr)
+
+        self._add_spans(index, edges, first, weights, held, powers)
 
         def keep(hist, x):              # the last L - 1 snapshots, for the next block
             return (x[:, b - lag:].copy() if b >= lag
