@@ -634,3 +634,26 @@ def test_wideband_blocks_made_ahead_on_threads_are_the_same():
         for name in ("data", "signal", "training", "reference"):
             assert np.array_equal(getattr(a, name), getattr(whole[n], name)), name
     assert starts == [b.start for b in whole]
+
+
+def test_the_table_names_the_optimum_each_delay_line_is_scored_against():
+    # the loss of a space-time processor is against the optimum for its own taps (the
+    # largest generalised eigenvalue); the table says so, with that optimum: the mean of
+    # its final SINR plus its loss (both means of dB over the same trials)
+    from adapt.studies.compare import compare, own_optima
+    jam = [{"name": "j", "role": "interferer", "azimuth": 30, "power_db": 40}]
+    sc = _scene(fb=0.4, jammers=jam, snapshots=200, trials=4)
+    result = compare(sc, ["optimum", "optimum taps=3", "smi taps=3 loading_db=10"])
+    s = result.summary
+    own = own_optima(s)
+    assert [labels for _, labels in own] == [["optimum taps=3", "smi taps=3 loading_db=10"]]
+    value = own[0][0]
+    for p in s.processors[1:]:
+        assert p.final.sinr_db_mean + p.final.loss_db_mean == pytest.approx(value, abs=0.01)
+    assert value > s.optimum_sinr_db + 0.1                  # more taps, a higher optimum
+    table = " ".join(result.table().split())
+    assert f"{value:.2f} dB for optimum taps=3, smi taps=3 loading_db=10" in table
+    narrow = compare(_scene(fb=None, jammers=jam, snapshots=200, trials=4),
+                     ["optimum", "smi loading_db=10"])
+    assert own_optima(narrow.summary) == []
+    assert "own weight length" not in narrow.table()
