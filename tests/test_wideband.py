@@ -636,7 +636,7 @@ def test_wideband_blocks_made_ahead_on_threads_are_the_same():
     assert starts == [b.start for b in whole]
 
 
-def test_the_table_names_the_optimum_each_delay_line_is_scored_against():
+def test_the_table_names_the_optimum_each_delay_line_is_scored_against(tmp_path):
     # the loss of a space-time processor is against the optimum for its own taps (the
     # largest generalised eigenvalue); the table says so, with that optimum: the mean of
     # its final SINR plus its loss (both means of dB over the same trials)
@@ -653,6 +653,9 @@ def test_the_table_names_the_optimum_each_delay_line_is_scored_against():
     assert value > s.optimum_sinr_db + 0.1                  # more taps, a higher optimum
     table = " ".join(result.table().split())
     assert f"{value:.2f} dB for optimum taps=3, smi taps=3 loading_db=10" in table
+    from adapt.studies.compare import write_compare_run
+    page = (write_compare_run(result, out_root=tmp_path) / "report.html").read_text()
+    assert f"{value:.2f} dB for optimum taps=3, smi taps=3 loading_db=10." in page
     narrow = compare(_scene(fb=None, jammers=jam, snapshots=200, trials=4),
                      ["optimum", "smi loading_db=10"])
     assert own_optima(narrow.summary) == []

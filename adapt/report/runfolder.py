@@ -376,13 +376,14 @@ def summary_rows(summary) -> list[dict]:
 
 def write_report_files(folder, evaluation, summary, scene_summary: str = "",
                        command_line: str | None = None, writer: "RunWriter | None" = None,
-                       verdict: Sequence[str] = ()) -> list[str]:
+                       verdict: Sequence[str] = (), notes: Sequence[str] = ()) -> list[str]:
     """Write the figures (``<name>.png``) and ``report.html`` with :mod:`adapt.report`;
     returns the file names written (none when the report modules are absent). The
     figures and the score table read the comparison ``summary``; the ``evaluation``
     gives the scene, the trials' weights (beam patterns) and the run facts.
     ``scene_summary``: the text of the scene block (what ``adapt check`` prints);
-    ``verdict``: sentences shown under the score table."""
+    ``verdict``: sentences shown under the score table; ``notes``: further sentences
+    after the optimum's (what the losses are measured against)."""
     writer = writer if writer is not None else RunWriter(folder)
     written = []
     figs = _module("figures")
@@ -392,6 +393,7 @@ def write_report_files(folder, evaluation, summary, scene_summary: str = "",
         for name, data in pngs.items():
             writer.bytes(f"{name}.png", data)
             written.append(f"{name}.png")
+    extra_notes = notes
     html = _module("html")
     builder = getattr(html, "compare_report", None) if html is not None else None
     if builder is not None:
@@ -399,6 +401,7 @@ def write_report_files(folder, evaluation, summary, scene_summary: str = "",
                  "mean over trials. Loss = optimum minus output SINR, mean over trials of dB. "
                  f"'Snapshots to 3 dB' = first checkpoint where the loss of the mean "
                  f"normalised SINR is within {summary.target_db:g} dB."]
+        notes += [text[0].upper() + text[1:] + "." for text in extra_notes]
         notes += [f"Verdict: {line}." for line in verdict]
         if command_line:
             notes.append(f"Command: {command_line}")
@@ -414,7 +417,8 @@ def write_report_files(folder, evaluation, summary, scene_summary: str = "",
 
 def write_run(scene, evaluation, summary, out_root="runs", command_line: str | None = None,
               kind: str = "compare", figures: bool = True, table: str | None = None,
-              folder=None, scene_summary: str = "", verdict: Sequence[str] = ()) -> Path:
+              folder=None, scene_summary: str = "", verdict: Sequence[str] = (),
+              notes: Sequence[str] = ()) -> Path:
     """Write a complete run folder (see the module docstring) and return its path: the
     JSON, CSV, figures and report of the comparison ``summary`` (a ``CompareSummary``).
 
@@ -423,7 +427,7 @@ def write_run(scene, evaluation, summary, out_root="runs", command_line: str | N
     folder with a manifest is complete. With ``folder`` (a resumable run folder made by
     :func:`start_run_folder`), the outputs go there and it is sealed
     (:meth:`RunWriter.seal`). ``scene_summary``, ``verdict``: the scene block and the
-    verdict sentences of ``report.html``.
+    verdict sentences of ``report.html``; ``notes``: further sentences for its notes.
     """
     _check_summary(summary)
     writer = RunWriter(folder, out_root, scene.name)
@@ -438,7 +442,8 @@ def write_run(scene, evaluation, summary, out_root="runs", command_line: str | N
     extra = []
     if figures:
         extra = write_report_files(writer.folder, evaluation, summary, scene_summary,
-                                   command_line, writer=writer, verdict=verdict)
+                                   command_line, writer=writer, verdict=verdict,
+                                   notes=notes)
     info = {"kind": kind, "scene": scene.name, "seed": int(summary.seed),
             "trials": int(summary.trials), "snapshots": int(summary.snapshots),
             "command_line": command_line,

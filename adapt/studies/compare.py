@@ -519,6 +519,17 @@ def own_optima(summary: CompareSummary, tolerance_db: float = 0.01) -> list[tupl
     return sorted(groups.items(), key=lambda kv: -kv[0])
 
 
+def own_optima_text(summary: CompareSummary) -> str | None:
+    """The sentence naming :func:`own_optima` (None when every processor is scored
+    against the summary's optimum), for the table and the report."""
+    own = own_optima(summary)
+    if not own:
+        return None
+    return ("for a longer delay line the optimum is higher, and each processor's loss is "
+            "against the optimum for its own weight length: "
+            + "; ".join(f"{_cell(v)} dB for {', '.join(labels)}" for v, labels in own))
+
+
 def _cell(v, decimals: int = 2, none: str = "n/a") -> str:
     return format_number(v, decimals, none=none)
 
@@ -565,11 +576,9 @@ def render_table(summary: CompareSummary | Mapping, width: int = 100) -> str:
             f"{k} snapshots, seed {summary.seed}")
     opt = (f"optimum SINR (clairvoyant MVDR): {_cell(summary.optimum_sinr_db)} dB, mean over "
            f"trials" + ("" if summary.stationary else " at the last snapshot"))
-    own = own_optima(summary)
+    own = own_optima_text(summary)
     if own:
-        opt += ("; for a longer delay line the optimum is higher, and each processor's loss "
-                "is against the optimum for its own weight length: "
-                + "; ".join(f"{_cell(v)} dB for {', '.join(labels)}" for v, labels in own))
+        opt += "; " + own
     out = [what, opt, "",
            line(["processor"] + [h[0] for h in heads]),
            line([""] + [h[1] for h in heads]),
@@ -730,4 +739,5 @@ def write_compare_run(comparison: Comparison, out_root="runs",
                           out_root=out_root, command_line=command_line, kind="compare",
                           figures=figures, table=comparison.table(), folder=folder,
                           scene_summary=summarise_scene(comparison.scene) if figures else "",
-                          verdict=verdict_lines(comparison.summary))
+                          verdict=verdict_lines(comparison.summary),
+                          notes=[t for t in [own_optima_text(comparison.summary)] if t])
