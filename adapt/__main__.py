@@ -1,5 +1,3 @@
-import sys
+from adapt.cli.main import run_as_process
 
-from adapt.cli.main import main
-
-sys.exit(main())
+run_as_process()

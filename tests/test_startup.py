@@ -198,3 +198,27 @@ def test_only_commands_without_a_concurrent_scipy_import_skip_numbas_blas_check(
         skip[words[0]] = getattr(args, "numba_without_blas", False)
     assert skip == {"compare": True, "sweep": True, "size": False, "record": True,
                     "verify": True}
+
+
+def test_the_command_process_flushes_everything_and_keeps_exit_codes(tmp_path):
+    # python -m adapt ends with os._exit after main returns (no interpreter teardown):
+    # output piped to a file is complete, run folders are sealed, exit codes are kept
+    run = [sys.executable, "-m", "adapt"]
+    env = dict(os.environ, ADAPT_KERNELS="numpy")
+    check = subprocess.run(run + ["check", "scenes/single_jammer.yaml"], cwd=ROOT, env=env,
+                           capture_output=True, text=True, timeout=600)
+    inline = _run("import sys\nfrom adapt.cli.main import main\n"
+                  "sys.exit(main(['check', 'scenes/single_jammer.yaml']))")
+    assert check.returncode == 0 and check.stdout == inline.stdout and check.stdout
+    done = subprocess.run(run + ["compare", "scenes/single_jammer.yaml", "--trials", "2",
+                                 "--snapshots", "64", "--no-progress", "--out", str(tmp_path)],
+                          cwd=ROOT, env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.rstrip().splitlines()[-1].startswith("run folder:")
+    (folder,) = list(tmp_path.iterdir())
+    assert (folder / "manifest.json").is_file() and (folder / "report.html").is_file()
+    for words, code in ((["--version"], 0), (["no-such-command"], 2),
+                        (["check", str(tmp_path / "missing.yaml")], 2)):
+        got = subprocess.run(run + words, cwd=ROOT, env=env, capture_output=True, text=True,
+                             timeout=600)
+        assert got.returncode == code, (words, got.stderr)

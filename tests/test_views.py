@@ -373,6 +373,6 @@ def test_distribution_has_its_own_name():
     meta = tomllib.loads((Path(__file__).parents[1] / "pyproject.toml").read_text())
     name = meta["project"]["name"]
     assert name != "adapt" and name.startswith("adapt-")
-    assert meta["project"]["scripts"]["adapt"] == "adapt.cli.main:main"
+    assert meta["project"]["scripts"]["adapt"] == "adapt.cli.main:run_as_process"
     readme = (Path(__file__).parents[1] / "README.md").read_text()
     assert name in readme

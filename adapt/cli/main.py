@@ -98,6 +98,39 @@ def main(argv=None) -> int:
 EXIT_FILE_SYSTEM = 3
 
 
+def run_as_process(argv=None) -> None:
+    """The ``adapt`` command as a process (the console script and ``python -m adapt``):
+    :func:`main`, then the exit without tearing the interpreter down.
+
+    When a command has returned, every output is written, sealed and closed, so what
+    the interpreter still does on the way out (clearing every module and freeing numba's
+    compiled code, matplotlib's objects and the run's arrays one by one) changes
+    nothing, yet took 0.2-0.25 s of a 2 s ``adapt compare``. So the standard streams are
+    flushed, the ``atexit`` handlers run (as they would), and the process ends with
+    ``os._exit``. A ``SystemExit`` (``--help``, ``--version``, argparse's usage errors)
+    ends the same way with its code; any other exception propagates and Python reports
+    it as usual. :func:`main` itself returns normally, for callers in Python."""
+    try:
+        code = main(argv)
+    except SystemExit as exc:
+        code = exc.code
+    if code is None:
+        code = 0
+    elif not isinstance(code, int):           # SystemExit("message"): print it, exit 1
+        print(code, file=sys.stderr)
+        code = 1
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):        # a closed pipe (| head) or stream
+            pass
+    import atexit
+    run_handlers = getattr(atexit, "_run_exitfuncs", None)
+    if run_handlers is not None:
+        run_handlers()
+    os._exit(code)
+
+
 def file_system_message(exc: OSError) -> str:
     """One line for an OSError: the path, the system's reason and a hint."""
     import errno
@@ -121,4 +154,4 @@ def file_system_message(exc: OSError) -> str:
 
 
 if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())
+    run_as_process()
