@@ -220,6 +220,32 @@ def test_the_closed_forms_are_needed_a_simpler_model_is_refused():
     assert _sample_against_truth(iso, count=48, truth_of=white_in_time)[0].max() > 5
 
 
+
+@pytest.mark.parametrize("moving", [False, True], ids=["fixed", "moving"])
+def test_a_stacked_snapshot_straddling_a_pulse_edge_gates_each_tap_at_its_own_time(moving):
+    # a jammer on for 7 snapshots of every 20, checked at k = 160 m: tap 0 (snapshot k)
+    # has it, taps 1 and 2 (k - 1, k - 2) do not; the streams gate each element's output
+    # at its own snapshot, so the truth's blocks are scaled by g(k - l) g(k - l')
+    # (fixed filters and the polynomial path alike); gating every tap at k misses
+    jam = {"name": "j", "role": "interferer", "azimuth": 35, "power_db": 10,
+           "pulsing": {"period": 20, "on": 7, "start": 0}}
+    if moving:
+        jam["motion"] = {"azimuth_rate": 0.002}
+    sc = parse_scene(_data([WANTED, jam]))
+    assert wb.tap_gates(sc.sources[1], np.array([160]), 3, 4).tolist() == \
+        [[1.0] * 4 + [0.0] * 8]
+    stat, s, r, se = _sample_against_truth(sc)
+    assert stat.max() < 5.0 and 0.3 < stat.mean() < 1.3
+
+    def at_the_checkpoint(b):             # the former model: every tap gated at k
+        taps, ks = 3, 160 * np.arange(1, 25)
+        r = wb.space_time_covariance(b, taps, ks, "data")
+        unit = wb.source_covariance(b, 1, taps, ks, unit=True)
+        g = wb.tap_gates(sc.sources[1], ks, taps, 4)
+        on = sc.sources[1].active(ks).astype(float)[:, None, None]
+        return r + sc.sources[1].power * unit * (on - g[:, :, None] * g[:, None, :])[None]
+    assert _sample_against_truth(sc, truth_of=at_the_checkpoint)[0].max() > 10
+
 # -------------------------------------------------------------------- the promises
 def test_identity_coupling_is_bit_identical_to_no_coupling():
     base = FEATURES["motion"]

@@ -428,8 +428,21 @@ def source_covariance(batch, source: int, taps: int, kk: np.ndarray,
     r = _couple(batch, r, taps)
     if unit:
         return r
+    if src.pulsing is not None:             # each tap gated at its own snapshot
+        g = tap_gates(src, kk, taps, sc.elements)                           # (M, NL)
+        return r * (src.power * (g[:, :, None] * g[:, None, :]))[None]
     p = src.power * src.active(kk).astype(float)
     return r * p[None, :, None, None]
+
+
+def tap_gates(src, kk: np.ndarray, taps: int, elements: int) -> np.ndarray:
+    """(M, L N) 0/1: whether source ``src`` is on at snapshot ``k - l``, for entry
+    ``l N + n`` of the stacked snapshot at each k of ``kk``. The streams gate each
+    element's output at its own snapshot, so a stacked snapshot straddling a pulse edge
+    holds the source in some taps only (before the stream starts, k - l < 0, a source
+    that starts at 0 is off, as the delay lines hold zeros there)."""
+    k = np.asarray(kk)[:, None] - np.arange(taps)[None, :]
+    return np.repeat(src.active(k).astype(float), elements, axis=1)
 
 
 def space_time_covariance(batch, taps: int, k=None, kind: str = "interference") -> np.ndarray:
@@ -747,15 +760,20 @@ def _chirp_terms(batch, i: int, taps: int, kk: np.ndarray):
     return alpha.reshape(t_, m, taps * n), tau.reshape(t_, m, taps * n)
 
 
-def _amplitudes(scene, i: int, kk: np.ndarray, unit: bool) -> np.ndarray:
-    """(M,) complex: ``sqrt(P) g(k) e^{j phase}`` of source i (1 with ``unit``)."""
+def _amplitudes(scene, i: int, kk: np.ndarray, unit: bool, taps: int) -> np.ndarray:
+    """(1, M, 1) complex ``sqrt(P) g(k) e^{j phase}`` of source i (1 with ``unit``), or
+    for a pulsing source (1, M, L N), each entry of the stacked snapshot gated at its
+    own snapshot (:func:`tap_gates`)."""
     if unit:
-        return np.ones(len(kk), dtype=complex)
+        return np.ones((1, len(kk), 1), dtype=complex)
     src = scene.sources[i]
-    amp = np.sqrt(src.power) * src.active(kk).astype(float) + 0j
+    if src.pulsing is not None:
+        amp = np.sqrt(src.power) * tap_gates(src, kk, taps, scene.elements) + 0j
+    else:
+        amp = (np.sqrt(src.power) * src.active(kk).astype(float) + 0j)[:, None]
     if src.waveform.kind == COPY:
         amp = amp * np.exp(1j * np.deg2rad(src.waveform.phase_deg))
-    return amp
+    return amp[None]
 
 
 def _group_covariance(batch, group: list[int], taps: int, kk: np.ndarray,
@@ -773,7 +791,7 @@ def _group_covariance(batch, group: list[int], taps: int, kk: np.ndarray,
     step = max(1, _TRUTH_VALUES // per)
     for lo in range(0, len(kk), step):
         ks = kk[lo:lo + step]
-        amps = [_amplitudes(sc, i, ks, unit)[None, :, None] for i in group]
+        amps = [_amplitudes(sc, i, ks, unit, taps) for i in group]
         if kind in _NOISE_LIKE:
             frames = [_filter_frame(batch, i, taps, ks) for i in group]
             r = 0
