@@ -132,26 +132,30 @@ class _Measure:
 
     def __call__(self, index, block, block_checkpoints, weights, held) -> None:
         n = block.data.shape[-1]
-        if held.shape[-1] != n:                                 # space-time weights
-            if _kernels.compiled():
-                self._tapped(index, block, block_checkpoints, weights, held)
-                return
+        tapped = held.shape[-1] != n                            # space-time weights
+        if tapped and not _kernels.compiled():
             block = self.stacked(index, block, held.shape[-1] // n)
+            tapped = False
         start = block.start
         edges = [0] + [int(c - start) for c in block_checkpoints] + [block.size]
         # which checkpoint's weight is in force on each span (-1: initial weight)
         first = int(np.searchsorted(self.checkpoints, start, side="right")) - 1
-        rank_one = block.desired is not None
-        if rank_one and _kernels.compiled():
-            self._rank_one(index, block, edges, first, weights, held)
+        if tapped:
+            self._tapped(index, block, edges, first, weights, held)
             return
+        if block.desired is not None and _kernels.compiled():
+            powers = self._rank_one_powers(block)
+        else:
+            powers = self._numpy_powers(block)
+        self._add_spans(index, edges, first, weights, held, powers)
+
+    @staticmethod
+    def _numpy_powers(block):
+        """Output powers of a span in numpy (see :meth:`_add_spans`)."""
+        rank_one = block.desired is not None
         rest = None if rank_one else block.data - block.signal
-        for j in range(len(edges) - 1):
-            lo, hi = edges[j], edges[j + 1]
-            slot = first + j
-            if hi <= lo or slot < 0:
-                continue
-            w = held if j == 0 else weights[:, j - 1, :]
+
+        def powers(w, lo, hi, ps, pr):
             if rank_one:      # a fixed wanted source: w^H s = reference * (w^H a_d)
                 gain = np.einsum("tn,tn->t", np.conj(w), block.desired)
                 ys = block.reference[:, lo:hi] * gain[:, None]
@@ -159,11 +163,12 @@ class _Measure:
             else:
                 ys = np.einsum("tn,tbn->tb", np.conj(w), block.signal[:, lo:hi])
                 yr = np.einsum("tn,tbn->tb", np.conj(w), rest[:, lo:hi])
-            self.sig[index, :, slot] += np.sum(np.abs(ys) ** 2, axis=1)
-            self.rest[index, :, slot] += np.sum(np.abs(yr) ** 2, axis=1)
-            self.n[index, slot] += hi - lo
+            ps += np.sum(np.abs(ys) ** 2, axis=1)
+            pr += np.sum(np.abs(yr) ** 2, axis=1)
+        return powers
 
-    def _rank_one(self, index, block, edges, first, weights, held) -> None:
+    @staticmethod
+    def _rank_one_powers(block):
         """Compiled output powers when the wanted signal is rank one (one pass over each
         span, outside the interpreter lock; equal to the numpy sums to rounding)."""
         dat = np.ascontiguousarray(block.data, dtype=complex)
@@ -172,14 +177,13 @@ class _Measure:
 
         def powers(w, lo, hi, ps, pr):
             _kernels.loops().rank_one_powers_kernel(w, desired, ref, dat, lo, hi, ps, pr)
-
-        self._add_spans(index, edges, first, weights, held, powers)
+        return powers
 
     def _add_spans(self, index, edges, first, weights, held, powers) -> None:
         """For each checkpoint span [lo, hi) of a block (``edges``; span j is slot
         ``first + j``, under the held weight for j = 0), ``powers(w, lo, hi, ps, pr)``
-        (a compiled pass adding the span's output powers of the signal and the rest into
-        ps, pr, zeroed first) and the results added to the processor's sums."""
+        (adds the span's output powers of the signal and of the rest into ps, pr, zeroed
+        first) and the results added to the processor's sums."""
         t_ = held.shape[0]
         ps, pr = np.zeros(t_), np.zeros(t_)
         for j in range(len(edges) - 1):
@@ -195,7 +199,7 @@ class _Measure:
             self.rest[index, :, slot] += pr
             self.n[index, slot] += hi - lo
 
-    def _tapped(self, index, block, block_checkpoints, weights, held) -> None:
+    def _tapped(self, index, block, edges, first, weights, held) -> None:
         """Compiled output powers of space-time weights (see the class docstring)."""
         t_, b, n = block.data.shape
         lag = held.shape[-1] // n - 1
@@ -205,9 +209,6 @@ class _Measure:
         sig_hist, dat_hist = self.history[index]
         sig = np.ascontiguousarray(block.signal, dtype=complex)
         dat = np.ascontiguousarray(block.data, dtype=complex)
-        start = block.start
-        edges = [0] + [int(c - start) for c in block_checkpoints] + [b]
-        first = int(np.searchsorted(self.checkpoints, start, side="right")) - 1
 
         def powers(w, lo, hi, ps, pr):
             _kernels.loops().tapped_powers_kernel(w, sig_hist, sig, dat_hist, dat, lo, hi,
