@@ -719,14 +719,21 @@ def _filter_frame(batch, i: int, taps: int, kk: np.ndarray) -> tuple[np.ndarray,
     return frame.reshape(t_, m, taps * n, width), -ripple - h - high
 
 
-def _tone_vector(batch, i: int, taps: int, kk: np.ndarray) -> np.ndarray:
-    """(T, M, LN) a tone's stacked response (exact: ``x = v e^{j(2 pi f k + phi)}``)."""
+def _member_setting(batch, i: int, taps: int, kk: np.ndarray):
+    """What the tone and chirp truths of member i of a shared waveform start from: the
+    waveform (its origin's), the channel filters and their ripple taps (1 or 0), the
+    member's delays and gains (:func:`_member_delays`) and (T, M, N)."""
     sc = batch.scene
-    wf = sc.sources[sc.origin_index(i)].waveform
     channels = batch.channel_filters
     ripple = 1 if channels is not None else 0
     d, a = _member_delays(batch, i, taps, kk, ripple)
-    t_, m, n = batch.trials, len(kk), sc.elements
+    return (sc.sources[sc.origin_index(i)].waveform, channels, ripple, d, a,
+            (batch.trials, len(kk), sc.elements))
+
+
+def _tone_vector(batch, i: int, taps: int, kk: np.ndarray) -> np.ndarray:
+    """(T, M, LN) a tone's stacked response (exact: ``x = v e^{j(2 pi f k + phi)}``)."""
+    wf, channels, ripple, d, a, (t_, m, n) = _member_setting(batch, i, taps, kk)
     v = np.zeros((t_, m, taps, n), dtype=complex)
     for l_ in range(taps):
         for q in range(2 * ripple + 1):
@@ -743,12 +750,7 @@ def _tone_vector(batch, i: int, taps: int, kk: np.ndarray) -> np.ndarray:
 def _chirp_terms(batch, i: int, taps: int, kk: np.ndarray):
     """(T, M, LN) gains and time offsets of a chirp's stacked entries (the chirp's flat
     sweep kernel of the module docstring; channels at the sweep's centre)."""
-    sc = batch.scene
-    wf = sc.sources[sc.origin_index(i)].waveform
-    channels = batch.channel_filters
-    ripple = 1 if channels is not None else 0
-    d, a = _member_delays(batch, i, taps, kk, ripple)
-    t_, m, n = batch.trials, len(kk), sc.elements
+    wf, channels, ripple, d, a, (t_, m, n) = _member_setting(batch, i, taps, kk)
     g = _channel_response(channels, 0.5 * (wf.start + wf.stop))
     alpha = np.empty((t_, m, taps, n), dtype=complex)
     tau = np.empty((t_, m, taps, n))
