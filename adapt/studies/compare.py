@@ -79,7 +79,8 @@ from adapt.studies.summaries import (
 
 __all__ = ["Comparison", "CompareSummary", "ProcessorSummary", "compare", "summarise",
            "floored_null_depths", "write_compare_run", "verdict", "verdict_lines",
-           "render_table", "as_summary", "CAUTION", "TAIL", "NULL_FLOOR_DB"]
+           "render_table", "own_optima", "own_optima_text", "as_summary", "CAUTION", "TAIL",
+           "NULL_FLOOR_DB"]
 
 #: printed under every summary table
 CAUTION = ("Simulation only: scores come from a modelled scene; validate against measured "
