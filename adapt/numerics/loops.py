@@ -532,9 +532,10 @@ def envelope_column(keys, start, kind, params, phi0, amp, gate, out, col, accept
                     xr, xi = times_real(xr, xi, gate[b])
                 out[t, b, col] = complex(xr, xi)
         elif kind == 3:
-            # (tones and chirps in loops of their own, and the normals written out
-            # above: a version with one loop for both and a helper for the normals
-            # ran the random kinds at 95 ns a snapshot against 6, measured)
+            # (the normals are written out above: the same lines in a helper, inlined,
+            # or called with the tone and chirp loops merged, ran the random kinds at
+            # 95-103 ns a snapshot against 6, measured; tones and chirps keep loops of
+            # their own)
             for b in range(b_):
                 th = params[0] * float(start + b) + phi0[t]
                 xr, xi = times_real(np.cos(th), np.sin(th), amp)
