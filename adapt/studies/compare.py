@@ -75,6 +75,7 @@ from adapt.studies.summaries import (
     ProcessorSummary,
     Ranking,
     Verdict,
+    typed,
 )
 
 __all__ = ["Comparison", "CompareSummary", "ProcessorSummary", "compare", "summarise",
@@ -440,12 +441,7 @@ def _finite(v) -> bool:
 
 def as_summary(summary) -> CompareSummary:
     """A :class:`CompareSummary` as it is, or the one of a ``metrics.json`` mapping."""
-    if isinstance(summary, CompareSummary):
-        return summary
-    if isinstance(summary, Mapping):
-        return CompareSummary.from_mapping(summary)
-    raise ValueError(f"expected a CompareSummary or a metrics.json mapping, got "
-                     f"{type(summary).__name__}")
+    return typed(summary, CompareSummary, "a metrics.json mapping")
 
 
 def verdict_lines(summary: CompareSummary | Mapping) -> list[str]:

@@ -66,6 +66,7 @@ from adapt.studies.summaries import (
     SizingPoint,
     SizingSummary,
     TheoryAnswer,
+    typed,
 )
 
 __all__ = ["Sizing", "SizingSummary", "size", "sweep_points", "stays_met",
@@ -435,12 +436,7 @@ def _snaps(k: int) -> str:
 
 
 def _entry(proc) -> SizedProcessor:
-    if isinstance(proc, SizedProcessor):
-        return proc
-    if isinstance(proc, Mapping):
-        return SizedProcessor.from_mapping(proc)
-    raise ValueError(f"expected a SizedProcessor or a processor mapping of sizing.json, got "
-                     f"{type(proc).__name__}")
+    return typed(proc, SizedProcessor, "a processor mapping of sizing.json")
 
 
 def recommendation(proc: SizedProcessor | Mapping, target_loss_db: float, fraction: float,
@@ -508,12 +504,7 @@ def _f(v, fmt="{:.3f}") -> str:
 
 def as_summary(summary) -> SizingSummary:
     """A :class:`SizingSummary` as it is, or the one of a ``sizing.json`` mapping."""
-    if isinstance(summary, SizingSummary):
-        return summary
-    if isinstance(summary, Mapping):
-        return SizingSummary.from_mapping(summary)
-    raise ValueError(f"expected a SizingSummary or a sizing.json mapping, got "
-                     f"{type(summary).__name__}")
+    return typed(summary, SizingSummary, "a sizing.json mapping")
 
 
 def render_table(summary: SizingSummary | Mapping) -> str:

@@ -34,10 +34,21 @@ from typing import Any, Mapping
 __all__ = ["CompareSummary", "ProcessorSummary", "FinalScores", "PatternScores", "Curve",
            "OptimumCurve", "NullDepth", "Ranking", "Verdict",
            "SizingSummary", "SizedProcessor", "SizingPoint", "TheoryAnswer", "RuleOfThumb",
-           "RulesOfThumb", "Disagreement"]
+           "RulesOfThumb", "Disagreement", "typed"]
 
 
 # --------------------------------------------------------------------------- reading
+def typed(value, cls, what: str):
+    """``value`` itself when it is a ``cls``, else ``cls.from_mapping(value)`` for a
+    mapping; ``what`` names the mapping in the ValueError for anything else (e.g. "a
+    metrics.json mapping")."""
+    if isinstance(value, cls):
+        return value
+    if isinstance(value, Mapping):
+        return cls.from_mapping(value)
+    raise ValueError(f"expected a {cls.__name__} or {what}, got {type(value).__name__}")
+
+
 def _need(m: Any, key: str, where: str):
     """``m[key]``; ValueError naming ``where.key`` when ``m`` is not a mapping or lacks it."""
     if not isinstance(m, Mapping):
