@@ -36,10 +36,13 @@ quadrature): with the stacked space-time snapshot ``z_k = [x_k; x_{k-1}; ...;
 x_{k-L+1}]`` (entry ``l N + n`` is element n delayed by l snapshots) a noise-like source
 contributes ``R[lN+n, mN+n'] = P a_n a_n'^* sum_j h_n[j] conj(h_n'[j + l - m])``;
 a tone of frequency f0 the rank-one ``P v v^H``, ``v[lN+n] = a_n exp(j 2 pi f0 (d_n -
-l))``; a chirp, whose spectrum over a period is flat across its sweep, the sinc kernel
-``P a_n a_n'^* exp(j 2 pi f_c tau) sinc(W tau)``, ``tau = d_n - d_n' - (l - m)`` (an
-approximation: a chirp is not stationary). As the filter grows the noise-like kernel
-tends to the ideal flat-band sinc kernel (tested against quadrature).
+l))``; a chirp, which is deterministic up to its start phase and repeats every P
+snapshots, its mean over a period, ``R[lN+n, mN+n'] = P a_n a_n'^* (1/P) sum_{k<P}
+c(k + d_n - l) conj(c(k + d_n' - m))`` (channel taps as extra terms), summed in closed
+form (:func:`chirp_period_mean`): exact for the samples as generated, what the sample
+covariance of any whole number of periods equals (tested to rounding). As the filter
+grows the noise-like kernel tends to the ideal flat-band sinc kernel (tested against
+quadrature).
 
 The narrowband model's other effects, in the same terms:
 
@@ -261,6 +264,73 @@ def _chirp_phase(wf, t: np.ndarray) -> np.ndarray:
     return 2 * np.pi * (wf.start * m + 0.5 * (wf.stop - wf.start) * m * m / wf.period)
 
 
+def chirp_period_mean(wf, ta, tb) -> np.ndarray:
+    """``(1/P) sum_{k=0}^{P-1} c(k + ta) conj(c(k + tb))`` for the unit chirp ``c(t) =
+    exp(j phi(t mod P))``, ``phi(m) = 2 pi (f0 m + (f1 - f0) m^2 / (2 P))`` (``wf``:
+    start f0, stop f1, whole period P), at the real time offsets ``ta``, ``tb``
+    (broadcast together): the chirp's average over one period of its sweep, the exact
+    mean of ``x_k x_k^H`` over any P consecutive snapshots (the summand has period P in
+    k), whatever the start phase. In closed form, exact for any P: over one period
+    ``k + ta`` and ``k + tb`` each cross one period boundary, which cuts the sum into
+    at most three runs on which both sit in fixed periods; on such a run the phase
+    difference ``phi(m_a) - phi(m_b) = 2 pi D (f0 + c (m_a + m_b))`` (``D = m_a - m_b``,
+    ``c = (f1 - f0) / (2 P)``) is linear in k, so each run is a geometric sum
+    ``e^{j(A + B (a + b - 1)/2)} sin(n B/2) / sin(B/2)``, evaluated with ``B/2``
+    reduced to within pi/2 of 0 (the ratio then stays accurate near its poles).
+    Tested against the direct sum over the period."""
+    p = int(wf.period)
+    f0, f1 = float(wf.start), float(wf.stop)
+    c = (f1 - f0) / (2.0 * p)
+    ta, tb = np.broadcast_arrays(np.asarray(ta, dtype=float), np.asarray(tb, dtype=float))
+    pa, pb = np.floor(ta / p), np.floor(tb / p)
+    # the first k >= 0 at which k + ta (k + tb) is in the next period: 1 .. P
+    ka = np.clip(np.ceil((pa + 1) * p - ta), 0, p)
+    kb = np.clip(np.ceil((pb + 1) * p - tb), 0, p)
+    k1, k2 = np.minimum(ka, kb), np.maximum(ka, kb)
+    a_first = ka <= kb
+    runs = ((0.0, k1, pa, pb),
+            (k1, k2, np.where(a_first, pa + 1, pa), np.where(a_first, pb, pb + 1)),
+            (k2, float(p), pa + 1, pb + 1))
+    total = np.zeros(ta.shape, dtype=complex)
+    for lo, hi, pu, pv in runs:
+        n = hi - lo
+        d = (ta - tb) - (pu - pv) * p                 # m_a - m_b on this run
+        big_a = 2 * np.pi * d * (f0 + c * (ta + tb - (pu + pv) * p))
+        half = 2 * np.pi * c * d                      # B / 2
+        turns = np.round(half / np.pi)
+        x = half - turns * np.pi                      # |x| <= pi / 2
+        safe = np.where(x == 0.0, 1.0, np.sin(x))
+        ratio = np.where(x == 0.0, n, np.sin(n * x) / safe)
+        sign = np.where(np.mod(turns * (n - 1), 2.0) == 1.0, -1.0, 1.0)
+        total += np.exp(1j * (big_a + 2 * half * (lo + 0.5 * (n - 1)))) * (sign * ratio)
+    return total / p
+
+
+def _chirp_kernel(wf, terms) -> np.ndarray:
+    """``sum_{q,q'} g_q g_q'^* chirp_period_mean(tau_q, tau_q')`` over the stacked
+    entries: ``terms`` a list of (gain, offset) pairs, gain (..., E) complex (or a
+    scalar) and offset (..., E) (the entry's time offset ``tau``: element e of the
+    stacked snapshot at k is ``sum_q g_q c(k + tau_q)``, the start phase aside);
+    (..., E, E). Worked out once per distinct set of gains and offsets (the same for
+    every checkpoint of a still source, and for every trial of a shared array), each
+    entry by the same elementwise steps, so the values do not depend on the batch."""
+    lead = np.broadcast_shapes(*[np.shape(g)[:-1] for g, _ in terms if np.ndim(g)],
+                               *[np.shape(t)[:-1] for _, t in terms])
+    e = np.shape(terms[0][1])[-1]
+    flat = [(np.broadcast_to(np.asarray(g, dtype=complex), lead + (e,)).reshape(-1, e),
+             np.broadcast_to(np.asarray(t, dtype=float), lead + (e,)).reshape(-1, e))
+            for g, t in terms]
+    key = np.concatenate([np.concatenate([g.real, g.imag, t], axis=1) for g, t in flat],
+                         axis=1)
+    _, first, back = np.unique(key, axis=0, return_index=True, return_inverse=True)
+    out = np.zeros((len(first), e, e), dtype=complex)
+    for ga, ta in flat:
+        for gb, tb in flat:
+            out += ga[first, :, None] * np.conj(gb[first, None, :]) * chirp_period_mean(
+                wf, ta[first, :, None], tb[first, None, :])
+    return out[np.ravel(back)].reshape(lead + (e, e))
+
+
 def _deterministic(wf, tt: np.ndarray, phi0) -> np.ndarray:
     """A tone's or chirp's unit envelope at the (fractional) times ``tt``."""
     if wf.kind == "tone":
@@ -352,8 +422,8 @@ def _kernel(source, delays: np.ndarray, taps: int, scene,
             channels: np.ndarray | None = None) -> np.ndarray:
     """Unit-power space-time kernel (..., NL, NL) of one source's envelope at the
     elements with advances ``delays`` (..., N) through the channel filters ``channels``
-    (T, N, 3) if any, before the steering entries. Tones: exact; chirps: the channels'
-    response at the sweep's centre (approximate)."""
+    (T, N, 3) if any, before the steering entries. Tones: exact; chirps: exact for
+    their average over a period (:func:`chirp_period_mean`)."""
     wf = source.waveform
     n = delays.shape[-1]
     lead = delays.shape[:-1]
@@ -377,17 +447,18 @@ def _kernel(source, delays: np.ndarray, taps: int, scene,
         return _lag_matrix(c, taps, n, lead)
     lag = np.repeat(np.arange(taps), n)                                   # l of entry lN+n
     dd = np.tile(delays, (1,) * len(lead) + (taps,))                       # d_n of entry lN+n
+    if wf.kind == "chirp":
+        # the channel's taps j = -1, 0, 1 read the chirp at k - l - j + d_n
+        if channels is None:
+            return _chirp_kernel(wf, [(1.0, dd - lag)])
+        ch = channels.reshape(channels.shape[:1] + (1,) * (len(lead) - 1) + channels.shape[1:])
+        ch = np.tile(ch, (1,) * len(lead) + (taps, 1))                     # (.., LN, 3)
+        return _chirp_kernel(wf, [(ch[..., q], dd - lag - (q - 1)) for q in range(3)])
     tau = dd[..., :, None] - dd[..., None, :] - (lag[:, None] - lag[None, :])
-    if wf.kind == "tone":
-        out = np.exp(2j * np.pi * wf.frequency * tau)
-        centre = wf.frequency
-    else:
-        lo, hi = sorted((wf.start, wf.stop))
-        out = np.exp(1j * np.pi * (lo + hi) * tau) * np.sinc((hi - lo) * tau)
-        centre = 0.5 * (lo + hi)
+    out = np.exp(2j * np.pi * wf.frequency * tau)
     if channels is None:
         return out
-    g = _channel_response(channels, centre)                               # (T, N)
+    g = _channel_response(channels, wf.frequency)                         # (T, N)
     g = np.tile(g.reshape(g.shape[:1] + (1,) * (len(lead) - 1) + g.shape[1:]),
                 (1,) * len(lead) + (taps,))
     return out * g[..., :, None] * np.conj(g[..., None, :])
@@ -747,19 +818,26 @@ def _tone_vector(batch, i: int, taps: int, kk: np.ndarray) -> np.ndarray:
     return v.reshape(t_, m, taps * n)
 
 
-def _chirp_terms(batch, i: int, taps: int, kk: np.ndarray):
-    """(T, M, LN) gains and time offsets of a chirp's stacked entries (the chirp's flat
-    sweep kernel of the module docstring; channels at the sweep's centre)."""
+def _chirp_terms(batch, i: int, taps: int, kk: np.ndarray) -> list:
+    """A chirp's stacked entries as (gain, time offset) pairs, each (T, M, LN), one per
+    channel tap (:func:`_chirp_kernel`): entry ``l N + n`` at snapshot k is ``sum_q
+    g_q c(k + tau_q)``, as the streams form it (tap ``jj = l + q`` of the member's
+    delays and steering, lag ``jj - ripple``)."""
     wf, channels, ripple, d, a, (t_, m, n) = _member_setting(batch, i, taps, kk)
-    g = _channel_response(channels, 0.5 * (wf.start + wf.stop))
-    alpha = np.empty((t_, m, taps, n), dtype=complex)
-    tau = np.empty((t_, m, taps, n))
-    for l_ in range(taps):
-        jj = l_ + ripple
-        alpha[:, :, l_] = np.broadcast_to(a[:, :, min(jj, a.shape[2] - 1)] * (
-            g if channels is None else g[:, None, :]), (t_, m, n))
-        tau[:, :, l_] = np.broadcast_to(d[:, :, min(jj, d.shape[2] - 1)] - l_, (t_, m, n))
-    return alpha.reshape(t_, m, taps * n), tau.reshape(t_, m, taps * n)
+    terms = []
+    for q in range(2 * ripple + 1):
+        alpha = np.empty((t_, m, taps, n), dtype=complex)
+        tau = np.empty((t_, m, taps, n))
+        for l_ in range(taps):
+            jj = l_ + q
+            gain = a[:, :, min(jj, a.shape[2] - 1)]
+            if ripple:
+                gain = gain * channels[:, None, :, q]
+            alpha[:, :, l_] = np.broadcast_to(gain, (t_, m, n))
+            tau[:, :, l_] = np.broadcast_to(d[:, :, min(jj, d.shape[2] - 1)] - (jj - ripple),
+                                            (t_, m, n))
+        terms.append((alpha.reshape(t_, m, taps * n), tau.reshape(t_, m, taps * n)))
+    return terms
 
 
 def _amplitudes(scene, i: int, kk: np.ndarray, unit: bool, taps: int) -> np.ndarray:
@@ -814,15 +892,8 @@ def _group_covariance(batch, group: list[int], taps: int, kk: np.ndarray,
             r = v[..., :, None] * np.conj(v[..., None, :])
         else:
             wf = sc.sources[sc.origin_index(group[0])].waveform
-            low, high = sorted((wf.start, wf.stop))
-            terms = [_chirp_terms(batch, i, taps, ks) for i in group]
-            r = 0
-            for a_, (al_a, tau_a) in enumerate(terms):
-                for b_, (al_b, tau_b) in enumerate(terms):
-                    tau = tau_a[..., :, None] - tau_b[..., None, :]
-                    ker = np.exp(1j * np.pi * (low + high) * tau) * np.sinc((high - low) * tau)
-                    r = r + ker * ((amps[a_] * al_a)[..., :, None]
-                                   * np.conj((amps[b_] * al_b)[..., None, :]))
+            r = _chirp_kernel(wf, [(amp * g, tau) for amp, i in zip(amps, group)
+                                   for g, tau in _chirp_terms(batch, i, taps, ks)])
         out[:, lo:lo + len(ks)] = r
     return _couple(batch, out, taps)
 
