@@ -264,6 +264,20 @@ def _chirp_phase(wf, t: np.ndarray) -> np.ndarray:
     return 2 * np.pi * (wf.start * m + 0.5 * (wf.stop - wf.start) * m * m / wf.period)
 
 
+#: time offsets within this many snapshots of a whole number are taken as whole by
+#: chirp_period_mean: the streams add an offset to the snapshot index in floating
+#: point, which rounds a geometric zero (the 1e-17 left by a cosine of 90 degrees) to
+#: the index itself, so the sample then sits at the start of its period, not the end
+WHOLE_OFFSET = 1e-12
+#: pair entries worked out at a time by _chirp_kernel (bounds its temporaries)
+_CHIRP_VALUES = 1 << 17
+
+
+def _whole_if_near(t: np.ndarray) -> np.ndarray:
+    r = np.round(t)
+    return np.where(np.abs(t - r) <= WHOLE_OFFSET, r, t)
+
+
 def chirp_period_mean(wf, ta, tb) -> np.ndarray:
     """``(1/P) sum_{k=0}^{P-1} c(k + ta) conj(c(k + tb))`` for the unit chirp ``c(t) =
     exp(j phi(t mod P))``, ``phi(m) = 2 pi (f0 m + (f1 - f0) m^2 / (2 P))`` (``wf``:
@@ -277,11 +291,14 @@ def chirp_period_mean(wf, ta, tb) -> np.ndarray:
     ``c = (f1 - f0) / (2 P)``) is linear in k, so each run is a geometric sum
     ``e^{j(A + B (a + b - 1)/2)} sin(n B/2) / sin(B/2)``, evaluated with ``B/2``
     reduced to within pi/2 of 0 (the ratio then stays accurate near its poles).
-    Tested against the direct sum over the period."""
+    Offsets within :data:`WHOLE_OFFSET` of a whole number are taken as whole, as the
+    streams' floating-point times ``k + t`` round them. Tested against the direct sum
+    over the period and against the streams' samples."""
     p = int(wf.period)
     f0, f1 = float(wf.start), float(wf.stop)
     c = (f1 - f0) / (2.0 * p)
-    ta, tb = np.broadcast_arrays(np.asarray(ta, dtype=float), np.asarray(tb, dtype=float))
+    ta, tb = np.broadcast_arrays(_whole_if_near(np.asarray(ta, dtype=float)),
+                                 _whole_if_near(np.asarray(tb, dtype=float)))
     pa, pb = np.floor(ta / p), np.floor(tb / p)
     # the first k >= 0 at which k + ta (k + tb) is in the next period: 1 .. P
     ka = np.clip(np.ceil((pa + 1) * p - ta), 0, p)
@@ -324,10 +341,14 @@ def _chirp_kernel(wf, terms) -> np.ndarray:
                          axis=1)
     _, first, back = np.unique(key, axis=0, return_index=True, return_inverse=True)
     out = np.zeros((len(first), e, e), dtype=complex)
-    for ga, ta in flat:
-        for gb, tb in flat:
-            out += ga[first, :, None] * np.conj(gb[first, None, :]) * chirp_period_mean(
-                wf, ta[first, :, None], tb[first, None, :])
+    step = max(1, _CHIRP_VALUES // (e * e))
+    for lo in range(0, len(first), step):
+        rows = first[lo:lo + step]
+        part = out[lo:lo + step]
+        for ga, ta in flat:
+            for gb, tb in flat:
+                part += ga[rows, :, None] * np.conj(gb[rows, None, :]) * chirp_period_mean(
+                    wf, ta[rows, :, None], tb[rows, None, :])
     return out[np.ravel(back)].reshape(lead + (e, e))
 
 
