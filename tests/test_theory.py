@@ -40,6 +40,21 @@ def test_rmb_mean_is_the_beta_mean():
         theory.rmb_mean(10.5, 8)
 
 
+def test_the_beta_law_functions_are_scipy_stats_beta():
+    # beta_quantile and beta_survival (scipy.special, quick to import) against the
+    # reference library's Beta distribution: quantiles and tails over the shapes sizing
+    # meets (Clopper-Pearson counts up to 10^5 trials, RMB shapes up to 10^4 snapshots)
+    rng = np.random.default_rng(5)
+    a = np.round(rng.uniform(1, 1e5, 5000))
+    b = np.round(rng.uniform(1, 1e4, 5000))
+    x = rng.uniform(0, 1, 5000)
+    for q in (x, 0.025, 0.975, 0.0, 1.0):
+        assert np.allclose(theory.beta_quantile(q, a, b), stats.beta.ppf(q, a, b),
+                           rtol=1e-12, atol=0)
+    assert np.allclose(theory.beta_survival(x, a, b), stats.beta.sf(x, a, b),
+                       rtol=1e-12, atol=1e-300)
+
+
 def test_rmb_three_db_point_is_2n_minus_3():
     # RMB 1974: (K+2-N)/(K+1) = 1/2 exactly at K = 2N-3
     for n in range(3, 40):

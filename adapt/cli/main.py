@@ -74,8 +74,8 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     if getattr(args, "numba_without_blas", False):
         # this process runs no numba code but adapt's, and the command imports no
-        # scipy.linalg while its kernels load (size does: it imports scipy.stats
-        # alongside its trials, so it keeps numba's check)
+        # scipy.linalg while its kernels load (size preloads scipy.special, which
+        # does not import it)
         from adapt.numerics.numba_start import start_without_blas
         start_without_blas()
     if not getattr(args, "func", None):

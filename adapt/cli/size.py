@@ -62,7 +62,7 @@ def register(subparsers) -> None:
                         "and sizing.json say which was used and why")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     _run.add_options(p)
-    p.set_defaults(func=run)
+    p.set_defaults(func=run, numba_without_blas=True)   # see cli.main.main
 
 
 def command_line(args) -> str:
@@ -105,7 +105,7 @@ def _resume(args, execution) -> int:
 def _execute(args, folder, scene, settings, execution, line) -> int:
     from adapt.studies.sizing import size, sweep_points, write_sizing_run
     bars = []
-    _run.preload("scipy.stats", "matplotlib.figure", "matplotlib.backends.backend_agg")
+    _run.preload("scipy.special", "matplotlib.figure", "matplotlib.backends.backend_agg")
 
     def work(store):
         if not args.no_progress:

@@ -15,8 +15,9 @@ _CYTHON_BLAS = "scipy.linalg.cython_blas"
 def start_without_blas() -> None:
     """Let the first kernel load set numba up without scipy's BLAS wrappers, for a
     process that runs no numba code but adapt's and imports no ``scipy.linalg`` on
-    another thread while its kernels first load (the commands other than ``size``
-    call this; ``size`` imports ``scipy.stats`` alongside its trials).
+    another thread while its kernels first load (the commands that run trials call
+    this; ``size`` preloads ``scipy.special`` alongside its trials, which does not
+    import ``scipy.linalg``).
 
     On its first compile or cache load numba sets up its CPU target, and with it the
     module of its numpy functions, which imports ``scipy.linalg`` only to learn whether

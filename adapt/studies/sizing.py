@@ -210,7 +210,7 @@ def stays_met(ok: np.ndarray) -> np.ndarray:
 def clopper_pearson(successes, trials, level: float = CONFIDENCE) -> tuple[np.ndarray, np.ndarray]:
     """Exact (Clopper and Pearson 1934) two-sided binomial interval for a proportion:
     lower ``Beta(alpha/2; m, n-m+1)``, upper ``Beta(1-alpha/2; m+1, n-m)`` quantiles
-    (scipy.stats.beta), 0 for m = 0 and 1 for m = n. Checkable fact: the interval holds
+    (:func:`adapt.studies.theory.beta_quantile`), 0 for m = 0 and 1 for m = n. Checkable fact: the interval holds
     the proportion with probability >= level for every true proportion."""
     m = np.asarray(successes, dtype=float)
     n = np.asarray(trials, dtype=float)
@@ -219,10 +219,10 @@ def clopper_pearson(successes, trials, level: float = CONFIDENCE) -> tuple[np.nd
     if np.any(m < 0) or np.any(m > n) or np.any(n < 1):
         raise ValueError("need 0 <= successes <= trials and trials >= 1")
     alpha = 1.0 - level
-    from scipy import stats  # slow to import: only where it is used
     with np.errstate(invalid="ignore"):
-        lo = np.where(m > 0, stats.beta.ppf(alpha / 2, np.maximum(m, 1), n - m + 1), 0.0)
-        hi = np.where(m < n, stats.beta.ppf(1 - alpha / 2, m + 1, np.maximum(n - m, 1)), 1.0)
+        lo = np.where(m > 0, theory.beta_quantile(alpha / 2, np.maximum(m, 1), n - m + 1), 0.0)
+        hi = np.where(m < n, theory.beta_quantile(1 - alpha / 2, m + 1, np.maximum(n - m, 1)),
+                      1.0)
     return lo, hi
 
 

@@ -96,6 +96,27 @@ def _check_q(q) -> np.ndarray:
     return q
 
 
+# --------------------------------------------------------------------------- the Beta law
+def beta_quantile(q, a, b) -> np.ndarray:
+    """Quantile ``q`` of ``Beta(a, b)``: the inverse regularised incomplete beta
+    function (``scipy.special.betaincinv``; the same numbers as ``scipy.stats.beta.ppf``,
+    tested, at a quarter of its import cost: scipy.stats takes about 0.7 s to import,
+    scipy.special 0.18 s)."""
+    from scipy import special  # only where it is used
+    return special.betaincinv(a, b, q)
+
+
+def beta_survival(x, a, b) -> np.ndarray:
+    """``P(X > x)`` for ``X ~ Beta(a, b)``: the complemented regularised incomplete beta
+    function (``scipy.special.betaincc``, scipy 1.11 and later; the same numbers as
+    ``scipy.stats.beta.sf``, tested; before 1.11, that function itself)."""
+    from scipy import special  # only where it is used
+    if hasattr(special, "betaincc"):
+        return special.betaincc(a, b, x)
+    from scipy import stats
+    return stats.beta.sf(x, a, b)
+
+
 # --------------------------------------------------------------------------- RMB
 def rmb_mean(k, n) -> np.ndarray:
     """Mean normalised SINR of unloaded SMI after ``k`` interference-only snapshots,
@@ -111,16 +132,15 @@ def rmb_mean(k, n) -> np.ndarray:
 
 
 def rmb_quantile(q, k, n) -> np.ndarray:
-    """Quantile ``q`` of the RMB law ``Beta(K - N + 2, N - 1)`` (scipy.stats.beta); NaN
+    """Quantile ``q`` of the RMB law ``Beta(K - N + 2, N - 1)`` (:func:`beta_quantile`); NaN
     where K < N. q and k broadcast."""
     n = _check_elements(n)
     k = _counts(k, n)
     q = _check_q(q)
     q, k = np.broadcast_arrays(q, k)
-    from scipy import stats  # slow to import: only where it is used
     out = np.full(k.shape, np.nan)
     ok = k >= n
-    out[ok] = stats.beta.ppf(q[ok], k[ok] - n + 2.0, n - 1.0)
+    out[ok] = beta_quantile(q[ok], k[ok] - n + 2.0, n - 1.0)
     return out
 
 
@@ -440,8 +460,7 @@ class Law:
             t = t * (1.0 + s) / (1.0 + s * t)
         out = np.full(kk.shape, np.nan)
         if np.any(ok):
-            from scipy import stats  # slow to import: only where it is used
-            out[ok] = stats.beta.sf(t, kk[ok] - self.elements + 2.0, self.elements - 1.0)
+            out[ok] = beta_survival(t, kk[ok] - self.elements + 2.0, self.elements - 1.0)
         return out
 
     def required_snapshots_share(self, target: float, fraction: float, limit: int
