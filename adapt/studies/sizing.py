@@ -210,8 +210,9 @@ def stays_met(ok: np.ndarray) -> np.ndarray:
 def clopper_pearson(successes, trials, level: float = CONFIDENCE) -> tuple[np.ndarray, np.ndarray]:
     """Exact (Clopper and Pearson 1934) two-sided binomial interval for a proportion:
     lower ``Beta(alpha/2; m, n-m+1)``, upper ``Beta(1-alpha/2; m+1, n-m)`` quantiles
-    (:func:`adapt.studies.theory.beta_quantile`), 0 for m = 0 and 1 for m = n. Checkable fact: the interval holds
-    the proportion with probability >= level for every true proportion."""
+    (:func:`adapt.studies.theory.beta_quantile`), 0 for m = 0 and 1 for m = n.
+    Checkable fact: the interval holds the proportion with probability >= level for
+    every true proportion."""
     m = np.asarray(successes, dtype=float)
     n = np.asarray(trials, dtype=float)
     if not 0 < level < 1:
