@@ -140,24 +140,32 @@ def test_a_command_sets_one_blas_thread_unless_the_user_chose():
         assert env == {chosen: "4"}
 
 
-_COMPARE_MODULES = """
+_COMMAND_MODULES = """
 import json, sys, tempfile
 from adapt.cli.main import main
 with tempfile.TemporaryDirectory() as out:
-    code = main(["compare", "scenes/jammer_rich.yaml", "--trials", "3", "--snapshots",
-                 "64", "--out", out, "--no-progress"])
-    heavy = [m for m in ("scipy.signal", "scipy.stats") if m in sys.modules]
+    code = main(ARGS + ["--out", out, "--no-progress"])
+    heavy = [m for m in HEAVY if m in sys.modules]
 sys.stderr.write(json.dumps([code, heavy]))
 """
 
 
-def test_compare_imports_neither_scipy_signal_nor_stats():
-    # the tapers are computed in numpy (adapt.numerics.tapers): scipy.signal alone costs
-    # most of a second of import
-    done = _run(_COMPARE_MODULES)
+@pytest.mark.parametrize("args,heavy", [
+    # the tapers are computed in numpy (adapt.numerics.tapers): scipy.signal alone
+    # costs most of a second of import
+    (["compare", "scenes/jammer_rich.yaml", "--trials", "3", "--snapshots", "64"],
+     ["scipy.signal", "scipy.stats"]),
+    # the Beta law's quantiles and tail come from scipy.special (a quarter of
+    # scipy.stats' import time), and nothing size preloads beside its trials imports
+    # scipy.linalg, so size may skip numba's BLAS check like the other commands
+    (["size", "scenes/single_jammer.yaml", "--trials", "20", "--snapshots", "8,16,32"],
+     ["scipy.stats", "scipy.linalg"]),
+], ids=["compare", "size"])
+def test_a_command_leaves_the_heavy_scipy_modules_unimported(args, heavy):
+    done = _run(_COMMAND_MODULES.replace("ARGS", repr(args)).replace("HEAVY", repr(heavy)))
     assert done.returncode == 0, done.stderr
-    code, heavy = json.loads(done.stderr.strip().splitlines()[-1])
-    assert code == 0 and heavy == []
+    code, loaded = json.loads(done.stderr.strip().splitlines()[-1])
+    assert code == 0 and loaded == []
 
 
 @pytest.mark.skipif(not HAVE_NUMBA, reason="numba not installed")
@@ -183,27 +191,6 @@ def test_a_command_sets_numba_up_without_scipy_blas_and_scipy_still_imports(tmp_
                "import numba.np.arraymath as am\nprint(am._HAVE_BLAS)\n")
     assert lib.returncode == 0, lib.stderr
     assert lib.stdout.strip().splitlines()[-1] == "True"
-
-
-_SIZE_MODULES = """
-import json, sys, tempfile
-from adapt.cli.main import main
-with tempfile.TemporaryDirectory() as out:
-    code = main(["size", "scenes/single_jammer.yaml", "--trials", "20", "--snapshots",
-                 "8,16,32", "--out", out, "--no-progress"])
-    heavy = [m for m in ("scipy.stats", "scipy.linalg") if m in sys.modules]
-sys.stderr.write(json.dumps([code, heavy]))
-"""
-
-
-def test_size_imports_neither_scipy_stats_nor_scipy_linalg():
-    # the Beta law's quantiles and tail come from scipy.special (a quarter of
-    # scipy.stats' import time), and nothing size preloads beside its trials imports
-    # scipy.linalg, so size may skip numba's BLAS check like the other commands
-    done = _run(_SIZE_MODULES)
-    assert done.returncode == 0, done.stderr
-    code, heavy = json.loads(done.stderr.strip().splitlines()[-1])
-    assert code == 0 and heavy == []
 
 
 def test_only_commands_without_a_concurrent_scipy_import_skip_numbas_blas_check():
