@@ -304,6 +304,34 @@ def test_eigenvalue_count_grows_with_the_time_bandwidth_product():
         assert abs(c - e) <= 2 + 0.25 * e
 
 
+def test_a_chirp_has_the_eigenvalues_of_a_flat_band_across_its_sweep():
+    # a chirp's mean over a period (its truth) spreads over the band it sweeps: its
+    # eigenvalues follow those of a flat band of that width from the same direction
+    # (Slepian 1978, as above), on the array and on a delay line; a tone stays rank one
+    sweep = {"kind": "chirp", "start": 0.3, "stop": -0.3, "period": 97}
+    sc = _scene(fb=0.8, elements=16, jammers=[
+        {"name": "c", "role": "interferer", "azimuth": 90, "power_db": 0, "waveform": sweep},
+        {"name": "f", "role": "interferer", "azimuth": 90, "power_db": 0, "bandwidth": 0.6},
+        {"name": "t", "role": "interferer", "azimuth": 90, "power_db": 0,
+         "waveform": {"kind": "tone", "frequency": 0.2}}])
+    batch = TrialBatch(sc, trials=1)
+    for taps in (1, 3):
+        lams = []
+        for i in (1, 2, 3):
+            r = wb.source_covariance(batch, i, taps, np.array([0]), unit=True)[0, 0]
+            lam = np.linalg.eigvalsh(r)[::-1]
+            lams.append(lam / lam.sum())
+        counts = [int(np.sum(lam > 1e-2 * lam[0])) for lam in lams]
+        # (the chirp's tail is a little longer: its spectrum ripples, and the sweep
+        # jumps back once a period)
+        assert abs(counts[0] - counts[1]) <= 1 and min(counts[:2]) > 3, (taps, counts)
+        assert counts[2] == 1
+        assert np.abs(lams[0][:counts[1]] - lams[1][:counts[1]]).max() < 0.01
+    assert wb.expected_eigenvalues(sc, sc.sources[1]) == \
+        wb.expected_eigenvalues(sc, sc.sources[2]) > 2
+    assert wb.expected_eigenvalues(sc, sc.sources[3]) == 1.0
+
+
 @pytest.mark.parametrize("spec, fir", [("frost taps=3", [0, 1, 0]),
                                        ("frost taps=4 response=0.5,1,-0.25j,0", [0.5, 1, -0.25j, 0])])
 def test_frost_delay_line_constraint_holds_exactly(spec, fir):

@@ -1094,16 +1094,22 @@ def expected_eigenvalues(scene, source) -> float:
     snapshots (the time-bandwidth product of the prolate spheroidal concentration
     problem; Slepian, "Prolate spheroidal wave functions ... V", Bell Syst. Tech. J.
     57, 1978). A coherent copy counts with its origin's waveform and band, at its own
-    direction (its start direction when it moves)."""
+    direction (its start direction when it moves). A chirp counts as a flat band across
+    its sweep, ``W = |stop - start|`` (its mean over a period, the truth, has that
+    band's eigenvalues: tested), a tone as one."""
     if source.waveform.kind == COPY:
         origin = scene.sources[scene.source_index(source.waveform.of)]
         source = dataclasses.replace(origin, azimuth=source.azimuth,
                                      elevation=source.elevation)
-    if source.waveform.kind not in _NOISE_LIKE:
+    wf = source.waveform
+    if wf.kind == "chirp":
+        w = abs(float(wf.stop) - float(wf.start))
+    elif wf.kind in _NOISE_LIKE:
+        w = 1.0 if source.bandwidth is None else float(source.bandwidth)
+    else:
         return 1.0
     fb = scene.receiver.fractional_bandwidth or 0.0
     u = geometry.direction_vector(source.azimuth, source.elevation)
     proj = scene.array.positions @ u
     spread = fb * float(np.ptp(proj)) if proj.size else 0.0
-    w = 1.0 if source.bandwidth is None else float(source.bandwidth)
     return 1.0 + 2.0 * w * spread

@@ -39,7 +39,8 @@ Warnings (each a plain sentence):
   endfire can approach N^2, Uzkov 1946), with a low white-noise gain and so sensitive
   to errors (Cox, Zeskind and Owen 1987);
 * wideband scenes only: the interferers' expected significant eigenvalues (about
-  ``1 + 2 W T`` each, W the band in cycles per snapshot, T the delay spread across the
+  ``1 + 2 W T`` each, W the band in cycles per snapshot (a chirp's: its sweep; a tone
+  counts one), T the delay spread across the
   aperture in snapshots: Slepian 1978) add up to more than the space-time degrees of
   freedom ``N L - 1``, L the longest delay line among the listed processors (taps, or
   a sub-band processor's bins; 1 when none has one).
